@@ -1,0 +1,34 @@
+//! The analysis core: forward and backward passes, preferred inputs, sparsity statistics,
+//! interval bounds, screening for dead units and magnitude pruning. Takes `&Network` and
+//! arrays, never paths; nothing here depends on the GUI.
+
+pub mod bounds;
+pub mod forward;
+pub mod gradient;
+pub mod prefer;
+pub mod prune;
+pub mod screen;
+pub mod sparsity;
+pub mod train;
+
+/// Progress reporting and cancellation for long work.
+///
+/// The command line passes [`Silent`]; the app passes a reporter that forwards the fraction
+/// to its status bar and reads its cancel button.
+pub trait Progress: Sync {
+    /// Work done so far, from 0 to 1.
+    fn set(&self, fraction: f32);
+    /// True once the user asked to stop; long loops check it and return
+    /// [`crate::Error::Cancelled`].
+    fn cancelled(&self) -> bool {
+        false
+    }
+}
+
+/// A [`Progress`] that reports nowhere and never cancels.
+#[derive(Debug, Default, Clone, Copy)]
+pub struct Silent;
+
+impl Progress for Silent {
+    fn set(&self, _fraction: f32) {}
+}

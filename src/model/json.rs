@@ -1,0 +1,607 @@
+//! Parsing the JSON model file into a raw, unchecked form, then building a [`Network`].
+//!
+//! Inline tensors are parsed straight into flat `f32` buffers (no per-number JSON values),
+//! and problems inside a tensor (a string, a null, a ragged row, a value too large for
+//! f32) are recorded with their row and column instead of aborting the parse, so that the
+//! message can name the layer.
+
+use super::network::{Activation, InputSpec, Layer, Layout, Network};
+use super::tensors::SideFiles;
+use super::{LoadOptions, SCHEMA_TAG};
+use crate::error::{Error, Result};
+use ndarray::{Array1, Array2};
+use serde::Deserialize;
+use serde::de::{self, DeserializeSeed, Deserializer, IgnoredAny, MapAccess, SeqAccess, Visitor};
+use std::fmt;
+use std::path::Path;
+
+/// The model file as written, before any check.
+#[derive(Debug, Default)]
+pub(crate) struct RawModel {
+    schema: Option<serde_json::Value>,
+    name: Option<String>,
+    description: Option<String>,
+    input: Option<RawInput>,
+    layers: Option<Vec<RawLayer>>,
+    extra: serde_json::Map<String, serde_json::Value>,
+}
+
+#[derive(Debug, Deserialize)]
+struct RawInput {
+    size: Option<serde_json::Value>,
+    layout: Option<RawLayout>,
+    low: Option<RawBound>,
+    high: Option<RawBound>,
+    names: Option<Vec<String>>,
+}
+
+#[derive(Debug, Deserialize)]
+struct RawLayout {
+    kind: String,
+    height: Option<u64>,
+    width: Option<u64>,
+    channels: Option<u64>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(untagged)]
+enum RawBound {
+    Scalar(f64),
+    Array(Vec<f64>),
+}
+
+#[derive(Debug, Deserialize)]
+struct RawLayer {
+    name: Option<String>,
+    #[serde(rename = "type")]
+    kind: Option<String>,
+    activation: Option<String>,
+    alpha: Option<f64>,
+    weights: Option<TensorSrc>,
+    bias: Option<TensorSrc>,
+    labels: Option<Vec<String>>,
+}
+
+/// Where a tensor's values are: inline in the JSON, or in a safetensors side file.
+#[derive(Debug)]
+enum TensorSrc {
+    Inline(InlineTensor),
+    Side { file: String, tensor: String },
+}
+
+/// An inline tensor parsed into a flat buffer, with the first problem found (if any).
+#[derive(Debug, Default)]
+struct InlineTensor {
+    data: Vec<f32>,
+    /// Length of each row (2-D), or empty for a 1-D list.
+    row_lens: Vec<usize>,
+    /// True when the outer list held numbers (1-D).
+    flat: bool,
+    /// First problem: (row, column, description). Row is `None` for a 1-D list.
+    problem: Option<(Option<usize>, usize, String)>,
+}
+
+/// One JSON value inside a tensor list.
+enum Cell {
+    Num(f64),
+    Row,
+    Bad(String),
+}
+
+/// Deserialises one cell of a 1-D list, or one row of a 2-D list (recording into `t`).
+struct CellSeed<'a> {
+    t: &'a mut InlineTensor,
+    depth: usize,
+}
+
+impl<'de> DeserializeSeed<'de> for CellSeed<'_> {
+    type Value = Cell;
+    fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Cell, D::Error> {
+        d.deserialize_any(self)
+    }
+}
+
+impl<'de> Visitor<'de> for CellSeed<'_> {
+    type Value = Cell;
+    fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+        f.write_str("a number or a list of numbers")
+    }
+    fn visit_f64<E: de::Error>(self, v: f64) -> Result<Cell, E> {
+        Ok(Cell::Num(v))
+    }
+    fn visit_i64<E: de::Error>(self, v: i64) -> Result<Cell, E> {
+        Ok(Cell::Num(v as f64))
+    }
+    fn visit_u64<E: de::Error>(self, v: u64) -> Result<Cell, E> {
+        Ok(Cell::Num(v as f64))
+    }
+    fn visit_str<E: de::Error>(self, v: &str) -> Result<Cell, E> {
+        let shown: String = v.chars().take(20).collect();
+        Ok(Cell::Bad(format!(
+            "a string \"{shown}\" where a number belongs"
+        )))
+    }
+    fn visit_bool<E: de::Error>(self, v: bool) -> Result<Cell, E> {
+        Ok(Cell::Bad(format!("{v} where a number belongs")))
+    }
+    fn visit_unit<E: de::Error>(self) -> Result<Cell, E> {
+        Ok(Cell::Bad("null where a number belongs".into()))
+    }
+    fn visit_none<E: de::Error>(self) -> Result<Cell, E> {
+        self.visit_unit()
+    }
+    fn visit_map<A: MapAccess<'de>>(self, mut m: A) -> Result<Cell, A::Error> {
+        while m.next_entry::<IgnoredAny, IgnoredAny>()?.is_some() {}
+        Ok(Cell::Bad("an object where a number belongs".into()))
+    }
+    fn visit_seq<A: SeqAccess<'de>>(self, mut s: A) -> Result<Cell, A::Error> {
+        if self.depth > 0 {
+            while s.next_element::<IgnoredAny>()?.is_some() {}
+            return Ok(Cell::Bad("a nested list where a number belongs".into()));
+        }
+        // A row of a 2-D tensor.
+        let row = self.t.row_lens.len();
+        let start = self.t.data.len();
+        let mut col = 0usize;
+        while let Some(cell) = s.next_element_seed(CellSeed {
+            t: &mut *self.t,
+            depth: 1,
+        })? {
+            match cell {
+                Cell::Num(v) => push_number(self.t, Some(row), col, v),
+                Cell::Bad(why) => {
+                    if self.t.problem.is_none() {
+                        self.t.problem = Some((Some(row), col, why));
+                    }
+                    self.t.data.push(0.0);
+                }
+                Cell::Row => {}
+            }
+            col += 1;
+        }
+        self.t.row_lens.push(self.t.data.len() - start);
+        Ok(Cell::Row)
+    }
+}
+
+fn push_number(t: &mut InlineTensor, row: Option<usize>, col: usize, v: f64) {
+    let x = v as f32;
+    if !x.is_finite() && t.problem.is_none() {
+        t.problem = Some((
+            row,
+            col,
+            format!("the value {v} is not a finite 32-bit float"),
+        ));
+    }
+    t.data.push(x);
+}
+
+struct TensorVisitor;
+
+impl<'de> Visitor<'de> for TensorVisitor {
+    type Value = TensorSrc;
+    fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+        f.write_str(
+            "a list of numbers, a list of rows, or {\"safetensors\": FILE, \"tensor\": NAME}",
+        )
+    }
+    fn visit_seq<A: SeqAccess<'de>>(self, mut s: A) -> Result<TensorSrc, A::Error> {
+        let mut t = InlineTensor::default();
+        let mut i = 0usize;
+        let mut saw_rows = false;
+        let mut saw_numbers = false;
+        while let Some(cell) = s.next_element_seed(CellSeed {
+            t: &mut t,
+            depth: 0,
+        })? {
+            match cell {
+                Cell::Num(v) => {
+                    saw_numbers = true;
+                    push_number(&mut t, None, i, v);
+                }
+                Cell::Row => saw_rows = true,
+                Cell::Bad(why) => {
+                    if t.problem.is_none() {
+                        t.problem = Some((None, i, why));
+                    }
+                }
+            }
+            i += 1;
+        }
+        if saw_rows && saw_numbers && t.problem.is_none() {
+            t.problem = Some((None, 0, "a mix of numbers and rows".into()));
+        }
+        t.flat = !saw_rows;
+        Ok(TensorSrc::Inline(t))
+    }
+    fn visit_map<A: MapAccess<'de>>(self, mut m: A) -> Result<TensorSrc, A::Error> {
+        let mut file = None;
+        let mut tensor = None;
+        while let Some(k) = m.next_key::<String>()? {
+            match k.as_str() {
+                "safetensors" => file = Some(m.next_value::<String>()?),
+                "tensor" => tensor = Some(m.next_value::<String>()?),
+                _ => {
+                    m.next_value::<IgnoredAny>()?;
+                }
+            }
+        }
+        match (file, tensor) {
+            (Some(file), Some(tensor)) => Ok(TensorSrc::Side { file, tensor }),
+            _ => Err(de::Error::custom(
+                "a tensor reference needs both \"safetensors\" (the file) and \"tensor\" (its name)",
+            )),
+        }
+    }
+}
+
+impl<'de> Deserialize<'de> for TensorSrc {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        d.deserialize_any(TensorVisitor)
+    }
+}
+
+struct ModelVisitor;
+
+impl<'de> Visitor<'de> for ModelVisitor {
+    type Value = RawModel;
+    fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+        f.write_str("a JSON object (a receptor model)")
+    }
+    fn visit_map<A: MapAccess<'de>>(self, mut m: A) -> Result<RawModel, A::Error> {
+        let mut raw = RawModel::default();
+        while let Some(k) = m.next_key::<String>()? {
+            match k.as_str() {
+                "schema" => raw.schema = Some(m.next_value()?),
+                "name" => raw.name = Some(m.next_value()?),
+                "description" => raw.description = m.next_value()?,
+                "input" => raw.input = Some(m.next_value()?),
+                "layers" => raw.layers = Some(m.next_value()?),
+                _ => {
+                    let v: serde_json::Value = m.next_value()?;
+                    raw.extra.insert(k, v);
+                }
+            }
+        }
+        Ok(raw)
+    }
+}
+
+impl<'de> Deserialize<'de> for RawModel {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        d.deserialize_map(ModelVisitor)
+    }
+}
+
+/// Parses JSON bytes into the raw form. Syntax errors and wrong JSON types become one
+/// message with line and column.
+pub(crate) fn parse(bytes: &[u8], origin: &str) -> Result<RawModel> {
+    if bytes.iter().all(u8::is_ascii_whitespace) {
+        return Err(Error::model(
+            origin,
+            "the file is empty (expected a JSON model)",
+        ));
+    }
+    let text = std::str::from_utf8(bytes).map_err(|e| {
+        Error::model(
+            origin,
+            format!(
+                "not a JSON model: the file is not UTF-8 text (invalid byte at offset {})",
+                e.valid_up_to()
+            ),
+        )
+    })?;
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
+    let mut de = serde_json::Deserializer::from_str(text);
+    let raw = RawModel::deserialize(&mut de).map_err(|e| json_error(origin, &e))?;
+    de.end().map_err(|e| json_error(origin, &e))?;
+    Ok(raw)
+}
+
+fn json_error(origin: &str, e: &serde_json::Error) -> Error {
+    use serde_json::error::Category;
+    let what = match e.classify() {
+        Category::Eof => "not valid JSON (the file ends too early; truncated?)",
+        Category::Syntax => "not valid JSON",
+        Category::Data => "does not follow the receptor-model/1 schema",
+        Category::Io => "cannot be read",
+    };
+    let mut msg = format!("{what}: {e}");
+    if matches!(e.classify(), Category::Syntax)
+        && (msg.contains("expected value") || msg.contains("invalid number"))
+    {
+        msg.push_str(" (NaN and Infinity are not JSON; weights must be finite numbers)");
+    }
+    Error::model(origin, msg)
+}
+
+fn layer_label(i: usize, name: Option<&str>) -> String {
+    match name {
+        Some(n) => format!("layer '{n}'"),
+        None => format!("layer {i} (unnamed)"),
+    }
+}
+
+/// Turns the raw form into a [`Network`], reading side files and checking every declared
+/// shape against the data it describes. Runs the cheap checks first (schema tag, input,
+/// layer kinds) so that the first message is the most basic problem.
+pub(crate) fn build(
+    raw: RawModel,
+    origin: &str,
+    base_dir: &Path,
+    opts: &LoadOptions,
+) -> Result<Network> {
+    let err = |msg: String| Error::model(origin, msg);
+    match &raw.schema {
+        None => {
+            return Err(err(format!(
+                "missing \"schema\": a receptor model must say \"schema\": \"{SCHEMA_TAG}\""
+            )));
+        }
+        Some(serde_json::Value::String(s)) if s == SCHEMA_TAG => {}
+        Some(other) => {
+            return Err(err(format!(
+                "unsupported schema {other}: this version of receptor reads \"{SCHEMA_TAG}\""
+            )));
+        }
+    }
+    let input = raw
+        .input
+        .ok_or_else(|| err("missing \"input\" (size, layout, low, high)".into()))?;
+    let layers_raw = raw
+        .layers
+        .ok_or_else(|| err("missing \"layers\" (a list of dense layers)".into()))?;
+    if layers_raw.is_empty() {
+        return Err(err(
+            "\"layers\" is empty: a model needs at least one layer".into()
+        ));
+    }
+
+    // Declared input size: checked against the first layer's data before anything is
+    // allocated from it.
+    let declared_size = match &input.size {
+        None => return Err(err("input: missing \"size\"".into())),
+        Some(v) => v.as_u64().filter(|&n| n >= 1).ok_or_else(|| {
+            err(format!(
+                "input: \"size\" must be a whole number of at least 1, found {v}"
+            ))
+        })?,
+    };
+
+    let mut side = SideFiles::new(origin, base_dir, opts.allow_outside_paths);
+    let mut layers = Vec::with_capacity(layers_raw.len());
+    let mut seen = std::collections::HashSet::new();
+    let n_layers = layers_raw.len();
+    for (i, l) in layers_raw.into_iter().enumerate() {
+        let label = layer_label(i, l.name.as_deref());
+        let name = match l.name {
+            Some(n) if !n.is_empty() => n,
+            _ => return Err(err(format!("{label}: missing or empty \"name\""))),
+        };
+        if !seen.insert(name.clone()) {
+            return Err(err(format!(
+                "layer name '{name}' is used twice; layer names must be unique"
+            )));
+        }
+        match l.kind.as_deref() {
+            Some("dense") => {}
+            None => {
+                return Err(err(format!(
+                    "{label}: missing \"type\" (only \"dense\" is supported)"
+                )));
+            }
+            Some(t) => {
+                return Err(err(format!(
+                    "{label}: unsupported layer type \"{t}\" (only \"dense\" is supported)"
+                )));
+            }
+        }
+        let activation = parse_activation(l.activation.as_deref(), l.alpha)
+            .map_err(|m| err(format!("{label}: {m}")))?;
+        if activation == Activation::Softmax && i + 1 != n_layers {
+            return Err(err(format!(
+                "{label}: softmax is allowed only in the last layer (this is layer {} of {n_layers})",
+                i + 1
+            )));
+        }
+        let weights_src = l
+            .weights
+            .ok_or_else(|| err(format!("{label}: missing \"weights\"")))?;
+        let weights = match weights_src {
+            TensorSrc::Inline(t) => {
+                inline_matrix(t).map_err(|m| err(format!("{label}: weights: {m}")))?
+            }
+            TensorSrc::Side { file, tensor } => {
+                side.matrix(&file, &tensor, &format!("{label} weights"))?
+            }
+        };
+        let units = weights.nrows();
+        let bias = match l.bias {
+            None => Array1::zeros(units),
+            Some(TensorSrc::Inline(t)) => {
+                inline_vector(t).map_err(|m| err(format!("{label}: bias: {m}")))?
+            }
+            Some(TensorSrc::Side { file, tensor }) => {
+                side.vector(&file, &tensor, &format!("{label} bias"))?
+            }
+        };
+        layers.push(Layer {
+            name,
+            activation,
+            weights,
+            bias,
+            labels: l.labels,
+        });
+    }
+
+    let first_fan_in = layers[0].fan_in();
+    if declared_size != first_fan_in as u64 {
+        return Err(err(format!(
+            "input: \"size\" is {declared_size} but the first layer '{}' has {first_fan_in} weight columns",
+            layers[0].name
+        )));
+    }
+    let size = first_fan_in;
+    let layout = match input.layout {
+        None => Layout::Vector,
+        Some(l) => match l.kind.as_str() {
+            "vector" => Layout::Vector,
+            "image" => {
+                let (h, w, c) = match (l.height, l.width, l.channels) {
+                    (Some(h), Some(w), c) => (h, w, c.unwrap_or(1)),
+                    _ => {
+                        return Err(err(
+                            "input: an image layout needs \"height\" and \"width\" (and \"channels\", 1 or 3)"
+                                .into(),
+                        ));
+                    }
+                };
+                if c != 1 && c != 3 {
+                    return Err(err(format!(
+                        "input: image \"channels\" must be 1 or 3, found {c}"
+                    )));
+                }
+                let prod = h.checked_mul(w).and_then(|x| x.checked_mul(c));
+                if prod != Some(size as u64) || h == 0 || w == 0 {
+                    return Err(err(format!(
+                        "input: image layout {h} x {w} x {c} does not match \"size\" {size}"
+                    )));
+                }
+                Layout::Image {
+                    height: h as usize,
+                    width: w as usize,
+                    channels: c as usize,
+                }
+            }
+            k => {
+                return Err(err(format!(
+                    "input: unknown layout kind \"{k}\" (expected \"image\" or \"vector\")"
+                )));
+            }
+        },
+    };
+    let low = expand_bound(input.low, -1.0, size, "low").map_err(|m| err(format!("input: {m}")))?;
+    let high =
+        expand_bound(input.high, 1.0, size, "high").map_err(|m| err(format!("input: {m}")))?;
+    Ok(Network {
+        name: raw.name.unwrap_or_default(),
+        description: raw.description,
+        input: InputSpec {
+            size,
+            layout,
+            low,
+            high,
+            names: input.names,
+        },
+        layers,
+        extra: raw.extra,
+    })
+}
+
+fn parse_activation(
+    name: Option<&str>,
+    alpha: Option<f64>,
+) -> std::result::Result<Activation, String> {
+    Ok(match name {
+        None => return Err("missing \"activation\"".into()),
+        Some("identity") => Activation::Identity,
+        Some("relu") => Activation::Relu,
+        Some("leaky_relu") => {
+            let a = alpha.unwrap_or(0.01);
+            if !(0.0..=1.0).contains(&a) {
+                return Err(format!(
+                    "leaky_relu \"alpha\" must be between 0 and 1, found {a}"
+                ));
+            }
+            Activation::LeakyRelu { alpha: a as f32 }
+        }
+        Some("sigmoid") => Activation::Sigmoid,
+        Some("tanh") => Activation::Tanh,
+        Some("softmax") => Activation::Softmax,
+        Some(other) => {
+            return Err(format!(
+                "unknown activation \"{other}\" (expected identity, relu, leaky_relu, sigmoid, tanh or softmax)"
+            ));
+        }
+    })
+}
+
+fn problem_text(p: &(Option<usize>, usize, String)) -> String {
+    match p {
+        (Some(r), c, why) => format!("row {r}, column {c}: {why}"),
+        (None, c, why) => format!("entry {c}: {why}"),
+    }
+}
+
+fn inline_matrix(t: InlineTensor) -> std::result::Result<Array2<f32>, String> {
+    if let Some(p) = &t.problem {
+        return Err(problem_text(p));
+    }
+    if t.flat {
+        return Err(if t.data.is_empty() {
+            "empty: a layer needs at least one unit (one row)".into()
+        } else {
+            "a flat list of numbers; weights must be a list of rows, one per unit".into()
+        });
+    }
+    let rows = t.row_lens.len();
+    let cols = t.row_lens[0];
+    if cols == 0 {
+        return Err("row 0 is empty: every unit needs at least one incoming weight".into());
+    }
+    if let Some((r, &len)) = t.row_lens.iter().enumerate().find(|(_, l)| **l != cols) {
+        return Err(format!(
+            "row {r} has {len} values but row 0 has {cols}; every row must have the same length"
+        ));
+    }
+    Array2::from_shape_vec((rows, cols), t.data).map_err(|e| e.to_string())
+}
+
+fn inline_vector(t: InlineTensor) -> std::result::Result<Array1<f32>, String> {
+    if let Some(p) = &t.problem {
+        return Err(problem_text(p));
+    }
+    if !t.flat {
+        return Err("a list of rows; a bias must be a flat list of numbers".into());
+    }
+    Ok(Array1::from_vec(t.data))
+}
+
+fn expand_bound(
+    b: Option<RawBound>,
+    default: f32,
+    size: usize,
+    what: &str,
+) -> std::result::Result<Vec<f32>, String> {
+    match b {
+        None => Ok(vec![default; size]),
+        Some(RawBound::Scalar(v)) => {
+            let x = v as f32;
+            if !x.is_finite() {
+                return Err(format!("\"{what}\" must be a finite number, found {v}"));
+            }
+            Ok(vec![x; size])
+        }
+        Some(RawBound::Array(a)) => {
+            if a.len() != size {
+                return Err(format!(
+                    "\"{what}\" has {} values but the input has {size}",
+                    a.len()
+                ));
+            }
+            a.iter()
+                .enumerate()
+                .map(|(i, &v)| {
+                    let x = v as f32;
+                    if x.is_finite() {
+                        Ok(x)
+                    } else {
+                        Err(format!(
+                            "\"{what}\"[{i}] must be a finite number, found {v}"
+                        ))
+                    }
+                })
+                .collect()
+        }
+    }
+}

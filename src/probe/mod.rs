@@ -1,0 +1,108 @@
+//! Probe data: the samples a network is run on for screening, top samples and pruning
+//! curves. Readers stream the data in chunks, so a probe file larger than memory works.
+//!
+//! The format is chosen by the file extension (`.csv` or `.npy`, any letter case).
+
+use crate::error::Result;
+use crate::model::Network;
+use ndarray::Array2;
+use std::path::Path;
+
+/// Rows per chunk used by the analysis commands unless told otherwise.
+pub const DEFAULT_CHUNK_ROWS: usize = 4096;
+/// Samples in the default probe (uniform over the input box) when no probe file is given.
+pub const DEFAULT_UNIFORM_SAMPLES: usize = 4096;
+/// Seed of the default uniform probe.
+pub const DEFAULT_UNIFORM_SEED: u64 = 0;
+
+/// A chunk of consecutive probe rows.
+#[derive(Debug, Clone)]
+pub struct ProbeChunk {
+    /// The inputs, `[rows, input size]`.
+    pub inputs: Array2<f32>,
+    /// The class of each row as an index into the output units, when the probe is labelled.
+    pub labels: Option<Vec<usize>>,
+    /// Index (from 0) of this chunk's first row within the whole probe.
+    pub first_row: usize,
+}
+
+/// A stream of probe samples, read chunk by chunk.
+pub trait ProbeSource: Send {
+    /// Where the samples come from, for messages ("probe.csv", "uniform probe ...").
+    fn describe(&self) -> String;
+    /// The next chunk of at most `max_rows` rows, or `Ok(None)` at the end. A probe with
+    /// no samples at all is an error on the first call, never an empty success.
+    fn next_chunk(&mut self, max_rows: usize) -> Result<Option<ProbeChunk>>;
+    /// Total number of rows when it is known in advance (for progress bars).
+    fn total_rows(&self) -> Option<usize>;
+    /// True when every row carries a label.
+    fn has_labels(&self) -> bool;
+}
+
+/// A whole probe held in memory.
+#[derive(Debug, Clone)]
+pub struct ProbeData {
+    /// The inputs, `[rows, input size]`.
+    pub inputs: Array2<f32>,
+    /// Labels per row, when the probe is labelled.
+    pub labels: Option<Vec<usize>>,
+    /// Where the samples came from.
+    pub origin: String,
+}
+
+pub mod csv;
+pub mod npy;
+pub mod uniform;
+
+/// Opens a probe file for `net`, choosing the reader by extension. The header (and, for
+/// `.npy`, the declared shape) is checked against the model before any data is read.
+pub fn open(path: &Path, net: &Network) -> Result<Box<dyn ProbeSource>> {
+    let ext = path
+        .extension()
+        .and_then(|e| e.to_str())
+        .map(str::to_ascii_lowercase);
+    match ext.as_deref() {
+        Some("csv") => Ok(Box::new(csv::CsvProbe::open(path, net)?)),
+        Some("npy") => Ok(Box::new(npy::NpyProbe::open(path, net)?)),
+        _ => Err(crate::Error::probe(
+            path,
+            "unknown probe format: the file name must end in .csv or .npy",
+        )),
+    }
+}
+
+/// The default probe: `samples` inputs drawn uniformly from the model's input box with a
+/// fixed `seed`.
+pub fn uniform(net: &Network, samples: usize, seed: u64) -> Box<dyn ProbeSource> {
+    Box::new(uniform::UniformProbe::new(net, samples, seed))
+}
+
+/// Reads a whole probe into memory.
+pub fn read_all(source: &mut dyn ProbeSource) -> Result<ProbeData> {
+    let origin = source.describe();
+    let mut parts: Vec<ProbeChunk> = Vec::new();
+    while let Some(chunk) = source.next_chunk(DEFAULT_CHUNK_ROWS)? {
+        parts.push(chunk);
+    }
+    let cols = parts.first().map_or(0, |c| c.inputs.ncols());
+    let rows: usize = parts.iter().map(|c| c.inputs.nrows()).sum();
+    let mut inputs = Array2::<f32>::zeros((rows, cols));
+    let labelled = parts.iter().all(|c| c.labels.is_some()) && !parts.is_empty();
+    let mut labels = Vec::with_capacity(if labelled { rows } else { 0 });
+    let mut at = 0;
+    for c in parts {
+        let n = c.inputs.nrows();
+        inputs
+            .slice_mut(ndarray::s![at..at + n, ..])
+            .assign(&c.inputs);
+        at += n;
+        if labelled && let Some(l) = c.labels {
+            labels.extend(l);
+        }
+    }
+    Ok(ProbeData {
+        inputs,
+        labels: labelled.then_some(labels),
+        origin,
+    })
+}
