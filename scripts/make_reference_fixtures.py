@@ -343,6 +343,7 @@ def build(name, description, x, y, feature_names, class_names, hidden, activatio
         "train_accuracy": float(np.mean(predict == y)),
         "predict_proba": proba.tolist(),
         "predict": [int(p) for p in predict],
+        "target": [int(t) for t in y],
         "stats": stats,
         "layer_summaries": summaries,
         "bounds": {"lower": [v.tolist() for v in lows], "upper": [v.tolist() for v in highs]},
