@@ -1,0 +1,568 @@
+//! Mini-batch training of a [`Network`] with softmax cross-entropy, used to make the bundled
+//! demo models (and by anyone who wants a small model to try the tool on).
+//!
+//! - Loss: mean softmax cross-entropy over a batch. The last layer's pre-activations are the
+//!   logits; the last layer must be `softmax` or `identity`.
+//! - Backward pass: the usual reverse-mode chain rule through every dense layer (weight and
+//!   bias gradients, then the error signal for the layer below), batched: one matrix product
+//!   per layer and direction for the whole batch.
+//! - Optimisers: SGD with momentum (PyTorch's form `v = mu v + g`, `theta -= lr v`) and Adam
+//!   (Kingma & Ba 2015, "Adam: A Method for Stochastic Optimization", Algorithm 1), with an
+//!   optional L2 penalty on the weights (not the biases) added to the gradient.
+//!
+//! Determinism: for a fixed seed the result is the same bit for bit on every run. Shuffling
+//! uses ChaCha8 seeded from [`TrainOptions::seed`], and every matrix product here runs in a
+//! fixed summation order on one thread ([`matmul_fixed`]). The shared forward pass in
+//! [`crate::analysis::forward`] uses a parallel, run-time dispatched GEMM (FMA where the CPU
+//! has it), whose rounding can depend on the machine; training with it would tie the bundled
+//! demo files to the CPU that made them, so training keeps its own plain product and the
+//! tests check that both passes agree within a tolerance.
+
+use crate::analysis::Progress;
+use crate::error::{Error, Result};
+use crate::model::{Activation, InputSpec, Layer, Network};
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+
+/// The update rule.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Optimizer {
+    /// Stochastic gradient descent with heavy-ball momentum: `v = momentum * v + g`,
+    /// `theta -= learning_rate * v` (the form PyTorch's `torch.optim.SGD` uses).
+    Sgd {
+        /// Step size.
+        learning_rate: f32,
+        /// Momentum coefficient in [0, 1); 0 is plain SGD.
+        momentum: f32,
+    },
+    /// Adam (Kingma & Ba 2015, Algorithm 1) with bias-corrected moment estimates.
+    Adam {
+        /// Step size (alpha in the paper; 0.001 is the paper's suggestion).
+        learning_rate: f32,
+        /// Decay of the first-moment estimate (paper: 0.9).
+        beta1: f32,
+        /// Decay of the second-moment estimate (paper: 0.999).
+        beta2: f32,
+        /// Added to the root of the second moment (paper: 1e-8).
+        epsilon: f32,
+    },
+}
+
+impl Optimizer {
+    /// Adam with the paper's suggested constants and the given step size.
+    pub fn adam(learning_rate: f32) -> Self {
+        Optimizer::Adam {
+            learning_rate,
+            beta1: 0.9,
+            beta2: 0.999,
+            epsilon: 1e-8,
+        }
+    }
+
+    /// The step size.
+    pub fn learning_rate(&self) -> f32 {
+        match *self {
+            Optimizer::Sgd { learning_rate, .. } | Optimizer::Adam { learning_rate, .. } => {
+                learning_rate
+            }
+        }
+    }
+
+    /// The same optimiser with another step size (for a schedule).
+    pub fn with_learning_rate(self, lr: f32) -> Self {
+        match self {
+            Optimizer::Sgd { momentum, .. } => Optimizer::Sgd {
+                learning_rate: lr,
+                momentum,
+            },
+            Optimizer::Adam {
+                beta1,
+                beta2,
+                epsilon,
+                ..
+            } => Optimizer::Adam {
+                learning_rate: lr,
+                beta1,
+                beta2,
+                epsilon,
+            },
+        }
+    }
+}
+
+/// Settings of one training run.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TrainOptions {
+    /// Passes over the whole training set.
+    pub epochs: usize,
+    /// Samples per mini-batch (the last batch of an epoch may be smaller).
+    pub batch_size: usize,
+    /// The update rule.
+    pub optimizer: Optimizer,
+    /// L2 penalty `weight_decay / 2 * ||W||^2` on every weight matrix (biases are not
+    /// penalised); its gradient `weight_decay * W` is added before the update. 0 turns it off.
+    pub weight_decay: f32,
+    /// Step size multiplier applied after every epoch (1 = constant step size).
+    pub lr_decay: f32,
+    /// Seed of the mini-batch shuffling.
+    pub seed: u64,
+}
+
+impl Default for TrainOptions {
+    fn default() -> Self {
+        TrainOptions {
+            epochs: 30,
+            batch_size: 64,
+            optimizer: Optimizer::adam(1e-3),
+            weight_decay: 0.0,
+            lr_decay: 1.0,
+            seed: 0,
+        }
+    }
+}
+
+/// Training-set loss and accuracy after one epoch.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct EpochStats {
+    /// Epoch number, from 0.
+    pub epoch: usize,
+    /// Mean cross-entropy (nats) of the mini-batches seen in this epoch, each measured before
+    /// its update.
+    pub loss: f64,
+    /// Fraction of the epoch's samples whose argmax was right, measured before each update.
+    pub accuracy: f64,
+}
+
+/// What a training run did.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct TrainReport {
+    /// One entry per epoch.
+    pub epochs: Vec<EpochStats>,
+}
+
+/// Gradients of the mean cross-entropy with respect to every parameter.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Gradients {
+    /// Per layer, `[units, inputs]` like [`Layer::weights`].
+    pub weights: Vec<Array2<f32>>,
+    /// Per layer, `[units]` like [`Layer::bias`].
+    pub bias: Vec<Array1<f32>>,
+}
+
+/// A fresh dense layer with uniform random weights and zero biases.
+///
+/// Rectifier layers use He et al. (2015, "Delving Deep into Rectifiers") scaling, variance
+/// `2 / inputs`, i.e. uniform in `±sqrt(6 / inputs)`; every other activation uses Glorot &
+/// Bengio (2010) uniform, `±sqrt(6 / (inputs + units))`.
+pub fn init_layer(
+    name: impl Into<String>,
+    units: usize,
+    inputs: usize,
+    activation: Activation,
+    rng: &mut ChaCha8Rng,
+) -> Layer {
+    let limit = if activation.is_rectifier() {
+        (6.0 / inputs.max(1) as f64).sqrt()
+    } else {
+        (6.0 / (inputs + units).max(1) as f64).sqrt()
+    } as f32;
+    let weights = Array2::from_shape_fn((units, inputs), |_| rng.random_range(-limit..limit));
+    Layer {
+        name: name.into(),
+        activation,
+        weights,
+        bias: Array1::zeros(units),
+        labels: None,
+    }
+}
+
+/// A fresh network `input.size - sizes[0] - ... - sizes[n-1]`: hidden layers `h1, h2, ...`
+/// with activation `hidden`, and a softmax output layer `out` whose units are named by
+/// `labels` (`sizes` ends with the number of classes). Weights from [`init_layer`] with a
+/// ChaCha8 generator seeded by `seed`.
+pub fn init_network(
+    name: &str,
+    input: InputSpec,
+    sizes: &[usize],
+    hidden: Activation,
+    labels: Option<Vec<String>>,
+    seed: u64,
+) -> Result<Network> {
+    if sizes.is_empty() {
+        return Err(Error::usage("a network needs at least an output layer"));
+    }
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let mut layers = Vec::with_capacity(sizes.len());
+    let mut inputs = input.size;
+    for (i, &units) in sizes.iter().enumerate() {
+        let last = i + 1 == sizes.len();
+        let (lname, act) = if last {
+            ("out".to_string(), Activation::Softmax)
+        } else {
+            (format!("h{}", i + 1), hidden)
+        };
+        let mut layer = init_layer(lname, units, inputs, act, &mut rng);
+        if last {
+            layer.labels = labels.clone();
+        }
+        layers.push(layer);
+        inputs = units;
+    }
+    Network::new(name, name, input, layers)
+}
+
+/// `a · b` for `a: [m, k]`, `b: [k, n]`, in a fixed summation order (k ascending for every
+/// output element), accumulated in f64, on one thread.
+///
+/// Slower than the shared GEMM, but its result does not depend on the CPU's vector units or
+/// on thread scheduling, which keeps training reproducible bit for bit.
+///
+/// # Panics
+/// When the inner dimensions differ (a programming error; callers check shapes first).
+pub fn matmul_fixed(a: ArrayView2<f32>, b: ArrayView2<f32>) -> Array2<f32> {
+    let (m, k) = a.dim();
+    let (k2, n) = b.dim();
+    assert_eq!(k, k2, "matmul_fixed: inner dimensions {k} and {k2} differ");
+    let a = a.as_standard_layout();
+    let b = b.as_standard_layout();
+    let (Some(a), Some(b)) = (a.as_slice(), b.as_slice()) else {
+        unreachable!("standard layout arrays are contiguous")
+    };
+    let mut out = Array2::<f32>::zeros((m, n));
+    let mut acc = vec![0.0f64; n];
+    for (i, mut out_row) in out.rows_mut().into_iter().enumerate() {
+        acc.iter_mut().for_each(|v| *v = 0.0);
+        let a_row = &a[i * k..(i + 1) * k];
+        for (p, &aip) in a_row.iter().enumerate() {
+            if aip == 0.0 {
+                // Skipping exact zeros (dead ReLU outputs, zero one-hot entries) changes no
+                // sum: adding 0 * finite is exact.
+                continue;
+            }
+            let aip = f64::from(aip);
+            let b_row = &b[p * n..(p + 1) * n];
+            for (s, &bv) in acc.iter_mut().zip(b_row) {
+                *s += aip * f64::from(bv);
+            }
+        }
+        for (o, s) in out_row.iter_mut().zip(&acc) {
+            *o = *s as f32;
+        }
+    }
+    out
+}
+
+/// Pre- and post-activations of every layer for one batch (the training-side forward pass).
+struct Cache {
+    /// Per layer, `[samples, units]`.
+    pre: Vec<Array2<f32>>,
+    /// Per layer, `[samples, units]`; the last layer holds softmax probabilities whatever
+    /// the layer's declared activation (`softmax` or `identity` logits).
+    post: Vec<Array2<f32>>,
+}
+
+/// Forward pass in the fixed order of [`matmul_fixed`]: `z = a_prev · Wᵀ + b`, `a = f(z)`.
+fn forward_cache(net: &Network, x: ArrayView2<f32>) -> Cache {
+    let mut pre = Vec::with_capacity(net.layers.len());
+    let mut post: Vec<Array2<f32>> = Vec::with_capacity(net.layers.len());
+    let last = net.layers.len() - 1;
+    for (l, layer) in net.layers.iter().enumerate() {
+        let a_prev = if l == 0 { x } else { post[l - 1].view() };
+        let mut z = matmul_fixed(a_prev, layer.weights.t());
+        z += &layer.bias;
+        let mut a = z.clone();
+        if l == last {
+            Activation::Softmax.apply_rows(&mut a);
+        } else {
+            layer.activation.apply_rows(&mut a);
+        }
+        pre.push(z);
+        post.push(a);
+    }
+    Cache { pre, post }
+}
+
+/// Checks that `net` can be trained on `x` with `labels`.
+fn check_problem(net: &Network, x: ArrayView2<f32>, labels: &[usize]) -> Result<()> {
+    let out = net.output_layer();
+    if !matches!(out.activation, Activation::Softmax | Activation::Identity) {
+        return Err(Error::usage(format!(
+            "training needs a softmax or identity output layer; layer '{}' is {}",
+            out.name,
+            out.activation.name()
+        )));
+    }
+    if x.ncols() != net.input.size {
+        return Err(Error::usage(format!(
+            "training data has {} columns but the network takes {} inputs",
+            x.ncols(),
+            net.input.size
+        )));
+    }
+    if x.nrows() != labels.len() {
+        return Err(Error::usage(format!(
+            "training data has {} rows but {} labels",
+            x.nrows(),
+            labels.len()
+        )));
+    }
+    if x.nrows() == 0 {
+        return Err(Error::usage("training data has no rows"));
+    }
+    if let Some((row, &c)) = labels.iter().enumerate().find(|(_, c)| **c >= out.units()) {
+        return Err(Error::usage(format!(
+            "training label {c} in row {row} is not an output unit (the network has {})",
+            out.units()
+        )));
+    }
+    if let Some(i) = x.iter().position(|v| !v.is_finite()) {
+        return Err(Error::usage(format!(
+            "training data row {} column {} is not a finite number",
+            i / x.ncols(),
+            i % x.ncols()
+        )));
+    }
+    Ok(())
+}
+
+/// Mean cross-entropy (nats) of the rows of `pre_out` (logits `[samples, classes]`), computed
+/// in f64 as `logsumexp(z) - z_label`, plus the number of rows whose argmax is the label.
+fn loss_from_logits(pre_out: ArrayView2<f32>, labels: &[usize]) -> (f64, usize) {
+    let mut total = 0.0f64;
+    let mut correct = 0usize;
+    for (row, &y) in pre_out.rows().into_iter().zip(labels) {
+        let m = row.iter().copied().fold(f32::NEG_INFINITY, f32::max);
+        let s: f64 = row
+            .iter()
+            .map(|&v| (f64::from(v) - f64::from(m)).exp())
+            .sum();
+        total += f64::from(m) + s.ln() - f64::from(row[y]);
+        if argmax(row) == y {
+            correct += 1;
+        }
+    }
+    (total / labels.len().max(1) as f64, correct)
+}
+
+/// Index of the largest value (the first one on ties).
+fn argmax(row: ArrayView1<f32>) -> usize {
+    let mut best = 0;
+    for (i, &v) in row.iter().enumerate() {
+        if v > row[best] {
+            best = i;
+        }
+    }
+    best
+}
+
+/// Backward pass for one batch whose forward pass is `cache`.
+fn backward(net: &Network, x: ArrayView2<f32>, labels: &[usize], cache: &Cache) -> Gradients {
+    let n = labels.len() as f32;
+    let last = net.layers.len() - 1;
+    // d(mean CE)/dz_out = (softmax(z) - onehot(y)) / n.
+    let mut delta = cache.post[last].clone();
+    for (mut row, &y) in delta.rows_mut().into_iter().zip(labels) {
+        row[y] -= 1.0;
+    }
+    delta.mapv_inplace(|v| v / n);
+    let mut weights = vec![Array2::<f32>::zeros((0, 0)); net.layers.len()];
+    let mut bias = vec![Array1::<f32>::zeros(0); net.layers.len()];
+    for l in (0..=last).rev() {
+        let a_prev = if l == 0 { x } else { cache.post[l - 1].view() };
+        // dW = deltaᵀ · a_prev: [units, samples] · [samples, inputs].
+        weights[l] = matmul_fixed(delta.t(), a_prev);
+        bias[l] = delta
+            .axis_iter(Axis(1))
+            .map(|col| col.iter().map(|&v| f64::from(v)).sum::<f64>() as f32)
+            .collect();
+        if l > 0 {
+            // Error signal for the layer below: (delta · W) ⊙ f'(z_below).
+            let mut below = matmul_fixed(delta.view(), net.layers[l].weights.view());
+            let act = net.layers[l - 1].activation;
+            below.zip_mut_with(&cache.pre[l - 1], |d, &z| *d *= act.derivative_scalar(z));
+            delta = below;
+        }
+    }
+    Gradients { weights, bias }
+}
+
+/// Mean softmax cross-entropy (nats) of `net` on `x: [samples, inputs]` with class indices
+/// `labels: [samples]`, and its gradient with respect to every weight and bias.
+///
+/// The L2 penalty of [`TrainOptions::weight_decay`] is not included.
+pub fn loss_and_gradients(
+    net: &Network,
+    x: ArrayView2<f32>,
+    labels: &[usize],
+) -> Result<(f64, Gradients)> {
+    check_problem(net, x, labels)?;
+    let cache = forward_cache(net, x);
+    let (loss, _) = loss_from_logits(cache.pre[net.layers.len() - 1].view(), labels);
+    Ok((loss, backward(net, x, labels, &cache)))
+}
+
+/// Mean softmax cross-entropy (nats) of `net` on `x: [samples, inputs]` with `labels`.
+pub fn cross_entropy(net: &Network, x: ArrayView2<f32>, labels: &[usize]) -> Result<f64> {
+    check_problem(net, x, labels)?;
+    let cache = forward_cache(net, x);
+    Ok(loss_from_logits(cache.pre[net.layers.len() - 1].view(), labels).0)
+}
+
+/// Fraction of rows of `x` whose argmax output is the label.
+pub fn accuracy(net: &Network, x: ArrayView2<f32>, labels: &[usize]) -> Result<f64> {
+    check_problem(net, x, labels)?;
+    let cache = forward_cache(net, x);
+    let (_, correct) = loss_from_logits(cache.pre[net.layers.len() - 1].view(), labels);
+    Ok(correct as f64 / labels.len() as f64)
+}
+
+/// Optimiser state for one parameter tensor.
+struct Slot<D: ndarray::Dimension> {
+    m: ndarray::Array<f32, D>,
+    v: ndarray::Array<f32, D>,
+}
+
+impl<D: ndarray::Dimension> Slot<D> {
+    fn new(shape: D) -> Self {
+        Slot {
+            m: ndarray::Array::zeros(shape.clone()),
+            v: ndarray::Array::zeros(shape),
+        }
+    }
+
+    /// Applies one update to `theta` with gradient `g` at step `t` (from 1).
+    fn step(
+        &mut self,
+        theta: &mut ndarray::Array<f32, D>,
+        g: &ndarray::Array<f32, D>,
+        opt: Optimizer,
+        t: i32,
+    ) {
+        match opt {
+            Optimizer::Sgd {
+                learning_rate,
+                momentum,
+            } => {
+                ndarray::Zip::from(theta)
+                    .and(&mut self.m)
+                    .and(g)
+                    .for_each(|w, m, &g| {
+                        *m = momentum * *m + g;
+                        *w -= learning_rate * *m;
+                    });
+            }
+            Optimizer::Adam {
+                learning_rate,
+                beta1,
+                beta2,
+                epsilon,
+            } => {
+                let c1 = 1.0 - beta1.powi(t);
+                let c2 = 1.0 - beta2.powi(t);
+                ndarray::Zip::from(theta)
+                    .and(&mut self.m)
+                    .and(&mut self.v)
+                    .and(g)
+                    .for_each(|w, m, v, &g| {
+                        *m = beta1 * *m + (1.0 - beta1) * g;
+                        *v = beta2 * *v + (1.0 - beta2) * g * g;
+                        let m_hat = *m / c1;
+                        let v_hat = *v / c2;
+                        *w -= learning_rate * m_hat / (v_hat.sqrt() + epsilon);
+                    });
+            }
+        }
+    }
+}
+
+/// Trains `net` in place on `x: [samples, inputs]` with class indices `labels: [samples]`.
+///
+/// Each epoch visits the samples in a fresh random order (ChaCha8 seeded by `opts.seed`) in
+/// mini-batches of `opts.batch_size`. Returns per-epoch training loss and accuracy. A loss
+/// or parameter that stops being finite ends the run with a usage error naming the epoch
+/// (a learning rate far too high), leaving `net` as it was before that update.
+pub fn train(
+    net: &mut Network,
+    x: ArrayView2<f32>,
+    labels: &[usize],
+    opts: &TrainOptions,
+    progress: &dyn Progress,
+) -> Result<TrainReport> {
+    check_problem(net, x, labels)?;
+    if opts.batch_size == 0 {
+        return Err(Error::usage("training batch size must be at least 1"));
+    }
+    let samples = x.nrows();
+    let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
+    let mut order: Vec<usize> = (0..samples).collect();
+    let mut w_slots: Vec<Slot<ndarray::Ix2>> = net
+        .layers
+        .iter()
+        .map(|l| Slot::new(l.weights.raw_dim()))
+        .collect();
+    let mut b_slots: Vec<Slot<ndarray::Ix1>> = net
+        .layers
+        .iter()
+        .map(|l| Slot::new(l.bias.raw_dim()))
+        .collect();
+    let mut report = TrainReport::default();
+    let mut opt = opts.optimizer;
+    let mut t: i32 = 0;
+    for epoch in 0..opts.epochs {
+        // Fisher-Yates with our own seeded generator.
+        for i in (1..samples).rev() {
+            let j = rng.random_range(0..=i);
+            order.swap(i, j);
+        }
+        let mut loss_sum = 0.0f64;
+        let mut correct = 0usize;
+        for batch in order.chunks(opts.batch_size) {
+            if progress.cancelled() {
+                return Err(Error::Cancelled);
+            }
+            let xb = x.select(Axis(0), batch);
+            let yb: Vec<usize> = batch.iter().map(|&i| labels[i]).collect();
+            let cache = forward_cache(net, xb.view());
+            let (loss, ok) = loss_from_logits(cache.pre[net.layers.len() - 1].view(), &yb);
+            if !loss.is_finite() {
+                return Err(Error::usage(format!(
+                    "training diverged in epoch {epoch}: the loss is {loss} (learning rate {} too high?)",
+                    opt.learning_rate()
+                )));
+            }
+            loss_sum += loss * batch.len() as f64;
+            correct += ok;
+            let mut grads = backward(net, xb.view(), &yb, &cache);
+            t = t.saturating_add(1);
+            let before = net.layers.clone();
+            for (l, layer) in net.layers.iter_mut().enumerate() {
+                if opts.weight_decay != 0.0 {
+                    let wd = opts.weight_decay;
+                    grads.weights[l].zip_mut_with(&layer.weights, |g, &w| *g += wd * w);
+                }
+                w_slots[l].step(&mut layer.weights, &grads.weights[l], opt, t);
+                b_slots[l].step(&mut layer.bias, &grads.bias[l], opt, t);
+            }
+            let finite = net
+                .layers
+                .iter()
+                .all(|l| l.weights.iter().chain(l.bias.iter()).all(|v| v.is_finite()));
+            if !finite {
+                net.layers = before;
+                return Err(Error::usage(format!(
+                    "training diverged in epoch {epoch}: a parameter is no longer finite (learning rate {} too high?)",
+                    opt.learning_rate()
+                )));
+            }
+        }
+        report.epochs.push(EpochStats {
+            epoch,
+            loss: loss_sum / samples as f64,
+            accuracy: correct as f64 / samples as f64,
+        });
+        opt = opt.with_learning_rate(opt.learning_rate() * opts.lr_decay);
+        progress.set((epoch + 1) as f32 / opts.epochs.max(1) as f32);
+    }
+    Ok(report)
+}
