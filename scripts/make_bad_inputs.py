@@ -1,0 +1,247 @@
+#!/usr/bin/env python3
+"""Writes the corpus of broken and hostile inputs in tests/bad-inputs/ and its INDEX.tsv.
+
+Standard library only, deterministic. Each case gets one line in INDEX.tsv:
+    file <TAB> kind (model | probe) <TAB> text the error message must contain <TAB> reason
+`tests/bad_inputs.rs` runs the receptor binary on every case: `receptor stats FILE` for
+models, `receptor screen good-model.json --probe FILE` for probe files.
+"""
+import json
+import os
+import random
+import shutil
+import struct
+
+HERE = os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "tests", "bad-inputs")
+
+GOOD = {
+    "schema": "receptor-model/1",
+    "name": "corpus base model",
+    "input": {"size": 4, "low": -1, "high": 1},
+    "layers": [
+        {"name": "h1", "type": "dense", "activation": "relu",
+         "weights": [[0.5, -0.25, 0.125, 1.0], [1.0, 2.0, -3.0, 0.5], [-0.5, 0.5, 0.25, -1.0]],
+         "bias": [0.1, -0.2, 0.0]},
+        {"name": "out", "type": "dense", "activation": "softmax",
+         "weights": [[1.0, -1.0, 0.5], [-1.0, 1.0, 0.25]], "bias": [0.0, 0.1],
+         "labels": ["ok", "bad"]},
+    ],
+}
+
+cases = []
+
+
+def dump(obj):
+    return json.dumps(obj, indent=1)
+
+
+def good():
+    return json.loads(json.dumps(GOOD))
+
+
+def put(name, data, kind, expect, reason):
+    path = os.path.join(HERE, name)
+    mode = "wb" if isinstance(data, bytes) else "w"
+    with open(path, mode) as f:
+        f.write(data)
+    cases.append((name, kind, expect, reason))
+
+
+def model(name, mutate, expect, reason):
+    m = good()
+    mutate(m)
+    put(name, dump(m), "model", expect, reason)
+
+
+def safetensors_bytes(tensors, header_override=None):
+    """tensors: list of (name, dtype, shape, raw bytes)."""
+    header = {}
+    data = b""
+    for n, dt, shape, raw in tensors:
+        header[n] = {"dtype": dt, "shape": shape, "data_offsets": [len(data), len(data) + len(raw)]}
+        data += raw
+    if header_override is not None:
+        header = header_override
+    h = json.dumps(header).encode()
+    h += b" " * ((8 - len(h) % 8) % 8)
+    return struct.pack("<Q", len(h)) + h + data
+
+
+def f32(values):
+    return struct.pack("<%df" % len(values), *values)
+
+
+W1 = [v for row in GOOD["layers"][0]["weights"] for v in row]
+B1 = GOOD["layers"][0]["bias"]
+
+
+def side_model(name, file, expect, reason, tensor="h1.weight"):
+    m = good()
+    m["layers"][0]["weights"] = {"safetensors": file, "tensor": tensor}
+    m["layers"][0]["bias"] = {"safetensors": file, "tensor": "h1.bias"} if not file.startswith("/") else [0, 0, 0]
+    put(name, dump(m), "model", expect, reason)
+
+
+def npy(name, descr, shape, payload, fortran=False, magic=b"\x93NUMPY", version=(1, 0), header=None):
+    if header is None:
+        header = "{'descr': '%s', 'fortran_order': %s, 'shape': %s, }" % (
+            descr, "True" if fortran else "False", repr(tuple(shape)))
+    h = header.encode("latin1")
+    pad = 64 - ((len(magic) + 2 + 2 + len(h) + 1) % 64)
+    h = h + b" " * pad + b"\n"
+    return magic + bytes(version) + struct.pack("<H", len(h)) + h + payload
+
+
+def main():
+    if os.path.isdir(HERE):
+        shutil.rmtree(HERE)
+    os.makedirs(HERE)
+    rng = random.Random(20261201)
+    with open(os.path.join(HERE, "good-model.json"), "w") as f:
+        f.write(dump(GOOD))
+    text = dump(GOOD)
+
+    # --- model JSON: syntax and encoding
+    put("empty.json", "", "model", "empty", "an empty file")
+    put("whitespace.json", " \n\t\n", "model", "empty", "only whitespace")
+    put("truncated.json", text[: len(text) // 2], "model", "truncated", "cut off half way")
+    put("syntax-error.json", text.replace('"name": "h1",', '"name": "h1"', 1), "model", "not valid JSON", "a missing comma")
+    put("not-an-object.json", "[1, 2, 3]", "model", "schema", "a JSON list, not an object")
+    put("binary-garbage.json", bytes(rng.randrange(256) for _ in range(4096)), "model", "not", "random bytes")
+    put("utf16.json", text.encode("utf-16"), "model", "UTF-8", "UTF-16 text with a byte-order mark")
+    put("deep-nesting.json", text.replace('"name": "corpus base model"', '"name": "x", "junk": ' + "[" * 100000 + "]" * 100000, 1),
+        "model", "recursion limit", "100 000 nested lists under an unknown key")
+    os.makedirs(os.path.join(HERE, "folder.json"))
+    with open(os.path.join(HERE, "folder.json", "README"), "w") as f:
+        f.write("A folder named like a model file: receptor must say it is a folder.\n")
+    cases.append(("folder.json", "model", "folder", "a directory instead of a file"))
+
+    # --- schema tag and top level
+    model("no-schema.json", lambda m: m.pop("schema"), 'missing "schema"', "no schema tag")
+    model("wrong-schema.json", lambda m: m.update(schema="receptor-model/2"), "unsupported schema", "a schema tag of another version")
+    model("schema-number.json", lambda m: m.update(schema=1), "unsupported schema", "a schema tag that is a number")
+    model("no-input.json", lambda m: m.pop("input"), 'missing "input"', "no input section")
+    model("no-layers.json", lambda m: m.pop("layers"), 'missing "layers"', "no layers")
+    model("empty-layers.json", lambda m: m.update(layers=[]), '"layers" is empty', "an empty layer list")
+    model("layers-not-list.json", lambda m: m.update(layers={"h1": 1}), "schema", "layers given as an object")
+
+    # --- values inside tensors
+    put("nan-literal.json", text.replace("0.5, -0.25", "NaN, -0.25", 1), "model", "NaN", "NaN is not JSON (Python writes it)")
+    put("infinity-literal.json", text.replace("0.5, -0.25", "Infinity, -0.25", 1), "model", "not valid JSON", "Infinity is not JSON")
+    put("overflow-f32.json", text.replace("0.5, -0.25", "1e39, -0.25", 1), "model", "not a finite 32-bit float", "finite in JSON, infinite as f32")
+    put("string-in-weights.json", text.replace("0.5, -0.25", '"0.5", -0.25', 1), "model", "row 0, column 0", "a number written as a string")
+
+    def set_w(r, c, v):
+        def f(m):
+            m["layers"][0]["weights"][r][c] = v
+        return f
+    model("null-in-weights.json", set_w(1, 2, None), "row 1, column 2", "null in a weight")
+    model("bool-in-bias.json", lambda m: m["layers"][0]["bias"].__setitem__(1, True), "bias: entry 1", "true in a bias")
+    model("object-in-weights.json", set_w(2, 0, {"v": 1}), "row 2, column 0", "an object in a weight")
+    model("nested-weights.json", set_w(0, 1, [1, 2]), "nested", "a list inside a weight row")
+
+    # --- every shape mismatch
+    model("ragged-rows.json", lambda m: m["layers"][0]["weights"][1].pop(), "row 1 has 3 values but row 0 has 4", "rows of unequal length")
+    model("columns-mismatch.json", lambda m: [r.pop() for r in m["layers"][1]["weights"]],
+          "weights have 2 columns but layer 'h1' has 3 units", "a layer that does not fit the one below")
+    model("bias-length.json", lambda m: m["layers"][0]["bias"].pop(), "bias has 2 values but the weights have 3 rows", "bias too short")
+    model("bias-2d.json", lambda m: m["layers"][0].update(bias=[[0.1], [0.2], [0.3]]), "bias must be a flat list", "a bias given as rows")
+    model("weights-flat.json", lambda m: m["layers"][0].update(weights=W1), "list of rows", "weights given as a flat list")
+    model("weights-empty.json", lambda m: m["layers"][0].update(weights=[]), "empty", "no rows")
+    model("weights-empty-row.json", lambda m: m["layers"][0].update(weights=[[], [], []]), "empty", "rows without values")
+    model("input-size-mismatch.json", lambda m: m["input"].update(size=5), '"size" is 5 but the first layer', "declared input size does not match the weights")
+    model("huge-declared-size.json", lambda m: m["input"].update(size=10**12), '"size" is 1000000000000', "declared 10^12 inputs (must not allocate)")
+    model("negative-size.json", lambda m: m["input"].update(size=-4), "whole number", "a negative size")
+    model("huge-layout.json", lambda m: m["input"].update(layout={"kind": "image", "height": 10**9, "width": 10**9, "channels": 3}),
+          "does not match", "an image layout of 10^18 pixels")
+    model("layout-mismatch.json", lambda m: m["input"].update(layout={"kind": "image", "height": 3, "width": 3}), "does not match", "3x3 is not 4")
+    model("layout-channels.json", lambda m: m["input"].update(layout={"kind": "image", "height": 1, "width": 2, "channels": 2}), "channels", "2 channels")
+    model("layout-kind.json", lambda m: m["input"].update(layout={"kind": "volume"}), "unknown layout kind", "an unknown layout")
+    model("low-above-high.json", lambda m: m["input"].update(low=2), '"low" is above "high"', "an empty box")
+    model("low-array-length.json", lambda m: m["input"].update(low=[0, 0]), '"low" has 2 values but the input has 4', "box array of the wrong length")
+    model("names-length.json", lambda m: m["input"].update(names=["a"]), '"names" has 1 entries', "too few feature names")
+    model("labels-length.json", lambda m: m["layers"][1].update(labels=["ok"]), '"labels" has 1 entries', "too few labels")
+    model("duplicate-labels.json", lambda m: m["layers"][1].update(labels=["ok", "ok"]), "used twice", "a label used twice")
+
+    # --- names, kinds, activations
+    model("duplicate-layer-names.json", lambda m: m["layers"][1].update(name="h1"), "'h1' is used twice", "two layers called h1")
+    model("softmax-hidden.json", lambda m: m["layers"][0].update(activation="softmax"), "softmax is allowed only in the last layer", "softmax in a hidden layer")
+    model("unknown-activation.json", lambda m: m["layers"][0].update(activation="swish"), 'unknown activation "swish"', "an activation receptor does not know")
+    model("leaky-alpha.json", lambda m: m["layers"][0].update(activation="leaky_relu", alpha=5), "alpha", "leaky_relu slope above 1")
+    model("layer-type.json", lambda m: m["layers"][0].update(type="conv2d"), 'unsupported layer type "conv2d"', "a convolution layer")
+    model("layer-no-name.json", lambda m: m["layers"][0].pop("name"), 'missing or empty "name"', "a layer without a name")
+
+    # --- safetensors side files
+    side_model("side-missing-file.json", "missing.safetensors", "cannot read side file", "the side file does not exist")
+    side_model("side-outside-path.json", "../outside.safetensors", "climbs out of the model's folder", "a side file above the model's folder")
+    side_model("side-absolute-path.json", "/etc/hostname", "is absolute", "an absolute side-file path")
+    good_st = safetensors_bytes([("h1.weight", "F32", [3, 4], f32(W1)), ("h1.bias", "F32", [3], f32(B1))])
+    put("lying-offsets.safetensors", safetensors_bytes([], header_override={
+        "h1.weight": {"dtype": "F32", "shape": [3, 4], "data_offsets": [0, 48_000_000]},
+        "h1.bias": {"dtype": "F32", "shape": [3], "data_offsets": [48_000_000, 48_000_012]}}) + f32(W1) + f32(B1),
+        "side", "", "")
+    side_model("side-lying-offsets.json", "lying-offsets.safetensors", "not a valid safetensors file", "a header whose offsets run past the file")
+    put("huge-header.safetensors", struct.pack("<Q", 1 << 40) + b"{}", "side", "", "")
+    side_model("side-huge-header.json", "huge-header.safetensors", "not a valid safetensors file", "a header length of 2^40 bytes")
+    put("wrong-dtype.safetensors", safetensors_bytes([("h1.weight", "I32", [3, 4], struct.pack("<12i", *range(12))),
+                                                     ("h1.bias", "F32", [3], f32(B1))]), "side", "", "")
+    side_model("side-wrong-dtype.json", "wrong-dtype.safetensors", "dtype I32", "integer weights")
+    put("wrong-shape.safetensors", safetensors_bytes([("h1.weight", "F32", [12], f32(W1)), ("h1.bias", "F32", [3], f32(B1))]), "side", "", "")
+    side_model("side-wrong-shape.json", "wrong-shape.safetensors", "weights must be 2-D", "weights stored flat")
+    put("shape-mismatch.safetensors", safetensors_bytes([("h1.weight", "F32", [4, 3], f32(W1)), ("h1.bias", "F32", [3], f32(B1))]), "side", "", "")
+    side_model("side-shape-mismatch.json", "shape-mismatch.safetensors", "\"size\" is 4 but the first layer", "weights stored transposed")
+    nan_w = list(W1)
+    nan_w[5] = float("nan")
+    put("nan.safetensors", safetensors_bytes([("h1.weight", "F32", [3, 4], f32(nan_w)), ("h1.bias", "F32", [3], f32(B1))]), "side", "", "")
+    side_model("side-nan.json", "nan.safetensors", "not finite", "NaN stored in a side file")
+    put("good.safetensors", good_st, "side", "", "")
+    side_model("side-missing-tensor.json", "good.safetensors", 'has no tensor "fc1.weight"', "a tensor name that is not in the file", tensor="fc1.weight")
+    put("truncated.safetensors", good_st[:-10], "side", "", "")
+    side_model("side-truncated.json", "truncated.safetensors", "not a valid safetensors file", "a side file cut short")
+    put("garbage.safetensors", bytes(rng.randrange(256) for _ in range(1000)), "side", "", "")
+    side_model("side-garbage.json", "garbage.safetensors", "not a valid safetensors file", "random bytes as a side file")
+    m = good()
+    m["layers"][0]["weights"] = {"safetensors": "good.safetensors"}
+    put("side-ref-incomplete.json", dump(m), "model", "needs both", "a tensor reference without a tensor name")
+
+    # --- probe CSV (run against good-model.json)
+    def probe(name, data, expect, reason):
+        put(name, data, "probe", expect, reason)
+    probe("probe-empty.csv", "", "no samples", "an empty probe file")
+    probe("probe-header-only.csv", "a,b,c,d,label\n", "no samples", "a header and no rows")
+    probe("probe-wrong-width.csv", "0,0,0,0\n0.5,0.5,0.5\n", "3", "a short row")
+    probe("probe-too-wide.csv", "0,0,0,0,0\n", "5", "a row with five values for four inputs")
+    probe("probe-non-numeric.csv", "0,0,0,0\n0,abc,0,0\n", "abc", "a word where a number belongs")
+    probe("probe-nan.csv", "0,0,0,0\n0,NaN,0,0\n", "NaN", "a NaN cell")
+    probe("probe-inf.csv", "0,0,0,0\n0,0,inf,0\n", "inf", "an infinite cell")
+    probe("probe-unknown-label.csv", "a,b,c,d,label\n0,0,0,0,ok\n0,0,0,0,broken\n", "broken", "a label the model does not have")
+    probe("probe-label-out-of-range.csv", "a,b,c,d,label\n0,0,0,0,7\n", "7", "a class index beyond the output units")
+    probe("probe-fractional-label.csv", "a,b,c,d,label\n0,0,0,0,0.5\n", "0.5", "a class index that is not whole")
+    probe("probe-header-width.csv", "a,b,c\n0,0,0\n", "3", "a header with three columns for four inputs")
+    probe("probe-garbage.csv", bytes(rng.randrange(256) for _ in range(2048)), "probe-garbage.csv", "random bytes")
+    probe("probe-unknown-extension.txt", "0,0,0,0\n", "unknown probe format", "neither .csv nor .npy")
+
+    # --- probe .npy
+    row = struct.pack("<4f", 0.1, 0.2, 0.3, 0.4)
+    probe("npy-empty.npy", b"", "npy-empty.npy", "an empty .npy file")
+    probe("npy-bad-magic.npy", b"NOTNUMPY" + b"\x00" * 120, "npy-bad-magic.npy", "not a NumPy file")
+    probe("npy-1d.npy", npy("npy-1d", "<f4", (4,), row), "2-D", "a 1-D array")
+    probe("npy-wrong-width.npy", npy("x", "<f4", (1, 3), row[:12]), "3", "three columns for four inputs")
+    probe("npy-int.npy", npy("x", "<i4", (1, 4), struct.pack("<4i", 1, 2, 3, 4)), "<i4", "integer data")
+    probe("npy-lying-shape.npy", npy("x", "<f4", (10**12, 4), row * 2), "1000000000000", "declares 10^12 rows but holds 2")
+    probe("npy-truncated.npy", npy("x", "<f4", (3, 4), row * 2 + row[:6]), "npy-truncated.npy", "data cut short")
+    probe("npy-nan.npy", npy("x", "<f8", (2, 4), struct.pack("<8d", 0, 0, 0, 0, 0, float("nan"), 0, 0)), "NaN", "a NaN value")
+    probe("npy-bad-header.npy", npy("x", "<f4", (1, 4), row, header="{'descr': <f4, 'shape': ((}"), "npy-bad-header.npy", "a header that is not a Python dict")
+    probe("npy-zero-rows.npy", npy("x", "<f4", (0, 4), b""), "no samples", "an array with no rows")
+
+    cases.sort()
+    with open(os.path.join(HERE, "INDEX.tsv"), "w") as f:
+        f.write("# file\tkind\tthe message must contain\treason\n")
+        for name, kind, expect, reason in cases:
+            if kind != "side":
+                f.write(f"{name}\t{kind}\t{expect}\t{reason}\n")
+    print(len([c for c in cases if c[1] != "side"]), "cases")
+
+
+if __name__ == "__main__":
+    main()
