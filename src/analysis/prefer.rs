@@ -1,0 +1,791 @@
+//! Preferred inputs: the input inside the box `[low, high]` that maximises a unit's
+//! pre-activation, by projected gradient ascent from several starts.
+//!
+//! Objective per start: `z(x) - l2 * ||x||^2 - tv * TV(x)`, where `TV` is the anisotropic
+//! total variation of an image layout, `sum` over channels of `|x(i, j+1) - x(i, j)|` and
+//! `|x(i+1, j) - x(i, j)|` over neighbouring pixels (Rudin, Osher & Fatemi 1992 define the
+//! continuous form; the anisotropic discrete sum is the usual discretisation). Its
+//! subgradient is used, with `sign(0) = 0`.
+//!
+//! Step rule (scale-free): Adam (Kingma & Ba 2015, Algorithm 1; beta1 = 0.9,
+//! beta2 = 0.999) whose step for input `i` is `lr_t * (high_i - low_i)`, with `lr_t`
+//! following a cosine decay from 0.05 to 0.0005 over the run. The normalised Adam step
+//! does not depend on the scale of the gradient, and tying it to the box width makes it
+//! independent of the scale of the input, so the same rule works on any model. After each
+//! step the input is projected (clamped) back into the box.
+//!
+//! For a first-layer unit the objective is linear and the ascent ends on the vertex
+//! `x_i = high_i if w_i > 0 else low_i`, whose value is the closed form
+//! `b + sum_i max(w_i low_i, w_i high_i)` ([`closed_form_first_layer`]).
+//!
+//! Restarts: start 0 is the box centre, the others are uniform in the box from a
+//! `ChaCha8Rng` seeded with `seed`. A start stops early once it is provably stuck: every
+//! coordinate sits on the end of the box its gradient and Adam momentum both push
+//! towards (or has zero gradient and momentum), so no later step can move it. The best
+//! point of each start's trajectory is kept, and the best start (by the penalised
+//! objective) is returned per unit.
+//!
+//! All requested units run as one batch of `units x restarts` rows per step (one matrix
+//! product per layer for the batch, see [`super::gradient`]).
+
+use super::Progress;
+use super::forward::forward_trace;
+use super::gradient::input_gradient;
+use crate::error::{Error, Result};
+use crate::model::{Layout, Network};
+use ndarray::Array2;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+
+/// Options of the preferred-input search.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PreferOptions {
+    /// Gradient steps per start (default 200).
+    pub steps: usize,
+    /// Starts per unit: the box centre plus `restarts - 1` random points (default 8).
+    pub restarts: usize,
+    /// Seed of the random starts (default 0).
+    pub seed: u64,
+    /// Weight of the `||x||^2` penalty (default 0: none).
+    pub l2: f32,
+    /// Weight of the total-variation penalty, image layouts only (default 0: none).
+    pub tv: f32,
+}
+
+impl Default for PreferOptions {
+    fn default() -> Self {
+        PreferOptions {
+            steps: 200,
+            restarts: 8,
+            seed: 0,
+            l2: 0.0,
+            tv: 0.0,
+        }
+    }
+}
+
+/// The preferred input of one unit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Preferred {
+    /// Layer index.
+    pub layer: usize,
+    /// Unit index within the layer.
+    pub unit: usize,
+    /// The preferred input, `[input size]`, inside the box.
+    pub input: Vec<f32>,
+    /// The raw pre-activation z at `input` (not the penalised objective).
+    pub preactivation: f32,
+    /// The unit's activation at `input` (on a softmax layer: its probability given the
+    /// other units' pre-activations at that input).
+    pub activation: f32,
+    /// The largest number of steps any start of this unit ran.
+    pub steps: usize,
+    /// False when any start of this unit met NaN or infinity, or the returned values are
+    /// not finite. The returned input is then the best finite point found (or the box
+    /// centre when there is none).
+    pub finite: bool,
+}
+
+/// Adam's decay rates (Kingma & Ba 2015, the paper's defaults).
+const BETA1: f32 = 0.9;
+const BETA2: f32 = 0.999;
+/// Learning rate as a fraction of the box width, at the start and at the end of the
+/// cosine decay (common practice, no source; chosen so a start anywhere in the box can
+/// reach any vertex in about 20 steps and the end phase refines to ~1e-3 of the width).
+const LR_START: f32 = 0.05;
+const LR_END: f32 = 0.0005;
+
+/// Search state of one start (one row of the batch).
+struct Row {
+    /// Current point, `[inputs]`.
+    x: Vec<f32>,
+    /// Adam first moment, `[inputs]`.
+    m: Vec<f32>,
+    /// Adam second moment, `[inputs]`.
+    v: Vec<f32>,
+    /// Best point seen so far, `[inputs]`.
+    best_x: Vec<f32>,
+    /// Penalised objective at `best_x` (NEG_INFINITY before the first finite value).
+    best_obj: f64,
+    /// Steps taken.
+    steps: usize,
+    /// Still moving.
+    active: bool,
+    /// Met NaN or infinity.
+    nonfinite: bool,
+}
+
+/// The closed-form maximum of a first-layer unit's pre-activation over the box,
+/// `b + sum_i max(w_i low_i, w_i high_i)` in f64, and a point where it is attained
+/// (`high_i` where `w_i > 0`, `low_i` where `w_i < 0`, the box centre where `w_i = 0`).
+///
+/// # Panics
+/// When `unit` is not a unit of the first layer.
+pub fn closed_form_first_layer(net: &Network, unit: usize) -> (f64, Vec<f32>) {
+    let l = &net.layers[0];
+    let w = l.weights.row(unit);
+    let mut value = f64::from(l.bias[unit]);
+    let mut x = Vec::with_capacity(w.len());
+    for ((wi, lo), hi) in w.iter().zip(&net.input.low).zip(&net.input.high) {
+        let wf = f64::from(*wi);
+        value += (wf * f64::from(*lo)).max(wf * f64::from(*hi));
+        x.push(if *wi > 0.0 {
+            *hi
+        } else if *wi < 0.0 {
+            *lo
+        } else {
+            0.5 * (lo + hi)
+        });
+    }
+    (value, x)
+}
+
+/// Checks a request before any work.
+fn validate(net: &Network, layer: usize, units: &[usize], opts: &PreferOptions) -> Result<()> {
+    let Some(l) = net.layers.get(layer) else {
+        return Err(Error::usage(format!(
+            "layer index {layer} is out of range: the network has {} layers",
+            net.layers.len()
+        )));
+    };
+    if let Some(&u) = units.iter().find(|&&u| u >= l.units()) {
+        return Err(Error::usage(format!(
+            "unit {u} is out of range: layer '{}' has {} units (counted from 0)",
+            l.name,
+            l.units()
+        )));
+    }
+    if opts.restarts == 0 {
+        return Err(Error::usage("restarts must be at least 1"));
+    }
+    if !(opts.l2.is_finite() && opts.l2 >= 0.0) {
+        return Err(Error::usage(format!(
+            "the L2 penalty must be a finite number >= 0, got {}",
+            opts.l2
+        )));
+    }
+    if !(opts.tv.is_finite() && opts.tv >= 0.0) {
+        return Err(Error::usage(format!(
+            "the total-variation penalty must be a finite number >= 0, got {}",
+            opts.tv
+        )));
+    }
+    if opts.tv > 0.0 && !matches!(net.input.layout, Layout::Image { .. }) {
+        return Err(Error::usage(
+            "the total-variation penalty needs an image input layout; this model's input is a vector",
+        ));
+    }
+    Ok(())
+}
+
+/// Visits every pair of neighbouring pixels (right and down neighbours, per channel) of an
+/// image layout as flat indices `(p, q)`.
+fn for_each_neighbour_pair(layout: Layout, mut f: impl FnMut(usize, usize)) {
+    if let Layout::Image {
+        height,
+        width,
+        channels,
+    } = layout
+    {
+        for i in 0..height {
+            for j in 0..width {
+                for c in 0..channels {
+                    let p = (i * width + j) * channels + c;
+                    if j + 1 < width {
+                        f(p, p + channels);
+                    }
+                    if i + 1 < height {
+                        f(p, p + width * channels);
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// The penalty `l2 ||x||^2 + tv TV(x)` at `x` (f64), adding the ascent direction of its
+/// negative to `g` (`g -= d penalty / dx`).
+fn penalty_and_gradient(x: &[f32], g: &mut [f32], l2: f32, tv: f32, layout: Layout) -> f64 {
+    let mut pen = 0.0f64;
+    if l2 > 0.0 {
+        let mut sq = 0.0f64;
+        for (gi, &xi) in g.iter_mut().zip(x) {
+            sq += f64::from(xi) * f64::from(xi);
+            *gi -= 2.0 * l2 * xi;
+        }
+        pen += f64::from(l2) * sq;
+    }
+    if tv > 0.0 {
+        let mut total = 0.0f64;
+        for_each_neighbour_pair(layout, |p, q| {
+            let d = x[q] - x[p];
+            total += f64::from(d.abs());
+            // Subgradient of |x_q - x_p| with sign(0) = 0.
+            let s = if d > 0.0 {
+                1.0
+            } else if d < 0.0 {
+                -1.0
+            } else {
+                0.0
+            };
+            g[q] -= tv * s;
+            g[p] += tv * s;
+        });
+        pen += f64::from(tv) * total;
+    }
+    pen
+}
+
+/// The cosine-decayed learning rate (fraction of the box width) at step `t` of `steps`.
+fn learning_rate(t: usize, steps: usize) -> f32 {
+    let frac = if steps <= 1 {
+        0.0
+    } else {
+        t as f32 / (steps - 1) as f32
+    };
+    LR_END + (LR_START - LR_END) * 0.5 * (1.0 + (std::f32::consts::PI * frac).cos())
+}
+
+/// Preferred inputs of `units` of `layer`, all optimised together as one batch of
+/// `units.len() x opts.restarts` rows per step (see the module docs for the method).
+///
+/// Errors: a usage error for an unknown layer or unit, zero restarts, a negative or
+/// non-finite penalty, or a TV penalty on a vector layout; [`Error::Cancelled`] when
+/// `progress` asks to stop (checked every step). NaN or infinity in the search is not an
+/// error: the unit is returned with `finite == false`.
+pub fn prefer(
+    net: &Network,
+    layer: usize,
+    units: &[usize],
+    opts: &PreferOptions,
+    progress: &dyn Progress,
+) -> Result<Vec<Preferred>> {
+    validate(net, layer, units, opts)?;
+    if units.is_empty() {
+        progress.set(1.0);
+        return Ok(Vec::new());
+    }
+    let n = net.input.size;
+    let low = &net.input.low;
+    let high = &net.input.high;
+    let width: Vec<f32> = low.iter().zip(high).map(|(l, h)| h - l).collect();
+    let layout = net.input.layout;
+    let restarts = opts.restarts;
+    let total_rows = units.len() * restarts;
+
+    // Starts: row = unit_position * restarts + r; r = 0 is the centre.
+    let centre = net.input.centre();
+    let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
+    let mut rows: Vec<Row> = (0..total_rows)
+        .map(|row| {
+            let x: Vec<f32> = if row % restarts == 0 {
+                centre.clone()
+            } else {
+                low.iter()
+                    .zip(high)
+                    .map(|(&l, &h)| if h > l { rng.random_range(l..=h) } else { l })
+                    .collect()
+            };
+            Row {
+                best_x: x.clone(),
+                x,
+                m: vec![0.0; n],
+                v: vec![0.0; n],
+                best_obj: f64::NEG_INFINITY,
+                steps: 0,
+                active: true,
+                nonfinite: false,
+            }
+        })
+        .collect();
+    let row_unit: Vec<usize> = (0..total_rows).map(|r| units[r / restarts]).collect();
+
+    let mut batch = Array2::<f32>::zeros((0, n));
+    let mut active_idx: Vec<usize> = Vec::with_capacity(total_rows);
+    let mut active_units: Vec<usize> = Vec::with_capacity(total_rows);
+    let steps = opts.steps;
+    for t in 0..=steps {
+        if progress.cancelled() {
+            return Err(Error::Cancelled);
+        }
+        active_idx.clear();
+        active_idx.extend((0..total_rows).filter(|&r| rows[r].active));
+        if active_idx.is_empty() {
+            break;
+        }
+        active_units.clear();
+        active_units.extend(active_idx.iter().map(|&r| row_unit[r]));
+        // Gather the moving rows into one batch.
+        if batch.nrows() != active_idx.len() {
+            batch = Array2::<f32>::zeros((active_idx.len(), n));
+        }
+        if let Some(flat) = batch.as_slice_mut() {
+            let src = &rows;
+            flat.par_chunks_mut(n.max(1))
+                .zip(active_idx.par_iter())
+                .for_each(|(dst, &r)| dst.copy_from_slice(&src[r].x));
+        }
+        let (z, mut grad) = input_gradient(net, layer, &active_units, batch.view());
+        let Some(gflat) = grad.as_slice_mut() else {
+            // `input_gradient` returns a fresh standard-layout array.
+            return Err(Error::usage(
+                "internal error: gradient array is not contiguous",
+            ));
+        };
+        let lr = learning_rate(t, steps);
+        let last = t == steps;
+        let bc1 = 1.0 - BETA1.powi(t as i32 + 1);
+        let bc2 = 1.0 - BETA2.powi(t as i32 + 1);
+        // Position of each active row in the batch.
+        let mut pos = vec![usize::MAX; total_rows];
+        for (p, &r) in active_idx.iter().enumerate() {
+            pos[r] = p;
+        }
+        let gchunks: Vec<&mut [f32]> = gflat.chunks_mut(n.max(1)).collect();
+        let mut pairs: Vec<(&mut Row, &mut [f32], f32)> = Vec::with_capacity(active_idx.len());
+        {
+            let mut gi = gchunks.into_iter();
+            for (r, row) in rows.iter_mut().enumerate() {
+                if pos[r] != usize::MAX
+                    && let Some(g) = gi.next()
+                {
+                    pairs.push((row, g, z[pos[r]]));
+                }
+            }
+        }
+        pairs.par_iter_mut().for_each(|(row, g, zr)| {
+            step_row(
+                row,
+                g,
+                *zr,
+                StepParams {
+                    low,
+                    high,
+                    width: &width,
+                    lr,
+                    bc1,
+                    bc2,
+                    l2: opts.l2,
+                    tv: opts.tv,
+                    layout,
+                    last,
+                },
+            );
+        });
+        progress.set((t + 1) as f32 / (steps + 1) as f32);
+    }
+
+    // Pick the best start per unit and evaluate it once more with a plain forward pass.
+    let mut chosen: Vec<(usize, bool, usize)> = Vec::with_capacity(units.len());
+    for ui in 0..units.len() {
+        let range = ui * restarts..(ui + 1) * restarts;
+        let best = range
+            .clone()
+            .filter(|&r| rows[r].best_obj.is_finite())
+            .max_by(|&a, &b| rows[a].best_obj.total_cmp(&rows[b].best_obj));
+        let any_nonfinite = range.clone().any(|r| rows[r].nonfinite);
+        let steps_run = range.map(|r| rows[r].steps).max().unwrap_or(0);
+        chosen.push((best.unwrap_or(usize::MAX), !any_nonfinite, steps_run));
+    }
+    let mut inputs = Array2::<f32>::zeros((units.len(), n));
+    for (ui, &(best, _, _)) in chosen.iter().enumerate() {
+        let src = if best == usize::MAX {
+            &centre
+        } else {
+            &rows[best].best_x
+        };
+        inputs
+            .row_mut(ui)
+            .iter_mut()
+            .zip(src)
+            .for_each(|(d, s)| *d = *s);
+    }
+    let trace = forward_trace(net, inputs.view(), layer);
+    let pre = &trace.pre[layer];
+    let post = &trace.post[layer];
+    let out = units
+        .iter()
+        .enumerate()
+        .map(|(ui, &u)| {
+            let (best, ok, steps_run) = chosen[ui];
+            let preactivation = pre[[ui, u]];
+            let activation = post[[ui, u]];
+            Preferred {
+                layer,
+                unit: u,
+                input: inputs.row(ui).to_vec(),
+                preactivation,
+                activation,
+                steps: steps_run,
+                finite: ok
+                    && best != usize::MAX
+                    && preactivation.is_finite()
+                    && activation.is_finite(),
+            }
+        })
+        .collect();
+    Ok(out)
+}
+
+/// Per-step constants shared by all rows.
+#[derive(Clone, Copy)]
+struct StepParams<'a> {
+    low: &'a [f32],
+    high: &'a [f32],
+    width: &'a [f32],
+    lr: f32,
+    bc1: f32,
+    bc2: f32,
+    l2: f32,
+    tv: f32,
+    layout: Layout,
+    /// The final evaluation: record the point, do not move.
+    last: bool,
+}
+
+/// Evaluates one row at its current point (`z`, gradient `g` of z), records the best
+/// point, and takes one projected Adam step unless the row is stuck or this is the end.
+fn step_row(row: &mut Row, g: &mut [f32], z: f32, p: StepParams<'_>) {
+    if !z.is_finite() || g.iter().any(|v| !v.is_finite()) {
+        row.nonfinite = true;
+        row.active = false;
+        return;
+    }
+    let pen = penalty_and_gradient(&row.x, g, p.l2, p.tv, p.layout);
+    let obj = f64::from(z) - pen;
+    if !obj.is_finite() || g.iter().any(|v| !v.is_finite()) {
+        row.nonfinite = true;
+        row.active = false;
+        return;
+    }
+    if obj > row.best_obj {
+        row.best_obj = obj;
+        row.best_x.copy_from_slice(&row.x);
+    }
+    if p.last {
+        row.active = false;
+        return;
+    }
+    // Stuck: the update below would push every coordinate against its bound (or leave it
+    // where it is), so the point, hence the gradient, can never change again.
+    let stuck = (0..g.len()).all(|i| {
+        let (x, gi, mi) = (row.x[i], g[i], row.m[i]);
+        p.width[i] <= 0.0
+            || (gi == 0.0 && mi == 0.0)
+            || (x >= p.high[i] && gi >= 0.0 && mi >= 0.0)
+            || (x <= p.low[i] && gi <= 0.0 && mi <= 0.0)
+    });
+    if stuck {
+        row.active = false;
+        return;
+    }
+    for i in 0..g.len() {
+        let gi = g[i];
+        let m = BETA1 * row.m[i] + (1.0 - BETA1) * gi;
+        let v = BETA2 * row.v[i] + (1.0 - BETA2) * gi * gi;
+        row.m[i] = m;
+        row.v[i] = v;
+        let denom = (v / p.bc2).sqrt();
+        if denom > 0.0 && denom.is_finite() {
+            let step = p.lr * p.width[i] * (m / p.bc1) / denom;
+            row.x[i] = (row.x[i] + step).clamp(p.low[i], p.high[i]);
+        }
+    }
+    row.steps += 1;
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::analysis::Silent;
+    use crate::analysis::bounds::interval_bounds;
+    use crate::model::{Activation, InputSpec, Layer};
+    use approx::assert_abs_diff_eq;
+    use ndarray::{Array1, array};
+    use std::sync::atomic::{AtomicUsize, Ordering};
+
+    fn random_net(seed: u64, sizes: &[usize], acts: &[Activation], layout: Layout) -> Network {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        let n = sizes[0];
+        let low: Vec<f32> = (0..n).map(|_| rng.random_range(-2.0f32..0.0)).collect();
+        let high: Vec<f32> = low
+            .iter()
+            .map(|l| l + rng.random_range(0.5f32..3.0))
+            .collect();
+        let input = InputSpec {
+            size: n,
+            layout,
+            low,
+            high,
+            names: None,
+        };
+        let layers = acts
+            .iter()
+            .enumerate()
+            .map(|(i, &act)| Layer {
+                name: format!("l{i}"),
+                activation: act,
+                weights: Array2::from_shape_fn((sizes[i + 1], sizes[i]), |_| {
+                    rng.random_range(-1.0f32..1.0)
+                }),
+                bias: Array1::from_shape_fn(sizes[i + 1], |_| rng.random_range(-0.5f32..0.5)),
+                labels: None,
+            })
+            .collect();
+        Network::new("test", "t", input, layers).expect("valid")
+    }
+
+    #[test]
+    fn first_layer_reaches_the_closed_form() {
+        // Closed form of a linear function's maximum over a box (each coordinate at the
+        // end its weight points to): b + sum_i max(w_i low_i, w_i high_i).
+        let net = random_net(
+            1,
+            &[30, 12, 4],
+            &[Activation::Relu, Activation::Softmax],
+            Layout::Vector,
+        );
+        let units: Vec<usize> = (0..12).collect();
+        let res = prefer(&net, 0, &units, &PreferOptions::default(), &Silent).expect("prefer");
+        assert_eq!(res.len(), 12);
+        for r in &res {
+            let (want, argmax) = closed_form_first_layer(&net, r.unit);
+            assert!(r.finite);
+            let rel = (f64::from(r.preactivation) - want).abs() / want.abs().max(1.0);
+            assert!(rel < 1e-4, "unit {}: {} vs {want}", r.unit, r.preactivation);
+            assert_abs_diff_eq!(r.activation, r.preactivation.max(0.0), epsilon = 1e-6);
+            for (a, b) in r.input.iter().zip(&argmax) {
+                assert_abs_diff_eq!(*a, *b, epsilon = 1e-6);
+            }
+            assert!(r.steps <= 200);
+        }
+        // Reaching the vertex makes every start stuck long before 200 steps.
+        assert!(res.iter().all(|r| r.steps < 200));
+    }
+
+    #[test]
+    fn l2_penalty_reaches_its_closed_form() {
+        // With the penalty the objective w.x + b - l2 ||x||^2 is separable and concave;
+        // each coordinate's maximiser is clamp(w_i / (2 l2), low_i, high_i) (set the
+        // derivative w_i - 2 l2 x_i to zero, then project: textbook calculus).
+        let net = random_net(
+            2,
+            &[20, 5, 2],
+            &[Activation::Tanh, Activation::Identity],
+            Layout::Vector,
+        );
+        let l2 = 0.4f32;
+        let opts = PreferOptions {
+            l2,
+            ..PreferOptions::default()
+        };
+        let res = prefer(&net, 0, &[0, 3], &opts, &Silent).expect("prefer");
+        for r in &res {
+            let w = net.layers[0].weights.row(r.unit);
+            for i in 0..20 {
+                let want = (w[i] / (2.0 * l2)).clamp(net.input.low[i], net.input.high[i]);
+                assert_abs_diff_eq!(r.input[i], want, epsilon = 5e-3);
+            }
+            assert_abs_diff_eq!(r.activation, r.preactivation.tanh(), epsilon = 1e-6);
+        }
+    }
+
+    #[test]
+    fn deep_units_stay_in_the_box_and_below_the_bound() {
+        // Soundness check at the search result (Gowal et al. 2018): no input in the box
+        // can exceed the interval upper bound, so the found z must not either.
+        let acts = [Activation::Relu, Activation::Sigmoid, Activation::Softmax];
+        let net = random_net(3, &[10, 16, 8, 3], &acts, Layout::Vector);
+        let b = interval_bounds(&net);
+        for layer in 1..3 {
+            let units: Vec<usize> = (0..net.layers[layer].units()).collect();
+            let res =
+                prefer(&net, layer, &units, &PreferOptions::default(), &Silent).expect("prefer");
+            for r in &res {
+                assert!(r.finite);
+                for (i, &x) in r.input.iter().enumerate() {
+                    assert!(x >= net.input.low[i] && x <= net.input.high[i]);
+                }
+                assert!(f64::from(r.preactivation) <= b.upper[layer][r.unit] + 1e-4);
+            }
+            if layer == 2 {
+                // Softmax: the activation is the probability at that input.
+                let x = Array2::from_shape_vec((1, 10), res[0].input.clone()).expect("shape");
+                let t = forward_trace(&net, x.view(), 2);
+                assert_abs_diff_eq!(
+                    res[0].activation,
+                    t.post[2][[0, res[0].unit]],
+                    epsilon = 1e-6
+                );
+                assert!(res[0].activation > 0.0 && res[0].activation < 1.0);
+            }
+        }
+    }
+
+    #[test]
+    fn restarts_never_lose_to_the_centre_start() {
+        // The best start is kept: with 8 starts the result is at least as good as with
+        // only the centre start (same centre trajectory, max over more starts).
+        let acts = [Activation::Tanh, Activation::Tanh, Activation::Identity];
+        let net = random_net(4, &[8, 10, 6, 2], &acts, Layout::Vector);
+        let one = PreferOptions {
+            restarts: 1,
+            ..PreferOptions::default()
+        };
+        let units: Vec<usize> = (0..6).collect();
+        let a = prefer(&net, 1, &units, &one, &Silent).expect("prefer");
+        let b = prefer(&net, 1, &units, &PreferOptions::default(), &Silent).expect("prefer");
+        for (x, y) in a.iter().zip(&b) {
+            assert!(y.preactivation >= x.preactivation - 1e-6);
+        }
+        // Same seed, same answer.
+        let c = prefer(&net, 1, &units, &PreferOptions::default(), &Silent).expect("prefer");
+        assert_eq!(b, c);
+    }
+
+    #[test]
+    fn tv_penalty_smooths_and_is_refused_on_vectors() {
+        let img = Layout::Image {
+            height: 4,
+            width: 4,
+            channels: 1,
+        };
+        let net = random_net(
+            5,
+            &[16, 3, 2],
+            &[Activation::Relu, Activation::Identity],
+            img,
+        );
+        let tv_of = |x: &[f32]| {
+            let mut t = 0.0f64;
+            for_each_neighbour_pair(img, |p, q| t += f64::from((x[q] - x[p]).abs()));
+            t
+        };
+        let plain = prefer(&net, 0, &[0], &PreferOptions::default(), &Silent).expect("prefer");
+        let opts = PreferOptions {
+            tv: 1.0,
+            ..PreferOptions::default()
+        };
+        let smooth = prefer(&net, 0, &[0], &opts, &Silent).expect("prefer");
+        assert!(tv_of(&smooth[0].input) < tv_of(&plain[0].input));
+        // 4x4 grid: 3 horizontal pairs x 4 rows + 3 vertical pairs x 4 columns = 24.
+        let mut pairs = 0;
+        for_each_neighbour_pair(img, |_, _| pairs += 1);
+        assert_eq!(pairs, 24);
+
+        let vec_net = random_net(
+            6,
+            &[4, 2, 2],
+            &[Activation::Relu, Activation::Identity],
+            Layout::Vector,
+        );
+        let err = prefer(&vec_net, 0, &[0], &opts, &Silent).expect_err("tv on vector");
+        assert!(matches!(err, Error::Usage(_)));
+    }
+
+    #[test]
+    fn bad_requests_are_usage_errors() {
+        let net = random_net(
+            7,
+            &[4, 2, 2],
+            &[Activation::Relu, Activation::Identity],
+            Layout::Vector,
+        );
+        let o = PreferOptions::default();
+        assert!(matches!(
+            prefer(&net, 5, &[0], &o, &Silent),
+            Err(Error::Usage(_))
+        ));
+        assert!(matches!(
+            prefer(&net, 0, &[2], &o, &Silent),
+            Err(Error::Usage(_))
+        ));
+        let zero = PreferOptions {
+            restarts: 0,
+            ..o.clone()
+        };
+        assert!(matches!(
+            prefer(&net, 0, &[0], &zero, &Silent),
+            Err(Error::Usage(_))
+        ));
+        let neg = PreferOptions {
+            l2: -1.0,
+            ..o.clone()
+        };
+        assert!(matches!(
+            prefer(&net, 0, &[0], &neg, &Silent),
+            Err(Error::Usage(_))
+        ));
+        assert!(prefer(&net, 0, &[], &o, &Silent).expect("empty").is_empty());
+    }
+
+    struct CancelAfter(AtomicUsize);
+    impl Progress for CancelAfter {
+        fn set(&self, _fraction: f32) {}
+        fn cancelled(&self) -> bool {
+            self.0.fetch_sub(1, Ordering::SeqCst) == 0
+        }
+    }
+
+    #[test]
+    fn cancellation_returns_cancelled() {
+        let net = random_net(
+            8,
+            &[6, 5, 2],
+            &[Activation::Tanh, Activation::Identity],
+            Layout::Vector,
+        );
+        let p = CancelAfter(AtomicUsize::new(3));
+        let r = prefer(&net, 1, &[0, 1], &PreferOptions::default(), &p);
+        assert!(matches!(r, Err(Error::Cancelled)));
+    }
+
+    #[test]
+    fn overflow_is_reported_not_panicked() {
+        // Weights near f32::MAX overflow the second layer's pre-activation to infinity.
+        let input = InputSpec {
+            size: 2,
+            layout: Layout::Vector,
+            low: vec![0.5; 2],
+            high: vec![1.0; 2],
+            names: None,
+        };
+        let big = f32::MAX / 2.0;
+        let h = Layer {
+            name: "h".into(),
+            activation: Activation::Relu,
+            weights: array![[big, big], [big, big]],
+            bias: array![0.0, 0.0],
+            labels: None,
+        };
+        let o = Layer {
+            name: "o".into(),
+            activation: Activation::Identity,
+            weights: array![[big, big]],
+            bias: array![0.0],
+            labels: None,
+        };
+        let net = Network::new("test", "t", input, vec![h, o]).expect("finite weights are valid");
+        let r = prefer(&net, 1, &[0], &PreferOptions::default(), &Silent).expect("no error");
+        assert!(!r[0].finite);
+    }
+
+    #[test]
+    fn steps_zero_evaluates_the_starts() {
+        let net = random_net(
+            9,
+            &[3, 2, 2],
+            &[Activation::Relu, Activation::Identity],
+            Layout::Vector,
+        );
+        let o = PreferOptions {
+            steps: 0,
+            restarts: 1,
+            ..PreferOptions::default()
+        };
+        let r = prefer(&net, 0, &[1], &o, &Silent).expect("prefer");
+        assert_eq!(r[0].steps, 0);
+        assert_eq!(r[0].input, net.input.centre());
+    }
+}
