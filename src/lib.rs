@@ -4,6 +4,7 @@
 //! layers over it.
 
 pub mod analysis;
+#[cfg(feature = "gui")]
 pub mod app;
 pub mod atomic;
 pub mod cli;
