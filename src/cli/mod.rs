@@ -1,0 +1,281 @@
+//! The command line: argument definitions (clap) and one file per command.
+//!
+//! Every command validates the whole model first, then writes CSV (default) or JSON to
+//! `--out FILE` (atomically) or standard output. Exit codes: 0 success, 2 bad input or bad
+//! usage, 3 only for a failed `check`.
+
+// WIP pub mod check;
+pub mod forward;
+pub mod output;
+pub mod prefer;
+// WIP pub mod prune_sweep;
+// WIP pub mod screen;
+pub mod stats;
+
+use crate::error::{Error, Result};
+use crate::model::{LoadOptions, Network};
+use crate::probe::{self, ProbeSource};
+use clap::{Args, Parser, Subcommand};
+use output::{Destination, Format};
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+/// Exit code for bad input or bad usage.
+pub const EXIT_BAD_INPUT: u8 = 2;
+/// Exit code of a failed `check`.
+pub const EXIT_CHECK_FAILED: u8 = 3;
+
+const ABOUT: &str =
+    "Inspect a trained feed-forward network: preferred inputs, weight sparsity, dead ReLU units";
+
+const LONG_ABOUT: &str = "\
+Inspect a trained feed-forward network saved in the receptor-model/1 JSON schema.
+
+Without a command, receptor opens the desktop app (on MODEL, or on the bundled demo model). \
+The commands below do the same analysis from the command line, for scripts and training \
+pipelines. Each one first validates the whole model file, then writes CSV (default) or JSON \
+(--format json) to standard output or to --out FILE.
+
+Exit codes: 0 success; 2 bad input or bad usage; 3 a failed `check`.";
+
+/// `receptor`: the desktop app, or one analysis command.
+#[derive(Debug, Parser)]
+#[command(
+    name = "receptor",
+    version,
+    about = ABOUT,
+    long_about = LONG_ABOUT,
+    args_conflicts_with_subcommands = true,
+    max_term_width = 100
+)]
+pub struct Cli {
+    /// Model file to open in the desktop app (default: the bundled demo model).
+    #[arg(value_name = "MODEL")]
+    pub model: Option<PathBuf>,
+
+    /// Allow the model's side files (safetensors) to be absolute paths or to lie outside the
+    /// model's folder.
+    #[arg(long)]
+    pub allow_outside_paths: bool,
+
+    /// The analysis command; without one the desktop app opens.
+    #[command(subcommand)]
+    pub command: Option<Command>,
+}
+
+/// The analysis commands.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Run the network on probe data: one row per sample with every output and the
+    /// prediction.
+    #[command(long_about = "\
+Run the network on probe data: one row per probe sample.
+
+Columns: `row` (from 0), one column per output unit (named by the output layer's label, else \
+out0, out1, ...), then `predicted` (the label or column name of the largest output; empty in \
+CSV and null in JSON when every output is NaN). The probe is streamed, so it may be larger \
+than memory.")]
+    Forward(forward::ForwardArgs),
+
+    /// Weight sparsity statistics: one row per unit of every layer.
+    #[command(long_about = "\
+Weight sparsity statistics: one row per unit of every layer, computed in f64.
+
+Columns: layer, unit (from 0), fan_in, l1, l2, max_abs (of the unit's incoming weights), \
+near_zero_frac (fraction of incoming weights with |w| <= tol), hoyer (Hoyer 2004 \
+sparseness, (sqrt(n) - L1/L2) / (sqrt(n) - 1)), gini (Gini index of |w|, Hurley & Rickard \
+2009), bias. A unit whose weights are all zero, or that has one input, gets 1 for both. \
+JSON output adds \"layers\": one summary per layer.")]
+    Stats(stats::StatsArgs),
+
+    // WIP     /// Screen hidden units for dead, rarely active, always active and saturated units.
+    // WIP     #[command(long_about = "\
+    // WIP Screen every hidden unit (all layers but the last) on probe data and by interval bound \
+    // WIP propagation over the input box.
+    // WIP
+    // WIP Columns: layer, unit, activation, active_frac, mean, max, upper_bound, status.
+    // WIP active_frac: fraction of probe samples where the pre-activation z > 0 (relu, leaky_relu, \
+    // WIP identity) or where the unit is not saturated (sigmoid: |z| < 4.3565, tanh: |z| < 2.1783, \
+    // WIP i.e. its slope is at least 5% of its peak). mean, max: of the activation over the probe. \
+    // WIP upper_bound: a sound upper bound of z over the whole input box.
+    // WIP status (first that applies): rectifiers: dead_proven (upper_bound <= 0), dead_on_probe \
+    // WIP (never active on the probe), rarely_active (active_frac < --rare), always_active \
+    // WIP (active on every sample), else ok; sigmoid/tanh: saturated (active_frac < --rare), else \
+    // WIP ok; identity: ok; non_finite when the probe made the unit overflow.
+    // WIP
+    // WIP Without --probe, the probe is samples drawn uniformly from the input box with a fixed seed \
+    // WIP (printed on standard error).")]
+    // WIP     Screen(screen::ScreenArgs),
+    /// Find a unit's preferred input: the input in the box that maximises its pre-activation.
+    #[command(long_about = "\
+Find the input, inside the box [low, high], that maximises a unit's pre-activation z (minus \
+LAMBDA x ||x||^2 with --l2), by projected gradient ascent from several starts (one from the \
+box centre, the rest random from --seed). With --all every unit of the layer is optimised at \
+once, as one batch.
+
+Columns: layer, unit, preactivation (raw z at the preferred input), activation (the unit's \
+output there; on a softmax layer its probability), steps (the most steps any restart ran), \
+then x0..x{n-1}, the preferred input. JSON output has one array \"input\" instead of x0... \
+A search that diverged prints NaN in CSV and null in JSON, with a warning on standard \
+error.")]
+    Prefer(prefer::PreferArgs),
+    // WIP     /// Fail (exit 3) when too many rectifier units of a hidden layer are dead.
+    // WIP     #[command(long_about = "\
+    // WIP For a training pipeline: screen the network (as `screen` does) and count, in every hidden \
+    // WIP layer with rectifier units (relu, leaky_relu), the units that are dead (dead_proven or \
+    // WIP dead_on_probe). Prints one line per such layer, `layer NAME: D of N rectifier units dead`, \
+    // WIP with ` (over the limit of F)` appended where the dead fraction exceeds --max-dead.
+    // WIP
+    // WIP Exit codes: 0 when every layer is within the limit, 3 when one is not, 2 on bad input. \
+    // WIP --format csv or json prints rows (layer, dead, units, dead_frac, max_dead, over_limit) \
+    // WIP instead of lines.")]
+    // WIP     Check(check::CheckArgs),
+
+    // WIP     /// Accuracy on a labelled probe after zeroing the smallest weights of every layer.
+    // WIP     #[command(
+    // WIP         name = "prune-sweep",
+    // WIP         long_about = "\
+    // WIP Magnitude pruning sweep: for each fraction F (default 0, 0.1, ..., 0.9), zero the F smallest \
+    // WIP |w| of every layer's weight matrix (biases kept) and measure the accuracy on a labelled probe \
+    // WIP (a CSV probe with a `label` column).
+    // WIP
+    // WIP Columns: fraction, zeroed (weights that are zero after pruning, over all layers), total \
+    // WIP (weights over all layers), accuracy (fraction of probe rows whose largest output is the \
+    // WIP label).
+    // WIP
+    // WIP With --write-pruned F --out FILE, writes the model pruned at fraction F to FILE in the \
+    // WIP receptor-model/1 schema instead (with --probe, its accuracy is printed on standard error)."
+    // WIP     )]
+    // WIP     PruneSweep(prune_sweep::PruneSweepArgs),
+}
+
+/// Options shared by the analysis commands.
+#[derive(Debug, Clone, Args)]
+pub struct CommonArgs {
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Csv)]
+    pub format: Format,
+
+    /// Write the output to FILE instead of standard output. The file is written to a
+    /// temporary file beside it and renamed, so it is never half-written.
+    #[arg(long, value_name = "FILE")]
+    pub out: Option<PathBuf>,
+
+    /// Allow the model's side files (safetensors) to be absolute paths or to lie outside the
+    /// model's folder.
+    #[arg(long)]
+    pub allow_outside_paths: bool,
+}
+
+impl CommonArgs {
+    /// Where the output goes.
+    pub fn destination(&self) -> Destination {
+        Destination::from_arg(self.out.as_deref())
+    }
+
+    /// Loads and validates the model.
+    pub fn load(&self, model: &Path) -> Result<Network> {
+        crate::model::load(
+            model,
+            &LoadOptions {
+                allow_outside_paths: self.allow_outside_paths,
+            },
+        )
+    }
+}
+
+/// Options choosing the probe of `screen` and `check`.
+#[derive(Debug, Clone, Args)]
+pub struct ProbeArgs {
+    /// Probe data: a .csv or .npy file, one sample per row, columns in input order.
+    /// Default: samples drawn uniformly from the input box.
+    #[arg(long, value_name = "DATA")]
+    pub probe: Option<PathBuf>,
+
+    /// Number of samples of the default uniform probe (without --probe).
+    #[arg(long, value_name = "N", default_value_t = probe::DEFAULT_UNIFORM_SAMPLES)]
+    pub samples: usize,
+
+    /// Seed of the default uniform probe (without --probe).
+    #[arg(long = "seed", value_name = "S", default_value_t = probe::DEFAULT_UNIFORM_SEED)]
+    pub probe_seed: u64,
+}
+
+impl ProbeArgs {
+    /// Opens the probe, or the seeded uniform probe (whose seed is printed on standard
+    /// error). Returns the seed when the uniform probe is used.
+    pub fn open(&self, net: &Network) -> Result<(Box<dyn ProbeSource>, Option<u64>)> {
+        match &self.probe {
+            Some(p) => Ok((probe::open(p, net)?, None)),
+            None => {
+                if self.samples == 0 {
+                    return Err(Error::usage("--samples must be at least 1"));
+                }
+                eprintln!(
+                    "receptor: no --probe given: using {} samples drawn uniformly from the input box with seed {}",
+                    self.samples, self.probe_seed
+                );
+                Ok((
+                    probe::uniform(net, self.samples, self.probe_seed),
+                    Some(self.probe_seed),
+                ))
+            }
+        }
+    }
+}
+
+/// Checks that a fraction option lies in [0, 1].
+pub fn check_fraction(name: &str, v: f64) -> Result<()> {
+    if v.is_finite() && (0.0..=1.0).contains(&v) {
+        Ok(())
+    } else {
+        Err(Error::usage(format!(
+            "{name} must be a number from 0 to 1, got {v}"
+        )))
+    }
+}
+
+/// Runs one analysis command, returning the process exit code on success (0, or 3 for a
+/// failed `check`).
+pub fn run(command: Command) -> Result<ExitCode> {
+    match command {
+        Command::Forward(a) => forward::run(&a),
+        Command::Stats(a) => stats::run(&a),
+        // WIP         Command::Screen(a) => screen::run(&a),
+        Command::Prefer(a) => prefer::run(&a),
+        // WIP         Command::Check(a) => check::run(&a),
+        // WIP         Command::PruneSweep(a) => prune_sweep::run(&a),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::CommandFactory;
+
+    #[test]
+    fn argument_definitions_are_consistent() {
+        // clap's own self-check of the derive definitions (conflicting names, groups, ...).
+        Cli::command().debug_assert();
+    }
+
+    #[test]
+    fn unit_and_all_together_is_refused() {
+        let r = Cli::try_parse_from([
+            "receptor", "prefer", "m.json", "--layer", "h", "--unit", "1", "--all",
+        ]);
+        let e = r.unwrap_err();
+        assert_eq!(e.exit_code(), 2);
+        let r = Cli::try_parse_from(["receptor", "prefer", "m.json", "--layer", "h"]);
+        assert_eq!(r.unwrap_err().exit_code(), 2);
+    }
+
+    #[test]
+    fn model_without_command_is_for_the_app() {
+        let c = Cli::try_parse_from(["receptor", "net.json"]).unwrap();
+        assert!(c.command.is_none());
+        assert_eq!(c.model.as_deref(), Some(Path::new("net.json")));
+        let c = Cli::try_parse_from(["receptor", "stats", "net.json"]).unwrap();
+        assert!(matches!(c.command, Some(Command::Stats(_))));
+    }
+}

@@ -1,0 +1,88 @@
+//! `receptor stats MODEL`: sparsity statistics of every unit's incoming weights.
+
+use super::CommonArgs;
+use super::output::{Cell, Stop, TableWriter, emit};
+use crate::analysis::sparsity::all_stats;
+use crate::error::{Error, Result};
+use clap::Args;
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+/// Arguments of `stats`.
+#[derive(Debug, Clone, Args)]
+pub struct StatsArgs {
+    /// The model file (receptor-model/1 JSON).
+    #[arg(value_name = "MODEL")]
+    pub model: PathBuf,
+
+    /// Absolute tolerance for near_zero_frac: a weight counts as near zero when |w| <= ABS.
+    /// Default: 0.01 x the largest |w| of the unit's layer.
+    #[arg(long, value_name = "ABS")]
+    pub zero_tol: Option<f64>,
+
+    #[command(flatten)]
+    pub common: CommonArgs,
+}
+
+/// The CSV/JSON columns of `stats`, in order.
+pub const COLUMNS: [&str; 10] = [
+    "layer",
+    "unit",
+    "fan_in",
+    "l1",
+    "l2",
+    "max_abs",
+    "near_zero_frac",
+    "hoyer",
+    "gini",
+    "bias",
+];
+
+/// Runs `stats`.
+pub fn run(args: &StatsArgs) -> Result<ExitCode> {
+    if let Some(t) = args.zero_tol
+        && !(t.is_finite() && t >= 0.0)
+    {
+        return Err(Error::usage(format!(
+            "--zero-tol must be a finite number >= 0, got {t}"
+        )));
+    }
+    let net = args.common.load(&args.model)?;
+    let (units, layers) = all_stats(&net, args.zero_tol);
+    let columns: Vec<String> = COLUMNS.iter().map(|c| c.to_string()).collect();
+    emit(&args.common.destination(), |w| {
+        let mut t = TableWriter::begin(args.common.format, w, columns.clone(), columns)?;
+        for u in &units {
+            t.row(&[
+                Cell::from(u.layer.as_str()),
+                Cell::from(u.unit),
+                Cell::from(u.fan_in),
+                Cell::F64(u.l1),
+                Cell::F64(u.l2),
+                Cell::F64(u.max_abs),
+                Cell::F64(u.near_zero_frac),
+                Cell::F64(u.hoyer),
+                Cell::F64(u.gini),
+                Cell::F32(u.bias),
+            ])?;
+        }
+        let summaries = layers
+            .iter()
+            .map(|l| {
+                vec![
+                    ("layer".to_string(), Cell::from(l.layer.as_str())),
+                    ("units".to_string(), Cell::from(l.units)),
+                    ("fan_in".to_string(), Cell::from(l.fan_in)),
+                    ("zero_tol".to_string(), Cell::F64(l.zero_tol)),
+                    ("mean_hoyer".to_string(), Cell::F64(l.mean_hoyer)),
+                    ("mean_gini".to_string(), Cell::F64(l.mean_gini)),
+                    ("near_zero_frac".to_string(), Cell::F64(l.near_zero_frac)),
+                    ("max_abs".to_string(), Cell::F64(l.max_abs)),
+                ]
+            })
+            .collect();
+        t.finish(&[("layers", Cell::Objects(summaries))])?;
+        Ok::<(), Stop>(())
+    })?;
+    Ok(ExitCode::SUCCESS)
+}

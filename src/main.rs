@@ -1,0 +1,40 @@
+//! The `receptor` binary: parses the command line, then runs one analysis command or opens
+//! the desktop app. All the work lives in the library.
+
+use clap::Parser;
+use receptor::cli::{self, Cli, EXIT_BAD_INPUT};
+use std::process::ExitCode;
+
+fn main() -> ExitCode {
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            // clap prints help and version to standard output with exit code 0, and usage
+            // errors to standard error with exit code 2.
+            let _ = e.print();
+            return ExitCode::from(u8::try_from(e.exit_code()).unwrap_or(EXIT_BAD_INPUT));
+        }
+    };
+    match cli.command {
+        None => open_app(cli.model, cli.allow_outside_paths),
+        Some(command) => match cli::run(command) {
+            Ok(code) => code,
+            Err(e) => {
+                // One line, whatever the message holds.
+                let msg = e.to_string().replace(['\n', '\r'], " ");
+                eprintln!("receptor: {msg}");
+                ExitCode::from(EXIT_BAD_INPUT)
+            }
+        },
+    }
+}
+
+// TODO(app): replace with `receptor::app::run(model, allow_outside_paths)` once the app
+// engineer's `app::run` exists; this stub only reports that the window is not built yet.
+fn open_app(model: Option<std::path::PathBuf>, allow_outside_paths: bool) -> ExitCode {
+    let _ = (model, allow_outside_paths);
+    eprintln!(
+        "receptor: the desktop app is not available in this build; see `receptor --help` for the commands"
+    );
+    ExitCode::from(EXIT_BAD_INPUT)
+}
