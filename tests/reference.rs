@@ -13,7 +13,7 @@
 
 use approx::assert_abs_diff_eq;
 use ndarray::Array2;
-use receptor::analysis::{bounds, forward, sparsity};
+use receptor::analysis::{bounds, forward, screen, sparsity};
 use receptor::model::{self, LoadOptions, Network};
 use receptor::probe;
 use serde_json::Value;
@@ -260,6 +260,77 @@ fn bounds_match_numpy_interval_propagation() {
                     );
                 }
             }
+        }
+    }
+}
+
+/// `screen` on the probe: active_frac, mean and max of each hidden unit computed in numpy
+/// 2.4.6 from the `screen` contract (rectifiers: z > 0; sigmoid/tanh: |z| below the
+/// normative saturation thresholds 4.3565 / 2.1783), and the status by the contract's
+/// rules with plain IBP upper bounds. A unit the numpy side calls `dead_on_probe` may be
+/// `dead_proven` in receptor when receptor's bounds are tighter than plain IBP.
+#[test]
+fn screen_matches_numpy() {
+    for name in MODELS {
+        let fx = load_fixture(name);
+        let mut src = probe::open(&fixture_dir().join(format!("{name}_probe.csv")), &fx.net)
+            .unwrap_or_else(|e| panic!("{name}: {e}"));
+        let report = screen::screen(
+            &fx.net,
+            src.as_mut(),
+            &screen::ScreenOptions::default(),
+            &receptor::analysis::Silent,
+        )
+        .unwrap_or_else(|e| panic!("{name}: screen: {e}"));
+        let expected = arr(&fx.expected, "screen");
+        assert_eq!(report.samples, u(&fx.expected["samples"]), "{name}");
+        assert_eq!(report.units.len(), expected.len(), "{name}: screened units");
+        for (s, e) in report.units.iter().zip(expected) {
+            let at = format!("{name}: layer {} unit {}", s.layer, s.unit);
+            assert_eq!(s.layer, e["layer"].as_str().unwrap_or_default(), "{at}");
+            assert_eq!(s.unit, u(&e["unit"]), "{at}");
+            assert_eq!(
+                s.activation,
+                e["activation"].as_str().unwrap_or_default(),
+                "{at}"
+            );
+            // Fractions of 150 or 569 samples; a sample whose z lies within float32 rounding
+            // of the threshold could flip, so allow one sample's worth.
+            let n = report.samples as f64;
+            assert_abs_diff_eq!(
+                s.active_frac,
+                f(&e["active_frac"]),
+                epsilon = 1.0 / n + 1e-12
+            );
+            let (em, ex) = (f(&e["mean"]), f(&e["max"]));
+            assert!(
+                (s.mean - em).abs() <= scaled_tol(em),
+                "{at}: mean {} vs {em}",
+                s.mean
+            );
+            assert!(
+                (s.max - ex).abs() <= scaled_tol(ex),
+                "{at}: max {} vs {ex}",
+                s.max
+            );
+            let ibp = f(&e["ibp_upper_bound"]);
+            let tol = 1e-9 * ibp.abs().max(1.0);
+            if s.layer_index == 0 {
+                assert_abs_diff_eq!(s.upper_bound, ibp, epsilon = tol);
+            } else {
+                assert!(
+                    s.upper_bound <= ibp + tol,
+                    "{at}: {} above IBP {ibp}",
+                    s.upper_bound
+                );
+            }
+            let want = e["status"].as_str().unwrap_or_default();
+            let got = s.status.as_str();
+            let tighter_proof = want == "dead_on_probe" && got == "dead_proven";
+            assert!(
+                got == want || tighter_proof,
+                "{at}: status {got}, numpy says {want}"
+            );
         }
     }
 }
