@@ -263,7 +263,7 @@ impl ColourKey {
         no_value: [u8; 3],
     ) -> Result<ColourKey, String> {
         let n = stops.len();
-        if n < 3 || n % 2 == 0 {
+        if n < 3 || n.is_multiple_of(2) {
             return Err(format!(
                 "needs an odd number of stops (at least 3), found {n}"
             ));
@@ -377,6 +377,12 @@ impl ColourKey {
     /// colour.
     pub fn colour_scaled(&self, v: f32, max_abs: f32) -> Color32 {
         self.colour(normalise(v, max_abs))
+    }
+
+    /// [`ColourKey::colour_scaled`] without egui: the 8-bit sRGB colour of `v` on the symmetric
+    /// scale `[-max_abs, +max_abs]`, for PNG export.
+    pub fn rgb_scaled(&self, v: f32, max_abs: f32) -> [u8; 3] {
+        self.rgb(normalise(v, max_abs))
     }
 
     /// The sRGB colour shown for NaN ("no value"): a vivid yellow, far from every colour of the
@@ -591,7 +597,7 @@ pub fn legend_ui_with(
         }
         LegendOrientation::Vertical => vec2(
             (BAR + TICK + 4.0 + widest).max(caption_galley.size().x),
-            row + length + row * 0.5,
+            row + font.size + length + row,
         ),
     };
     let (rect, response) = ui.allocate_exact_size(desired, Sense::hover());
@@ -605,7 +611,11 @@ pub fn legend_ui_with(
             Rect::from_min_size(pos2(rect.left(), rect.top() + row), vec2(length, BAR))
         }
         LegendOrientation::Vertical => {
-            Rect::from_min_size(pos2(rect.left(), rect.top() + row), vec2(BAR, length))
+            // Half a text row of room above and below, where the end labels are centred.
+            Rect::from_min_size(
+                pos2(rect.left(), rect.top() + row + 0.5 * font.size),
+                vec2(BAR, length),
+            )
         }
     };
     let along = |t: f32| match orientation {
@@ -722,9 +732,9 @@ mod tests {
             let mut e = [0.0; 3];
             e[col] = 1.0;
             let back = mat_vec(&XYZ_TO_SRGB, mat_vec(&SRGB_TO_XYZ, e));
-            for row in 0..3 {
+            for (row, got) in back.iter().enumerate() {
                 let want = if row == col { 1.0 } else { 0.0 };
-                assert_abs_diff_eq!(back[row], want, epsilon = 1e-6);
+                assert_abs_diff_eq!(*got, want, epsilon = 1e-6);
             }
         }
     }
@@ -1067,6 +1077,8 @@ mod tests {
         assert_eq!(k.colour_scaled(0.21, 0.42), k.colour(0.5));
         assert_eq!(k.colour_scaled(-0.84, 0.42), k.colour(-1.0));
         assert_eq!(k.colour_scaled(5.0, 0.0), k.colour(0.0));
+        assert_eq!(k.rgb_scaled(-0.21, 0.42), k.rgb(-0.5));
+        assert_eq!(k.rgb_scaled(f32::NAN, 0.42), k.no_value_rgb());
         assert_eq!(k.colour_scaled(5.0, f32::NAN), k.colour(0.0));
         assert_eq!(k.colour_scaled(f32::NAN, 1.0), k.colour(f32::NAN));
         let map = k.colours(&[-1.0, 0.0, 2.0, f32::NAN], 2.0);
