@@ -118,6 +118,8 @@ def screen(layers, low, high, probe_path):
         for li, (_name, _act, w, b) in enumerate(hidden):
             z = a @ w.T
             z += b
+            if not np.isfinite(z).all():  # receptor reports non-finite units
+                raise FloatingPointError("non-finite pre-activation")
             active[li] += np.count_nonzero(z > 0, axis=0)
             a = relu(z)
             total[li] += a.sum(axis=0, dtype=np.float64)
@@ -150,29 +152,136 @@ def prefer(layers, low, high, layer, units, steps, restarts, seed):
 
 
 def _gradient(layers, layer, rows_unit, x):
-    """z of unit rows_unit[b] of `layer` at x[b], and dz/dx: ([B], [B, inputs])."""
-    pre = []
+    """z of unit rows_unit[b] of `layer` at x[b], and dz/dx: ([B], [B, inputs]).
+
+    ReLU hidden layers (the benchmark network): f'(z) = [z > 0] = [relu(z) > 0], so only the
+    activations are kept for the backward pass."""
+    acts = []
     a = x
     for _name, _act, w, b in layers[:layer]:
         z = a @ w.T
         z += b
-        pre.append(z)
-        a = np.maximum(z, 0.0)
-    wt = layers[layer][2][rows_unit]  # [B, units below]: each row's unit's weights
+        a = np.maximum(z, 0.0, out=z)
+        acts.append(a)
+    wt = layers[layer][2].take(rows_unit, axis=0)  # [B, units below]: each row's unit's weights
     z_target = np.einsum("ij,ij->i", a, wt) + layers[layer][3][rows_unit]
-    delta = wt * (pre[-1] > 0)
+    delta = np.multiply(wt, acts[-1] > 0, out=wt)
     for l in range(layer - 1, 0, -1):
         delta = delta @ layers[l][2]
-        delta *= pre[l - 1] > 0
+        delta *= acts[l - 1] > 0
     grad = delta @ layers[0][2]
     return z_target, grad
 
 
-def _adam_like_placeholder(layers, low, high, layer, units, steps, restarts, seed):
-    raise NotImplementedError
+# Step rule of src/analysis/prefer.rs: Adam (Kingma & Ba 2015, Algorithm 1) with a step of
+# lr_t x (high - low) per input, lr_t cosine-decayed from 0.05 to 0.0005, then clamping.
+BETA1, BETA2 = np.float32(0.9), np.float32(0.999)
+LR_START, LR_END = 0.05, 0.0005
 
 
-ALGORITHM = _adam_like_placeholder
+def _stuck(xa, g, ma, low, high, width):
+    """Rows where no later step can move the point (src/analysis/prefer.rs `stuck`): every
+    coordinate has zero gradient and momentum, or sits on the bound both push towards.
+    Evaluated on the first coordinate for all rows, then fully only for the candidates (the
+    same answer, without a full pass over the batch every step)."""
+
+    def cond(xs, gs, ms, lo, hi, wd):
+        return (
+            (wd <= 0)
+            | ((gs == 0) & (ms == 0))
+            | ((xs >= hi) & (gs >= 0) & (ms >= 0))
+            | ((xs <= lo) & (gs <= 0) & (ms <= 0))
+        )
+
+    cand = cond(xa[:, 0], g[:, 0], ma[:, 0], low[0], high[0], width[0])
+    out = np.zeros(xa.shape[0], bool)
+    ci = np.flatnonzero(cand)
+    if ci.size:
+        out[ci] = np.all(cond(xa[ci], g[ci], ma[ci], low, high, width), axis=1)
+    return out
+
+
+def _prefer_adam(layers, low, high, layer, units, steps, restarts, seed):
+    n = low.size
+    width = (high - low).astype(np.float32)
+    rows = units.size * restarts
+    centre = (0.5 * (low + high)).astype(np.float32)
+    x = np.empty((rows, n), np.float32)
+    x[:] = centre
+    rnd = (np.arange(rows) % restarts) != 0  # start 0 of each unit is the centre
+    if rnd.any():
+        rng = np.random.default_rng(seed)
+        x[rnd] = rng.uniform(low, high, size=(int(rnd.sum()), n)).astype(np.float32)
+    row_unit = np.repeat(units, restarts)
+    m = np.zeros_like(x)
+    v = np.zeros_like(x)
+    best_x = x.copy()
+    best_obj = np.full(rows, -np.inf)
+    steps_run = np.zeros(rows, np.int64)
+    active = np.ones(rows, bool)
+    nonfinite = np.zeros(rows, bool)
+    one = np.float32(1)
+    for t in range(steps + 1):
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            break
+        # While every row moves, work on the arrays themselves instead of gathered copies.
+        full = idx.size == rows
+        xa = x if full else x[idx]
+        z, g = _gradient(layers, layer, row_unit[idx], xa)
+        frac = 0.0 if steps <= 1 else t / (steps - 1)
+        lr = np.float32(LR_END + (LR_START - LR_END) * 0.5 * (1.0 + np.cos(np.pi * frac)))
+        bc1 = one - BETA1 ** (t + 1)
+        bc2 = one - BETA2 ** (t + 1)
+        bad = ~np.isfinite(z) | ~np.isfinite(g).all(axis=1)
+        if bad.any():
+            nonfinite[idx[bad]] = True
+            active[idx[bad]] = False
+        ok = ~bad
+        better = ok & (z > best_obj[idx])
+        best_obj[idx[better]] = z[better]
+        best_x[idx[better]] = xa[better]
+        if t == steps:
+            break
+        ma = m if full else m[idx]
+        stuck = _stuck(xa, g, ma, low, high, width)
+        active[idx[ok & stuck]] = False
+        go = ok & ~stuck
+        inplace = full and bool(go.all())
+        if not go.all():
+            g, ma, xa = g[go], ma[go], xa[go]
+        sel = idx[go]
+        va = v if inplace else v[sel]
+        # Adam moments and the clamped step, in place on the gathered copies.
+        ma *= BETA1
+        ma += (one - BETA1) * g
+        g *= g
+        va *= BETA2
+        va += (one - BETA2) * g
+        denom = np.sqrt(va / bc2)
+        usable = (denom > 0) & np.isfinite(denom)
+        if not usable.all():
+            denom[~usable] = np.inf  # no step where Adam's denominator is unusable
+        step = ma / bc1
+        step /= denom
+        step *= lr * width
+        xa += step
+        np.clip(xa, low, high, out=xa)
+        if not inplace:
+            x[sel], m[sel], v[sel] = xa, ma, va
+        steps_run[sel] += 1
+    # Best start per unit, then one plain forward pass to report z and the activation.
+    best = best_obj.reshape(units.size, restarts).argmax(axis=1) + np.arange(units.size) * restarts
+    chosen = best_x[best]
+    a = chosen
+    for _name, _act, w, b in layers[: layer + 1]:
+        z = a @ w.T
+        z += b
+        a = np.maximum(z, 0.0)
+    return chosen, z[np.arange(units.size), units], steps_run, nonfinite
+
+
+ALGORITHM = _prefer_adam
 
 
 def timed(fn, runs):
@@ -241,14 +350,35 @@ def main():
     m, t, _rows = timed(lambda: screen(layers, low, high, d / "probe.npy"), args.runs)
     record("screen", f"10000 rows from probe.npy, chunks of {CHUNK_ROWS}", m, t)
 
+    print("measuring the parts of screen ...", file=sys.stderr)
+    m, t, probe_rows = timed(lambda: np.load(d / "probe.npy"), args.runs)
+    record("screen_part_read_probe", "np.load of probe.npy", m, t)
+
+    def forward_hidden():
+        for start in range(0, probe_rows.shape[0], CHUNK_ROWS):
+            a = probe_rows[start : start + CHUNK_ROWS]
+            for _name, _act, w, b in layers[:-1]:
+                z = a @ w.T
+                z += b
+                a = np.maximum(z, 0.0, out=z)
+
+    m, t, _ = timed(forward_hidden, args.runs)
+    record("screen_part_forward", f"hidden layers, in-memory rows, chunks of {CHUNK_ROWS}", m, t)
+
     print(f"measuring prefer_all ({restarts} restart(s)) ...", file=sys.stderr)
     units = np.arange(layers[PREFER_LAYER][2].shape[0])
-    m, t, _ = timed(
+    m, t, (_x, z, steps_run, nonfinite) = timed(
         lambda: prefer(layers, low, high, PREFER_LAYER, units, PREFER_STEPS, restarts, 0),
         args.prefer_runs,
     )
     record("prefer_all", f"layer h2, {units.size} units, {PREFER_STEPS} steps, "
            f"{restarts} restart(s)", m, t)
+    per_unit_steps = steps_run.reshape(units.size, restarts).max(axis=1)
+    prefer_summary = {
+        "mean_preactivation": float(np.mean(z, dtype=np.float64)),
+        "mean_steps": float(per_unit_steps.mean()),
+        "all_finite": bool(not nonfinite.any() and np.isfinite(z).all()),
+    }
 
     print()
     print("numpy core benchmarks (median of runs)")
@@ -259,12 +389,18 @@ def main():
     st_bytes = st_path.stat().st_size
     ratio_st = results["load_safetensors"]["median_s"] / results["read_safetensors_file"]["median_s"]
     print(f"safetensors load / raw read (numpy): {ratio_st:.2f}")
+    print(f"prefer result: mean preactivation {prefer_summary['mean_preactivation']:.4f}, "
+          f"mean steps {prefer_summary['mean_steps']:.1f}, all finite: {prefer_summary['all_finite']}")
+    if rust and "prefer_mean_preactivation" in rust:
+        print(f"  (receptor: mean preactivation {rust['prefer_mean_preactivation']:.4f}, "
+              f"mean steps {rust['prefer_mean_steps']:.1f})")
 
     ratios = {}
     if rust:
         print()
         print("Rust time / numpy time (below 1: receptor is faster)")
-        for name in ("screen", "prefer_all", "load_json", "load_safetensors"):
+        for name in ("screen", "prefer_all", "load_json", "load_safetensors",
+                     "screen_part_read_probe", "screen_part_forward"):
             rr = rust["results"].get(name)
             if rr:
                 ratios[name] = rr["median_s"] / results[name]["median_s"]
@@ -284,6 +420,7 @@ def main():
             "blas": info,
             "env": {k: os.environ.get(k) for k in ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE")},
             "prefer_restarts": restarts,
+            "prefer_result": prefer_summary,
             "results": results,
             "ratios_rust_over_numpy": ratios,
         }

@@ -1,0 +1,425 @@
+//! Wall-time benchmarks of receptor's core on a 784-2048-2048-10 ReLU network: screening
+//! 10 000 probe rows, `prefer --all` on the second hidden layer, loading the model from
+//! inline JSON and from JSON + safetensors, and (for comparison) reading the safetensors
+//! file's bytes.
+//!
+//! Run with `cargo bench --bench core`. `benches/numpy_bench.py` does the same work in numpy
+//! on the very same files; for a side-by-side run:
+//!
+//! ```text
+//! RECEPTOR_BENCH_DIR=$HOME/receptor-bench RECEPTOR_BENCH_JSON=$HOME/receptor-bench/rust.json \
+//!     cargo bench --bench core
+//! python3 benches/numpy_bench.py $HOME/receptor-bench --rust $HOME/receptor-bench/rust.json
+//! ```
+//!
+//! Environment:
+//! - `RECEPTOR_BENCH_DIR`: folder for the network and probe files (kept, so the numpy script
+//!   can read them); default a temporary folder that is removed at the end.
+//! - `RECEPTOR_BENCH_JSON`: also write the measured numbers as JSON to this file.
+//! - `RECEPTOR_BENCH_RUNS`: runs per measurement (default 5; `prefer` uses at most 3),
+//!   the reported time is the median.
+//! - `RECEPTOR_BENCH_PREFER_RESTARTS`: restarts for `prefer` (default 1, the box centre).
+//!
+//! Every file is written before anything is timed; loads read from the page cache after a
+//! warm-up read, so "disk read" is the speed of reading a cached file, the fair baseline for
+//! "loads at disk speed".
+
+use ndarray::{Array1, Array2};
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use receptor::analysis::{Silent, forward, prefer, screen};
+use receptor::model::{self, Activation, InputSpec, Layer, Layout, LoadOptions, Network};
+use receptor::probe;
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+/// Layer widths from input to output.
+const SIZES: [usize; 4] = [784, 2048, 2048, 10];
+/// Probe rows for `screen`.
+const PROBE_ROWS: usize = 10_000;
+/// Gradient-ascent steps for `prefer`.
+const PREFER_STEPS: usize = 100;
+/// Seed of the weights and the probe.
+const SEED: u64 = 20_240_601;
+
+type BenchResult<T> = Result<T, Box<dyn std::error::Error>>;
+
+/// He-scaled (He et al. 2015) uniform weights: U(-sqrt(6 / fan_in), sqrt(6 / fan_in)) has
+/// variance 2 / fan_in; small uniform biases. Input box [0, 1] (a 28 x 28 grey image).
+fn build_network(rng: &mut ChaCha8Rng) -> BenchResult<Network> {
+    let mut layers = Vec::new();
+    for (i, pair) in SIZES.windows(2).enumerate() {
+        let (fan_in, units) = (pair[0], pair[1]);
+        let limit = (6.0 / fan_in as f64).sqrt() as f32;
+        let weights =
+            Array2::from_shape_simple_fn((units, fan_in), || rng.random_range(-limit..limit));
+        let bias = Array1::from_shape_simple_fn(units, || rng.random_range(-0.05f32..0.05));
+        let last = i == SIZES.len() - 2;
+        layers.push(Layer {
+            name: if last {
+                "out".into()
+            } else {
+                format!("h{}", i + 1)
+            },
+            activation: if last {
+                Activation::Softmax
+            } else {
+                Activation::Relu
+            },
+            weights,
+            bias,
+            labels: None,
+        });
+    }
+    let input = InputSpec {
+        size: SIZES[0],
+        layout: Layout::Image {
+            height: 28,
+            width: 28,
+            channels: 1,
+        },
+        low: vec![0.0; SIZES[0]],
+        high: vec![1.0; SIZES[0]],
+        names: None,
+    };
+    Ok(Network::new(
+        "benchmark network",
+        "bench-784-2048-2048-10",
+        input,
+        layers,
+    )?)
+}
+
+/// Writes `data: [rows, cols]` as a NumPy `.npy` file (format 1.0, little-endian float32,
+/// C order), per the NumPy format specification (numpy.lib.format).
+fn write_npy(path: &Path, data: &Array2<f32>) -> BenchResult<()> {
+    let (rows, cols) = data.dim();
+    let mut header =
+        format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({rows}, {cols}), }}");
+    // Magic (6) + version (2) + header length (2) + header, padded to a multiple of 64 and
+    // ending in a newline.
+    let total = 10 + header.len() + 1;
+    header.push_str(&" ".repeat((64 - total % 64) % 64));
+    header.push('\n');
+    let mut bytes = Vec::with_capacity(10 + header.len() + rows * cols * 4);
+    bytes.extend_from_slice(b"\x93NUMPY\x01\x00");
+    bytes.extend_from_slice(&u16::try_from(header.len())?.to_le_bytes());
+    bytes.extend_from_slice(header.as_bytes());
+    for v in data.iter() {
+        bytes.extend_from_slice(&v.to_le_bytes());
+    }
+    receptor::atomic::write_bytes_atomic(path, &bytes)?;
+    Ok(())
+}
+
+/// Writes the network as `model_st.json` plus `model.safetensors` (every weight and bias in
+/// the side file, float32, `[units, inputs]`), with the `safetensors` crate.
+fn write_safetensors_model(net: &Network, dir: &Path) -> BenchResult<()> {
+    let mut blobs: Vec<(String, Vec<usize>, Vec<u8>)> = Vec::new();
+    let mut layers_json = Vec::new();
+    for l in &net.layers {
+        let wname = format!("{}.weight", l.name);
+        let bname = format!("{}.bias", l.name);
+        let wbytes: Vec<u8> = l.weights.iter().flat_map(|v| v.to_le_bytes()).collect();
+        let bbytes: Vec<u8> = l.bias.iter().flat_map(|v| v.to_le_bytes()).collect();
+        blobs.push((wname.clone(), vec![l.units(), l.fan_in()], wbytes));
+        blobs.push((bname.clone(), vec![l.units()], bbytes));
+        layers_json.push(serde_json::json!({
+            "name": l.name,
+            "type": "dense",
+            "activation": l.activation.name(),
+            "weights": {"safetensors": "model.safetensors", "tensor": wname},
+            "bias": {"safetensors": "model.safetensors", "tensor": bname},
+        }));
+    }
+    let mut views = Vec::new();
+    for (name, shape, bytes) in &blobs {
+        views.push((
+            name.clone(),
+            safetensors::tensor::TensorView::new(safetensors::Dtype::F32, shape.clone(), bytes)?,
+        ));
+    }
+    let st = safetensors::serialize(views, None)?;
+    receptor::atomic::write_bytes_atomic(&dir.join("model.safetensors"), &st)?;
+    let doc = serde_json::json!({
+        "schema": "receptor-model/1",
+        "name": net.name,
+        "input": {
+            "size": net.input.size,
+            "layout": {"kind": "image", "height": 28, "width": 28, "channels": 1},
+            "low": 0.0,
+            "high": 1.0
+        },
+        "layers": layers_json,
+    });
+    receptor::atomic::write_bytes_atomic(
+        &dir.join("model_st.json"),
+        serde_json::to_string_pretty(&doc)?.as_bytes(),
+    )?;
+    Ok(())
+}
+
+/// One measurement: the median (and the spread) of `runs` wall times in seconds.
+struct Timing {
+    name: &'static str,
+    detail: String,
+    runs: Vec<f64>,
+}
+
+impl Timing {
+    fn median(&self) -> f64 {
+        let mut v = self.runs.clone();
+        v.sort_by(f64::total_cmp);
+        let n = v.len();
+        if n == 0 {
+            f64::NAN
+        } else if n % 2 == 1 {
+            v[n / 2]
+        } else {
+            0.5 * (v[n / 2 - 1] + v[n / 2])
+        }
+    }
+}
+
+/// Runs `f` once untimed (warm caches, thread pools) and then `runs` times timed.
+fn measure<T>(
+    name: &'static str,
+    detail: String,
+    runs: usize,
+    mut f: impl FnMut() -> BenchResult<T>,
+) -> BenchResult<Timing> {
+    eprintln!("measuring {name} ({detail}) ...");
+    std::hint::black_box(f()?);
+    let mut times = Vec::with_capacity(runs);
+    for _ in 0..runs {
+        let t = Instant::now();
+        let out = f()?;
+        times.push(t.elapsed().as_secs_f64());
+        std::hint::black_box(out);
+    }
+    Ok(Timing {
+        name,
+        detail,
+        runs: times,
+    })
+}
+
+fn env_usize(key: &str, default: usize) -> BenchResult<usize> {
+    match std::env::var(key) {
+        Ok(v) => Ok(v
+            .parse()
+            .map_err(|e| format!("{key}={v}: not a whole number: {e}"))?),
+        Err(_) => Ok(default),
+    }
+}
+
+fn main() -> BenchResult<()> {
+    let runs = env_usize("RECEPTOR_BENCH_RUNS", 5)?.max(1);
+    let prefer_runs = runs.min(3);
+    let restarts = env_usize("RECEPTOR_BENCH_PREFER_RESTARTS", 1)?.max(1);
+    let _tmp;
+    let dir: PathBuf = match std::env::var_os("RECEPTOR_BENCH_DIR") {
+        Some(d) => {
+            let d = PathBuf::from(d);
+            std::fs::create_dir_all(&d)?;
+            d
+        }
+        None => {
+            let t = tempfile::tempdir()?;
+            let p = t.path().to_path_buf();
+            _tmp = t;
+            p
+        }
+    };
+
+    eprintln!(
+        "building {SIZES:?} network and {PROBE_ROWS} probe rows in {}",
+        dir.display()
+    );
+    let mut rng = ChaCha8Rng::seed_from_u64(SEED);
+    let net = build_network(&mut rng)?;
+    let probe_rows =
+        Array2::from_shape_simple_fn((PROBE_ROWS, SIZES[0]), || rng.random_range(0.0f32..1.0));
+    let inline = dir.join("model.json");
+    model::write_json(&net, &inline)?;
+    write_safetensors_model(&net, &dir)?;
+    let probe_path = dir.join("probe.npy");
+    write_npy(&probe_path, &probe_rows)?;
+    let st_json = dir.join("model_st.json");
+    let st_file = dir.join("model.safetensors");
+    let inline_bytes = std::fs::metadata(&inline)?.len();
+    let st_bytes = std::fs::metadata(&st_file)?.len();
+    // Warm the page cache for every file so that all loads read from memory alike.
+    for p in [&inline, &st_json, &st_file, &probe_path] {
+        std::hint::black_box(std::fs::read(p)?);
+    }
+
+    let opts = LoadOptions::default();
+    let mut timings = Vec::new();
+
+    let t = measure(
+        "load_json",
+        format!("inline JSON, {:.1} MB", inline_bytes as f64 / 1e6),
+        runs,
+        || Ok(model::load(&inline, &opts)?),
+    )?;
+    // The loaded model must be the one written (shortest round-trip printing of f32).
+    if model::load(&inline, &opts)?.layers != net.layers {
+        return Err("inline JSON did not load back to the same weights".into());
+    }
+    timings.push(t);
+    timings.push(measure(
+        "load_safetensors",
+        format!("JSON + safetensors, {:.1} MB", st_bytes as f64 / 1e6),
+        runs,
+        || Ok(model::load(&st_json, &opts)?),
+    )?);
+    if model::load(&st_json, &opts)?.layers != net.layers {
+        return Err("JSON + safetensors did not load back to the same weights".into());
+    }
+    timings.push(measure(
+        "read_safetensors_file",
+        "std::fs::read of the .safetensors file (page cache)".into(),
+        runs,
+        || Ok(std::fs::read(&st_file)?.len()),
+    )?);
+
+    let screen_opts = screen::ScreenOptions::default();
+    timings.push(measure(
+        "screen",
+        format!(
+            "{PROBE_ROWS} rows from probe.npy, chunks of {}",
+            screen_opts.chunk_rows
+        ),
+        runs,
+        || {
+            let mut src = probe::open(&probe_path, &net)?;
+            Ok(screen::screen(&net, src.as_mut(), &screen_opts, &Silent)?)
+        },
+    )?);
+
+    // The two parts of `screen`, to see where its time goes.
+    timings.push(measure(
+        "screen_part_read_probe",
+        "probe::open + read_all of probe.npy".into(),
+        runs,
+        || {
+            let mut src = probe::open(&probe_path, &net)?;
+            Ok(probe::read_all(src.as_mut())?.inputs.len())
+        },
+    )?);
+    let chunk = screen_opts.chunk_rows;
+    timings.push(measure(
+        "screen_part_forward",
+        format!("forward_trace of the hidden layers, in-memory rows, chunks of {chunk}"),
+        runs,
+        || {
+            let mut sum = 0.0f32;
+            let mut start = 0;
+            while start < PROBE_ROWS {
+                let end = (start + chunk).min(PROBE_ROWS);
+                let t = forward::forward_trace(
+                    &net,
+                    probe_rows.slice(ndarray::s![start..end, ..]),
+                    SIZES.len() - 3,
+                );
+                sum += t.post.last().map_or(0.0, |a| a[[0, 0]]);
+                start = end;
+            }
+            Ok(sum)
+        },
+    )?);
+
+    let units: Vec<usize> = (0..SIZES[2]).collect();
+    let popts = prefer::PreferOptions {
+        steps: PREFER_STEPS,
+        restarts,
+        seed: 0,
+        l2: 0.0,
+        tv: 0.0,
+    };
+    let mut last: Vec<prefer::Preferred> = Vec::new();
+    timings.push(measure(
+        "prefer_all",
+        format!(
+            "layer h2, {} units, {PREFER_STEPS} steps, {restarts} restart(s)",
+            units.len()
+        ),
+        prefer_runs,
+        || {
+            last = prefer::prefer(&net, 1, &units, &popts, &Silent)?;
+            Ok(())
+        },
+    )?);
+    // A summary of the result, to compare with the numpy run of the same algorithm.
+    let finite = last.iter().all(|p| p.finite);
+    let mean_z =
+        last.iter().map(|p| f64::from(p.preactivation)).sum::<f64>() / last.len().max(1) as f64;
+    let mean_steps = last.iter().map(|p| p.steps as f64).sum::<f64>() / last.len().max(1) as f64;
+
+    let threads = rayon::current_num_threads();
+    println!();
+    println!("receptor core benchmarks (median of runs; {threads} rayon threads)");
+    println!(
+        "{:<24} {:>10} {:>10} {:>10}  what",
+        "measurement", "median s", "min s", "runs"
+    );
+    for t in &timings {
+        let min = t.runs.iter().copied().fold(f64::INFINITY, f64::min);
+        println!(
+            "{:<24} {:>10.4} {:>10.4} {:>10}  {}",
+            t.name,
+            t.median(),
+            min,
+            t.runs.len(),
+            t.detail
+        );
+    }
+    println!(
+        "prefer result: mean preactivation {mean_z:.4}, mean steps {mean_steps:.1}, all finite: {finite}"
+    );
+    let read = timings.iter().find(|t| t.name == "read_safetensors_file");
+    let load = timings.iter().find(|t| t.name == "load_safetensors");
+    if let (Some(r), Some(l)) = (read, load) {
+        println!(
+            "safetensors load / raw read of the same file: {:.2} ({:.0} MB/s vs {:.0} MB/s)",
+            l.median() / r.median(),
+            st_bytes as f64 / 1e6 / l.median(),
+            st_bytes as f64 / 1e6 / r.median()
+        );
+    }
+
+    if let Some(out) = std::env::var_os("RECEPTOR_BENCH_JSON") {
+        let mut results = serde_json::Map::new();
+        for t in &timings {
+            results.insert(
+                t.name.to_string(),
+                serde_json::json!({"median_s": t.median(), "runs_s": t.runs, "detail": t.detail}),
+            );
+        }
+        let mut env = HashMap::new();
+        env.insert("rayon_threads", threads.to_string());
+        env.insert("prefer_restarts", restarts.to_string());
+        let doc = serde_json::json!({
+            "tool": "receptor benches/core.rs",
+            "network": SIZES,
+            "probe_rows": PROBE_ROWS,
+            "prefer_steps": PREFER_STEPS,
+            "inline_json_bytes": inline_bytes,
+            "safetensors_bytes": st_bytes,
+            "env": env,
+            "prefer_mean_preactivation": mean_z,
+            "prefer_mean_steps": mean_steps,
+            "prefer_all_finite": finite,
+            "results": results,
+        });
+        let text = serde_json::to_string_pretty(&doc)?;
+        receptor::atomic::write_atomic(Path::new(&out), |w| {
+            w.write_all(text.as_bytes())?;
+            w.write_all(b"\n")
+        })?;
+        eprintln!("wrote {}", Path::new(&out).display());
+    }
+    Ok(())
+}
