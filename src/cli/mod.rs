@@ -4,12 +4,12 @@
 //! `--out FILE` (atomically) or standard output. Exit codes: 0 success, 2 bad input or bad
 //! usage, 3 only for a failed `check`.
 
-// WIP pub mod check;
+pub mod check;
 pub mod forward;
 pub mod output;
 pub mod prefer;
-// WIP pub mod prune_sweep;
-// WIP pub mod screen;
+pub mod prune_sweep;
+pub mod screen;
 pub mod stats;
 
 use crate::error::{Error, Result};
@@ -88,24 +88,24 @@ sparseness, (sqrt(n) - L1/L2) / (sqrt(n) - 1)), gini (Gini index of |w|, Hurley 
 JSON output adds \"layers\": one summary per layer.")]
     Stats(stats::StatsArgs),
 
-    // WIP     /// Screen hidden units for dead, rarely active, always active and saturated units.
-    // WIP     #[command(long_about = "\
-    // WIP Screen every hidden unit (all layers but the last) on probe data and by interval bound \
-    // WIP propagation over the input box.
-    // WIP
-    // WIP Columns: layer, unit, activation, active_frac, mean, max, upper_bound, status.
-    // WIP active_frac: fraction of probe samples where the pre-activation z > 0 (relu, leaky_relu, \
-    // WIP identity) or where the unit is not saturated (sigmoid: |z| < 4.3565, tanh: |z| < 2.1783, \
-    // WIP i.e. its slope is at least 5% of its peak). mean, max: of the activation over the probe. \
-    // WIP upper_bound: a sound upper bound of z over the whole input box.
-    // WIP status (first that applies): rectifiers: dead_proven (upper_bound <= 0), dead_on_probe \
-    // WIP (never active on the probe), rarely_active (active_frac < --rare), always_active \
-    // WIP (active on every sample), else ok; sigmoid/tanh: saturated (active_frac < --rare), else \
-    // WIP ok; identity: ok; non_finite when the probe made the unit overflow.
-    // WIP
-    // WIP Without --probe, the probe is samples drawn uniformly from the input box with a fixed seed \
-    // WIP (printed on standard error).")]
-    // WIP     Screen(screen::ScreenArgs),
+    /// Screen hidden units for dead, rarely active, always active and saturated units.
+    #[command(long_about = "\
+Screen every hidden unit (all layers but the last) on probe data and by interval bound \
+propagation over the input box.
+
+Columns: layer, unit, activation, active_frac, mean, max, upper_bound, status.
+active_frac: fraction of probe samples where the pre-activation z > 0 (relu, leaky_relu, \
+identity) or where the unit is not saturated (sigmoid: |z| < 4.3565, tanh: |z| < 2.1783, \
+i.e. its slope is at least 5% of its peak). mean, max: of the activation over the probe. \
+upper_bound: a sound upper bound of z over the whole input box.
+status (first that applies): rectifiers: dead_proven (upper_bound <= 0), dead_on_probe \
+(never active on the probe), rarely_active (active_frac < --rare), always_active \
+(active on every sample), else ok; sigmoid/tanh: saturated (active_frac < --rare), else \
+ok; identity: ok; non_finite when the probe made the unit overflow.
+
+Without --probe, the probe is samples drawn uniformly from the input box with a fixed seed \
+(printed on standard error).")]
+    Screen(screen::ScreenArgs),
     /// Find a unit's preferred input: the input in the box that maximises its pre-activation.
     #[command(long_about = "\
 Find the input, inside the box [low, high], that maximises a unit's pre-activation z (minus \
@@ -119,34 +119,34 @@ then x0..x{n-1}, the preferred input. JSON output has one array \"input\" instea
 A search that diverged prints NaN in CSV and null in JSON, with a warning on standard \
 error.")]
     Prefer(prefer::PreferArgs),
-    // WIP     /// Fail (exit 3) when too many rectifier units of a hidden layer are dead.
-    // WIP     #[command(long_about = "\
-    // WIP For a training pipeline: screen the network (as `screen` does) and count, in every hidden \
-    // WIP layer with rectifier units (relu, leaky_relu), the units that are dead (dead_proven or \
-    // WIP dead_on_probe). Prints one line per such layer, `layer NAME: D of N rectifier units dead`, \
-    // WIP with ` (over the limit of F)` appended where the dead fraction exceeds --max-dead.
-    // WIP
-    // WIP Exit codes: 0 when every layer is within the limit, 3 when one is not, 2 on bad input. \
-    // WIP --format csv or json prints rows (layer, dead, units, dead_frac, max_dead, over_limit) \
-    // WIP instead of lines.")]
-    // WIP     Check(check::CheckArgs),
+    /// Fail (exit 3) when too many rectifier units of a hidden layer are dead.
+    #[command(long_about = "\
+For a training pipeline: screen the network (as `screen` does) and count, in every hidden \
+layer with rectifier units (relu, leaky_relu), the units that are dead (dead_proven or \
+dead_on_probe). Prints one line per such layer, `layer NAME: D of N rectifier units dead`, \
+with ` (over the limit of F)` appended where the dead fraction exceeds --max-dead.
 
-    // WIP     /// Accuracy on a labelled probe after zeroing the smallest weights of every layer.
-    // WIP     #[command(
-    // WIP         name = "prune-sweep",
-    // WIP         long_about = "\
-    // WIP Magnitude pruning sweep: for each fraction F (default 0, 0.1, ..., 0.9), zero the F smallest \
-    // WIP |w| of every layer's weight matrix (biases kept) and measure the accuracy on a labelled probe \
-    // WIP (a CSV probe with a `label` column).
-    // WIP
-    // WIP Columns: fraction, zeroed (weights that are zero after pruning, over all layers), total \
-    // WIP (weights over all layers), accuracy (fraction of probe rows whose largest output is the \
-    // WIP label).
-    // WIP
-    // WIP With --write-pruned F --out FILE, writes the model pruned at fraction F to FILE in the \
-    // WIP receptor-model/1 schema instead (with --probe, its accuracy is printed on standard error)."
-    // WIP     )]
-    // WIP     PruneSweep(prune_sweep::PruneSweepArgs),
+Exit codes: 0 when every layer is within the limit, 3 when one is not, 2 on bad input. \
+--format csv or json prints rows (layer, dead, units, dead_frac, max_dead, over_limit) \
+instead of lines.")]
+    Check(check::CheckArgs),
+
+    /// Accuracy on a labelled probe after zeroing the smallest weights of every layer.
+    #[command(
+        name = "prune-sweep",
+        long_about = "\
+Magnitude pruning sweep: for each fraction F (default 0, 0.1, ..., 0.9), zero the F smallest \
+|w| of every layer's weight matrix (biases kept) and measure the accuracy on a labelled probe \
+(a CSV probe with a `label` column).
+
+Columns: fraction, zeroed (weights that are zero after pruning, over all layers), total \
+(weights over all layers), accuracy (fraction of probe rows whose largest output is the \
+label).
+
+With --write-pruned F --out FILE, writes the model pruned at fraction F to FILE in the \
+receptor-model/1 schema instead (with --probe, its accuracy is printed on standard error)."
+    )]
+    PruneSweep(prune_sweep::PruneSweepArgs),
 }
 
 /// Options shared by the analysis commands.
@@ -241,10 +241,10 @@ pub fn run(command: Command) -> Result<ExitCode> {
     match command {
         Command::Forward(a) => forward::run(&a),
         Command::Stats(a) => stats::run(&a),
-        // WIP         Command::Screen(a) => screen::run(&a),
+        Command::Screen(a) => screen::run(&a),
         Command::Prefer(a) => prefer::run(&a),
-        // WIP         Command::Check(a) => check::run(&a),
-        // WIP         Command::PruneSweep(a) => prune_sweep::run(&a),
+        Command::Check(a) => check::run(&a),
+        Command::PruneSweep(a) => prune_sweep::run(&a),
     }
 }
 

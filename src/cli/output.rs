@@ -302,8 +302,14 @@ impl From<Error> for Stop {
     }
 }
 
+/// Output buffered for standard output before anything is written to it.
+const STDOUT_BUFFER: usize = 1 << 20;
+
 /// Runs `fill` on the destination's writer.
 ///
+/// On standard output, up to 1 MiB is held back, so a command that fails prints nothing
+/// unless its output was already larger than that (a probe error found late in a large
+/// streamed probe); use `--out` for all-or-nothing output.
 /// When `fill` fails with [`Stop::Error`] that error is returned as is. When writing to a
 /// file nothing is left behind on any failure: the temporary file is removed and an earlier
 /// file at the path keeps its content. A closed pipe on standard output
@@ -335,9 +341,12 @@ where
         }
         Destination::Stdout => {
             let stdout = std::io::stdout();
-            let mut w = std::io::BufWriter::new(stdout.lock());
+            let mut w = std::io::BufWriter::with_capacity(STDOUT_BUFFER, stdout.lock());
             let r = run(&mut w).and_then(|()| w.flush());
             if let Some(e) = inner.take() {
+                // Drop what is still buffered instead of flushing it: a failed command
+                // should print nothing, which holds whenever the output fits the buffer.
+                let _ = w.into_parts();
                 return Err(e);
             }
             match r {

@@ -44,12 +44,22 @@ pub struct PreferArgs {
     pub seed: u64,
 
     /// Maximise z - LAMBDA x ||x||^2 instead of z (keeps the preferred input small).
-    #[arg(long, value_name = "LAMBDA", default_value_t = 0.0)]
+    #[arg(
+        long,
+        allow_negative_numbers = true,
+        value_name = "LAMBDA",
+        default_value_t = 0.0
+    )]
     pub l2: f32,
 
     /// Image layouts only: also subtract LAMBDA x the total variation of the input
     /// (favours smooth images).
-    #[arg(long, value_name = "LAMBDA", default_value_t = 0.0)]
+    #[arg(
+        long,
+        allow_negative_numbers = true,
+        value_name = "LAMBDA",
+        default_value_t = 0.0
+    )]
     pub tv: f32,
 
     /// Also draw the preferred input(s) as a PNG image: black is the low end of the input

@@ -17,7 +17,7 @@ pub struct StatsArgs {
 
     /// Absolute tolerance for near_zero_frac: a weight counts as near zero when |w| <= ABS.
     /// Default: 0.01 x the largest |w| of the unit's layer.
-    #[arg(long, value_name = "ABS")]
+    #[arg(long, allow_negative_numbers = true, value_name = "ABS")]
     pub zero_tol: Option<f64>,
 
     #[command(flatten)]

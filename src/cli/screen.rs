@@ -1,0 +1,115 @@
+//! `receptor screen MODEL [--probe DATA]`: dead, rarely active, always active and saturated
+//! hidden units, on probe data and by interval bound propagation.
+
+use super::output::{Cell, Stop, TableWriter, emit};
+use super::{CommonArgs, ProbeArgs, check_fraction};
+use crate::analysis::Silent;
+use crate::analysis::screen::{ScreenOptions, ScreenReport, screen};
+use crate::error::{Error, Result};
+use crate::model::Network;
+use crate::probe;
+use clap::Args;
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+/// Arguments of `screen`.
+#[derive(Debug, Clone, Args)]
+pub struct ScreenArgs {
+    /// The model file (receptor-model/1 JSON).
+    #[arg(value_name = "MODEL")]
+    pub model: PathBuf,
+
+    #[command(flatten)]
+    pub probe: ProbeArgs,
+
+    /// A unit active on fewer than this fraction of the probe samples is rarely_active
+    /// (rectifiers) or saturated (sigmoid, tanh).
+    #[arg(
+        long,
+        allow_negative_numbers = true,
+        value_name = "FRAC",
+        default_value_t = 0.01
+    )]
+    pub rare: f64,
+
+    /// Probe rows read and screened at a time (memory use grows with it).
+    #[arg(long, value_name = "N", default_value_t = probe::DEFAULT_CHUNK_ROWS)]
+    pub chunk_rows: usize,
+
+    #[command(flatten)]
+    pub common: CommonArgs,
+}
+
+/// The CSV/JSON columns of `screen`, in order.
+pub const COLUMNS: [&str; 8] = [
+    "layer",
+    "unit",
+    "activation",
+    "active_frac",
+    "mean",
+    "max",
+    "upper_bound",
+    "status",
+];
+
+/// Loads the model, opens the probe and screens; shared by `screen` and `check`.
+/// Returns the network, the report and the uniform probe's seed when one was used.
+pub fn load_and_screen(
+    common: &CommonArgs,
+    model: &std::path::Path,
+    probe_args: &ProbeArgs,
+    rare: f64,
+    chunk_rows: usize,
+) -> Result<(Network, ScreenReport, Option<u64>)> {
+    check_fraction("--rare", rare)?;
+    if chunk_rows == 0 {
+        return Err(Error::usage("--chunk-rows must be at least 1"));
+    }
+    let net = common.load(model)?;
+    let (mut source, seed) = probe_args.open(&net)?;
+    let opts = ScreenOptions {
+        rare,
+        chunk_rows,
+        ..ScreenOptions::default()
+    };
+    let report = screen(&net, &mut *source, &opts, &Silent)?;
+    Ok((net, report, seed))
+}
+
+/// Runs `screen`.
+pub fn run(args: &ScreenArgs) -> Result<ExitCode> {
+    let (_net, report, seed) = load_and_screen(
+        &args.common,
+        &args.model,
+        &args.probe,
+        args.rare,
+        args.chunk_rows,
+    )?;
+    let columns: Vec<String> = COLUMNS.iter().map(|c| c.to_string()).collect();
+    emit(&args.common.destination(), |w| {
+        let mut t = TableWriter::begin(args.common.format, w, columns.clone(), columns)?;
+        for u in &report.units {
+            t.row(&[
+                Cell::from(u.layer.as_str()),
+                Cell::from(u.unit),
+                Cell::from(u.activation),
+                Cell::F64(u.active_frac),
+                Cell::F64(u.mean),
+                Cell::F64(u.max),
+                Cell::F64(u.upper_bound),
+                Cell::from(u.status.as_str()),
+            ])?;
+        }
+        let mut extra = vec![
+            ("samples", Cell::from(report.samples)),
+            ("probe", Cell::from(report.probe.as_str())),
+            ("rare", Cell::F64(args.rare)),
+        ];
+        if let Some(s) = seed {
+            extra.push(("seed", Cell::UInt(s)));
+        }
+        t.finish(&extra)?;
+        Ok::<(), Stop>(())
+    })?;
+    Ok(ExitCode::SUCCESS)
+}
