@@ -293,11 +293,39 @@ def test_torch_sequential():
                      lambda: rx.export_torch(bad, path=Path(d) / "bad.json"))
 
 
+def test_exported_files_validate_against_the_schema():
+    """Every kind of exported file validates against assets/model-schema.json (JSON Schema
+    draft 2020-12), checked with the `jsonschema` package when it is installed."""
+    try:
+        import jsonschema
+    except ImportError:
+        skip("jsonschema is not installed (pip install jsonschema)")
+    schema = json.loads((REPO / "assets" / "model-schema.json").read_text())
+    validator = jsonschema.Draft202012Validator(schema)
+    rng = np.random.default_rng(4)
+    layers = random_net(rng, [8, 6, 3], [("leaky_relu", 0.1), "softmax"])
+    with tempfile.TemporaryDirectory() as d:
+        paths = [
+            rx.export_arrays(layers, 8, path=Path(d) / "a.json", layout=(2, 4),
+                             labels=["x", "y", "z"], names=[f"n{i}" for i in range(8)]),
+            rx.export_arrays(layers, 8, np.zeros(8), np.arange(1, 9), path=Path(d) / "b.json",
+                             safetensors_threshold=1, description="side file"),
+        ]
+        for p in paths:
+            errors = sorted(validator.iter_errors(json.loads(p.read_text())), key=str)
+            assert not errors, f"{p.name}: {[e.message for e in errors]}"
+        # And the validator is not vacuous: a file without "schema" fails.
+        bad = json.loads(paths[0].read_text())
+        del bad["schema"]
+        assert list(validator.iter_errors(bad)), "schema accepted a file without 'schema'"
+
+
 TESTS = [
     test_inline_model_matches_numpy_forward,
     test_large_tensors_go_to_safetensors_side_file,
     test_per_feature_box_and_sklearn_orientation_error,
     test_bad_input_gives_clear_errors,
+    test_exported_files_validate_against_the_schema,
     test_torch_sequential,
 ]
 
