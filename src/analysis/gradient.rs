@@ -16,7 +16,7 @@
 //! backward rule. At the kink of a rectifier the derivative from the left is used (see
 //! [`crate::model::Activation::derivative_scalar`]).
 
-use super::forward::{activate_in_place, gathered_preactivation, gemm_into, linear};
+use super::forward::{gathered_preactivation, gemm_into, par_rows_mut};
 use crate::model::{Activation, Network};
 use ndarray::{Array1, Array2, ArrayView2, ArrayViewMut2, s};
 use rayon::prelude::*;
@@ -25,6 +25,26 @@ use rayon::prelude::*;
 /// `[rows, units]` arrays (4096 x 2048 f32 is 32 MiB) while keeping every matrix product
 /// large enough to run at full speed.
 pub(crate) const GRAD_BLOCK_ROWS: usize = 4096;
+
+/// Reusable buffers for [`input_gradient_into`], so that repeated calls (one per step of
+/// a gradient ascent) do not allocate and fault in fresh pages every time.
+#[derive(Debug, Default)]
+pub(crate) struct GradWorkspace {
+    /// Pre-activations of each layer below the target, `[rows, units_l]` flattened.
+    z: Vec<Vec<f32>>,
+    /// Activations of each layer below the target but the last, flattened.
+    a: Vec<Vec<f32>>,
+    /// Two ping-pong buffers for the backward deltas.
+    d: [Vec<f32>; 2],
+}
+
+/// Grows `v` to at least `n` elements (contents are overwritten by the caller).
+fn ensure(v: &mut Vec<f32>, n: usize) -> &mut [f32] {
+    if v.len() < n {
+        v.resize(n, 0.0);
+    }
+    &mut v[..n]
+}
 
 /// The pre-activation `z` of unit `units[b]` of `layer` for each row `b` of
 /// `x: [samples, inputs]` (or of `units[0]` for every row when `units.len() == 1`), and
@@ -42,6 +62,28 @@ pub fn input_gradient(
     units: &[usize],
     x: ArrayView2<f32>,
 ) -> (Array1<f32>, Array2<f32>) {
+    let rows = x.nrows();
+    let mut z = Array1::<f32>::zeros(rows);
+    let mut grad = Array2::<f32>::zeros((rows, net.input.size));
+    let mut ws = GradWorkspace::default();
+    let zs = z
+        .as_slice_mut()
+        .expect("a fresh one-dimensional array is contiguous");
+    input_gradient_into(net, layer, units, x, zs, grad.view_mut(), &mut ws);
+    (z, grad)
+}
+
+/// [`input_gradient`] writing into caller-owned outputs `z: [samples]` and
+/// `grad: [samples, inputs]`, with reusable buffers.
+pub(crate) fn input_gradient_into(
+    net: &Network,
+    layer: usize,
+    units: &[usize],
+    x: ArrayView2<f32>,
+    z: &mut [f32],
+    mut grad: ArrayViewMut2<f32>,
+    ws: &mut GradWorkspace,
+) {
     assert!(
         layer < net.layers.len(),
         "input_gradient: layer {layer} of {}",
@@ -60,14 +102,18 @@ pub fn input_gradient(
         "input_gradient: {} units for {rows} rows",
         units.len()
     );
+    assert_eq!(z.len(), rows, "input_gradient: z buffer length");
+    assert_eq!(
+        grad.dim(),
+        (rows, net.input.size),
+        "input_gradient: grad shape"
+    );
     let n_units = net.layers[layer].units();
     assert!(
         units.iter().all(|&u| u < n_units),
         "input_gradient: unit out of range for layer '{}' with {n_units} units",
         net.layers[layer].name
     );
-    let mut z = Array1::<f32>::zeros(rows);
-    let mut grad = Array2::<f32>::zeros((rows, net.input.size));
     let mut start = 0;
     while start < rows {
         let end = (start + GRAD_BLOCK_ROWS).min(rows);
@@ -76,140 +122,148 @@ pub fn input_gradient(
         } else {
             &units[start..end]
         };
-        let zb = gradient_block(
+        gradient_block(
             net,
             layer,
             block_units,
             x.slice(s![start..end, ..]),
-            &mut grad.slice_mut(s![start..end, ..]),
+            &mut z[start..end],
+            grad.slice_mut(s![start..end, ..]),
+            ws,
         );
-        z.slice_mut(s![start..end]).assign(&zb);
         start = end;
     }
-    (z, grad)
 }
 
-/// One block of [`input_gradient`]: writes `dz/dx` into `grad: [rows, inputs]` and returns
-/// `z: [rows]`.
+/// Writes `bias` into every row of `out: [rows, units]` (flattened), in parallel.
+fn fill_bias(out: &mut [f32], bias: &[f32]) {
+    par_rows_mut(out, bias.len(), |row| row.copy_from_slice(bias));
+}
+
+/// One block of [`input_gradient_into`].
 fn gradient_block(
     net: &Network,
     layer: usize,
     units: &[usize],
     x: ArrayView2<f32>,
-    grad: &mut ArrayViewMut2<f32>,
-) -> Array1<f32> {
+    z_out: &mut [f32],
+    mut grad: ArrayViewMut2<f32>,
+    ws: &mut GradWorkspace,
+) {
     let rows = x.nrows();
     let unit_of = |b: usize| if units.len() == 1 { units[0] } else { units[b] };
     let target = &net.layers[layer];
     if layer == 0 {
         // dz/dx of a first-layer unit is its weight row.
         let z = gathered_preactivation(x, target.weights.view(), target.bias.view(), &unit_of);
+        z_out.iter_mut().zip(z.iter()).for_each(|(d, s)| *d = *s);
         for (b, mut g) in grad.rows_mut().into_iter().enumerate() {
             g.assign(&target.weights.row(unit_of(b)));
         }
-        return z;
+        return;
+    }
+    if ws.z.len() < layer {
+        ws.z.resize_with(layer, Vec::new);
+    }
+    if ws.a.len() < layer {
+        ws.a.resize_with(layer, Vec::new);
     }
     // Forward through the layers below the target, keeping each pre-activation for the
-    // backward pass and only the last activation.
-    let mut pre: Vec<Array2<f32>> = Vec::with_capacity(layer);
-    let mut a: Option<Array2<f32>> = None;
-    for l in &net.layers[..layer] {
-        let input = a.as_ref().map_or(x, |v| v.view());
-        let zl = linear(input, l.weights.view(), l.bias.view());
-        let mut al = zl.clone();
-        activate_in_place(l.activation, &mut al);
-        pre.push(zl);
-        a = Some(al);
-    }
-    let a = a.unwrap_or_else(|| x.to_owned());
-    let z = gathered_preactivation(
-        a.view(),
-        target.weights.view(),
-        target.bias.view(),
-        &unit_of,
-    );
-    drop(a);
-
-    // delta_{L-1}[b, j] = W_L[u_b, j] * f'(z_{L-1}[b, j]), written over z_{L-1}.
-    let mut delta = pre.pop().unwrap_or_else(|| Array2::zeros((rows, 0)));
-    let below = &net.layers[layer - 1];
-    let width = delta.ncols();
-    scale_rows_by_derivative(
-        &mut delta,
-        below.activation,
-        target.weights.view(),
-        &unit_of,
-    );
-    debug_assert_eq!(width, below.units());
-
-    // Back through layers layer-1 .. 1.
-    for l in (1..layer).rev() {
-        let w = net.layers[l].weights.view(); // [units_l, units_{l-1}]
-        let mut zprev = pre.pop().unwrap_or_else(|| Array2::zeros((rows, 0)));
-        // zprev := (delta · W_l) ⊙ f'(zprev), computed into a fresh product then scaled.
-        let mut prod = Array2::<f32>::zeros((rows, w.ncols()));
-        gemm_into(&mut prod.view_mut(), delta.view(), w, false);
-        multiply_by_derivative(&mut prod, &zprev, net.layers[l - 1].activation);
-        std::mem::swap(&mut zprev, &mut prod);
-        delta = zprev;
-    }
-    gemm_into(grad, delta.view(), net.layers[0].weights.view(), false);
-    z
-}
-
-/// `z[b, :] := w[unit_of(b), :] ⊙ f'(z[b, :])` for every row, in parallel.
-/// `z: [rows, inputs]`, `w: [units, inputs]`.
-fn scale_rows_by_derivative(
-    z: &mut Array2<f32>,
-    act: Activation,
-    w: ArrayView2<f32>,
-    unit_of: &(dyn Fn(usize) -> usize + Sync),
-) {
-    let width = z.ncols();
-    if width == 0 || z.nrows() == 0 {
-        return;
-    }
-    let apply = |b: usize, row: &mut [f32]| {
-        for (v, wj) in row.iter_mut().zip(w.row(unit_of(b)).iter()) {
-            *v = wj * act.derivative_scalar(*v);
+    // backward pass; activations are materialised only where the next product needs them.
+    for l in 0..layer {
+        let lay = &net.layers[l];
+        let width = lay.units();
+        let zl = ensure(&mut ws.z[l], rows * width);
+        match lay.bias.as_slice() {
+            Some(bias) => fill_bias(zl, bias),
+            None => fill_bias(zl, &lay.bias.to_vec()),
         }
-    };
-    match z.as_slice_mut() {
-        Some(flat) => flat
-            .par_chunks_mut(width)
-            .enumerate()
-            .for_each(|(b, row)| apply(b, row)),
-        None => {
-            for (b, mut row) in z.rows_mut().into_iter().enumerate() {
-                for (v, wj) in row.iter_mut().zip(w.row(unit_of(b)).iter()) {
-                    *v = wj * act.derivative_scalar(*v);
-                }
-            }
+        let mut zview = ArrayViewMut2::from_shape((rows, width), zl)
+            .expect("buffer length equals rows x width");
+        if l == 0 {
+            gemm_into(&mut zview, x, lay.weights.t(), true);
+        } else {
+            let prev = &ws.a[l - 1];
+            let pw = net.layers[l - 1].units();
+            let input = ArrayView2::from_shape((rows, pw), &prev[..rows * pw])
+                .expect("buffer length equals rows x width");
+            gemm_into(&mut zview, input, lay.weights.t(), true);
         }
-    }
-}
-
-/// `prod := prod ⊙ f'(z)` element-wise (`prod`, `z`: `[rows, units]`), in parallel.
-fn multiply_by_derivative(prod: &mut Array2<f32>, z: &Array2<f32>, act: Activation) {
-    let width = prod.ncols();
-    if width == 0 || prod.nrows() == 0 {
-        return;
-    }
-    if matches!(act, Activation::Identity) {
-        return;
-    }
-    match (prod.as_slice_mut(), z.as_slice()) {
-        (Some(p), Some(zs)) => {
-            p.par_chunks_mut(width)
-                .zip(zs.par_chunks(width))
-                .for_each(|(pr, zr)| {
-                    for (pv, zv) in pr.iter_mut().zip(zr) {
-                        *pv *= act.derivative_scalar(*zv);
+        if l + 1 < layer {
+            let act = lay.activation;
+            let zsrc: &[f32] = &ws.z[l][..rows * width];
+            let al = ensure(&mut ws.a[l], rows * width);
+            al.par_chunks_mut(4096)
+                .zip(zsrc.par_chunks(4096))
+                .for_each(|(d, s)| {
+                    for (dv, sv) in d.iter_mut().zip(s) {
+                        *dv = act.apply_scalar(*sv);
                     }
                 });
         }
-        _ => prod.zip_mut_with(z, |pv, zv| *pv *= act.derivative_scalar(*zv)),
     }
+    // Target: z[b] = b_L[u_b] + sum_j W_L[u_b, j] f(z_{L-1}[b, j]) (f64 accumulation), and
+    // delta_{L-1}[b, j] = W_L[u_b, j] f'(z_{L-1}[b, j]).
+    let below = &net.layers[layer - 1];
+    let act = below.activation;
+    let width = below.units();
+    let zb: &[f32] = &ws.z[layer - 1][..rows * width];
+    let w_t = target.weights.view();
+    let b_t = target.bias.view();
+    let [d0, d1] = &mut ws.d;
+    let delta = ensure(d0, rows * width);
+    if width > 0 {
+        delta
+            .par_chunks_mut(width)
+            .zip(zb.par_chunks(width))
+            .zip(z_out.par_iter_mut())
+            .enumerate()
+            .for_each(|(b, ((drow, zrow), zo))| {
+                let u = unit_of(b);
+                let w = w_t.row(u);
+                let mut s = f64::from(b_t[u]);
+                for ((dv, zv), wv) in drow.iter_mut().zip(zrow).zip(w.iter()) {
+                    s += f64::from(*wv) * f64::from(act.apply_scalar(*zv));
+                    *dv = *wv * act.derivative_scalar(*zv);
+                }
+                *zo = s as f32;
+            });
+    } else {
+        z_out
+            .iter_mut()
+            .enumerate()
+            .for_each(|(b, zo)| *zo = b_t[unit_of(b)]);
+    }
+    // Back through layers layer-1 .. 1: delta_{l-1} = (delta_l · W_l) ⊙ f'(z_{l-1}).
+    let mut cur: &mut Vec<f32> = d0;
+    let mut next: &mut Vec<f32> = d1;
+    let mut cur_w = width;
+    for l in (1..layer).rev() {
+        let w = net.layers[l].weights.view(); // [units_l, units_{l-1}]
+        let nw = w.ncols();
+        let dcur = ArrayView2::from_shape((rows, cur_w), &cur[..rows * cur_w])
+            .expect("buffer length equals rows x width");
+        let dn = ensure(next, rows * nw);
+        let mut dview = ArrayViewMut2::from_shape((rows, nw), &mut dn[..])
+            .expect("buffer length equals rows x width");
+        gemm_into(&mut dview, dcur, w, false);
+        let act = net.layers[l - 1].activation;
+        if !matches!(act, Activation::Identity) {
+            let zp: &[f32] = &ws.z[l - 1][..rows * nw];
+            dn.par_chunks_mut(4096)
+                .zip(zp.par_chunks(4096))
+                .for_each(|(d, zc)| {
+                    for (dv, zv) in d.iter_mut().zip(zc) {
+                        *dv *= act.derivative_scalar(*zv);
+                    }
+                });
+        }
+        std::mem::swap(&mut cur, &mut next);
+        cur_w = nw;
+    }
+    let dcur = ArrayView2::from_shape((rows, cur_w), &cur[..rows * cur_w])
+        .expect("buffer length equals rows x width");
+    gemm_into(&mut grad, dcur, net.layers[0].weights.view(), false);
 }
 
 #[cfg(test)]

@@ -30,10 +30,10 @@
 
 use super::Progress;
 use super::forward::forward_trace;
-use super::gradient::input_gradient;
+use super::gradient::{GradWorkspace, input_gradient_into};
 use crate::error::{Error, Result};
 use crate::model::{Layout, Network};
-use ndarray::Array2;
+use ndarray::{Array2, ArrayView2, ArrayViewMut2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
@@ -301,10 +301,16 @@ pub fn prefer(
         .collect();
     let row_unit: Vec<usize> = (0..total_rows).map(|r| units[r / restarts]).collect();
 
-    let mut batch = Array2::<f32>::zeros((0, n));
+    // Buffers reused across steps: the gathered batch `[active, inputs]`, z `[active]`,
+    // the gradient `[active, inputs]` and the backward pass's intermediates.
+    let mut ws = GradWorkspace::default();
+    let mut xbuf: Vec<f32> = Vec::new();
+    let mut zbuf: Vec<f32> = Vec::new();
+    let mut gbuf: Vec<f32> = Vec::new();
     let mut active_idx: Vec<usize> = Vec::with_capacity(total_rows);
     let mut active_units: Vec<usize> = Vec::with_capacity(total_rows);
     let steps = opts.steps;
+    let chunk = n.max(1);
     for t in 0..=steps {
         if progress.cancelled() {
             return Err(Error::Cancelled);
@@ -314,25 +320,39 @@ pub fn prefer(
         if active_idx.is_empty() {
             break;
         }
+        let na = active_idx.len();
         active_units.clear();
         active_units.extend(active_idx.iter().map(|&r| row_unit[r]));
         // Gather the moving rows into one batch.
-        if batch.nrows() != active_idx.len() {
-            batch = Array2::<f32>::zeros((active_idx.len(), n));
-        }
-        if let Some(flat) = batch.as_slice_mut() {
+        xbuf.resize(na * n, 0.0);
+        zbuf.resize(na, 0.0);
+        gbuf.resize(na * n, 0.0);
+        {
             let src = &rows;
-            flat.par_chunks_mut(n.max(1))
+            xbuf[..na * n]
+                .par_chunks_mut(chunk)
                 .zip(active_idx.par_iter())
                 .for_each(|(dst, &r)| dst.copy_from_slice(&src[r].x));
         }
-        let (z, mut grad) = input_gradient(net, layer, &active_units, batch.view());
-        let Some(gflat) = grad.as_slice_mut() else {
-            // `input_gradient` returns a fresh standard-layout array.
+        let (Ok(xview), Ok(gview)) = (
+            ArrayView2::from_shape((na, n), &xbuf[..na * n]),
+            ArrayViewMut2::from_shape((na, n), &mut gbuf[..na * n]),
+        ) else {
             return Err(Error::usage(
-                "internal error: gradient array is not contiguous",
+                "internal error: batch buffer has the wrong length",
             ));
         };
+        input_gradient_into(
+            net,
+            layer,
+            &active_units,
+            xview,
+            &mut zbuf[..na],
+            gview,
+            &mut ws,
+        );
+        let z = &zbuf[..na];
+        let gflat = &mut gbuf[..na * n];
         let lr = learning_rate(t, steps);
         let last = t == steps;
         let bc1 = 1.0 - BETA1.powi(t as i32 + 1);
@@ -342,7 +362,7 @@ pub fn prefer(
         for (p, &r) in active_idx.iter().enumerate() {
             pos[r] = p;
         }
-        let gchunks: Vec<&mut [f32]> = gflat.chunks_mut(n.max(1)).collect();
+        let gchunks: Vec<&mut [f32]> = gflat.chunks_mut(chunk).collect();
         let mut pairs: Vec<(&mut Row, &mut [f32], f32)> = Vec::with_capacity(active_idx.len());
         {
             let mut gi = gchunks.into_iter();
