@@ -29,8 +29,14 @@ fn main() -> ExitCode {
     }
 }
 
-// TODO(app): replace with `receptor::app::run(model, allow_outside_paths)` once the app
-// engineer's `app::run` exists; this stub only reports that the window is not built yet.
+/// Opens the desktop app (built with the default `gui` feature).
+#[cfg(feature = "gui")]
+fn open_app(model: Option<std::path::PathBuf>, allow_outside_paths: bool) -> ExitCode {
+    receptor::app::run(model, allow_outside_paths)
+}
+
+/// Without the `gui` feature there is no window; say so.
+#[cfg(not(feature = "gui"))]
 fn open_app(model: Option<std::path::PathBuf>, allow_outside_paths: bool) -> ExitCode {
     let _ = (model, allow_outside_paths);
     eprintln!(

@@ -1,0 +1,709 @@
+//! The selected unit in detail: a large map (incoming weights, preferred input, or
+//! sensitivity at the mean probe input) with its colour key and hover values, the unit's
+//! numbers, a histogram of its activations over the probe, its strongest incoming
+//! connections, and the probe samples that drive it hardest. For deeper units the weights
+//! are drawn as a grid over the units of the layer below; clicking a cell walks down.
+
+use super::Action;
+use super::colour::{self, ColourKey, LegendOrientation};
+use super::maps;
+use super::state::{AppState, MapView, Selection};
+use super::thumbs::{ThumbKey, ThumbKind, Thumbs};
+use crate::model::{Layout, Network};
+use egui::{Color32, Rect, Sense, pos2, vec2};
+
+/// Strongest incoming connections listed.
+const STRONGEST: usize = 8;
+/// Width kept for the colour key beside a map.
+const KEY_WIDTH: f32 = 84.0;
+
+/// The detail panel.
+#[derive(Default)]
+pub struct DetailPanel {}
+
+impl DetailPanel {
+    /// Forgets per-model view state (the model changed).
+    pub fn reset(&mut self) {}
+
+    /// Draws the panel for the selected unit.
+    pub fn ui(
+        &mut self,
+        ui: &mut egui::Ui,
+        state: &mut AppState,
+        thumbs: &mut Thumbs,
+        actions: &mut Vec<Action>,
+    ) {
+        let (Some(net), Some(sel)) = (state.net().cloned(), state.selection) else {
+            ui.label("Select a unit in the grid.");
+            return;
+        };
+        let Some(layer) = net.layers.get(sel.layer) else {
+            return;
+        };
+        if sel.unit >= layer.units() {
+            return;
+        }
+        egui::ScrollArea::vertical()
+            .id_salt("detail-scroll")
+            .auto_shrink([false, false])
+            .show(ui, |ui| {
+                ui.add_space(4.0);
+                ui.horizontal(|ui| {
+                    if !state.history.is_empty()
+                        && ui
+                            .button("⬅ Back")
+                            .on_hover_text("Back to the unit you came from (Backspace)")
+                            .clicked()
+                        && let Some(prev) = state.history.pop()
+                    {
+                        state.selection = Some(prev);
+                    }
+                    let name = layer.unit_name(sel.unit, "unit ");
+                    let title = if layer.labels.is_some() {
+                        format!("{} unit {} ({name})", layer.name, sel.unit)
+                    } else {
+                        format!("{} unit {}", layer.name, sel.unit)
+                    };
+                    ui.heading(title);
+                });
+                let status = match state.screen_of(sel.layer, sel.unit) {
+                    Some(s) => format!(
+                        "{} unit · {}",
+                        layer.activation.name(),
+                        super::state::status_words(s.status)
+                    ),
+                    None if sel.layer + 1 == net.layers.len() => {
+                        format!("{} output unit", layer.activation.name())
+                    }
+                    None => format!("{} unit · screening…", layer.activation.name()),
+                };
+                ui.label(status);
+                ui.add_space(4.0);
+                ui.horizontal(|ui| {
+                    ui.label("Show:");
+                    let v = &mut state.prefs.map_view;
+                    ui.selectable_value(v, MapView::Weights, "Incoming weights")
+                        .on_hover_text("W");
+                    ui.selectable_value(v, MapView::Preferred, "Preferred input")
+                        .on_hover_text("P");
+                    ui.selectable_value(v, MapView::Sensitivity, "Sensitivity")
+                        .on_hover_text("S: gradient of the pre-activation at the mean probe input");
+                });
+                ui.add_space(4.0);
+                map_ui(ui, state, thumbs, &net, sel);
+                ui.add_space(6.0);
+                numbers_ui(ui, state, &net, sel);
+                ui.add_space(6.0);
+                histogram_ui(ui, state, sel);
+                ui.add_space(6.0);
+                strongest_ui(ui, state, &net, sel);
+                ui.add_space(6.0);
+                top_samples_ui(ui, state, thumbs, &net, sel);
+                ui.add_space(6.0);
+                search_ui(ui, state, sel, actions);
+            });
+    }
+}
+
+/// What the current map shows, its values and how to scale them.
+enum MapData {
+    /// Signed values in input layout, `[input size]`, and the |value| at the key's ends.
+    SignedInput(Vec<f32>, f32, &'static str),
+    /// Signed weights over the lower layer's units, `[fan_in]`.
+    Cells(Vec<f32>, f32),
+    /// An input inside the box, `[input size]`.
+    Input(Vec<f32>),
+}
+
+fn map_data(state: &AppState, net: &Network, sel: Selection) -> Result<MapData, String> {
+    let l = &net.layers[sel.layer];
+    let scale_mode = state.prefs.scale;
+    match state.prefs.map_view {
+        MapView::Weights => {
+            let w = l.weights.row(sel.unit).to_vec();
+            let layer_max = state
+                .results
+                .stats
+                .as_ref()
+                .and_then(|s| s.layers.get(sel.layer))
+                .map_or_else(|| maps::max_abs(&w), |s| s.max_abs as f32);
+            let m = scale_mode.pick(maps::max_abs(&w), layer_max);
+            if sel.layer == 0 {
+                Ok(MapData::SignedInput(w, m, "weight"))
+            } else {
+                Ok(MapData::Cells(w, m))
+            }
+        }
+        MapView::Preferred => match state.preferred_of(sel.layer, sel.unit) {
+            Some(p) if p.finite => Ok(MapData::Input(p.input.clone())),
+            Some(_) => {
+                Err("The search for this unit produced non-finite values (NaN or infinity).".into())
+            }
+            None => {
+                let stopped = state
+                    .results
+                    .preferred
+                    .get(&sel.layer)
+                    .is_some_and(|p| p.pending == 0);
+                Err(if stopped {
+                    "The search was stopped before reaching this unit.".into()
+                } else {
+                    "Searching for the preferred input…".into()
+                })
+            }
+        },
+        MapView::Sensitivity => match state.results.sensitivity.get(&sel.layer) {
+            Some(g) => {
+                let row = g.row(sel.unit).to_vec();
+                let layer_max = maps::max_abs(g.as_slice().unwrap_or(&[]));
+                let m = scale_mode.pick(maps::max_abs(&row), layer_max);
+                Ok(MapData::SignedInput(row, m, "dz/dx"))
+            }
+            None => Err("Computing the sensitivity at the mean probe input…".into()),
+        },
+    }
+}
+
+/// The picture of the current map of the selected unit (also used by the PNG export), with
+/// a name for the file.
+pub fn current_map(state: &AppState) -> Option<(String, egui::ColorImage)> {
+    let net = state.net()?;
+    let sel = state.selection?;
+    let data = map_data(state, net, sel).ok()?;
+    let what = match state.prefs.map_view {
+        MapView::Weights => "weights",
+        MapView::Preferred => "preferred",
+        MapView::Sensitivity => "sensitivity",
+    };
+    let name = format!("{}-unit{}-{what}", net.layers[sel.layer].name, sel.unit);
+    Some((name, image_of(&data, net)))
+}
+
+fn image_of(data: &MapData, net: &Network) -> egui::ColorImage {
+    match data {
+        MapData::SignedInput(v, m, _) => maps::signed_input_map(&net.input, v, *m),
+        MapData::Cells(v, m) => maps::cell_grid(v, *m),
+        MapData::Input(v) => maps::input_picture(&net.input, v),
+    }
+}
+
+fn map_ui(
+    ui: &mut egui::Ui,
+    state: &mut AppState,
+    thumbs: &mut Thumbs,
+    net: &Network,
+    sel: Selection,
+) {
+    let data = match map_data(state, net, sel) {
+        Ok(d) => d,
+        Err(msg) => {
+            let (r, _) = ui
+                .allocate_exact_size(vec2(ui.available_width().min(320.0), 160.0), Sense::hover());
+            ui.painter()
+                .rect_filled(r, 2.0, ui.visuals().extreme_bg_color);
+            ui.painter().text(
+                r.center(),
+                egui::Align2::CENTER_CENTER,
+                msg,
+                egui::TextStyle::Body.resolve(ui.style()),
+                ui.visuals().weak_text_color(),
+            );
+            return;
+        }
+    };
+    let shared = state.prefs.scale == colour::ScaleMode::SharedLayer;
+    let kind = match (&data, state.prefs.map_view) {
+        (MapData::Cells(..), _) => ThumbKind::Cells(shared),
+        (_, MapView::Weights) => ThumbKind::Weights(shared),
+        (_, MapView::Preferred) => ThumbKind::Preferred,
+        (_, MapView::Sensitivity) => ThumbKind::Sensitivity(shared),
+    };
+    let key = ThumbKey {
+        layer: sel.layer,
+        unit: sel.unit,
+        kind,
+    };
+    let Some(tex) = thumbs.get(ui.ctx(), key, false, || Some(image_of(&data, net))) else {
+        return;
+    };
+    let size = tex.size_vec2();
+    let avail = (ui.available_width() - KEY_WIDTH - 12.0).clamp(140.0, 420.0);
+    let vector = matches!(net.input.layout, Layout::Vector) && !matches!(data, MapData::Cells(..));
+    let draw = if vector {
+        vec2(avail, 36.0)
+    } else {
+        let s = (avail / size.x).min(avail / size.y);
+        size * s
+    };
+    ui.horizontal_top(|ui| {
+        let (rect, resp) = ui.allocate_exact_size(draw, Sense::click());
+        ui.painter().image(
+            tex.id(),
+            rect,
+            Rect::from_min_max(pos2(0.0, 0.0), pos2(1.0, 1.0)),
+            Color32::WHITE,
+        );
+        ui.painter().rect_stroke(
+            rect,
+            0.0,
+            ui.visuals().widgets.noninteractive.bg_stroke,
+            egui::StrokeKind::Outside,
+        );
+        let label = format!("map of {} unit {}", net.layers[sel.layer].name, sel.unit);
+        resp.widget_info(|| egui::WidgetInfo::labeled(egui::Role::Image, true, &label));
+        // Hover: which pixel (or lower unit) and its value.
+        if let Some(p) = resp.hover_pos() {
+            let fx = ((p.x - rect.left()) / rect.width() * size.x).floor();
+            let fy = ((p.y - rect.top()) / rect.height() * size.y).floor();
+            if fx >= 0.0 && fy >= 0.0 {
+                let (x, y) = (fx as usize, fy as usize);
+                let text = hover_text(&data, net, sel, x, y);
+                if let Some(t) = &text {
+                    egui::Tooltip::always_open(
+                        ui.ctx().clone(),
+                        ui.layer_id(),
+                        resp.id.with("hover"),
+                        egui::PopupAnchor::Pointer,
+                    )
+                    .show(|ui| ui.label(t));
+                }
+                if let MapData::Cells(w, _) = &data {
+                    let cols = maps::cell_columns(w.len());
+                    let i = y * cols + x;
+                    if resp.clicked() && x < cols && i < w.len() && sel.layer > 0 {
+                        state.select(
+                            Selection {
+                                layer: sel.layer - 1,
+                                unit: i,
+                            },
+                            true,
+                        );
+                    }
+                }
+            }
+        }
+        let height = draw.y.max(140.0);
+        match &data {
+            MapData::SignedInput(_, m, what) => {
+                colour::legend_ui_with(
+                    ui,
+                    ColourKey::standard(),
+                    *m,
+                    what,
+                    LegendOrientation::Vertical,
+                    height - 40.0,
+                );
+            }
+            MapData::Cells(_, m) => {
+                colour::legend_ui_with(
+                    ui,
+                    ColourKey::standard(),
+                    *m,
+                    "weight",
+                    LegendOrientation::Vertical,
+                    height - 40.0,
+                );
+            }
+            MapData::Input(_) => grey_key_ui(ui, net, height - 40.0),
+        }
+    });
+    match &data {
+        MapData::Cells(w, _) => {
+            ui.weak(format!(
+                "One cell per unit of layer {} ({} cells, row by row). Click a cell to go to that unit.",
+                net.layers[sel.layer - 1].name,
+                w.len()
+            ));
+        }
+        MapData::Input(_) => {
+            ui.weak("Dark = low end of the input box, light = high end.");
+        }
+        MapData::SignedInput(..) => {
+            if let Layout::Image { channels: 3, .. } = net.input.layout {
+                ui.weak("Panels: red, green, blue channel.");
+            }
+        }
+    }
+}
+
+fn hover_text(data: &MapData, net: &Network, sel: Selection, x: usize, y: usize) -> Option<String> {
+    match data {
+        MapData::Cells(w, _) => {
+            let cols = maps::cell_columns(w.len());
+            let i = y * cols + x;
+            let lower = &net.layers[sel.layer - 1];
+            (x < cols && i < w.len())
+                .then(|| format!("{} unit {i}: weight {:+.4}", lower.name, w[i]))
+        }
+        MapData::SignedInput(v, _, what) => {
+            let i = maps::input_index_at(&net.input, true, x, y)?;
+            Some(format!(
+                "{} ({}): {what} {:+.4}",
+                net.input.feature_name(i),
+                pixel_words(net, i),
+                v.get(i)?
+            ))
+        }
+        MapData::Input(v) => {
+            let i = maps::input_index_at(&net.input, false, x, y)?;
+            Some(format!(
+                "{} ({}): input {:.4}",
+                net.input.feature_name(i),
+                pixel_words(net, i),
+                v.get(i)?
+            ))
+        }
+    }
+}
+
+/// "row 3, column 5" for image inputs, "feature 7" for vectors.
+fn pixel_words(net: &Network, i: usize) -> String {
+    match net.input.layout {
+        Layout::Image {
+            width, channels, ..
+        } => {
+            let p = i / channels;
+            let c = i % channels;
+            if channels == 3 {
+                format!(
+                    "row {}, column {}, {}",
+                    p / width,
+                    p % width,
+                    ["red", "green", "blue"][c]
+                )
+            } else {
+                format!("row {}, column {}", p / width, p % width)
+            }
+        }
+        Layout::Vector => format!("feature {i}"),
+    }
+}
+
+/// The key of input pictures: the grey ramp from the box's low end to its high end.
+fn grey_key_ui(ui: &mut egui::Ui, net: &Network, length: f32) {
+    let lo = net.input.low.iter().copied().fold(f32::INFINITY, f32::min);
+    let hi = net
+        .input
+        .high
+        .iter()
+        .copied()
+        .fold(f32::NEG_INFINITY, f32::max);
+    let length = length.max(60.0);
+    let (rect, resp) = ui.allocate_exact_size(vec2(KEY_WIDTH, length + 32.0), Sense::hover());
+    let bar = Rect::from_min_size(rect.min + vec2(0.0, 16.0), vec2(14.0, length));
+    let steps = 48;
+    for k in 0..steps {
+        let t = 1.0 - k as f32 / (steps - 1) as f32;
+        let y0 = bar.top() + bar.height() * k as f32 / steps as f32;
+        let y1 = bar.top() + bar.height() * (k + 1) as f32 / steps as f32;
+        ui.painter().rect_filled(
+            Rect::from_x_y_ranges(bar.x_range(), y0..=y1),
+            0.0,
+            maps::grey(t),
+        );
+    }
+    let font = egui::TextStyle::Small.resolve(ui.style());
+    let c = ui.visuals().text_color();
+    ui.painter()
+        .text(rect.min, egui::Align2::LEFT_TOP, "input", font.clone(), c);
+    ui.painter().text(
+        pos2(bar.right() + 4.0, bar.top()),
+        egui::Align2::LEFT_CENTER,
+        format!("{hi} (high)"),
+        font.clone(),
+        c,
+    );
+    ui.painter().text(
+        pos2(bar.right() + 4.0, bar.bottom()),
+        egui::Align2::LEFT_CENTER,
+        format!("{lo} (low)"),
+        font,
+        c,
+    );
+    resp.widget_info(|| {
+        egui::WidgetInfo::labeled(egui::Role::Image, true, format!("input key, {lo} to {hi}"))
+    });
+}
+
+fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection) {
+    let st = state.stats_of(sel.layer, sel.unit);
+    let sc = state.screen_of(sel.layer, sel.unit);
+    let pr = state.preferred_of(sel.layer, sel.unit);
+    let bound = state
+        .results
+        .bounds
+        .as_ref()
+        .and_then(|b| b.upper.get(sel.layer))
+        .and_then(|u| u.get(sel.unit).copied());
+    let f = |v: Option<f64>, digits: usize| {
+        v.map_or_else(|| "…".to_string(), |v| format!("{v:.digits$}"))
+    };
+    egui::CollapsingHeader::new("Numbers")
+        .default_open(true)
+        .show(ui, |ui| {
+            egui::Grid::new("unit-numbers")
+                .num_columns(2)
+                .striped(true)
+                .show(ui, |ui| {
+                    let mut row = |name: &str, value: String, hint: &str| {
+                        ui.label(name).on_hover_text(hint);
+                        ui.monospace(value);
+                        ui.end_row();
+                    };
+                    row(
+                        "pre-activation reached",
+                        f(pr.map(|p| f64::from(p.preactivation)), 4),
+                        "z at the preferred input",
+                    );
+                    row(
+                        "upper bound of z",
+                        f(bound, 4),
+                        "sound bound over the whole input box (interval bound propagation)",
+                    );
+                    row(
+                        "active on probe",
+                        sc.map_or_else(|| "…".into(), |s| format!("{:.2}%", 100.0 * s.active_frac)),
+                        "fraction of probe samples where the unit is active",
+                    );
+                    row(
+                        "mean activation",
+                        f(sc.map(|s| s.mean), 4),
+                        "over the probe",
+                    );
+                    row("max activation", f(sc.map(|s| s.max), 4), "over the probe");
+                    row("L1 of weights", f(st.map(|s| s.l1), 4), "sum of |w|");
+                    row(
+                        "L2 of weights",
+                        f(st.map(|s| s.l2), 4),
+                        "sqrt of the sum of w²",
+                    );
+                    row("largest |w|", f(st.map(|s| s.max_abs), 4), "");
+                    row(
+                        "Hoyer sparsity",
+                        f(st.map(|s| s.hoyer), 4),
+                        "Hoyer (2004): 0 = all equal, 1 = one non-zero",
+                    );
+                    row(
+                        "Gini index",
+                        f(st.map(|s| s.gini), 4),
+                        "Hurley & Rickard (2009)",
+                    );
+                    row(
+                        "near-zero weights",
+                        st.map_or_else(
+                            || "…".into(),
+                            |s| format!("{:.2}%", 100.0 * s.near_zero_frac),
+                        ),
+                        "|w| at most 1% of the layer's largest |w|",
+                    );
+                    row(
+                        "bias",
+                        format!("{:.4}", net.layers[sel.layer].bias[sel.unit]),
+                        "",
+                    );
+                });
+        });
+}
+
+fn histogram_ui(ui: &mut egui::Ui, state: &AppState, sel: Selection) {
+    egui::CollapsingHeader::new("Activations over the probe")
+        .default_open(true)
+        .show(ui, |ui| {
+            let Some(a) = state
+                .results
+                .activity
+                .as_ref()
+                .and_then(|a| a.layers.get(sel.layer))
+                .and_then(|l| l.get(sel.unit))
+            else {
+                ui.weak("Tracing the probe…");
+                return;
+            };
+            if !a.lo.is_finite() {
+                ui.weak("No finite activation on the probe.");
+                return;
+            }
+            let span = (a.hi - a.lo).max(1e-9);
+            let width = f64::from(span) / a.hist.len() as f64;
+            let bars: Vec<egui_plot::Bar> = a
+                .hist
+                .iter()
+                .enumerate()
+                .map(|(i, &c)| {
+                    egui_plot::Bar::new(f64::from(a.lo) + (i as f64 + 0.5) * width, f64::from(c))
+                        .width(width * 0.95)
+                })
+                .collect();
+            let chart =
+                egui_plot::BarChart::new("samples", bars).color(ui.visuals().selection.bg_fill);
+            egui_plot::Plot::new(("activation-histogram", sel.layer, sel.unit))
+                .height(130.0)
+                .allow_drag(false)
+                .allow_zoom(false)
+                .allow_scroll(false)
+                .x_axis_label("activation")
+                .y_axis_label("samples")
+                .show(ui, |p| p.bar_chart(chart));
+        });
+}
+
+fn strongest_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Selection) {
+    egui::CollapsingHeader::new("Strongest incoming connections")
+        .default_open(true)
+        .show(ui, |ui| {
+            let w = net.layers[sel.layer].weights.row(sel.unit);
+            let mut idx: Vec<usize> = (0..w.len()).collect();
+            let k = STRONGEST.min(idx.len());
+            if k == 0 {
+                return;
+            }
+            idx.select_nth_unstable_by(k - 1, |a, b| w[*b].abs().total_cmp(&w[*a].abs()));
+            idx.truncate(k);
+            idx.sort_by(|a, b| w[*b].abs().total_cmp(&w[*a].abs()));
+            egui::Grid::new("strongest")
+                .num_columns(2)
+                .striped(true)
+                .show(ui, |ui| {
+                    for i in idx {
+                        if sel.layer == 0 {
+                            ui.label(format!(
+                                "{} ({})",
+                                net.input.feature_name(i),
+                                pixel_words(net, i)
+                            ));
+                        } else {
+                            let lower = &net.layers[sel.layer - 1];
+                            let text = format!("{} unit {i}", lower.name);
+                            if ui.link(&text).on_hover_text("Go to this unit").clicked() {
+                                state.select(
+                                    Selection {
+                                        layer: sel.layer - 1,
+                                        unit: i,
+                                    },
+                                    true,
+                                );
+                            }
+                        }
+                        ui.monospace(format!("{:+.4}", w[i]));
+                        ui.end_row();
+                    }
+                });
+        });
+}
+
+fn top_samples_ui(
+    ui: &mut egui::Ui,
+    state: &AppState,
+    thumbs: &mut Thumbs,
+    net: &Network,
+    sel: Selection,
+) {
+    egui::CollapsingHeader::new("Probe samples that drive it hardest")
+        .default_open(true)
+        .show(ui, |ui| {
+            let (Some(a), Some(probe)) = (
+                state
+                    .results
+                    .activity
+                    .as_ref()
+                    .and_then(|a| a.layers.get(sel.layer))
+                    .and_then(|l| l.get(sel.unit)),
+                state.probe.as_ref(),
+            ) else {
+                ui.weak("Tracing the probe…");
+                return;
+            };
+            let image = matches!(net.input.layout, Layout::Image { .. });
+            let labels = probe.data.labels.as_ref();
+            let names = net.output_names();
+            egui::Grid::new(("top-samples", sel.layer, sel.unit))
+                .num_columns(4)
+                .spacing(vec2(10.0, 6.0))
+                .show(ui, |ui| {
+                    for (k, &(row, z, act)) in a.top.iter().enumerate() {
+                        ui.vertical(|ui| {
+                            if image {
+                                let key = ThumbKey {
+                                    layer: 0,
+                                    unit: 0,
+                                    kind: ThumbKind::Sample(row),
+                                };
+                                let tex = thumbs.get(ui.ctx(), key, false, || {
+                                    let x = probe.data.inputs.row(row).to_vec();
+                                    Some(maps::input_picture(&net.input, &x))
+                                });
+                                if let Some(t) = tex {
+                                    let (r, resp) =
+                                        ui.allocate_exact_size(vec2(56.0, 56.0), Sense::hover());
+                                    ui.painter().image(
+                                        t.id(),
+                                        r,
+                                        Rect::from_min_max(pos2(0.0, 0.0), pos2(1.0, 1.0)),
+                                        Color32::WHITE,
+                                    );
+                                    resp.on_hover_text(format!(
+                                        "probe row {row}: z = {z:.4}, activation = {act:.4}"
+                                    ));
+                                }
+                            }
+                            let class = labels
+                                .and_then(|l| l.get(row))
+                                .and_then(|c| names.get(*c))
+                                .map_or(String::new(), |c| format!(" · {c}"));
+                            ui.label(egui::RichText::new(format!("row {row}{class}")).small());
+                            ui.label(egui::RichText::new(format!("z {z:.3}")).small().monospace());
+                        });
+                        if k % 4 == 3 {
+                            ui.end_row();
+                        }
+                    }
+                });
+        });
+}
+
+fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &mut Vec<Action>) {
+    egui::CollapsingHeader::new("Preferred-input search")
+        .default_open(false)
+        .show(ui, |ui| {
+            let s = &mut state.prefs.search;
+            egui::Grid::new("search-settings")
+                .num_columns(2)
+                .show(ui, |ui| {
+                    ui.label("Steps");
+                    ui.add(egui::DragValue::new(&mut s.steps).range(1..=10_000));
+                    ui.end_row();
+                    ui.label("Restarts");
+                    ui.add(egui::DragValue::new(&mut s.restarts).range(1..=64));
+                    ui.end_row();
+                    ui.label("L2 penalty");
+                    ui.add(
+                        egui::DragValue::new(&mut s.l2)
+                            .range(0.0..=100.0)
+                            .speed(0.001),
+                    );
+                    ui.end_row();
+                    ui.label("Total variation");
+                    ui.add(
+                        egui::DragValue::new(&mut s.tv)
+                            .range(0.0..=100.0)
+                            .speed(0.001),
+                    );
+                    ui.end_row();
+                });
+            let used = state.results.preferred.get(&sel.layer).map(|p| p.settings);
+            let differs = used.is_some_and(|u| u != state.prefs.search);
+            let text = if differs {
+                "Search this layer again with these settings"
+            } else {
+                "Search this layer again"
+            };
+            if ui.button(text).clicked() {
+                actions.push(Action::Recompute(sel.layer));
+            }
+            if sel.layer == 0 {
+                ui.weak(
+                    "First layer without penalties: exact closed form (b + Σ max(w·low, w·high)).",
+                );
+            }
+        });
+}

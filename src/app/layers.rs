@@ -1,0 +1,199 @@
+//! The model at a glance: what is open, the probe in use, and one entry per layer with its
+//! name, size, activation and a one-line health summary. Clicking a layer shows its units.
+
+use super::Action;
+use super::state::{AppState, Selection};
+use crate::analysis::screen::Status;
+use crate::model::Layout;
+
+/// Counts of the problem statuses in one layer.
+#[derive(Debug, Default, Clone, Copy, PartialEq, Eq)]
+pub struct Health {
+    /// Proven dead over the input box.
+    pub dead_proven: usize,
+    /// Dead on the probe (and not proven dead).
+    pub dead_on_probe: usize,
+    /// Rarely active.
+    pub rare: usize,
+    /// Saturated (sigmoid/tanh).
+    pub saturated: usize,
+    /// Non-finite values.
+    pub non_finite: usize,
+}
+
+/// Counts statuses of `layer` in the screening result.
+pub fn health(state: &AppState, layer: usize) -> Option<Health> {
+    let s = state.results.screen.as_ref()?;
+    let units = s.layers.get(layer)?;
+    let mut h = Health::default();
+    for u in units {
+        match u.status {
+            Status::DeadProven => h.dead_proven += 1,
+            Status::DeadOnProbe => h.dead_on_probe += 1,
+            Status::RarelyActive => h.rare += 1,
+            Status::Saturated => h.saturated += 1,
+            Status::NonFinite => h.non_finite += 1,
+            Status::AlwaysActive | Status::Ok => {}
+        }
+    }
+    Some(h)
+}
+
+/// Draws the layer list.
+pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
+    let Some(model) = state.model.clone() else {
+        ui.heading("No model open");
+        if ui.button("Open the demo model").clicked() {
+            actions.push(Action::OpenDemo);
+        }
+        return;
+    };
+    let net = model.net.clone();
+    egui::ScrollArea::vertical()
+        .auto_shrink([false, false])
+        .show(ui, |ui| {
+            ui.add_space(4.0);
+            ui.heading(&net.name);
+            if let Some(d) = &net.description {
+                ui.label(egui::RichText::new(d).small()).on_hover_text(d);
+            }
+            ui.add_space(4.0);
+            let layout = match net.input.layout {
+                Layout::Image {
+                    height,
+                    width,
+                    channels,
+                } => format!(
+                    "{height} × {width} {}",
+                    if channels == 3 {
+                        "colour image"
+                    } else {
+                        "image"
+                    }
+                ),
+                Layout::Vector => "feature vector".to_string(),
+            };
+            ui.label(format!("Input: {} values, {layout}", net.input.size));
+            ui.label(format!(
+                "Input box: {}",
+                box_range(&net.input.low, &net.input.high)
+            ))
+            .on_hover_text(
+                "The box [low, high] used by the preferred-input search and the bounds.",
+            );
+            match &state.probe {
+                Some(p) => {
+                    let labelled = if p.labelled() { ", labelled" } else { "" };
+                    ui.label(format!(
+                        "Probe: {} ({} samples{labelled})",
+                        short_origin(&p.data.origin),
+                        p.data.inputs.nrows()
+                    ))
+                    .on_hover_text(&p.data.origin);
+                }
+                None => {
+                    ui.label("Probe: reading…");
+                }
+            }
+            ui.horizontal(|ui| {
+                if ui.small_button("Open probe data…").clicked() {
+                    actions.push(Action::OpenProbeDialog);
+                }
+                if state.probe.as_ref().is_some_and(|p| p.path.is_some())
+                    && ui.small_button("Use uniform probe").clicked()
+                {
+                    actions.push(Action::UniformProbe);
+                }
+            });
+            ui.separator();
+            ui.strong("Layers");
+            ui.add_space(2.0);
+            let current = state.current_layer();
+            let last = net.layers.len().saturating_sub(1);
+            for (i, l) in net.layers.iter().enumerate() {
+                let selected = i == current;
+                let title = format!(
+                    "{}  ·  {} units  ·  {}",
+                    l.name,
+                    l.units(),
+                    l.activation.name()
+                );
+                let resp = ui.add(egui::Button::selectable(
+                    selected,
+                    egui::RichText::new(&title).strong(),
+                ));
+                if resp.clicked() && !selected {
+                    state.select(Selection { layer: i, unit: 0 }, false);
+                }
+                let summary = summary_line(state, i, i == last);
+                ui.indent(("layer-health", i), |ui| {
+                    for line in summary {
+                        ui.label(egui::RichText::new(line).small());
+                    }
+                });
+                ui.add_space(4.0);
+            }
+        });
+}
+
+/// The health summary of a layer, as short lines.
+fn summary_line(state: &AppState, layer: usize, is_output: bool) -> Vec<String> {
+    let mut lines = Vec::new();
+    if is_output {
+        lines.push("output layer (not screened)".to_string());
+    } else {
+        match health(state, layer) {
+            Some(h) => {
+                let mut parts = vec![format!(
+                    "dead: {} proven, {} on probe",
+                    h.dead_proven, h.dead_on_probe
+                )];
+                parts.push(format!("rarely active: {}", h.rare));
+                if h.saturated > 0 {
+                    parts.push(format!("saturated: {}", h.saturated));
+                }
+                if h.non_finite > 0 {
+                    parts.push(format!("non-finite: {}", h.non_finite));
+                }
+                lines.push(parts.join(" · "));
+            }
+            None => lines.push("screening…".to_string()),
+        }
+    }
+    match state
+        .results
+        .stats
+        .as_ref()
+        .and_then(|s| s.layers.get(layer))
+    {
+        Some(s) => lines.push(format!(
+            "mean Hoyer {:.2} · near-zero weights {:.1}%",
+            s.mean_hoyer,
+            100.0 * s.near_zero_frac
+        )),
+        None => lines.push("statistics…".to_string()),
+    }
+    lines
+}
+
+/// "[-1, 1]" when every input shares one range, else "per input, from … to …".
+fn box_range(low: &[f32], high: &[f32]) -> String {
+    let same = low.windows(2).all(|w| w[0] == w[1]) && high.windows(2).all(|w| w[0] == w[1]);
+    match (low.first(), high.first()) {
+        (Some(l), Some(h)) if same => format!("[{l}, {h}]"),
+        _ => {
+            let lo = low.iter().copied().fold(f32::INFINITY, f32::min);
+            let hi = high.iter().copied().fold(f32::NEG_INFINITY, f32::max);
+            format!("per input, within [{lo}, {hi}]")
+        }
+    }
+}
+
+/// The file name of a probe origin (full path on hover).
+fn short_origin(origin: &str) -> String {
+    std::path::Path::new(origin)
+        .file_name()
+        .and_then(|f| f.to_str())
+        .filter(|_| origin.contains(std::path::MAIN_SEPARATOR))
+        .map_or_else(|| origin.to_string(), str::to_string)
+}

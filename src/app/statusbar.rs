@@ -1,0 +1,67 @@
+//! The status bar: what runs now (with a progress bar and a Cancel button), what is being
+//! opened, and the last confirmation or error (errors in the theme's error colour).
+
+use super::state::AppState;
+use super::{Action, Task};
+
+/// Draws the status bar.
+pub fn ui(
+    ui: &mut egui::Ui,
+    state: &AppState,
+    task: &Task,
+    pending: usize,
+    opening: Option<&str>,
+    stopped: bool,
+    actions: &mut Vec<Action>,
+) {
+    ui.horizontal(|ui| {
+        if let Some(o) = opening {
+            ui.spinner();
+            ui.label(format!("Opening {o}…"));
+            ui.separator();
+        }
+        if pending > 0 {
+            ui.spinner();
+            let title = if task.title.is_empty() {
+                "Working"
+            } else {
+                task.title.as_str()
+            };
+            ui.label(title);
+            ui.add(
+                egui::ProgressBar::new(task.fraction)
+                    .desired_width(160.0)
+                    .show_percentage(),
+            );
+            if pending > 1 {
+                ui.weak(format!("{} more queued", pending - 1));
+            }
+            if ui
+                .button("Cancel")
+                .on_hover_text("Stop the running analysis (Esc)")
+                .clicked()
+            {
+                actions.push(Action::Cancel);
+            }
+            ui.separator();
+        } else if stopped {
+            ui.label("Analysis stopped before it finished.");
+            if ui.button("Run again").clicked() {
+                actions.push(Action::RunAgain);
+            }
+            ui.separator();
+        } else if opening.is_none() && state.model.is_some() {
+            ui.weak("Ready");
+            ui.separator();
+        }
+        if let Some(n) = &state.notice {
+            let colour = if n.error {
+                ui.visuals().error_fg_color
+            } else {
+                ui.visuals().text_color()
+            };
+            ui.add(egui::Label::new(egui::RichText::new(&n.text).color(colour)).truncate())
+                .on_hover_text(&n.text);
+        }
+    });
+}
