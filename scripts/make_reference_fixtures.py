@@ -8,7 +8,7 @@ plain numpy implementations of the published definitions).
 
 Generated with (pinned; the versions actually used are also written to VERSIONS.txt):
     Python 3.11.7, numpy 2.4.6, scikit-learn 1.9.1 (scipy 1.17.1)
-Install:  pip install numpy==2.4.6 scikit-learn==1.9.1
+Install:  pip install numpy==2.4.6 scikit-learn==1.9.1 scipy==1.17.1
 Run from the repository root:  python3 scripts/make_reference_fixtures.py
 
 Data sets: iris and breast cancer, both shipped inside scikit-learn (no download).
