@@ -176,7 +176,7 @@ fn forward_npy_probe_matches_csv() {
     let d = tempfile::tempdir().unwrap();
     write(d.path(), "id.json", IDENTITY);
     let mut header = b"{'descr': '<f4', 'fortran_order': False, 'shape': (2, 2), }".to_vec();
-    while (10 + header.len() + 1) % 64 != 0 {
+    while !(10 + header.len() + 1).is_multiple_of(64) {
         header.push(b' ');
     }
     header.push(b'\n');
@@ -238,7 +238,20 @@ fn stats_csv_and_json_against_hand_computed_values() {
     // Layer out (largest |w| = 2, tol 0.02): both rows one-hot of length 5: Hoyer 1,
     //   Gini 0.8, near zero 4/5.
     let sqrt2 = std::f64::consts::SQRT_2;
-    let want: [(&str, usize, usize, f64, f64, f64, f64, f64, f64, f64); 7] = [
+    // (layer, unit, fan_in, l1, l2, max_abs, near_zero_frac, hoyer, gini, bias)
+    type Row = (
+        &'static str,
+        usize,
+        usize,
+        f64,
+        f64,
+        f64,
+        f64,
+        f64,
+        f64,
+        f64,
+    );
+    let want: [Row; 7] = [
         ("h", 0, 4, 1.0, 1.0, 1.0, 0.75, 1.0, 0.75, 0.0),
         ("h", 1, 4, 0.0, 0.0, 0.0, 1.0, 1.0, 1.0, -1.0),
         ("h", 2, 4, 2.0, sqrt2, 1.0, 0.5, 2.0 - sqrt2, 0.5, 0.5),
@@ -515,7 +528,7 @@ fn bad_probes_exit_2_naming_the_file() {
     // A .npy whose header claims 10^12 rows: refused from the file length, at once.
     let mut header =
         b"{'descr': '<f4', 'fortran_order': False, 'shape': (1000000000000, 4), }".to_vec();
-    while (10 + header.len() + 1) % 64 != 0 {
+    while !(10 + header.len() + 1).is_multiple_of(64) {
         header.push(b' ');
     }
     header.push(b'\n');

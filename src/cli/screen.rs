@@ -67,11 +67,7 @@ pub fn load_and_screen(
     }
     let net = common.load(model)?;
     let (mut source, seed) = probe_args.open(&net)?;
-    let opts = ScreenOptions {
-        rare,
-        chunk_rows,
-        ..ScreenOptions::default()
-    };
+    let opts = ScreenOptions { rare, chunk_rows };
     let report = screen(&net, &mut *source, &opts, &Silent)?;
     Ok((net, report, seed))
 }

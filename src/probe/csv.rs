@@ -103,7 +103,10 @@ impl CsvProbe {
             finished: false,
         };
         let Some(first) = probe.read_record()? else {
-            return Err(Error::probe(path, "the probe is empty: it has no rows"));
+            return Err(Error::probe(
+                path,
+                "the probe is empty: it has no samples (no rows)",
+            ));
         };
         let is_header = first.iter().any(|f| parse_number(f).is_none());
         if is_header {
@@ -113,7 +116,7 @@ impl CsvProbe {
                 None => {
                     return Err(Error::probe(
                         path,
-                        "the probe has a header line but no data rows",
+                        "the probe has a header line but no data rows: no samples",
                     ));
                 }
             }
