@@ -84,7 +84,8 @@ fn main() -> ExitCode {
     }
 }
 
-fn run(out: &Path) -> Result<()> {
+/// Writes every demo file into `out` (created if missing).
+pub fn run(out: &Path) -> Result<()> {
     std::fs::create_dir_all(out).map_err(|e| Error::io(out, "cannot create folder", e))?;
     solder_models(out)?;
     cold_storage_model(out)?;

@@ -566,3 +566,329 @@ pub fn train(
     }
     Ok(report)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use approx::assert_abs_diff_eq;
+    use ndarray::array;
+
+    fn tiny_input(size: usize) -> InputSpec {
+        InputSpec {
+            size,
+            layout: crate::model::Layout::Vector,
+            low: vec![-1.0; size],
+            high: vec![1.0; size],
+            names: None,
+        }
+    }
+
+    /// A 3-5-4-3 net with the given hidden activations and output, random weights.
+    fn tiny_net(h1: Activation, h2: Activation, out: Activation) -> Network {
+        let mut rng = ChaCha8Rng::seed_from_u64(7);
+        let mut layers = vec![
+            init_layer("h1", 5, 3, h1, &mut rng),
+            init_layer("h2", 4, 5, h2, &mut rng),
+            init_layer("out", 3, 4, out, &mut rng),
+        ];
+        for l in &mut layers {
+            l.bias = Array1::from_shape_fn(l.units(), |_| rng.random_range(-0.3..0.3));
+        }
+        Network::new("tiny", "tiny", tiny_input(3), layers).unwrap()
+    }
+
+    fn tiny_batch() -> (Array2<f32>, Vec<usize>) {
+        let x = array![
+            [0.3f32, -0.7, 0.9],
+            [-0.2, 0.5, 0.1],
+            [0.8, 0.4, -0.6],
+            [-0.9, -0.1, 0.35],
+            [0.05, 0.95, -0.45],
+        ];
+        (x, vec![0, 2, 1, 2, 0])
+    }
+
+    /// The weight and bias gradients of the backward pass against central finite
+    /// differences of the cross-entropy loss, (L(w + h) - L(w - h)) / 2h (common practice,
+    /// no source; the error of the central difference is O(h^2)).
+    #[test]
+    fn gradients_match_central_differences() {
+        let cases = [
+            (Activation::Tanh, Activation::Sigmoid, Activation::Softmax),
+            (
+                Activation::Relu,
+                Activation::LeakyRelu { alpha: 0.1 },
+                Activation::Identity,
+            ),
+            (Activation::Identity, Activation::Tanh, Activation::Softmax),
+        ];
+        let (x, y) = tiny_batch();
+        for (h1, h2, out) in cases {
+            let net = tiny_net(h1, h2, out);
+            let (_, g) = loss_and_gradients(&net, x.view(), &y).unwrap();
+            let h = 1e-3f32;
+            for l in 0..net.layers.len() {
+                let (units, inputs) = net.layers[l].weights.dim();
+                for u in 0..units {
+                    for i in 0..=inputs {
+                        // i == inputs stands for the bias.
+                        fn get(n: &mut Network, l: usize, u: usize, i: usize) -> &mut f32 {
+                            if i == n.layers[l].fan_in() {
+                                &mut n.layers[l].bias[u]
+                            } else {
+                                &mut n.layers[l].weights[(u, i)]
+                            }
+                        }
+                        let mut plus = net.clone();
+                        let mut minus = net.clone();
+                        let w0 = *get(&mut plus, l, u, i);
+                        *get(&mut plus, l, u, i) = w0 + h;
+                        *get(&mut minus, l, u, i) = w0 - h;
+                        // The step actually taken after rounding to f32.
+                        let step = f64::from(*get(&mut plus, l, u, i))
+                            - f64::from(*get(&mut minus, l, u, i));
+                        let lp = cross_entropy(&plus, x.view(), &y).unwrap();
+                        let lm = cross_entropy(&minus, x.view(), &y).unwrap();
+                        let fd = (lp - lm) / step;
+                        let an = if i == inputs {
+                            g.bias[l][u]
+                        } else {
+                            g.weights[l][(u, i)]
+                        };
+                        assert_abs_diff_eq!(f64::from(an), fd, epsilon = 2e-4);
+                    }
+                }
+            }
+        }
+    }
+
+    /// The loss itself against a hand computation: a net with zero weights gives uniform
+    /// softmax outputs, so the cross-entropy is ln(classes) for every label (definition of
+    /// softmax cross-entropy).
+    #[test]
+    fn zero_network_loss_is_log_classes() {
+        let mut net = tiny_net(Activation::Relu, Activation::Relu, Activation::Softmax);
+        for l in &mut net.layers {
+            l.weights.fill(0.0);
+            l.bias.fill(0.0);
+        }
+        let (x, y) = tiny_batch();
+        let loss = cross_entropy(&net, x.view(), &y).unwrap();
+        assert_abs_diff_eq!(loss, 3f64.ln(), epsilon = 1e-12);
+    }
+
+    /// The fixed-order product against ndarray's `dot` (matrixmultiply).
+    #[test]
+    fn fixed_matmul_matches_ndarray_dot() {
+        let mut rng = ChaCha8Rng::seed_from_u64(3);
+        let a = Array2::from_shape_fn((7, 13), |_| rng.random_range(-1.0f32..1.0));
+        let b = Array2::from_shape_fn((13, 5), |_| rng.random_range(-1.0f32..1.0));
+        let ours = matmul_fixed(a.view(), b.view());
+        let reference = a.dot(&b);
+        for (p, q) in ours.iter().zip(&reference) {
+            assert_abs_diff_eq!(*p, *q, epsilon = 1e-5);
+        }
+        // Transposed (non-contiguous) views work too.
+        let ours_t = matmul_fixed(b.t(), a.t());
+        for (p, q) in ours_t.iter().zip(&reference.t()) {
+            assert_abs_diff_eq!(*p, *q, epsilon = 1e-5);
+        }
+    }
+
+    /// The training forward pass agrees with the shared one in `analysis::forward` (a
+    /// different product, so only within rounding).
+    #[test]
+    fn training_forward_matches_shared_forward() {
+        let (x, _) = tiny_batch();
+        for out in [Activation::Softmax, Activation::Identity] {
+            let net = tiny_net(Activation::Relu, Activation::Tanh, out);
+            let cache = forward_cache(&net, x.view());
+            let shared = crate::analysis::forward::forward_trace(&net, x.view(), 2);
+            for l in 0..3 {
+                for (p, q) in cache.pre[l].iter().zip(&shared.pre[l]) {
+                    assert_abs_diff_eq!(*p, *q, epsilon = 1e-5);
+                }
+            }
+            if out == Activation::Softmax {
+                let probs = crate::analysis::forward::forward(&net, x.view());
+                for (p, q) in cache.post[2].iter().zip(&probs) {
+                    assert_abs_diff_eq!(*p, *q, epsilon = 1e-6);
+                }
+            }
+        }
+    }
+
+    /// Three well separated blobs in 2-D (linearly separable): training must lower the loss
+    /// well below its start and classify (almost) everything right.
+    fn blobs(seed: u64) -> (Array2<f32>, Vec<usize>) {
+        let centres = [(-0.6f32, -0.5f32), (0.6, -0.5), (0.0, 0.6)];
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        let n = 150;
+        let mut x = Array2::zeros((n, 2));
+        let mut y = Vec::with_capacity(n);
+        for i in 0..n {
+            let c = i % 3;
+            x[(i, 0)] = centres[c].0 + rng.random_range(-0.2..0.2);
+            x[(i, 1)] = centres[c].1 + rng.random_range(-0.2..0.2);
+            y.push(c);
+        }
+        (x, y)
+    }
+
+    fn blob_net(seed: u64) -> Network {
+        init_network(
+            "blobs",
+            tiny_input(2),
+            &[8, 3],
+            Activation::Relu,
+            None,
+            seed,
+        )
+        .unwrap()
+    }
+
+    #[test]
+    fn training_lowers_the_loss_on_separable_data() {
+        let (x, y) = blobs(1);
+        for optimizer in [
+            Optimizer::adam(0.02),
+            Optimizer::Sgd {
+                learning_rate: 0.1,
+                momentum: 0.9,
+            },
+        ] {
+            let mut net = blob_net(2);
+            let before = cross_entropy(&net, x.view(), &y).unwrap();
+            let opts = TrainOptions {
+                epochs: 60,
+                batch_size: 16,
+                optimizer,
+                ..TrainOptions::default()
+            };
+            let report = train(&mut net, x.view(), &y, &opts, &crate::analysis::Silent).unwrap();
+            assert_eq!(report.epochs.len(), 60);
+            let after = cross_entropy(&net, x.view(), &y).unwrap();
+            assert!(after < 0.2 * before, "{optimizer:?}: {before} -> {after}");
+            assert!(accuracy(&net, x.view(), &y).unwrap() >= 0.98);
+        }
+    }
+
+    #[test]
+    fn same_seed_gives_identical_weights() {
+        let (x, y) = blobs(1);
+        let opts = TrainOptions {
+            epochs: 5,
+            batch_size: 10,
+            seed: 9,
+            ..TrainOptions::default()
+        };
+        let run = |opts: &TrainOptions| {
+            let mut net = blob_net(2);
+            train(&mut net, x.view(), &y, opts, &crate::analysis::Silent).unwrap();
+            net
+        };
+        let a = run(&opts);
+        let b = run(&opts);
+        // Bit for bit, not within a tolerance: this is the reproducibility promise.
+        assert_eq!(a.layers, b.layers);
+        let c = run(&TrainOptions { seed: 10, ..opts });
+        assert_ne!(a.layers, c.layers);
+    }
+
+    /// First update of each optimiser in closed form. SGD: `w - lr g`. Adam (Kingma & Ba
+    /// 2015, Algorithm 1): after one step m_hat = g and v_hat = g^2, so the step is
+    /// `lr * g / (|g| + eps)`, i.e. `lr * sign(g)` up to eps.
+    #[test]
+    fn first_step_matches_the_update_rules() {
+        let (x, y) = tiny_batch();
+        let net0 = tiny_net(Activation::Tanh, Activation::Tanh, Activation::Softmax);
+        let (_, g) = loss_and_gradients(&net0, x.view(), &y).unwrap();
+        let lr = 0.01f32;
+        for optimizer in [
+            Optimizer::Sgd {
+                learning_rate: lr,
+                momentum: 0.9,
+            },
+            Optimizer::adam(lr),
+        ] {
+            let mut net = net0.clone();
+            let opts = TrainOptions {
+                epochs: 1,
+                batch_size: x.nrows(),
+                optimizer,
+                ..TrainOptions::default()
+            };
+            train(&mut net, x.view(), &y, &opts, &crate::analysis::Silent).unwrap();
+            for l in 0..net.layers.len() {
+                for ((w1, w0), gw) in net.layers[l]
+                    .weights
+                    .iter()
+                    .zip(&net0.layers[l].weights)
+                    .zip(&g.weights[l])
+                {
+                    let expected = match optimizer {
+                        Optimizer::Sgd { .. } => w0 - lr * gw,
+                        Optimizer::Adam { epsilon, .. } => w0 - lr * gw / (gw.abs() + epsilon),
+                    };
+                    assert_abs_diff_eq!(*w1, expected, epsilon = 1e-6);
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn bad_problems_are_usage_errors() {
+        let (x, y) = tiny_batch();
+        let net = tiny_net(Activation::Tanh, Activation::Tanh, Activation::Softmax);
+        let wide = Array2::<f32>::zeros((5, 4));
+        let e = cross_entropy(&net, wide.view(), &y)
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("4 columns") && e.contains("3 inputs"), "{e}");
+        let e = cross_entropy(&net, x.view(), &[0, 1])
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("5 rows but 2 labels"), "{e}");
+        let e = cross_entropy(&net, x.view(), &[0, 1, 2, 3, 0])
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("label 3 in row 3"), "{e}");
+        let mut nan = x.clone();
+        nan[(1, 2)] = f32::NAN;
+        let e = cross_entropy(&net, nan.view(), &y).unwrap_err().to_string();
+        assert!(e.contains("row 1 column 2"), "{e}");
+        let sig = tiny_net(Activation::Tanh, Activation::Tanh, Activation::Sigmoid);
+        let e = cross_entropy(&sig, x.view(), &y).unwrap_err().to_string();
+        assert!(e.contains("softmax or identity output"), "{e}");
+        let mut n = net.clone();
+        let opts = TrainOptions {
+            batch_size: 0,
+            ..TrainOptions::default()
+        };
+        assert!(train(&mut n, x.view(), &y, &opts, &crate::analysis::Silent).is_err());
+    }
+
+    /// A step size far too large overflows the parameters; the run must stop with an error
+    /// and leave finite parameters behind, never NaN weights.
+    #[test]
+    fn divergence_is_an_error_and_keeps_finite_weights() {
+        let (x, y) = tiny_batch();
+        let mut net = tiny_net(Activation::Relu, Activation::Relu, Activation::Softmax);
+        let opts = TrainOptions {
+            epochs: 50,
+            batch_size: 5,
+            optimizer: Optimizer::Sgd {
+                learning_rate: 1e37,
+                momentum: 0.9,
+            },
+            ..TrainOptions::default()
+        };
+        let e = train(&mut net, x.view(), &y, &opts, &crate::analysis::Silent).unwrap_err();
+        assert!(e.to_string().contains("diverged"), "{e}");
+        assert!(
+            net.layers
+                .iter()
+                .all(|l| l.weights.iter().chain(&l.bias).all(|v| v.is_finite()))
+        );
+    }
+}

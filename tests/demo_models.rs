@@ -1,0 +1,251 @@
+//! The bundled demo models in `demo-models/`: each loads, reaches a stated accuracy on its
+//! own labelled probe, the over-driven run shows both kinds of dead ReLU unit, and the
+//! generator `examples/make_demos.rs` reproduces every file byte for byte.
+//!
+//! Validation against `assets/model-schema.json` is done for every bundled model by
+//! `tests/schema.rs`.
+//!
+//! The accuracy numbers in the comments were measured on the committed files with the
+//! generator's own evaluation (`cargo run --release --example make_demos` prints them); the
+//! thresholds sit a little below them so the tests fail when a model really changes, not
+//! on rounding.
+
+use ndarray::Array2;
+use receptor::analysis::Silent;
+use receptor::analysis::bounds::interval_bounds;
+use receptor::analysis::forward::{argmax_rows, forward};
+use receptor::analysis::screen::{ScreenOptions, Status, screen};
+use receptor::model::{self, Activation, LoadOptions, Network};
+use receptor::probe;
+use std::path::{Path, PathBuf};
+
+#[allow(dead_code)]
+#[path = "../examples/make_demos.rs"]
+mod make_demos;
+
+fn demo_dir() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models")
+}
+
+fn load(file: &str) -> Network {
+    let path = demo_dir().join(file);
+    model::load(&path, &LoadOptions::default())
+        .unwrap_or_else(|e| panic!("{} does not load: {e}", path.display()))
+}
+
+/// Reads the whole labelled probe `file` for `net`.
+fn probe_of(net: &Network, file: &str) -> (Array2<f32>, Vec<usize>) {
+    let path = demo_dir().join(file);
+    let mut src = probe::open(&path, net).unwrap();
+    assert!(src.has_labels(), "{file} must be labelled");
+    let data = probe::read_all(src.as_mut()).unwrap();
+    let labels = data.labels.expect("labelled probe");
+    (data.inputs, labels)
+}
+
+/// Fraction of probe rows whose argmax output is the row's label.
+fn accuracy(net: &Network, probe_file: &str) -> f64 {
+    let (x, y) = probe_of(net, probe_file);
+    let out = forward(net, x.view());
+    let pred = argmax_rows(out.view());
+    let right = pred
+        .iter()
+        .zip(&y)
+        .filter(|(p, t)| **p == Some(**t))
+        .count();
+    right as f64 / y.len() as f64
+}
+
+/// Dead units per hidden layer as screened on the model's own probe:
+/// (`dead_proven`, `dead_on_probe`) counts.
+fn dead_counts(net: &Network, probe_file: &str) -> Vec<(usize, usize)> {
+    let path = demo_dir().join(probe_file);
+    let mut src = probe::open(&path, net).unwrap();
+    let report = screen(net, src.as_mut(), &ScreenOptions::default(), &Silent).unwrap();
+    let hidden = net.layers.len() - 1;
+    let mut counts = vec![(0, 0); hidden];
+    for u in &report.units {
+        match u.status {
+            Status::DeadProven => counts[u.layer_index].0 += 1,
+            Status::DeadOnProbe => counts[u.layer_index].1 += 1,
+            _ => {}
+        }
+    }
+    counts
+}
+
+#[test]
+fn every_bundled_model_loads_and_has_a_labelled_probe() {
+    let mut models = 0;
+    for entry in std::fs::read_dir(demo_dir()).unwrap() {
+        let path = entry.unwrap().path();
+        if path.extension().and_then(|e| e.to_str()) != Some("json") {
+            continue;
+        }
+        let net = model::load(&path, &LoadOptions::default())
+            .unwrap_or_else(|e| panic!("{} does not load: {e}", path.display()));
+        assert!(
+            net.description
+                .as_deref()
+                .is_some_and(|d| d.starts_with("Invented data, for demos only.")),
+            "{}: the description must say the data is invented",
+            path.display()
+        );
+        // Every model ships with `<stem>-probe.csv`, except the over-driven run, which is
+        // screened with the well-trained model's probe (same inputs and labels).
+        let stem = path.file_stem().unwrap().to_string_lossy().to_string();
+        let probe_stem = stem.trim_end_matches("-overdriven");
+        let probe_file = demo_dir().join(format!("{probe_stem}-probe.csv"));
+        assert!(probe_file.exists(), "{} has no probe", path.display());
+        let (x, y) = probe_of(&net, &format!("{probe_stem}-probe.csv"));
+        assert!(x.nrows() >= 300, "{stem}: only {} probe rows", x.nrows());
+        // Every class is present in the probe.
+        for class in 0..net.output_layer().units() {
+            assert!(y.contains(&class), "{stem}: class {class} missing in probe");
+        }
+        models += 1;
+    }
+    assert_eq!(models, 3, "expected the three demo models");
+}
+
+#[test]
+fn solder_joints_is_trained_well() {
+    let net = load("solder-joints.json");
+    let sizes: Vec<usize> = net.layers.iter().map(|l| l.units()).collect();
+    assert_eq!(sizes, [32, 16, 5]);
+    assert_eq!(
+        net.input.layout,
+        model::Layout::Image {
+            height: 12,
+            width: 12,
+            channels: 1
+        }
+    );
+    assert!(
+        net.layers[..2]
+            .iter()
+            .all(|l| l.activation == Activation::Relu)
+    );
+    // Measured: 0.988 (494 of 500); chance is 0.2.
+    let acc = accuracy(&net, "solder-joints-probe.csv");
+    assert!(acc >= 0.97, "solder-joints accuracy {acc}");
+    // Measured: no unit proven dead; on the probe 0 of 32 in h1 and 1 of 16 in h2 dead,
+    // so `receptor check` with its default limit (10% per layer) passes on this probe.
+    let dead = dead_counts(&net, "solder-joints-probe.csv");
+    assert_eq!(dead[0], (0, 0), "h1 (proven, on probe)");
+    assert!(dead[1].0 + dead[1].1 <= 1, "h2 dead {:?}", dead[1]);
+}
+
+#[test]
+fn overdriven_run_is_worse_and_has_both_kinds_of_dead_units() {
+    let good = load("solder-joints.json");
+    let over = load("solder-joints-overdriven.json");
+    // Same architecture.
+    let shape =
+        |n: &Network| -> Vec<(usize, usize)> { n.layers.iter().map(|l| l.weights.dim()).collect() };
+    assert_eq!(shape(&good), shape(&over));
+    // Measured: 0.796 (398 of 500), against 0.988 for the well-trained run.
+    let acc = accuracy(&over, "solder-joints-probe.csv");
+    let acc_good = accuracy(&good, "solder-joints-probe.csv");
+    assert!(
+        acc >= 0.75,
+        "over-driven accuracy {acc} (still well above chance 0.2)"
+    );
+    assert!(
+        acc <= acc_good - 0.1,
+        "over-driven {acc} vs good {acc_good}"
+    );
+
+    // Provably dead first-layer units by interval bounds (exact on the first layer:
+    // b + sum max(w * low, w * high), Gowal et al. 2018). Measured: 9 of 32.
+    let bounds = interval_bounds(&over);
+    let proven_h1 = bounds.upper[0].iter().filter(|&&u| u <= 0.0).count();
+    assert!(proven_h1 >= 8, "proven dead in h1: {proven_h1}");
+    // The same count by hand, independent of the bounds module.
+    let h1 = &over.layers[0];
+    let by_hand = h1
+        .weights
+        .rows()
+        .into_iter()
+        .zip(&h1.bias)
+        .filter(|(w, b)| f64::from(**b) + w.iter().map(|&w| f64::from(w.abs())).sum::<f64>() <= 0.0)
+        .count();
+    assert_eq!(by_hand, proven_h1, "box [-1, 1]: max(w*low, w*high) = |w|");
+
+    // Screening on the probe: more dead units than proven ones. Measured: h1 9 proven +
+    // 15 dead on the probe only (24 of 32); h2 12 of 16 dead.
+    let dead = dead_counts(&over, "solder-joints-probe.csv");
+    assert_eq!(dead[0].0, proven_h1);
+    assert!(dead[0].1 >= 10, "h1 dead on probe only: {:?}", dead[0]);
+    assert!(dead[0].0 + dead[0].1 >= 20, "h1 dead: {:?}", dead[0]);
+    assert!(dead[1].0 + dead[1].1 >= 8, "h2 dead: {:?}", dead[1]);
+}
+
+#[test]
+fn overdriven_tensors_live_in_the_safetensors_file() {
+    let text = std::fs::read_to_string(demo_dir().join("solder-joints-overdriven.json")).unwrap();
+    let doc: serde_json::Value = serde_json::from_str(&text).unwrap();
+    for layer in doc["layers"].as_array().unwrap() {
+        for key in ["weights", "bias"] {
+            assert_eq!(
+                layer[key]["safetensors"], "solder-joints-overdriven.safetensors",
+                "{key} of {}",
+                layer["name"]
+            );
+        }
+    }
+    assert_eq!(doc["layers"][0]["weights"]["tensor"], "h1.weight");
+    // The side file holds f32 tensors of the declared shapes (read with the safetensors
+    // crate directly, not through our loader).
+    let bytes = std::fs::read(demo_dir().join("solder-joints-overdriven.safetensors")).unwrap();
+    let st = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+    let w = st.tensor("h1.weight").unwrap();
+    assert_eq!(w.dtype(), safetensors::Dtype::F32);
+    assert_eq!(w.shape(), [32, 144]);
+    assert_eq!(st.tensor("out.bias").unwrap().shape(), [5]);
+}
+
+#[test]
+fn cold_storage_takes_raw_units_and_is_accurate() {
+    let net = load("cold-storage.json");
+    assert!(
+        net.layers[..net.layers.len() - 1]
+            .iter()
+            .all(|l| l.activation == Activation::Tanh)
+    );
+    let names = net.input.names.clone().unwrap();
+    assert_eq!(names.len(), 8);
+    assert_eq!(names[0], "air_temp_c");
+    // Per-feature box in physical units (not one shared range).
+    assert_eq!(net.input.low[6], 300.0);
+    assert_eq!(net.input.high[6], 3000.0);
+    assert_eq!(net.input.high[2], 60.0);
+    // The probe's header carries the feature names.
+    let header = std::fs::read_to_string(demo_dir().join("cold-storage-probe.csv")).unwrap();
+    let first = header.lines().next().unwrap();
+    assert_eq!(first, format!("{},label", names.join(",")));
+    // Measured: 0.990 (396 of 400); chance is 0.25.
+    let acc = accuracy(&net, "cold-storage-probe.csv");
+    assert!(acc >= 0.97, "cold-storage accuracy {acc}");
+}
+
+/// The committed files are exactly what the generator writes (bit for bit). The generator
+/// uses fixed seeds and fixed-order sums; it relies on the platform's `exp`/`tanh`, so on
+/// a machine with a different maths library this may differ even though nothing is wrong
+/// with the models.
+#[test]
+fn generator_reproduces_the_bundled_files() {
+    let dir = tempfile::tempdir().unwrap();
+    make_demos::run(dir.path()).unwrap();
+    let mut compared = 0;
+    for entry in std::fs::read_dir(demo_dir()).unwrap() {
+        let path = entry.unwrap().path();
+        let name = path.file_name().unwrap();
+        let fresh = std::fs::read(dir.path().join(name))
+            .unwrap_or_else(|e| panic!("generator did not write {name:?}: {e}"));
+        let committed = std::fs::read(&path).unwrap();
+        assert!(fresh == committed, "{name:?} differs from a fresh run");
+        compared += 1;
+    }
+    assert_eq!(compared, 6);
+}
