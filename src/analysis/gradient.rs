@@ -17,14 +17,15 @@
 //! [`crate::model::Activation::derivative_scalar`]).
 
 use super::forward::{gathered_preactivation, gemm_into, par_rows_mut};
+use crate::error::{Error, Result};
 use crate::model::{Activation, Network};
 use ndarray::{Array1, Array2, ArrayView2, ArrayViewMut2, s};
 use rayon::prelude::*;
 
 /// Rows processed together in one pass. Bounds the memory of the intermediate
-/// `[rows, units]` arrays (4096 x 2048 f32 is 32 MiB) while keeping every matrix product
-/// large enough to run at full speed.
-pub(crate) const GRAD_BLOCK_ROWS: usize = 4096;
+/// `[rows, units]` arrays (1024 x 2048 f32 is 8 MiB) and the time between cancellation
+/// checks, while keeping every matrix product large enough to run at full speed.
+pub(crate) const GRAD_BLOCK_ROWS: usize = 1024;
 
 /// Reusable buffers for [`input_gradient_into`], so that repeated calls (one per step of
 /// a gradient ascent) do not allocate and fault in fresh pages every time.
@@ -69,12 +70,17 @@ pub fn input_gradient(
     let zs = z
         .as_slice_mut()
         .expect("a fresh one-dimensional array is contiguous");
-    input_gradient_into(net, layer, units, x, zs, grad.view_mut(), &mut ws);
+    // Never cancelled, so the result is always Ok.
+    let _ = input_gradient_into(net, layer, units, x, zs, grad.view_mut(), &mut ws, &|| {
+        false
+    });
     (z, grad)
 }
 
 /// [`input_gradient`] writing into caller-owned outputs `z: [samples]` and
-/// `grad: [samples, inputs]`, with reusable buffers.
+/// `grad: [samples, inputs]`, with reusable buffers. `cancelled` is polled between blocks
+/// of [`GRAD_BLOCK_ROWS`] rows; when it returns true the call stops with
+/// [`Error::Cancelled`] (outputs partly written).
 pub(crate) fn input_gradient_into(
     net: &Network,
     layer: usize,
@@ -83,7 +89,8 @@ pub(crate) fn input_gradient_into(
     z: &mut [f32],
     mut grad: ArrayViewMut2<f32>,
     ws: &mut GradWorkspace,
-) {
+    cancelled: &dyn Fn() -> bool,
+) -> Result<()> {
     assert!(
         layer < net.layers.len(),
         "input_gradient: layer {layer} of {}",
@@ -116,6 +123,9 @@ pub(crate) fn input_gradient_into(
     );
     let mut start = 0;
     while start < rows {
+        if cancelled() {
+            return Err(Error::Cancelled);
+        }
         let end = (start + GRAD_BLOCK_ROWS).min(rows);
         let block_units: &[usize] = if units.len() == 1 {
             units
@@ -133,6 +143,7 @@ pub(crate) fn input_gradient_into(
         );
         start = end;
     }
+    Ok(())
 }
 
 /// Writes `bias` into every row of `out: [rows, units]` (flattened), in parallel.

@@ -350,7 +350,8 @@ pub fn prefer(
             &mut zbuf[..na],
             gview,
             &mut ws,
-        );
+            &|| progress.cancelled(),
+        )?;
         let z = &zbuf[..na];
         let gflat = &mut gbuf[..na * n];
         let lr = learning_rate(t, steps);
