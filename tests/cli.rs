@@ -870,3 +870,41 @@ fn prune_sweep_and_write_pruned() {
     );
     assert_bad_input(&r, &["1.5"]);
 }
+
+#[test]
+fn streaming_in_small_chunks_changes_nothing() {
+    let d = tempfile::tempdir().unwrap();
+    write(d.path(), "net.json", NET);
+    // 50 rows on a grid in [0, 1]^4, with a byte-order mark and Windows line ends, so the
+    // readers' chunk boundaries fall everywhere.
+    let mut text = String::from("\u{feff}a,b,c,d,label\r\n");
+    for i in 0..50 {
+        let t = f64::from(i) / 49.0;
+        text.push_str(&format!("{t},{},{},{},{}\r\n", 1.0 - t, t * t, 0.5, i % 2));
+    }
+    write(d.path(), "grid.csv", text);
+    for cmd in ["forward", "screen"] {
+        let whole = receptor(&[cmd, "net.json", "--probe", "grid.csv"], d.path());
+        let bits = receptor(
+            &[cmd, "net.json", "--probe", "grid.csv", "--chunk-rows", "3"],
+            d.path(),
+        );
+        assert_eq!(whole.code, 0, "{}", whole.stderr);
+        assert_eq!(whole.stdout, bits.stdout, "{cmd}");
+    }
+    let r = receptor(&["forward", "net.json", "--probe", "grid.csv"], d.path());
+    let (_, rows) = csv(&r.stdout);
+    assert_eq!(rows.len(), 50);
+    assert_eq!(rows[49][0], "49");
+    // The screen sees all 50 samples: u3 (z = 0.1 + x3 = 0.6) is active on every one.
+    let r = receptor(
+        &[
+            "screen", "net.json", "--probe", "grid.csv", "--format", "json",
+        ],
+        d.path(),
+    );
+    let v = json(&r.stdout);
+    assert_eq!(v["samples"], 50);
+    assert_eq!(v["rows"][3]["status"], "always_active");
+    assert_abs_diff_eq!(v["rows"][3]["mean"].as_f64().unwrap(), 0.6, epsilon = 1e-6);
+}

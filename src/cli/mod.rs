@@ -115,7 +115,7 @@ once, as one batch.
 
 Columns: layer, unit, preactivation (raw z at the preferred input), activation (the unit's \
 output there; on a softmax layer its probability), steps (the most steps any restart ran), \
-then x0..x{n-1}, the preferred input. JSON output has one array \"input\" instead of x0... \
+then x0..x{n-1}, the preferred input. JSON output has one array \"input\" instead of x0..x{n-1}. \
 A search that diverged prints NaN in CSV and null in JSON, with a warning on standard \
 error.")]
     Prefer(prefer::PreferArgs),
