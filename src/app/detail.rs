@@ -51,18 +51,21 @@ impl DetailPanel {
                 ui.horizontal(|ui| {
                     if !state.history.is_empty()
                         && ui
-                            .button("⬅ Back")
+                            .button("Back")
                             .on_hover_text("Back to the unit you came from (Backspace)")
                             .clicked()
                         && let Some(prev) = state.history.pop()
                     {
                         state.selection = Some(prev);
                     }
-                    let name = layer.unit_name(sel.unit, "unit ");
-                    let title = if layer.labels.is_some() {
-                        format!("{} unit {} ({name})", layer.name, sel.unit)
-                    } else {
-                        format!("{} unit {}", layer.name, sel.unit)
+                    let title = match &layer.labels {
+                        Some(_) => format!(
+                            "Unit {} of layer {} ({})",
+                            sel.unit,
+                            layer.name,
+                            layer.unit_name(sel.unit, "")
+                        ),
+                        None => format!("Unit {} of layer {}", sel.unit, layer.name),
                     };
                     ui.heading(title);
                 });
@@ -153,10 +156,9 @@ fn map_data(state: &AppState, net: &Network, sel: Selection) -> Result<MapData, 
             }
         },
         MapView::Sensitivity => match state.results.sensitivity.get(&sel.layer) {
-            Some(g) => {
+            Some((g, layer_max)) => {
                 let row = g.row(sel.unit).to_vec();
-                let layer_max = maps::max_abs(g.as_slice().unwrap_or(&[]));
-                let m = scale_mode.pick(maps::max_abs(&row), layer_max);
+                let m = scale_mode.pick(maps::max_abs(&row), *layer_max);
                 Ok(MapData::SignedInput(row, m, "dz/dx"))
             }
             None => Err("Computing the sensitivity at the mean probe input…".into()),

@@ -248,6 +248,11 @@ impl ReceptorApp {
         self.opening.is_some() || self.worker.pending() > 0
     }
 
+    /// What the worker is doing now ("" when idle), as the status bar shows it.
+    pub fn current_task(&self) -> &str {
+        &self.task.title
+    }
+
     /// The app's state (for tests and tools).
     pub fn state(&self) -> &AppState {
         &self.state
@@ -1063,7 +1068,9 @@ impl eframe::App for ReceptorApp {
         if self.thumbs.deferred() {
             ctx.request_repaint();
         }
-        if self.is_busy() {
+        // Frames while analysis runs on the open model (the first frames, which build the
+        // font atlas while the model is read, are not what a user browsing sees).
+        if self.worker.pending() > 0 && self.state.model.is_some() {
             self.longest_busy_frame = self.longest_busy_frame.max(started.elapsed());
         }
     }

@@ -307,8 +307,9 @@ pub struct Results {
     pub activity: Option<Arc<ActivityResult>>,
     /// Preferred inputs per layer (model only).
     pub preferred: HashMap<usize, LayerPreferred>,
-    /// Sensitivity maps per layer: `[units, inputs]` (model and probe).
-    pub sensitivity: HashMap<usize, Arc<ndarray::Array2<f32>>>,
+    /// Sensitivity maps per layer, `[units, inputs]`, with their largest |value| (model and
+    /// probe).
+    pub sensitivity: HashMap<usize, (Arc<ndarray::Array2<f32>>, f32)>,
     /// The pruning curve (model and a labelled probe).
     pub sweep: Option<Arc<Vec<SweepPoint>>>,
     /// A sweep has been asked for (so it is not queued twice).

@@ -21,27 +21,28 @@ pub fn ui(
             ui.separator();
         }
         if pending > 0 {
-            ui.spinner();
-            let title = if task.title.is_empty() {
-                "Working"
-            } else {
-                task.title.as_str()
-            };
-            ui.label(title);
-            ui.add(
-                egui::ProgressBar::new(task.fraction)
-                    .desired_width(160.0)
-                    .show_percentage(),
-            );
-            if pending > 1 {
-                ui.weak(format!("{} more queued", pending - 1));
-            }
+            // The button comes first so it stays put while the task text changes.
             if ui
                 .button("Cancel")
                 .on_hover_text("Stop the running analysis (Esc)")
                 .clicked()
             {
                 actions.push(Action::Cancel);
+            }
+            ui.spinner();
+            let title = if task.title.is_empty() {
+                "Working"
+            } else {
+                task.title.as_str()
+            };
+            ui.add(
+                egui::ProgressBar::new(task.fraction)
+                    .desired_width(140.0)
+                    .show_percentage(),
+            );
+            ui.label(title);
+            if pending > 1 {
+                ui.weak(format!("({} more queued)", pending - 1));
             }
             ui.separator();
         } else if stopped {

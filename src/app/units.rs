@@ -210,26 +210,33 @@ fn tile_ui(
     let painter = ui.painter();
     painter.rect_filled(rect, 2.0, visuals.extreme_bg_color);
 
-    let tex = if layer == 0 {
-        let scale = state.prefs.scale;
+    let scale = state.prefs.scale;
+    let shared = scale == super::colour::ScaleMode::SharedLayer;
+    // The layer's largest |w| comes with the statistics; a shared-scale tile waits for it
+    // rather than scanning the whole weight matrix inside a frame.
+    let layer_max = state
+        .results
+        .stats
+        .as_ref()
+        .and_then(|s| s.layers.get(layer))
+        .map(|s| s.max_abs as f32);
+    let tex = if layer == 0 && (!shared || layer_max.is_some()) {
         thumbs.get(
             ui.ctx(),
             ThumbKey {
                 layer,
                 unit,
-                kind: ThumbKind::Weights(scale == super::colour::ScaleMode::SharedLayer),
+                kind: ThumbKind::Weights(shared),
             },
             true,
             || {
                 let w = net.layers[0].weights.row(unit).to_vec();
-                let layer_max = state.results.stats.as_ref().map_or_else(
-                    || maps::max_abs(net.layers[0].weights.as_slice().unwrap_or(&[])),
-                    |s| s.layers[0].max_abs as f32,
-                );
-                let m = scale.pick(maps::max_abs(&w), layer_max);
+                let m = scale.pick(maps::max_abs(&w), layer_max.unwrap_or(0.0));
                 Some(maps::signed_input_map(&net.input, &w, m))
             },
         )
+    } else if layer == 0 {
+        None
     } else {
         match state.preferred_of(layer, unit) {
             Some(p) => {

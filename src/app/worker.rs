@@ -21,8 +21,9 @@ use std::sync::{Arc, Mutex};
 /// Units per preferred-input batch: each batch is one call of the core's batched search, and
 /// tiles fill in as batches finish.
 pub const PREFER_BATCH: usize = 128;
-/// Probe rows per forward pass when tracing activations.
-const TRACE_CHUNK: usize = 2048;
+/// Probe rows per forward pass when tracing activations and screening: small enough that
+/// a cancel is seen within a fraction of a second on a 784-2048-2048-10 network.
+const TRACE_CHUNK: usize = 512;
 /// Bins of each unit's activation histogram.
 pub const HIST_BINS: usize = 32;
 /// Samples kept per unit as "drives it hardest".
@@ -190,8 +191,8 @@ pub enum Reply {
         tag: Tag,
         /// Layer index.
         layer: usize,
-        /// Maps or error.
-        result: Result<Arc<Array2<f32>>>,
+        /// Maps and their largest |value|, or the error.
+        result: Result<(Arc<Array2<f32>>, f32)>,
     },
     /// The pruning curve.
     Sweep {
@@ -464,7 +465,10 @@ fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
         }
         Job::Probe(data) => {
             let mut src = MemoryProbe::new(data.clone());
-            let opts = crate::analysis::screen::ScreenOptions::default();
+            let opts = crate::analysis::screen::ScreenOptions {
+                chunk_rows: TRACE_CHUNK,
+                ..Default::default()
+            };
             let screen =
                 crate::analysis::screen::screen(net, &mut src, &opts, &progress.sub(0.0, 0.4)).map(
                     |r| {
@@ -660,7 +664,7 @@ fn prefer_batch(
 }
 
 /// Gradients of every unit of `layer` at the mean probe input: `[units, inputs]`.
-fn sensitivity(net: &Network, layer: usize, mean: &[f32]) -> Result<Arc<Array2<f32>>> {
+fn sensitivity(net: &Network, layer: usize, mean: &[f32]) -> Result<(Arc<Array2<f32>>, f32)> {
     let units = net
         .layers
         .get(layer)
@@ -675,7 +679,11 @@ fn sensitivity(net: &Network, layer: usize, mean: &[f32]) -> Result<Arc<Array2<f
     }
     let ids: Vec<usize> = (0..units).collect();
     let (_, g) = crate::analysis::gradient::input_gradient(net, layer, &ids, x.view());
-    Ok(Arc::new(g))
+    let m = g
+        .iter()
+        .filter(|v| v.is_finite())
+        .fold(0.0f32, |m, v| m.max(v.abs()));
+    Ok((Arc::new(g), m))
 }
 
 /// Activation histograms and top samples of every unit, in two chunked passes over the
