@@ -172,10 +172,23 @@ impl CsvProbe {
         self.label_col = label_cols.first().copied();
         let feature_cols = header.len() - label_cols.len();
         if feature_cols != self.inputs {
+            // A data line with one stray word (or a trailing comma) is taken for a header;
+            // say why, so the message is not a puzzle.
+            let why = if header.iter().any(|f| parse_number(f).is_some()) {
+                header
+                    .iter()
+                    .find(|f| parse_number(f).is_none())
+                    .map(|f| {
+                        format!(" (line {line} is read as a header because '{f}' is not a number)")
+                    })
+                    .unwrap_or_default()
+            } else {
+                String::new()
+            };
             return Err(Error::probe(
                 &self.path,
                 format!(
-                    "line {line}: the header names {feature_cols} input columns{} but the model has {} inputs",
+                    "line {line}: the header names {feature_cols} input columns{} but the model has {} inputs{why}",
                     if self.label_col.is_some() {
                         " besides 'label'"
                     } else {
@@ -444,6 +457,10 @@ mod tests {
                 "line 1: the header names 2 input columns but the model has 3 inputs",
             ),
             (b"a,b,label,label\n1,2,0,0\n", "2 columns named 'label'"),
+            (
+                b"1,2,3,\n1,2,3\n",
+                "the header names 4 input columns but the model has 3 inputs (line 1 is read as a header because '' is not a number)",
+            ),
             (b"1,2,3\n\xFF,2,3\n", "line 2: the text is not valid UTF-8"),
         ];
         for (i, (bytes, want)) in cases.iter().enumerate() {
