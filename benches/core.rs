@@ -19,6 +19,8 @@
 //! - `RECEPTOR_BENCH_RUNS`: runs per measurement (default 5; `prefer` uses at most 3),
 //!   the reported time is the median.
 //! - `RECEPTOR_BENCH_PREFER_RESTARTS`: restarts for `prefer` (default 1, the box centre).
+//! - `RECEPTOR_BENCH_ONLY`: comma-separated measurement names to run (default: all), e.g.
+//!   `screen,prefer_all`, for interleaving runs with the numpy script on a busy machine.
 //!
 //! Every file is written before anything is timed; loads read from the page cache after a
 //! warm-up read, so "disk read" is the speed of reading a cached file, the fair baseline for
@@ -189,6 +191,13 @@ fn measure<T>(
     runs: usize,
     mut f: impl FnMut() -> BenchResult<T>,
 ) -> BenchResult<Timing> {
+    if !wanted(name) {
+        return Ok(Timing {
+            name,
+            detail,
+            runs: Vec::new(),
+        });
+    }
     eprintln!("measuring {name} ({detail}) ...");
     std::hint::black_box(f()?);
     let mut times = Vec::with_capacity(runs);
@@ -203,6 +212,15 @@ fn measure<T>(
         detail,
         runs: times,
     })
+}
+
+/// False when `RECEPTOR_BENCH_ONLY` (a comma-separated list of measurement names) is set
+/// and does not name `name`.
+fn wanted(name: &str) -> bool {
+    match std::env::var("RECEPTOR_BENCH_ONLY") {
+        Ok(list) => list.split(',').any(|n| n.trim() == name),
+        Err(_) => true,
+    }
 }
 
 fn env_usize(key: &str, default: usize) -> BenchResult<usize> {
@@ -358,6 +376,7 @@ fn main() -> BenchResult<()> {
         last.iter().map(|p| f64::from(p.preactivation)).sum::<f64>() / last.len().max(1) as f64;
     let mean_steps = last.iter().map(|p| p.steps as f64).sum::<f64>() / last.len().max(1) as f64;
 
+    timings.retain(|t| !t.runs.is_empty());
     let threads = rayon::current_num_threads();
     println!();
     println!("receptor core benchmarks (median of runs; {threads} rayon threads)");
@@ -376,9 +395,11 @@ fn main() -> BenchResult<()> {
             t.detail
         );
     }
-    println!(
-        "prefer result: mean preactivation {mean_z:.4}, mean steps {mean_steps:.1}, all finite: {finite}"
-    );
+    if !last.is_empty() {
+        println!(
+            "prefer result: mean preactivation {mean_z:.4}, mean steps {mean_steps:.1}, all finite: {finite}"
+        );
+    }
     let read = timings.iter().find(|t| t.name == "read_safetensors_file");
     let load = timings.iter().find(|t| t.name == "load_safetensors");
     if let (Some(r), Some(l)) = (read, load) {

@@ -313,6 +313,7 @@ def main():
                     help="prefer restarts (default: the Rust run's, else 1)")
     ap.add_argument("--rust", type=Path, help="the Rust bench's JSON, for ratios")
     ap.add_argument("--json", type=Path, help="write the numbers as JSON here")
+    ap.add_argument("--only", help="comma-separated measurement names to run (default: all)")
     args = ap.parse_args()
 
     rust = json.loads(args.rust.read_text()) if args.rust else None
@@ -331,28 +332,39 @@ def main():
     def record(name, detail, m, times):
         results[name] = {"median_s": m, "runs_s": times, "detail": detail}
 
-    print("measuring load_json ...", file=sys.stderr)
-    m, t, (layers, low, high) = timed(lambda: load_json_model(d / "model.json"), args.runs)
-    record("load_json", "json.load + np.asarray(float32)", m, t)
+    only = set(args.only.split(",")) if args.only else None
 
-    print("measuring load_safetensors ...", file=sys.stderr)
-    m, t, st_layers = timed(lambda: load_safetensors_model(d / "model_st.json"), args.runs)
-    record("load_safetensors", "json.load + safetensors.numpy.load_file", m, t)
-    for (_, _, w1, b1), (_, _, w2, b2) in zip(layers, st_layers):
-        assert np.array_equal(w1, w2) and np.array_equal(b1, b2), "the two model files differ"
+    def want(name):
+        if only is None or name in only:
+            print(f"measuring {name} ...", file=sys.stderr)
+            return True
+        return False
 
-    print("measuring read_safetensors_file ...", file=sys.stderr)
+    if want("load_json"):
+        m, t, (layers, low, high) = timed(lambda: load_json_model(d / "model.json"), args.runs)
+        record("load_json", "json.load + np.asarray(float32)", m, t)
+    else:
+        layers, low, high = load_json_model(d / "model.json")
+
+    if want("load_safetensors"):
+        m, t, st_layers = timed(lambda: load_safetensors_model(d / "model_st.json"), args.runs)
+        record("load_safetensors", "json.load + safetensors.numpy.load_file", m, t)
+        for (_, _, w1, b1), (_, _, w2, b2) in zip(layers, st_layers):
+            assert np.array_equal(w1, w2) and np.array_equal(b1, b2), "the two model files differ"
+
     st_path = d / "model.safetensors"
-    m, t, _ = timed(lambda: len(st_path.read_bytes()), args.runs)
-    record("read_safetensors_file", "Path.read_bytes (page cache)", m, t)
+    if want("read_safetensors_file"):
+        m, t, _ = timed(lambda: len(st_path.read_bytes()), args.runs)
+        record("read_safetensors_file", "Path.read_bytes (page cache)", m, t)
 
-    print("measuring screen ...", file=sys.stderr)
-    m, t, _rows = timed(lambda: screen(layers, low, high, d / "probe.npy"), args.runs)
-    record("screen", f"10000 rows from probe.npy, chunks of {CHUNK_ROWS}", m, t)
+    if want("screen"):
+        m, t, _rows = timed(lambda: screen(layers, low, high, d / "probe.npy"), args.runs)
+        record("screen", f"10000 rows from probe.npy, chunks of {CHUNK_ROWS}", m, t)
 
-    print("measuring the parts of screen ...", file=sys.stderr)
-    m, t, probe_rows = timed(lambda: np.load(d / "probe.npy"), args.runs)
-    record("screen_part_read_probe", "np.load of probe.npy", m, t)
+    probe_rows = np.load(d / "probe.npy")
+    if want("screen_part_read_probe"):
+        m, t, _ = timed(lambda: np.load(d / "probe.npy"), args.runs)
+        record("screen_part_read_probe", "np.load of probe.npy", m, t)
 
     def forward_hidden():
         for start in range(0, probe_rows.shape[0], CHUNK_ROWS):
@@ -362,23 +374,26 @@ def main():
                 z += b
                 a = np.maximum(z, 0.0, out=z)
 
-    m, t, _ = timed(forward_hidden, args.runs)
-    record("screen_part_forward", f"hidden layers, in-memory rows, chunks of {CHUNK_ROWS}", m, t)
+    if want("screen_part_forward"):
+        m, t, _ = timed(forward_hidden, args.runs)
+        record("screen_part_forward", f"hidden layers, in-memory rows, chunks of {CHUNK_ROWS}",
+               m, t)
 
-    print(f"measuring prefer_all ({restarts} restart(s)) ...", file=sys.stderr)
-    units = np.arange(layers[PREFER_LAYER][2].shape[0])
-    m, t, (_x, z, steps_run, nonfinite) = timed(
-        lambda: prefer(layers, low, high, PREFER_LAYER, units, PREFER_STEPS, restarts, 0),
-        args.prefer_runs,
-    )
-    record("prefer_all", f"layer h2, {units.size} units, {PREFER_STEPS} steps, "
-           f"{restarts} restart(s)", m, t)
-    per_unit_steps = steps_run.reshape(units.size, restarts).max(axis=1)
-    prefer_summary = {
-        "mean_preactivation": float(np.mean(z, dtype=np.float64)),
-        "mean_steps": float(per_unit_steps.mean()),
-        "all_finite": bool(not nonfinite.any() and np.isfinite(z).all()),
-    }
+    prefer_summary = None
+    if want("prefer_all"):
+        units = np.arange(layers[PREFER_LAYER][2].shape[0])
+        m, t, (_x, z, steps_run, nonfinite) = timed(
+            lambda: prefer(layers, low, high, PREFER_LAYER, units, PREFER_STEPS, restarts, 0),
+            args.prefer_runs,
+        )
+        record("prefer_all", f"layer h2, {units.size} units, {PREFER_STEPS} steps, "
+               f"{restarts} restart(s)", m, t)
+        per_unit_steps = steps_run.reshape(units.size, restarts).max(axis=1)
+        prefer_summary = {
+            "mean_preactivation": float(np.mean(z, dtype=np.float64)),
+            "mean_steps": float(per_unit_steps.mean()),
+            "all_finite": bool(not nonfinite.any() and np.isfinite(z).all()),
+        }
 
     print()
     print("numpy core benchmarks (median of runs)")
@@ -387,13 +402,17 @@ def main():
         print(f"{name:<24} {r['median_s']:>10.4f} {min(r['runs_s']):>10.4f} "
               f"{len(r['runs_s']):>6}  {r['detail']}")
     st_bytes = st_path.stat().st_size
-    ratio_st = results["load_safetensors"]["median_s"] / results["read_safetensors_file"]["median_s"]
-    print(f"safetensors load / raw read (numpy): {ratio_st:.2f}")
-    print(f"prefer result: mean preactivation {prefer_summary['mean_preactivation']:.4f}, "
-          f"mean steps {prefer_summary['mean_steps']:.1f}, all finite: {prefer_summary['all_finite']}")
-    if rust and "prefer_mean_preactivation" in rust:
-        print(f"  (receptor: mean preactivation {rust['prefer_mean_preactivation']:.4f}, "
-              f"mean steps {rust['prefer_mean_steps']:.1f})")
+    if "load_safetensors" in results and "read_safetensors_file" in results:
+        ratio_st = (results["load_safetensors"]["median_s"]
+                    / results["read_safetensors_file"]["median_s"])
+        print(f"safetensors load / raw read (numpy): {ratio_st:.2f}")
+    if prefer_summary:
+        print(f"prefer result: mean preactivation {prefer_summary['mean_preactivation']:.4f}, "
+              f"mean steps {prefer_summary['mean_steps']:.1f}, "
+              f"all finite: {prefer_summary['all_finite']}")
+        if rust and "prefer_mean_preactivation" in rust:
+            print(f"  (receptor: mean preactivation {rust['prefer_mean_preactivation']:.4f}, "
+                  f"mean steps {rust['prefer_mean_steps']:.1f})")
 
     ratios = {}
     if rust:
@@ -402,15 +421,18 @@ def main():
         for name in ("screen", "prefer_all", "load_json", "load_safetensors",
                      "screen_part_read_probe", "screen_part_forward"):
             rr = rust["results"].get(name)
-            if rr:
+            if rr and name in results:
                 ratios[name] = rr["median_s"] / results[name]["median_s"]
                 print(f"  {name:<22} {rr['median_s']:>9.4f} s / {results[name]['median_s']:>9.4f} s"
                       f" = {ratios[name]:.3f}")
-        rl, rd = rust["results"]["load_safetensors"], rust["results"]["read_safetensors_file"]
-        ratios["rust_safetensors_load_vs_disk_read"] = rl["median_s"] / rd["median_s"]
-        print(f"  receptor safetensors load / raw read of the file: "
-              f"{ratios['rust_safetensors_load_vs_disk_read']:.2f} "
-              f"({st_bytes / 1e6 / rl['median_s']:.0f} MB/s vs {st_bytes / 1e6 / rd['median_s']:.0f} MB/s)")
+        rl = rust["results"].get("load_safetensors")
+        rd = rust["results"].get("read_safetensors_file")
+        if rl and rd:
+            ratios["rust_safetensors_load_vs_disk_read"] = rl["median_s"] / rd["median_s"]
+            print(f"  receptor safetensors load / raw read of the file: "
+                  f"{ratios['rust_safetensors_load_vs_disk_read']:.2f} "
+                  f"({st_bytes / 1e6 / rl['median_s']:.0f} MB/s vs "
+                  f"{st_bytes / 1e6 / rd['median_s']:.0f} MB/s)")
 
     if args.json:
         doc = {
