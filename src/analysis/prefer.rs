@@ -501,16 +501,16 @@ fn step_row(row: &mut Row, g: &mut [f32], z: f32, p: StepParams<'_>) {
         row.active = false;
         return;
     }
-    for i in 0..g.len() {
+    let Row { x, m, v, .. } = row;
+    for (i, ((xi, mi), vi)) in x.iter_mut().zip(m.iter_mut()).zip(v.iter_mut()).enumerate() {
         let gi = g[i];
-        let m = BETA1 * row.m[i] + (1.0 - BETA1) * gi;
-        let v = BETA2 * row.v[i] + (1.0 - BETA2) * gi * gi;
-        row.m[i] = m;
-        row.v[i] = v;
-        let denom = (v / p.bc2).sqrt();
+        *mi = BETA1 * *mi + (1.0 - BETA1) * gi;
+        *vi = BETA2 * *vi + (1.0 - BETA2) * gi * gi;
+        // A zero or overflowed second moment gives no usable step; the coordinate waits.
+        let denom = (*vi / p.bc2).sqrt();
         if denom > 0.0 && denom.is_finite() {
-            let step = p.lr * p.width[i] * (m / p.bc1) / denom;
-            row.x[i] = (row.x[i] + step).clamp(p.low[i], p.high[i]);
+            let step = p.lr * p.width[i] * (*mi / p.bc1) / denom;
+            *xi = (*xi + step).clamp(p.low[i], p.high[i]);
         }
     }
     row.steps += 1;
