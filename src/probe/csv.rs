@@ -506,4 +506,34 @@ mod tests {
         assert_eq!(seen, 10);
         assert!(probe.next_chunk(4).unwrap().is_none());
     }
+
+    proptest::proptest! {
+        #![proptest_config(proptest::prelude::ProptestConfig::with_cases(256))]
+        /// Any text built from CSV-ish pieces reads or is refused with a message naming the
+        /// file, never panics (common practice for parsers, no source).
+        #[test]
+        fn arbitrary_text_never_panics(
+            cells in proptest::collection::vec(
+                proptest::prop_oneof![
+                    proptest::prelude::Just("1".to_string()),
+                    proptest::prelude::Just("-2.5e3".to_string()),
+                    proptest::prelude::Just("label".to_string()),
+                    proptest::prelude::Just("cat".to_string()),
+                    proptest::prelude::Just("NaN".to_string()),
+                    proptest::prelude::Just(",".to_string()),
+                    proptest::prelude::Just("\n".to_string()),
+                    proptest::prelude::Just("\"".to_string()),
+                    proptest::prelude::Just("\u{feff}".to_string()),
+                    "[ -~]{0,4}",
+                ],
+                0..40,
+            ),
+        ) {
+            let d = tempfile::tempdir().unwrap();
+            let p = write(&d, "fuzz.csv", cells.concat().as_bytes());
+            if let Err(e) = read(&p, &net(Some(vec!["cat", "dog"]))) {
+                proptest::prop_assert!(e.to_string().contains("fuzz.csv"), "{}", e);
+            }
+        }
+    }
 }

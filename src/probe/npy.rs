@@ -755,4 +755,29 @@ mod tests {
                 .contains("not a finite number")
         );
     }
+
+    proptest::proptest! {
+        #![proptest_config(proptest::prelude::ProptestConfig::with_cases(256))]
+        /// Any file made from a valid one by overwriting some bytes reads or is refused,
+        /// never panics (common practice for parsers, no source).
+        #[test]
+        fn mutated_files_never_panic(
+            edits in proptest::collection::vec((0usize..200, proptest::prelude::any::<u8>()), 1..8),
+            cut in 0usize..200,
+        ) {
+            let mut data = Vec::new();
+            for v in [1.0f32, -2.0, 3.5, 0.25, 8.0, -0.5] {
+                data.extend_from_slice(&v.to_le_bytes());
+            }
+            let mut f = npy(1, "{'descr': '<f4', 'fortran_order': True, 'shape': (3, 2), }", &data);
+            for (at, b) in edits {
+                let n = f.len();
+                f[at % n] = b;
+            }
+            if cut < f.len() && cut % 3 == 0 {
+                f.truncate(cut);
+            }
+            let _ = read(&f, 2, 2);
+        }
+    }
 }
