@@ -126,14 +126,17 @@ fn solder_joints_is_trained_well() {
             .iter()
             .all(|l| l.activation == Activation::Relu)
     );
-    // Measured: 0.988 (494 of 500); chance is 0.2.
+    // Measured: 0.980 (490 of 500); chance is 0.2.
     let acc = accuracy(&net, "solder-joints-probe.csv");
-    assert!(acc >= 0.97, "solder-joints accuracy {acc}");
-    // Measured: no unit proven dead; on the probe 0 of 32 in h1 and 1 of 16 in h2 dead,
-    // so `receptor check` with its default limit (10% per layer) passes on this probe.
+    assert!(acc >= 0.96, "solder-joints accuracy {acc}");
+    // Measured: no unit dead at all (proven or on the probe) in h1 or h2, so `receptor
+    // check` passes on this probe.
     let dead = dead_counts(&net, "solder-joints-probe.csv");
-    assert_eq!(dead[0], (0, 0), "h1 (proven, on probe)");
-    assert!(dead[1].0 + dead[1].1 <= 1, "h2 dead {:?}", dead[1]);
+    assert_eq!(
+        dead,
+        [(0, 0), (0, 0)],
+        "(proven, on probe) per hidden layer"
+    );
 }
 
 #[test]
@@ -144,7 +147,7 @@ fn overdriven_run_is_worse_and_has_both_kinds_of_dead_units() {
     let shape =
         |n: &Network| -> Vec<(usize, usize)> { n.layers.iter().map(|l| l.weights.dim()).collect() };
     assert_eq!(shape(&good), shape(&over));
-    // Measured: 0.796 (398 of 500), against 0.988 for the well-trained run.
+    // Measured: 0.796 (398 of 500), against 0.980 for the well-trained run.
     let acc = accuracy(&over, "solder-joints-probe.csv");
     let acc_good = accuracy(&good, "solder-joints-probe.csv");
     assert!(
@@ -173,12 +176,13 @@ fn overdriven_run_is_worse_and_has_both_kinds_of_dead_units() {
     assert_eq!(by_hand, proven_h1, "box [-1, 1]: max(w*low, w*high) = |w|");
 
     // Screening on the probe: more dead units than proven ones. Measured: h1 9 proven +
-    // 15 dead on the probe only (24 of 32); h2 12 of 16 dead.
+    // 15 dead on the probe only (24 of 32); h2 12 of 16 proven dead (interval bounds
+    // through h1).
     let dead = dead_counts(&over, "solder-joints-probe.csv");
     assert_eq!(dead[0].0, proven_h1);
     assert!(dead[0].1 >= 10, "h1 dead on probe only: {:?}", dead[0]);
     assert!(dead[0].0 + dead[0].1 >= 20, "h1 dead: {:?}", dead[0]);
-    assert!(dead[1].0 + dead[1].1 >= 8, "h2 dead: {:?}", dead[1]);
+    assert!(dead[1].0 >= 10, "h2 dead: {:?}", dead[1]);
 }
 
 #[test]
