@@ -242,12 +242,12 @@ fn generator_reproduces_the_bundled_files() {
     let dir = tempfile::tempdir().unwrap();
     make_demos::run(dir.path()).unwrap();
     let mut compared = 0;
-    for entry in std::fs::read_dir(demo_dir()).unwrap() {
-        let path = entry.unwrap().path();
-        let name = path.file_name().unwrap();
-        let fresh = std::fs::read(dir.path().join(name))
-            .unwrap_or_else(|e| panic!("generator did not write {name:?}: {e}"));
-        let committed = std::fs::read(&path).unwrap();
+    for entry in std::fs::read_dir(dir.path()).unwrap() {
+        let fresh_path = entry.unwrap().path();
+        let name = fresh_path.file_name().unwrap();
+        let committed = std::fs::read(demo_dir().join(name))
+            .unwrap_or_else(|e| panic!("demo-models has no {name:?} from the generator: {e}"));
+        let fresh = std::fs::read(&fresh_path).unwrap();
         assert!(fresh == committed, "{name:?} differs from a fresh run");
         compared += 1;
     }
