@@ -39,6 +39,11 @@ def good():
     return json.loads(json.dumps(GOOD))
 
 
+def replaced(text, old, new):
+    assert old in text, f"corpus generator: {old!r} not found"
+    return text.replace(old, new, 1)
+
+
 def put(name, data, kind, expect, reason):
     path = os.path.join(HERE, name)
     mode = "wb" if isinstance(data, bytes) else "w"
@@ -105,11 +110,11 @@ def main():
     put("empty.json", "", "model", "empty", "an empty file")
     put("whitespace.json", " \n\t\n", "model", "empty", "only whitespace")
     put("truncated.json", text[: len(text) // 2], "model", "truncated", "cut off half way")
-    put("syntax-error.json", text.replace('"name": "h1",', '"name": "h1"', 1), "model", "not valid JSON", "a missing comma")
+    put("syntax-error.json", replaced(text, '"name": "h1",', '"name": "h1"'), "model", "not valid JSON", "a missing comma")
     put("not-an-object.json", "[1, 2, 3]", "model", "schema", "a JSON list, not an object")
     put("binary-garbage.json", bytes(rng.randrange(256) for _ in range(4096)), "model", "not", "random bytes")
     put("utf16.json", text.encode("utf-16"), "model", "UTF-8", "UTF-16 text with a byte-order mark")
-    put("deep-nesting.json", text.replace('"name": "corpus base model"', '"name": "x", "junk": ' + "[" * 100000 + "]" * 100000, 1),
+    put("deep-nesting.json", replaced(text, '"name": "corpus base model"', '"name": "x", "junk": ' + "[" * 100000 + "]" * 100000),
         "model", "recursion limit", "100 000 nested lists under an unknown key")
     os.makedirs(os.path.join(HERE, "folder.json"))
     with open(os.path.join(HERE, "folder.json", "README"), "w") as f:
@@ -126,15 +131,14 @@ def main():
     model("layers-not-list.json", lambda m: m.update(layers={"h1": 1}), "schema", "layers given as an object")
 
     # --- values inside tensors
-    put("nan-literal.json", text.replace("0.5, -0.25", "NaN, -0.25", 1), "model", "NaN", "NaN is not JSON (Python writes it)")
-    put("infinity-literal.json", text.replace("0.5, -0.25", "Infinity, -0.25", 1), "model", "not valid JSON", "Infinity is not JSON")
-    put("overflow-f32.json", text.replace("0.5, -0.25", "1e39, -0.25", 1), "model", "not a finite 32-bit float", "finite in JSON, infinite as f32")
-    put("string-in-weights.json", text.replace("0.5, -0.25", '"0.5", -0.25', 1), "model", "row 0, column 0", "a number written as a string")
-
     def set_w(r, c, v):
         def f(m):
             m["layers"][0]["weights"][r][c] = v
         return f
+    model("nan-literal.json", set_w(0, 0, float("nan")), "NaN", "NaN is not JSON (Python's json module writes it)")
+    model("infinity-literal.json", set_w(0, 0, float("inf")), "not valid JSON", "Infinity is not JSON")
+    model("overflow-f32.json", set_w(0, 0, 1e39), "not a finite 32-bit float", "finite in JSON, infinite as f32")
+    model("string-in-weights.json", set_w(0, 0, "0.5"), "row 0, column 0", "a number written as a string")
     model("null-in-weights.json", set_w(1, 2, None), "row 1, column 2", "null in a weight")
     model("bool-in-bias.json", lambda m: m["layers"][0]["bias"].__setitem__(1, True), "bias: entry 1", "true in a bias")
     model("object-in-weights.json", set_w(2, 0, {"v": 1}), "row 2, column 0", "an object in a weight")
