@@ -672,24 +672,8 @@ fn write_safetensors_model(net: &Network, out: &Path, stem: &str) -> Result<()> 
         .map_err(|e| Error::model(&side, format!("cannot serialise: {e}")))?;
     write_bytes_atomic(&out.join(&side), &bytes)?;
 
-    let tensor = |name: String| serde_json::json!({"safetensors": side, "tensor": name});
-    let layers: Vec<serde_json::Value> = net
-        .layers
-        .iter()
-        .map(|l| {
-            let mut v = serde_json::json!({
-                "name": l.name,
-                "type": "dense",
-                "activation": l.activation.name(),
-                "weights": tensor(format!("{}.weight", l.name)),
-                "bias": tensor(format!("{}.bias", l.name)),
-            });
-            if let Some(labels) = &l.labels {
-                v["labels"] = serde_json::json!(labels);
-            }
-            v
-        })
-        .collect();
+    // Written by hand rather than through a serde_json map, to keep the schema's own key
+    // order (schema, name, description, input, layers) for people reading the file.
     let Layout::Image {
         height,
         width,
@@ -697,23 +681,39 @@ fn write_safetensors_model(net: &Network, out: &Path, stem: &str) -> Result<()> 
     } = net.input.layout
     else {
         return Err(Error::usage(
-            "write_safetensors_model: only image models are written so",
+            "write_safetensors_model: only image models are written this way",
         ));
     };
-    let doc = serde_json::json!({
-        "schema": model::SCHEMA_TAG,
-        "name": net.name,
-        "description": net.description,
-        "input": {
-            "size": net.input.size,
-            "layout": {"kind": "image", "height": height, "width": width, "channels": channels},
-            "low": -1.0,
-            "high": 1.0,
-        },
-        "layers": layers,
-    });
-    let mut text = serde_json::to_string_pretty(&doc)
-        .map_err(|e| Error::model(format!("{stem}.json"), e.to_string()))?;
-    text.push('\n');
+    let q = |v: &str| serde_json::Value::from(v).to_string();
+    let reference =
+        |name: &str| format!("{{\"safetensors\": {}, \"tensor\": {}}}", q(&side), q(name));
+    let mut text = String::new();
+    text.push_str(&format!("{{\n  \"schema\": {},\n", q(model::SCHEMA_TAG)));
+    text.push_str(&format!("  \"name\": {},\n", q(&net.name)));
+    if let Some(d) = &net.description {
+        text.push_str(&format!("  \"description\": {},\n", q(d)));
+    }
+    text.push_str(&format!(
+        "  \"input\": {{\n    \"size\": {},\n    \"layout\": {{\"kind\": \"image\", \"height\": {height}, \"width\": {width}, \"channels\": {channels}}},\n    \"low\": -1.0,\n    \"high\": 1.0\n  }},\n  \"layers\": [\n",
+        net.input.size
+    ));
+    for (i, l) in net.layers.iter().enumerate() {
+        text.push_str(&format!(
+            "    {{\"name\": {}, \"type\": \"dense\", \"activation\": {},",
+            q(&l.name),
+            q(l.activation.name())
+        ));
+        if let Some(labels) = &l.labels {
+            let labels: Vec<String> = labels.iter().map(|s| q(s)).collect();
+            text.push_str(&format!(" \"labels\": [{}],", labels.join(", ")));
+        }
+        text.push_str(&format!(
+            "\n     \"weights\": {},\n     \"bias\": {}}}{}\n",
+            reference(&format!("{}.weight", l.name)),
+            reference(&format!("{}.bias", l.name)),
+            if i + 1 < net.layers.len() { "," } else { "" }
+        ));
+    }
+    text.push_str("  ]\n}\n");
     write_bytes_atomic(&out.join(format!("{stem}.json")), text.as_bytes())
 }
