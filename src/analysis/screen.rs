@@ -10,12 +10,15 @@
 //! - `sigmoid` / `tanh`: `saturated` (active_frac < rare, including 0), else `ok`;
 //! - `identity`: `ok`.
 //!
+//! `upper_bound` comes from [`super::bounds::interval_bounds`] (plain interval bound
+//! propagation, tightened by back-substitution where cheap; sound either way).
+//!
 //! "Active" means z > 0 for rectifiers and identity units; for sigmoid and tanh it means
 //! not saturated, i.e. |z| below [`SIGMOID_SATURATION_Z`] / [`TANH_SATURATION_Z`] (the
 //! slope is at least 5% of its peak).
 
 use super::Progress;
-use super::bounds::interval_bounds;
+use super::bounds::interval_bounds_upto;
 use super::forward::forward_trace;
 use crate::error::{Error, Result};
 use crate::model::{Activation, Network, SIGMOID_SATURATION_Z, TANH_SATURATION_Z};
@@ -246,7 +249,7 @@ pub fn screen(
     }
     let describe = probe.describe();
     let hidden = net.layers.len().saturating_sub(1);
-    let bounds = interval_bounds(net);
+    let bounds = interval_bounds_upto(net, hidden);
     let mut accs: Vec<Vec<Acc>> = net.layers[..hidden]
         .iter()
         .map(|l| vec![Acc::EMPTY; l.units()])
