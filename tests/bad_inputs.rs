@@ -76,7 +76,11 @@ fn run_limited(dir: &Path, args: &[&str]) -> (Option<i32>, String, Duration) {
 fn every_bad_input_gives_a_clear_error() {
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/bad-inputs");
     let all = cases(&dir);
-    assert!(all.len() >= 40, "the corpus has {} cases; issue asks for at least 40", all.len());
+    assert!(
+        all.len() >= 40,
+        "the corpus has {} cases; issue asks for at least 40",
+        all.len()
+    );
     let mut failures = Vec::new();
     let mut slowest = Duration::ZERO;
     for c in &all {
@@ -104,9 +108,24 @@ fn every_bad_input_gives_a_clear_error() {
             why.push("not exactly one line on standard error".to_string());
         }
         if !why.is_empty() {
-            failures.push(format!("{} ({}): {}\n    stderr: {}", c.file, c.reason, why.join("; "), stderr.trim()));
+            failures.push(format!(
+                "{} ({}): {}\n    stderr: {}",
+                c.file,
+                c.reason,
+                why.join("; "),
+                stderr.trim()
+            ));
         }
     }
-    assert!(failures.is_empty(), "{} of {} cases failed:\n{}", failures.len(), all.len(), failures.join("\n"));
-    eprintln!("{} bad inputs refused correctly; slowest took {slowest:?}", all.len());
+    assert!(
+        failures.is_empty(),
+        "{} of {} cases failed:\n{}",
+        failures.len(),
+        all.len(),
+        failures.join("\n")
+    );
+    eprintln!(
+        "{} bad inputs refused correctly; slowest took {slowest:?}",
+        all.len()
+    );
 }

@@ -8,14 +8,22 @@ use std::path::Path;
 const BASE: &str = include_str!("bad-inputs/good-model.json");
 
 fn check(bytes: &[u8]) {
-    match from_json_bytes(bytes, "mutant.json", Path::new("."), &LoadOptions::default()) {
+    match from_json_bytes(
+        bytes,
+        "mutant.json",
+        Path::new("."),
+        &LoadOptions::default(),
+    ) {
         Ok(net) => {
             // A model that loads is fully valid: re-validating cannot fail.
             receptor::model::validate::validate(&net, "mutant.json").unwrap();
         }
         Err(e) => {
             let msg = e.to_string();
-            assert!(msg.starts_with("mutant.json: "), "message does not name the file: {msg}");
+            assert!(
+                msg.starts_with("mutant.json: "),
+                "message does not name the file: {msg}"
+            );
         }
     }
 }
@@ -66,12 +74,15 @@ fn replace_nth_number(v: &mut serde_json::Value, n: usize, x: f64, seen: &mut us
     match v {
         serde_json::Value::Number(_) => {
             if *seen == n {
-                *v = serde_json::Number::from_f64(x).map_or(serde_json::Value::Null, serde_json::Value::Number);
+                *v = serde_json::Number::from_f64(x)
+                    .map_or(serde_json::Value::Null, serde_json::Value::Number);
             }
             *seen += 1;
         }
         serde_json::Value::Array(a) => a.iter_mut().for_each(|e| replace_nth_number(e, n, x, seen)),
-        serde_json::Value::Object(o) => o.values_mut().for_each(|e| replace_nth_number(e, n, x, seen)),
+        serde_json::Value::Object(o) => o
+            .values_mut()
+            .for_each(|e| replace_nth_number(e, n, x, seen)),
         _ => {}
     }
 }

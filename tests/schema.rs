@@ -5,8 +5,10 @@
 use std::path::{Path, PathBuf};
 
 fn schema() -> jsonschema::Validator {
-    let text = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("assets/model-schema.json"))
-        .expect("assets/model-schema.json is readable");
+    let text = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("assets/model-schema.json"),
+    )
+    .expect("assets/model-schema.json is readable");
     let value: serde_json::Value = serde_json::from_str(&text).expect("the schema is valid JSON");
     assert_eq!(
         value["$schema"], "https://json-schema.org/draft/2020-12/schema",
@@ -16,7 +18,9 @@ fn schema() -> jsonschema::Validator {
 }
 
 fn model_files(dir: &Path, out: &mut Vec<PathBuf>) {
-    let Ok(entries) = std::fs::read_dir(dir) else { return };
+    let Ok(entries) = std::fs::read_dir(dir) else {
+        return;
+    };
     for e in entries.flatten() {
         let p = e.path();
         if p.is_dir() {
@@ -40,7 +44,11 @@ fn every_bundled_model_validates_against_the_schema() {
     for f in &files {
         let text = std::fs::read_to_string(f).unwrap();
         let inst: serde_json::Value = serde_json::from_str(&text).unwrap();
-        let errors: Vec<String> = v.iter_errors(&inst).map(|e| e.to_string()).take(3).collect();
+        let errors: Vec<String> = v
+            .iter_errors(&inst)
+            .map(|e| e.to_string())
+            .take(3)
+            .collect();
         assert!(errors.is_empty(), "{}: {errors:?}", f.display());
         // And the importer agrees.
         receptor::model::load(f, &receptor::model::LoadOptions::default())
@@ -57,19 +65,36 @@ fn written_models_validate_and_structural_errors_are_refused() {
                     "weights": [[1, 2], [3, 4]], "bias": [0, 1]},
                    {"name": "o", "type": "dense", "activation": "softmax",
                     "weights": [[1, -1], [0, 2]], "bias": [0, 0], "labels": ["a", "b"]}]}"#;
-    let net = receptor::model::from_json_str(good, "t.json", Path::new("."), &Default::default()).unwrap();
-    let written: serde_json::Value = serde_json::from_str(&receptor::model::to_json_string(&net)).unwrap();
-    assert!(v.is_valid(&written), "{:?}", v.iter_errors(&written).map(|e| e.to_string()).collect::<Vec<_>>());
+    let net = receptor::model::from_json_str(good, "t.json", Path::new("."), &Default::default())
+        .unwrap();
+    let written: serde_json::Value =
+        serde_json::from_str(&receptor::model::to_json_string(&net)).unwrap();
+    assert!(
+        v.is_valid(&written),
+        "{:?}",
+        v.iter_errors(&written)
+            .map(|e| e.to_string())
+            .collect::<Vec<_>>()
+    );
     let base: serde_json::Value = serde_json::from_str(good).unwrap();
     assert!(v.is_valid(&base));
-    let bad_cases: [(&str, fn(&mut serde_json::Value)); 6] = [
+    type Mutation = fn(&mut serde_json::Value);
+    let bad_cases: [(&str, Mutation); 6] = [
         ("wrong tag", |m| m["schema"] = "receptor-model/2".into()),
         ("no layers", |m| m["layers"] = serde_json::json!([])),
-        ("string weight", |m| m["layers"][0]["weights"][0][0] = "x".into()),
-        ("unknown activation", |m| m["layers"][0]["activation"] = "swish".into()),
-        ("bad channels", |m| {
-            m["input"]["layout"] = serde_json::json!({"kind": "image", "height": 1, "width": 1, "channels": 2})
+        ("string weight", |m| {
+            m["layers"][0]["weights"][0][0] = "x".into()
         }),
+        ("unknown activation", |m| {
+            m["layers"][0]["activation"] = "swish".into()
+        }),
+        (
+            "bad channels",
+            |m| {
+                m["input"]["layout"] =
+                    serde_json::json!({"kind": "image", "height": 1, "width": 1, "channels": 2})
+            },
+        ),
         ("tensor ref without name", |m| {
             m["layers"][0]["weights"] = serde_json::json!({"safetensors": "w.safetensors"})
         }),
