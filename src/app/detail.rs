@@ -620,40 +620,26 @@ fn top_samples_ui(
             let names = net.output_names();
             egui::Grid::new(("top-samples", sel.layer, sel.unit))
                 .num_columns(4)
-                .spacing(vec2(10.0, 6.0))
+                .spacing(vec2(8.0, 8.0))
                 .show(ui, |ui| {
                     for (k, &(row, z, act)) in a.top.iter().enumerate() {
                         ui.vertical(|ui| {
+                            ui.set_width(76.0);
                             if image {
-                                let key = ThumbKey {
-                                    layer: 0,
-                                    unit: 0,
-                                    kind: ThumbKind::Sample(row),
-                                };
-                                let tex = thumbs.get(ui.ctx(), key, false, || {
-                                    let x = probe.data.inputs.row(row).to_vec();
-                                    Some(maps::input_picture(&net.input, &x))
-                                });
-                                if let Some(t) = tex {
-                                    let (r, resp) =
-                                        ui.allocate_exact_size(vec2(56.0, 56.0), Sense::hover());
-                                    ui.painter().image(
-                                        t.id(),
-                                        r,
-                                        Rect::from_min_max(pos2(0.0, 0.0), pos2(1.0, 1.0)),
-                                        Color32::WHITE,
-                                    );
-                                    resp.on_hover_text(format!(
-                                        "probe row {row}: z = {z:.4}, activation = {act:.4}"
-                                    ));
-                                }
+                                sample_thumb(ui, thumbs, net, probe, row, z, act);
                             }
-                            let class = labels
-                                .and_then(|l| l.get(row))
-                                .and_then(|c| names.get(*c))
-                                .map_or(String::new(), |c| format!(" · {c}"));
-                            ui.label(egui::RichText::new(format!("row {row}{class}")).small());
-                            ui.label(egui::RichText::new(format!("z {z:.3}")).small().monospace());
+                            let small = |ui: &mut egui::Ui, text: String| {
+                                ui.add(
+                                    egui::Label::new(egui::RichText::new(text).small()).truncate(),
+                                );
+                            };
+                            small(ui, format!("row {row}"));
+                            if let Some(c) =
+                                labels.and_then(|l| l.get(row)).and_then(|c| names.get(*c))
+                            {
+                                small(ui, c.clone());
+                            }
+                            small(ui, format!("z = {z:.3}"));
                         });
                         if k % 4 == 3 {
                             ui.end_row();
@@ -661,6 +647,39 @@ fn top_samples_ui(
                     }
                 });
         });
+}
+
+/// One probe sample drawn as a picture of the input, with its numbers on hover.
+fn sample_thumb(
+    ui: &mut egui::Ui,
+    thumbs: &mut Thumbs,
+    net: &Network,
+    probe: &super::state::OpenProbe,
+    row: usize,
+    z: f32,
+    act: f32,
+) {
+    let key = ThumbKey {
+        layer: 0,
+        unit: 0,
+        kind: ThumbKind::Sample(row),
+    };
+    let tex = thumbs.get(ui.ctx(), key, false, || {
+        let x = probe.data.inputs.row(row).to_vec();
+        Some(maps::input_picture(&net.input, &x))
+    });
+    if let Some(t) = tex {
+        let (r, resp) = ui.allocate_exact_size(vec2(64.0, 64.0), Sense::hover());
+        ui.painter().image(
+            t.id(),
+            r,
+            Rect::from_min_max(pos2(0.0, 0.0), pos2(1.0, 1.0)),
+            Color32::WHITE,
+        );
+        resp.on_hover_text(format!(
+            "probe row {row}: z = {z:.4}, activation = {act:.4}"
+        ));
+    }
 }
 
 fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &mut Vec<Action>) {

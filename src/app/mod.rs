@@ -574,17 +574,24 @@ impl ReceptorApp {
                 maps: vec![None; n],
                 pending: 0,
             });
-        for batch in units.chunks(worker::PREFER_BATCH) {
+        // Small batches first so the first tiles appear soon on a large layer, then full
+        // batches (each batch is still one batched call of the core's search).
+        let mut at = 0;
+        let mut size = worker::PREFER_BATCH / 8;
+        while at < units.len() {
+            let end = (at + size).min(units.len());
             entry.pending += 1;
             self.worker.submit(
                 Job::Prefer {
                     layer,
-                    units: batch.to_vec(),
+                    units: units[at..end].to_vec(),
                     settings,
                 },
                 net.clone(),
                 self.state.tag,
             );
+            at = end;
+            size = (size * 2).min(worker::PREFER_BATCH);
         }
     }
 

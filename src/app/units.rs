@@ -58,7 +58,8 @@ impl UnitsPanel {
 
         let tile = state.prefs.tile_size;
         let cell = vec2(tile + GAP, tile + CAPTION + GAP);
-        let width = ui.available_width().max(cell.x);
+        // Leave room for the scroll bar so the last column is never cut.
+        let width = (ui.available_width() - 18.0).max(cell.x);
         let cols = ((width / cell.x).floor() as usize).max(1);
         self.columns = cols;
         let rows = order.len().div_ceil(cols);
@@ -110,28 +111,33 @@ impl UnitsPanel {
     }
 
     fn toolbar_ui(&mut self, ui: &mut egui::Ui, state: &mut AppState, layer: usize) {
-        ui.horizontal_wrapped(|ui| {
-            egui::ComboBox::from_label("Sort by")
+        ui.horizontal(|ui| {
+            let label = ui.label("Sort by");
+            egui::ComboBox::from_id_salt("sort-units")
                 .selected_text(state.prefs.sort.label())
                 .show_ui(ui, |ui| {
                     for k in SortKey::ALL {
                         ui.selectable_value(&mut state.prefs.sort, k, k.label());
                     }
-                });
+                })
+                .response
+                .labelled_by(label.id);
             ui.checkbox(&mut state.prefs.problems_only, "Problem units only");
+        });
+        ui.horizontal(|ui| {
             ui.add(
                 egui::Slider::new(&mut state.prefs.tile_size, 32.0..=160.0)
                     .text("Tile size")
                     .integer(),
             );
-            ui.separator();
             ui.weak(if layer == 0 {
                 "Tiles: incoming weights"
             } else {
-                "Tiles: preferred input"
+                "Tiles: preferred inputs"
             });
         });
         ui.horizontal_wrapped(|ui| {
+            ui.weak("Marks:");
             marks_legend_ui(ui, false);
         });
         ui.add_space(2.0);

@@ -1,0 +1,85 @@
+#!/usr/bin/env bash
+# Screenshots of the app's main views, taken under a virtual X server with software OpenGL,
+# so no GPU and no desktop session are needed. Writes PNGs to assets/screenshots/.
+#
+# Needs (Debian/Ubuntu package names):
+#   xvfb xauth           virtual X server
+#   libgl1-mesa-dri      Mesa's software OpenGL (llvmpipe)
+#   libegl1              EGL loader (the glow renderer asks for it)
+#   imagemagick          `import`, to grab the screen
+#   xdotool              to focus the window and press keys
+# e.g.  sudo apt-get install -y --no-install-recommends xvfb xauth libgl1-mesa-dri libegl1 imagemagick xdotool
+#
+# Usage: scripts/screenshot.sh            (builds the release binary first)
+set -euo pipefail
+cd "$(dirname "$0")/.."
+
+for tool in Xvfb import xdotool; do
+    command -v "$tool" > /dev/null || { echo "screenshot.sh: $tool is missing (see the package list at the top)" >&2; exit 2; }
+done
+
+WORK="$(mktemp -d)"
+cargo build --release --bin receptor
+# A private copy, so another build in a shared target folder cannot swap it mid-run.
+cp "${CARGO_TARGET_DIR:-target}/release/receptor" "$WORK/receptor"
+BIN="$WORK/receptor"
+OUT=assets/screenshots
+mkdir -p "$OUT"
+
+DISPLAY_NUM="${SCREENSHOT_DISPLAY:-:97}"
+Xvfb "$DISPLAY_NUM" -screen 0 1280x800x24 -nolisten tcp > "$WORK/xvfb.log" 2>&1 &
+XVFB_PID=$!
+APP_PID=""
+cleanup() {
+    [ -n "$APP_PID" ] && kill "$APP_PID" 2> /dev/null || true
+    kill "$XVFB_PID" 2> /dev/null || true
+    rm -rf "$WORK"
+}
+trap cleanup EXIT
+export DISPLAY="$DISPLAY_NUM"
+# Mesa's software rasteriser; a fresh data folder so saved preferences of earlier runs
+# (tile size, sort order, recent files) do not change the pictures.
+export LIBGL_ALWAYS_SOFTWARE=1
+export XDG_DATA_HOME="$WORK/data"
+sleep 1
+
+"$BIN" > "$WORK/app.log" 2>&1 &
+APP_PID=$!
+WID=""
+for _ in $(seq 1 60); do
+    kill -0 "$APP_PID" 2> /dev/null || { echo "screenshot.sh: the app exited:" >&2; cat "$WORK/app.log" >&2; exit 2; }
+    WID="$(xdotool search --name '^receptor$' 2> /dev/null | head -1 || true)"
+    [ -n "$WID" ] && break
+    sleep 0.5
+done
+[ -n "$WID" ] || { echo "screenshot.sh: no receptor window appeared" >&2; exit 2; }
+# The demo model is small; its analysis (statistics, screening, preferred inputs) finishes
+# within a few seconds even on software rendering.
+sleep 6
+xdotool windowfocus --sync "$WID"
+# Park the pointer on the status bar so no tooltip covers the views.
+xdotool mousemove 1000 792
+
+shot() {
+    sleep 2
+    import -window root "$OUT/$1"
+    echo "wrote $OUT/$1"
+}
+
+# 1. First layer: the grid of incoming-weight maps, unit 5 selected, its weights in detail.
+xdotool key --delay 200 Right Right Right Right Right
+shot units-first-layer.png
+
+# 2. Second layer: preferred inputs in the grid, unit 2's preferred input in detail.
+xdotool key Next
+xdotool key --delay 200 Right Right
+xdotool key p
+shot deeper-unit-preferred.png
+
+# 3. Second layer, incoming weights drawn as cells over the first layer's units.
+xdotool key w
+shot deeper-unit-weights.png
+
+# 4. Sparsity and pruning view.
+xdotool key Tab
+shot sparsity-and-pruning.png
