@@ -314,7 +314,7 @@ fn tile_ui(
             visuals.text_color()
         },
     );
-    let response = response.on_hover_ui(|ui| {
+    response.on_hover_ui(|ui| {
         ui.strong(&label);
         match state.screen_of(layer, unit) {
             Some(s) => {
@@ -337,8 +337,7 @@ fn tile_ui(
         if let Some(p) = state.preferred_of(layer, unit) {
             ui.label(format!("pre-activation reached {:.4}", p.preactivation));
         }
-    });
-    response
+    })
 }
 
 /// The largest rectangle of `size`'s aspect ratio inside `outer`, centred; very flat maps
