@@ -549,3 +549,35 @@ pub fn status_words(status: Status) -> &'static str {
         Status::NonFinite => "non-finite values",
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn preferences_from_an_older_file_fall_back_to_defaults() {
+        // A saved file from an earlier version: one known field, one that no longer exists.
+        let p: Prefs = serde_json::from_str(r#"{"tile_size": 96.0, "retired_option": 3}"#).unwrap();
+        assert_eq!(p.tile_size, 96.0);
+        assert_eq!(p.sort, SortKey::Index);
+        assert_eq!(p.search, SearchSettings::default());
+        assert!(p.recent_models.is_empty());
+    }
+
+    #[test]
+    fn recent_files_are_newest_first_without_duplicates() {
+        let mut list = Vec::new();
+        for name in ["a.json", "b.json", "a.json"] {
+            Prefs::remember(&mut list, std::path::Path::new(name));
+        }
+        let names: Vec<String> = list
+            .iter()
+            .map(|p| p.file_name().unwrap().to_string_lossy().into_owned())
+            .collect();
+        assert_eq!(names, ["a.json", "b.json"]);
+        for i in 0..20 {
+            Prefs::remember(&mut list, std::path::Path::new(&format!("m{i}.json")));
+        }
+        assert_eq!(list.len(), RECENT_LIMIT);
+    }
+}
