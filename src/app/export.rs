@@ -13,18 +13,6 @@ use crate::model::Network;
 use std::path::Path;
 use std::sync::Arc;
 
-/// Columns of the screening report, as the `receptor screen` contract names them.
-pub const SCREEN_COLUMNS: [&str; 8] = [
-    "layer",
-    "unit",
-    "activation",
-    "active_frac",
-    "mean",
-    "max",
-    "upper_bound",
-    "status",
-];
-
 /// Pixels between tiles in a grid PNG.
 const GRID_GAP: u32 = 2;
 
@@ -295,7 +283,10 @@ pub fn write_screen(
     s: &ScreenResult,
     format: Format,
 ) -> std::io::Result<()> {
-    let columns: Vec<String> = SCREEN_COLUMNS.iter().map(|c| c.to_string()).collect();
+    let columns: Vec<String> = crate::cli::screen::COLUMNS
+        .iter()
+        .map(|c| c.to_string())
+        .collect();
     let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
     for u in s.rows.iter() {
         t.row(&[
