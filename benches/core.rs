@@ -29,7 +29,7 @@
 use ndarray::{Array1, Array2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
-use receptor::analysis::{Silent, forward, prefer, screen};
+use receptor::analysis::{Silent, bounds, forward, prefer, screen};
 use receptor::model::{self, Activation, InputSpec, Layer, Layout, LoadOptions, Network};
 use receptor::probe;
 use std::collections::HashMap;
@@ -326,6 +326,12 @@ fn main() -> BenchResult<()> {
             let mut src = probe::open(&probe_path, &net)?;
             Ok(probe::read_all(src.as_mut())?.inputs.len())
         },
+    )?);
+    timings.push(measure(
+        "screen_part_bounds",
+        "analysis::bounds::interval_bounds of every layer".into(),
+        runs,
+        || Ok(bounds::interval_bounds(&net)),
     )?);
     let chunk = screen_opts.chunk_rows;
     timings.push(measure(

@@ -361,6 +361,10 @@ def main():
         m, t, _rows = timed(lambda: screen(layers, low, high, d / "probe.npy"), args.runs)
         record("screen", f"10000 rows from probe.npy, chunks of {CHUNK_ROWS}", m, t)
 
+    if want("screen_part_bounds"):
+        m, t, _ = timed(lambda: interval_bounds(layers, low, high), args.runs)
+        record("screen_part_bounds", "plain interval bound propagation, float64", m, t)
+
     probe_rows = np.load(d / "probe.npy")
     if want("screen_part_read_probe"):
         m, t, _ = timed(lambda: np.load(d / "probe.npy"), args.runs)
@@ -419,7 +423,7 @@ def main():
         print()
         print("Rust time / numpy time (below 1: receptor is faster)")
         for name in ("screen", "prefer_all", "load_json", "load_safetensors",
-                     "screen_part_read_probe", "screen_part_forward"):
+                     "screen_part_read_probe", "screen_part_forward", "screen_part_bounds"):
             rr = rust["results"].get(name)
             if rr and name in results:
                 ratios[name] = rr["median_s"] / results[name]["median_s"]
