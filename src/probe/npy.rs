@@ -389,24 +389,34 @@ impl NpyProbe {
         })
     }
 
-    /// Decodes the elements in `bytes` to f32 (f64 values are rounded to nearest).
-    fn decode(h: &Header, bytes: &[u8]) -> impl Iterator<Item = f32> {
-        let size = h.dtype.size();
-        let (dtype, big) = (h.dtype, h.big_endian);
-        bytes.chunks_exact(size).map(move |b| match (dtype, big) {
-            (Dtype::F32, false) => f32::from_le_bytes([b[0], b[1], b[2], b[3]]),
-            (Dtype::F32, true) => f32::from_be_bytes([b[0], b[1], b[2], b[3]]),
-            (Dtype::F64, be) => {
-                let a = [b[0], b[1], b[2], b[3], b[4], b[5], b[6], b[7]];
-                let v = if be {
-                    f64::from_be_bytes(a)
-                } else {
-                    f64::from_le_bytes(a)
-                };
-                // A finite f64 beyond f32's range becomes infinite here and is refused below.
-                v as f32
+    /// Decodes the elements in `bytes` into `out` as f32 (f64 values are rounded to
+    /// nearest). One tight loop per dtype and byte order, so the conversion vectorises.
+    fn decode_into(h: &Header, bytes: &[u8], out: &mut [f32]) {
+        match (h.dtype, h.big_endian) {
+            (Dtype::F32, false) => {
+                for (o, b) in out.iter_mut().zip(bytes.chunks_exact(4)) {
+                    *o = f32::from_le_bytes([b[0], b[1], b[2], b[3]]);
+                }
             }
-        })
+            (Dtype::F32, true) => {
+                for (o, b) in out.iter_mut().zip(bytes.chunks_exact(4)) {
+                    *o = f32::from_be_bytes([b[0], b[1], b[2], b[3]]);
+                }
+            }
+            // A finite f64 beyond f32's range becomes infinite here and is refused later.
+            (Dtype::F64, false) => {
+                for (o, b) in out.iter_mut().zip(bytes.chunks_exact(8)) {
+                    *o =
+                        f64::from_le_bytes([b[0], b[1], b[2], b[3], b[4], b[5], b[6], b[7]]) as f32;
+                }
+            }
+            (Dtype::F64, true) => {
+                for (o, b) in out.iter_mut().zip(bytes.chunks_exact(8)) {
+                    *o =
+                        f64::from_be_bytes([b[0], b[1], b[2], b[3], b[4], b[5], b[6], b[7]]) as f32;
+                }
+            }
+        }
     }
 
     fn io_err(&self, e: std::io::Error) -> Error {
@@ -433,12 +443,13 @@ impl ProbeSource for NpyProbe {
             return Ok(None);
         }
         let size = h.dtype.size();
-        let mut inputs = Array2::<f32>::zeros((n, h.cols));
         let r0 = self.next_row;
         let mut buf = std::mem::take(&mut self.buf);
+        let mut values = vec![0f32; n * h.cols];
         if h.fortran {
             // Column-major: column c of rows r0..r0+n is one contiguous slice.
             buf.resize(n * size, 0);
+            let mut column = vec![0f32; n];
             for c in 0..h.cols {
                 let offset =
                     h.data_offset + ((c as u64) * (h.rows as u64) + r0 as u64) * size as u64;
@@ -446,8 +457,9 @@ impl ProbeSource for NpyProbe {
                     .seek(SeekFrom::Start(offset))
                     .map_err(|e| self.io_err(e))?;
                 self.file.read_exact(&mut buf).map_err(|e| self.io_err(e))?;
-                for (r, v) in Self::decode(&h, &buf).enumerate() {
-                    inputs[[r, c]] = v;
+                Self::decode_into(&h, &buf, &mut column);
+                for (r, v) in column.iter().enumerate() {
+                    values[r * h.cols + c] = *v;
                 }
             }
         } else {
@@ -457,12 +469,11 @@ impl ProbeSource for NpyProbe {
                 .seek(SeekFrom::Start(offset))
                 .map_err(|e| self.io_err(e))?;
             self.file.read_exact(&mut buf).map_err(|e| self.io_err(e))?;
-            for (dst, v) in inputs.iter_mut().zip(Self::decode(&h, &buf)) {
-                *dst = v;
-            }
+            Self::decode_into(&h, &buf, &mut values);
         }
         self.buf = buf;
-        if let Some(((r, c), v)) = inputs.indexed_iter().find(|(_, v)| !v.is_finite()) {
+        if let Some(i) = values.iter().position(|v| !v.is_finite()) {
+            let (r, c, v) = (i / h.cols, i % h.cols, values[i]);
             return Err(Error::probe(
                 &self.path,
                 format!(
@@ -471,6 +482,8 @@ impl ProbeSource for NpyProbe {
                 ),
             ));
         }
+        let inputs = Array2::from_shape_vec((n, h.cols), values)
+            .map_err(|e| Error::probe(&self.path, e.to_string()))?;
         self.next_row += n;
         Ok(Some(ProbeChunk {
             inputs,
