@@ -78,7 +78,9 @@ fn walks_down_from_a_deeper_unit_and_back() {
     let mut h = demo_app();
     wait_idle(&mut h, Duration::from_secs(60));
     h.get_by_label_contains("h2  ·  ").click();
-    h.run();
+    // Selecting h2 starts its preferred-input search (a spinner keeps repainting), so step
+    // a few frames rather than waiting for the UI to settle, then wait for the worker.
+    h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(120));
     assert_eq!(selection(&h).0, 1);
     // Deeper units show their incoming weights as cells over the layer below; clicking a
@@ -296,6 +298,11 @@ fn opening_a_second_model_cancels_the_first_and_never_mixes_results() {
         h.state().state().model.as_ref().unwrap().net.layers[0].units(),
         2048
     );
+    // Browse the 2048-unit second layer: its preferred inputs take minutes to compute, so
+    // the worker is certainly still busy when the second model is opened (the statistics
+    // and screening alone may already be done on a fast machine).
+    h.state_mut().state_mut().selection =
+        Some(receptor::app::state::Selection { layer: 1, unit: 0 });
     // Let the analysis run for a while, drawing frames as a user would see them.
     let run_until = Instant::now() + Duration::from_secs(3);
     while Instant::now() < run_until {
@@ -304,7 +311,8 @@ fn opening_a_second_model_cancels_the_first_and_never_mixes_results() {
     }
     assert!(
         h.state().is_busy(),
-        "the large model's analysis is still running"
+        "the large model's analysis should still be running (task: {:?})",
+        h.state().current_task()
     );
     eprintln!(
         "longest frame while the 784-2048-2048-10 analysis ran: {:.1} ms",
