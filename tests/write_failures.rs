@@ -36,7 +36,9 @@ impl Drop for Mount {
 }
 
 fn demo(name: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models").join(name)
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("demo-models")
+        .join(name)
 }
 
 fn forward_into(out: &Path) -> (Option<i32>, String) {
@@ -49,7 +51,10 @@ fn forward_into(out: &Path) -> (Option<i32>, String) {
         .arg(out)
         .output()
         .expect("the receptor binary runs");
-    (o.status.code(), String::from_utf8_lossy(&o.stderr).into_owned())
+    (
+        o.status.code(),
+        String::from_utf8_lossy(&o.stderr).into_owned(),
+    )
 }
 
 fn entries(dir: &Path) -> Vec<String> {
@@ -77,17 +82,35 @@ fn a_full_disk_or_a_read_only_folder_loses_nothing() {
     let (code, stderr) = forward_into(&out);
     assert_eq!(code, Some(2), "stderr: {stderr}");
     assert!(stderr.contains("outputs.csv"), "names the file: {stderr}");
-    assert!(stderr.contains("No space left on device"), "says why: {stderr}");
+    assert!(
+        stderr.contains("No space left on device"),
+        "says why: {stderr}"
+    );
     assert!(!stderr.contains("panicked"), "{stderr}");
-    assert_eq!(std::fs::read(&out).unwrap(), earlier, "the earlier file is intact");
-    assert_eq!(entries(base.path()), vec!["outputs.csv"], "no temporary file is left");
+    assert_eq!(
+        std::fs::read(&out).unwrap(),
+        earlier,
+        "the earlier file is intact"
+    );
+    assert_eq!(
+        entries(base.path()),
+        vec!["outputs.csv"],
+        "no temporary file is left"
+    );
 
     // Read-only folder: the temporary file cannot even be created.
     assert!(mount.remount_read_only(), "remount read-only");
     let (code, stderr) = forward_into(&out);
     assert_eq!(code, Some(2), "stderr: {stderr}");
     assert!(stderr.contains("outputs.csv"), "names the file: {stderr}");
-    assert!(stderr.contains("Read-only file system"), "says why: {stderr}");
-    assert_eq!(std::fs::read(&out).unwrap(), earlier, "the earlier file is intact");
+    assert!(
+        stderr.contains("Read-only file system"),
+        "says why: {stderr}"
+    );
+    assert_eq!(
+        std::fs::read(&out).unwrap(),
+        earlier,
+        "the earlier file is intact"
+    );
     assert_eq!(entries(base.path()), vec!["outputs.csv"]);
 }

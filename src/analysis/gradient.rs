@@ -281,7 +281,7 @@ fn gradient_block(
 mod tests {
     use super::*;
     use crate::analysis::forward::forward_trace;
-    use crate::model::{InputSpec, Layer, Layout};
+    use crate::model::{InputSpec, Layout};
     use approx::assert_abs_diff_eq;
     use rand::{Rng, SeedableRng};
     use rand_chacha::ChaCha8Rng;
@@ -294,19 +294,7 @@ mod tests {
             high: vec![1.0; sizes[0]],
             names: None,
         };
-        let layers = acts
-            .iter()
-            .enumerate()
-            .map(|(i, &act)| Layer {
-                name: format!("l{i}"),
-                activation: act,
-                weights: Array2::from_shape_fn((sizes[i + 1], sizes[i]), |_| {
-                    rng.random_range(-1.0f32..1.0)
-                }),
-                bias: Array1::from_shape_fn(sizes[i + 1], |_| rng.random_range(-0.3f32..0.3)),
-                labels: None,
-            })
-            .collect();
+        let layers = crate::analysis::test_nets::random_layers(rng, sizes, acts, 0.3);
         Network::new("test", "t", input, layers).expect("valid random network")
     }
 

@@ -9,6 +9,8 @@ pub mod prefer;
 pub mod prune;
 pub mod screen;
 pub mod sparsity;
+#[cfg(test)]
+mod test_nets;
 pub mod train;
 
 /// Progress reporting and cancellation for long work.

@@ -523,7 +523,7 @@ mod tests {
     use crate::analysis::bounds::interval_bounds;
     use crate::model::{Activation, InputSpec, Layer};
     use approx::assert_abs_diff_eq;
-    use ndarray::{Array1, array};
+    use ndarray::array;
     use std::sync::atomic::{AtomicUsize, Ordering};
 
     fn random_net(seed: u64, sizes: &[usize], acts: &[Activation], layout: Layout) -> Network {
@@ -541,19 +541,7 @@ mod tests {
             high,
             names: None,
         };
-        let layers = acts
-            .iter()
-            .enumerate()
-            .map(|(i, &act)| Layer {
-                name: format!("l{i}"),
-                activation: act,
-                weights: Array2::from_shape_fn((sizes[i + 1], sizes[i]), |_| {
-                    rng.random_range(-1.0f32..1.0)
-                }),
-                bias: Array1::from_shape_fn(sizes[i + 1], |_| rng.random_range(-0.5f32..0.5)),
-                labels: None,
-            })
-            .collect();
+        let layers = crate::analysis::test_nets::random_layers(&mut rng, sizes, acts, 0.5);
         Network::new("test", "t", input, layers).expect("valid")
     }
 

@@ -7,7 +7,7 @@
 use super::colour::ScaleMode;
 use super::maps;
 use super::state::{AppState, ScreenResult, StatsResult};
-use crate::cli::output::{Cell, Format, TableWriter};
+use crate::cli::output::{Cell, Format};
 use crate::error::{Error, Result};
 use crate::model::Network;
 use std::path::Path;
@@ -239,42 +239,7 @@ pub fn write_stats(
     s: &StatsResult,
     format: Format,
 ) -> std::io::Result<()> {
-    let columns: Vec<String> = crate::cli::stats::COLUMNS
-        .iter()
-        .map(|c| c.to_string())
-        .collect();
-    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
-    for u in s.units.iter().flatten() {
-        t.row(&[
-            Cell::from(u.layer.as_str()),
-            Cell::from(u.unit),
-            Cell::from(u.fan_in),
-            Cell::F64(u.l1),
-            Cell::F64(u.l2),
-            Cell::F64(u.max_abs),
-            Cell::F64(u.near_zero_frac),
-            Cell::F64(u.hoyer),
-            Cell::F64(u.gini),
-            Cell::F32(u.bias),
-        ])?;
-    }
-    let summaries = s
-        .layers
-        .iter()
-        .map(|l| {
-            vec![
-                ("layer".to_string(), Cell::from(l.layer.as_str())),
-                ("units".to_string(), Cell::from(l.units)),
-                ("fan_in".to_string(), Cell::from(l.fan_in)),
-                ("zero_tol".to_string(), Cell::F64(l.zero_tol)),
-                ("mean_hoyer".to_string(), Cell::F64(l.mean_hoyer)),
-                ("mean_gini".to_string(), Cell::F64(l.mean_gini)),
-                ("near_zero_frac".to_string(), Cell::F64(l.near_zero_frac)),
-                ("max_abs".to_string(), Cell::F64(l.max_abs)),
-            ]
-        })
-        .collect();
-    t.finish(&[("layers", Cell::Objects(summaries))])
+    crate::cli::stats::write_table(format, w, s.units.iter().flatten(), &s.layers)
 }
 
 /// The screening table, exactly the columns of `receptor screen`.
@@ -283,29 +248,17 @@ pub fn write_screen(
     s: &ScreenResult,
     format: Format,
 ) -> std::io::Result<()> {
-    let columns: Vec<String> = crate::cli::screen::COLUMNS
-        .iter()
-        .map(|c| c.to_string())
-        .collect();
-    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
-    for u in s.rows.iter() {
-        t.row(&[
-            Cell::from(u.layer.as_str()),
-            Cell::from(u.unit),
-            Cell::from(u.activation),
-            Cell::F64(u.active_frac),
-            Cell::F64(u.mean),
-            Cell::F64(u.max),
-            Cell::F64(u.upper_bound),
-            Cell::from(u.status.as_str()),
-        ])?;
-    }
     let rare = crate::analysis::screen::ScreenOptions::default().rare;
-    t.finish(&[
-        ("samples", Cell::from(s.samples)),
-        ("probe", Cell::from(s.probe.as_str())),
-        ("rare", Cell::F64(rare)),
-    ])
+    crate::cli::screen::write_table(
+        format,
+        w,
+        &s.rows,
+        &[
+            ("samples", Cell::from(s.samples)),
+            ("probe", Cell::from(s.probe.as_str())),
+            ("rare", Cell::F64(rare)),
+        ],
+    )
 }
 
 /// Enlargement for a single map so small inputs (12 x 12) give a usable picture.

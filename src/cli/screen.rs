@@ -1,10 +1,10 @@
 //! `receptor screen MODEL [--probe DATA]`: dead, rarely active, always active and saturated
 //! hidden units, on probe data and by interval bound propagation.
 
-use super::output::{Cell, Stop, TableWriter, emit};
+use super::output::{Cell, Format, Stop, TableWriter, emit};
 use super::{CommonArgs, ProbeArgs, check_fraction};
 use crate::analysis::Silent;
-use crate::analysis::screen::{ScreenOptions, ScreenReport, screen};
+use crate::analysis::screen::{ScreenOptions, ScreenReport, UnitScreen, screen};
 use crate::error::{Error, Result};
 use crate::model::Network;
 use crate::probe;
@@ -81,21 +81,7 @@ pub fn run(args: &ScreenArgs) -> Result<ExitCode> {
         args.rare,
         args.chunk_rows,
     )?;
-    let columns: Vec<String> = COLUMNS.iter().map(|c| c.to_string()).collect();
     emit(&args.common.destination(), |w| {
-        let mut t = TableWriter::begin(args.common.format, w, columns.clone(), columns)?;
-        for u in &report.units {
-            t.row(&[
-                Cell::from(u.layer.as_str()),
-                Cell::from(u.unit),
-                Cell::from(u.activation),
-                Cell::F64(u.active_frac),
-                Cell::F64(u.mean),
-                Cell::F64(u.max),
-                Cell::F64(u.upper_bound),
-                Cell::from(u.status.as_str()),
-            ])?;
-        }
         let mut extra = vec![
             ("samples", Cell::from(report.samples)),
             ("probe", Cell::from(report.probe.as_str())),
@@ -104,8 +90,33 @@ pub fn run(args: &ScreenArgs) -> Result<ExitCode> {
         if let Some(s) = seed {
             extra.push(("seed", Cell::UInt(s)));
         }
-        t.finish(&extra)?;
+        write_table(args.common.format, w, &report.units, &extra)?;
         Ok::<(), Stop>(())
     })?;
     Ok(ExitCode::SUCCESS)
+}
+
+/// Writes the `screen` table (one row per hidden unit, [`COLUMNS`]; JSON adds `extra` as
+/// top-level keys). Shared by the command and the app's export.
+pub fn write_table(
+    format: Format,
+    w: &mut dyn std::io::Write,
+    units: &[UnitScreen],
+    extra: &[(&str, Cell)],
+) -> std::io::Result<()> {
+    let columns: Vec<String> = COLUMNS.iter().map(|c| c.to_string()).collect();
+    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
+    for u in units {
+        t.row(&[
+            Cell::from(u.layer.as_str()),
+            Cell::from(u.unit),
+            Cell::from(u.activation),
+            Cell::F64(u.active_frac),
+            Cell::F64(u.mean),
+            Cell::F64(u.max),
+            Cell::F64(u.upper_bound),
+            Cell::from(u.status.as_str()),
+        ])?;
+    }
+    t.finish(extra)
 }
