@@ -394,3 +394,57 @@ fn cancel_stops_the_running_analysis() {
     h.run();
     h.get_by_label("Run again");
 }
+
+#[test]
+fn side_files_outside_the_folder_need_the_users_consent() {
+    // A model in models/ whose weights live one folder up: refused with a message, then
+    // opened once the user agrees in the window.
+    let dir = tempfile::tempdir().unwrap();
+    let models = dir.path().join("models");
+    std::fs::create_dir(&models).unwrap();
+    let w: Vec<u8> = [1.0f32, -1.0, 0.5, 2.0]
+        .iter()
+        .flat_map(|x| x.to_le_bytes())
+        .collect();
+    let view =
+        safetensors::tensor::TensorView::new(safetensors::Dtype::F32, vec![2, 2], &w).unwrap();
+    std::fs::write(
+        dir.path().join("shared.safetensors"),
+        safetensors::serialize([("h.weight", view)], None).unwrap(),
+    )
+    .unwrap();
+    let model = models.join("outside.json");
+    std::fs::write(
+        &model,
+        r#"{"schema": "receptor-model/1", "name": "outside", "input": {"size": 2},
+            "layers": [{"name": "h", "type": "dense", "activation": "relu",
+                        "weights": {"safetensors": "../shared.safetensors", "tensor": "h.weight"}},
+                       {"name": "o", "type": "dense", "activation": "softmax",
+                        "weights": [[1, 0], [0, 1]], "bias": [0, 0]}]}"#,
+    )
+    .unwrap();
+
+    let mut h = demo_app();
+    wait_idle(&mut h, Duration::from_secs(60));
+    h.state_mut().open_model(&model);
+    wait_idle(&mut h, Duration::from_secs(30));
+    let msg = h.state().state().open_error.clone().expect("refused");
+    assert!(
+        msg.contains("outside.json") && msg.contains("climbs out"),
+        "{msg}"
+    );
+    assert_eq!(
+        h.state().state().model.as_ref().unwrap().net.name,
+        "solder-joints"
+    );
+
+    h.get_by_label("Allow side files outside the model's folder and open again")
+        .click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(30));
+    assert!(h.state().state().open_error.is_none());
+    assert_eq!(
+        h.state().state().model.as_ref().unwrap().net.name,
+        "outside"
+    );
+}

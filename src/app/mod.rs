@@ -139,6 +139,8 @@ pub struct ReceptorApp {
     open_request: u64,
     /// What is being opened, for the status bar.
     opening: Option<String>,
+    /// The model file of the latest open request (to offer "open again" after an error).
+    last_open_path: Option<PathBuf>,
     /// Next probe id (probe ids are handed out at request time).
     next_probe: u64,
     /// Open the demo's probe file once the demo model is in.
@@ -170,6 +172,7 @@ impl ReceptorApp {
             task: Task::default(),
             open_request: 0,
             opening: None,
+            last_open_path: None,
             next_probe: 0,
             demo_probe_pending: false,
             dialog_open: false,
@@ -194,6 +197,7 @@ impl ReceptorApp {
     pub fn open_model(&mut self, path: &Path) {
         self.open_request += 1;
         self.opening = Some(path.display().to_string());
+        self.last_open_path = Some(path.to_path_buf());
         self.demo_probe_pending = false;
         self.worker.open_model(
             self.open_request,
@@ -1027,7 +1031,21 @@ impl eframe::App for ReceptorApp {
                             self.state.open_error = None;
                         }
                     });
-                    ui.colored_label(colour, err);
+                    ui.colored_label(colour, &err);
+                    // The importer refuses side files outside the model's folder unless the
+                    // user agrees; here the user can agree for this session.
+                    let outside = err.contains("--allow-outside-paths");
+                    if outside
+                        && !self.state.allow_outside_paths
+                        && let Some(path) = self.last_open_path.clone()
+                        && ui
+                            .button("Allow side files outside the model's folder and open again")
+                            .clicked()
+                    {
+                        self.state.allow_outside_paths = true;
+                        self.state.open_error = None;
+                        self.open_model(&path);
+                    }
                     if self.state.model.is_some() {
                         ui.weak("The model that was open stays open.");
                     }
