@@ -19,7 +19,7 @@
 
 use super::Progress;
 use super::bounds::interval_bounds_upto;
-use super::forward::forward_trace;
+use super::forward::{activate_in_place, linear};
 use crate::error::{Error, Result};
 use crate::model::{Activation, Network, SIGMOID_SATURATION_Z, TANH_SATURATION_Z};
 use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeSource};
@@ -160,15 +160,18 @@ fn is_active(act: Activation, z: f32) -> bool {
 const ACC_ROWS: usize = 256;
 
 /// Adds a chunk's `pre`, `post: [rows, units]` into `accs: [units]`.
-fn accumulate(act: Activation, pre: ArrayView2<f32>, post: ArrayView2<f32>, accs: &mut [Acc]) {
+/// Adds one chunk's pre-activations `pre: [rows, units]` to the per-unit accumulators; the
+/// activation is applied on the fly (hidden layers are element-wise), so the chunk's
+/// activations need not be stored.
+fn accumulate(act: Activation, pre: ArrayView2<f32>, accs: &mut [Acc]) {
     let units = accs.len();
     let rows = pre.nrows();
     let part = |r0: usize, r1: usize| {
         let mut local = vec![Acc::EMPTY; units];
         for r in r0..r1 {
             let zr = pre.row(r);
-            let ar = post.row(r);
-            for ((acc, &z), &a) in local.iter_mut().zip(zr.iter()).zip(ar.iter()) {
+            for (acc, &z) in local.iter_mut().zip(zr.iter()) {
+                let a = act.apply_scalar(z);
                 if !(z.is_finite() && a.is_finite()) {
                     acc.nonfinite = true;
                     continue;
@@ -275,15 +278,17 @@ pub fn screen(
         if rows == 0 {
             continue;
         }
-        if hidden > 0 {
-            let trace = forward_trace(net, chunk.inputs.view(), hidden - 1);
-            for (l, acc) in accs.iter_mut().enumerate() {
-                accumulate(
-                    net.layers[l].activation,
-                    trace.pre[l].view(),
-                    trace.post[l].view(),
-                    acc,
-                );
+        // One layer at a time: statistics from the pre-activations, then the activation in
+        // place as the next layer's input (no copy of each chunk's activations is kept).
+        let mut input: Option<ndarray::Array2<f32>> = None;
+        for (l, acc) in accs.iter_mut().enumerate() {
+            let layer = &net.layers[l];
+            let x = input.as_ref().map_or(chunk.inputs.view(), |a| a.view());
+            let mut z = linear(x, layer.weights.view(), layer.bias.view());
+            accumulate(layer.activation, z.view(), acc);
+            if l + 1 < hidden {
+                activate_in_place(layer.activation, &mut z);
+                input = Some(z);
             }
         }
         samples += rows;
