@@ -159,7 +159,6 @@ fn is_active(act: Activation, z: f32) -> bool {
 /// Rows per parallel task when accumulating a chunk.
 const ACC_ROWS: usize = 256;
 
-/// Adds a chunk's `pre`, `post: [rows, units]` into `accs: [units]`.
 /// Adds one chunk's pre-activations `pre: [rows, units]` to the per-unit accumulators; the
 /// activation is applied on the fly (hidden layers are element-wise), so the chunk's
 /// activations need not be stored.
