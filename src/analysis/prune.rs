@@ -108,17 +108,7 @@ pub fn prune_sweep(
                 format!("rows from {} have no labels", chunk.first_row),
             ));
         };
-        if chunk.inputs.ncols() != net.input.size {
-            return Err(Error::probe(
-                &describe,
-                format!(
-                    "rows from {} have {} columns but the model has {} inputs",
-                    chunk.first_row,
-                    chunk.inputs.ncols(),
-                    net.input.size
-                ),
-            ));
-        }
+        chunk.check_width(net, &describe)?;
         if labels.len() != chunk.inputs.nrows() {
             return Err(Error::probe(
                 &describe,

@@ -262,17 +262,7 @@ pub fn screen(
         if progress.cancelled() {
             return Err(Error::Cancelled);
         }
-        if chunk.inputs.ncols() != net.input.size {
-            return Err(Error::probe(
-                &describe,
-                format!(
-                    "rows from {} have {} columns but the model has {} inputs",
-                    chunk.first_row,
-                    chunk.inputs.ncols(),
-                    net.input.size
-                ),
-            ));
-        }
+        chunk.check_width(net, &describe)?;
         let rows = chunk.inputs.nrows();
         if rows == 0 {
             continue;
@@ -424,6 +414,11 @@ pub(crate) mod tests {
         grid(11)
     }
 
+    /// Screens `net` on the 11 x 11 grid probe with no progress reporting.
+    fn screen_grid(net: &Network, opts: &ScreenOptions) -> ScreenReport {
+        screen(net, &mut MemProbe::new(grid_probe(), None), opts, &Silent).expect("screen")
+    }
+
     #[test]
     fn relu_statuses_on_a_hand_built_net() {
         // Box [0, 1]^2; probe: the 10 x 10 grid over [0, 0.9]^2 (100 rows). Worked by hand:
@@ -479,20 +474,8 @@ pub(crate) mod tests {
             rare: 0.01,
             chunk_rows: c,
         };
-        let a = screen(
-            &net,
-            &mut MemProbe::new(grid_probe(), None),
-            &opts(1),
-            &Silent,
-        )
-        .expect("screen");
-        let c = screen(
-            &net,
-            &mut MemProbe::new(grid_probe(), None),
-            &opts(1000),
-            &Silent,
-        )
-        .expect("screen");
+        let a = screen_grid(&net, &opts(1));
+        let c = screen_grid(&net, &opts(1000));
         for (x, y) in a.units.iter().zip(&c.units) {
             assert_eq!(x.status, y.status);
             assert_abs_diff_eq!(x.mean, y.mean, epsilon = 1e-9);
@@ -510,13 +493,7 @@ pub(crate) mod tests {
         let w = array![[10.0, 0.0], [1.0, 0.0], [10.0, 0.0]];
         let b = array![5.0, 0.0, -5.0];
         let net = hand_net(Activation::Sigmoid, w.clone(), b.clone());
-        let r = screen(
-            &net,
-            &mut MemProbe::new(grid_probe(), None),
-            &ScreenOptions::default(),
-            &Silent,
-        )
-        .expect("screen");
+        let r = screen_grid(&net, &ScreenOptions::default());
         assert_eq!(r.units[0].status, Status::Saturated);
         assert_eq!(r.units[0].active_frac, 0.0);
         assert_eq!(r.units[1].status, Status::Ok);
@@ -524,13 +501,7 @@ pub(crate) mod tests {
         assert_abs_diff_eq!(r.units[2].active_frac, 99.0 / 121.0, epsilon = 1e-12);
         // tanh: |10 x0 - 5| < 2.1783 for x0 in (0.28217, 0.71783): x0 = 0.3..0.7, 55 rows.
         let net = hand_net(Activation::Tanh, w, b);
-        let r = screen(
-            &net,
-            &mut MemProbe::new(grid_probe(), None),
-            &ScreenOptions::default(),
-            &Silent,
-        )
-        .expect("screen");
+        let r = screen_grid(&net, &ScreenOptions::default());
         assert_eq!(r.units[0].status, Status::Saturated);
         assert_abs_diff_eq!(r.units[2].active_frac, 55.0 / 121.0, epsilon = 1e-12);
         assert_eq!(r.units[2].status, Status::Ok);
@@ -539,13 +510,7 @@ pub(crate) mod tests {
     #[test]
     fn identity_units_are_ok_with_positive_fraction() {
         let net = hand_net(Activation::Identity, array![[1.0, 0.0]], array![-0.5]);
-        let r = screen(
-            &net,
-            &mut MemProbe::new(grid_probe(), None),
-            &ScreenOptions::default(),
-            &Silent,
-        )
-        .expect("screen");
+        let r = screen_grid(&net, &ScreenOptions::default());
         assert_eq!(r.units[0].status, Status::Ok);
         assert_abs_diff_eq!(r.units[0].active_frac, 55.0 / 121.0, epsilon = 1e-12);
     }
@@ -558,13 +523,7 @@ pub(crate) mod tests {
             array![[3e38, 3e38], [1.0, 1.0]],
             array![0.0, 0.0],
         );
-        let r = screen(
-            &net,
-            &mut MemProbe::new(grid_probe(), None),
-            &ScreenOptions::default(),
-            &Silent,
-        )
-        .expect("screen");
+        let r = screen_grid(&net, &ScreenOptions::default());
         assert_eq!(r.units[0].status, Status::NonFinite);
         assert_eq!(r.units[0].status.as_str(), "non_finite");
         assert_eq!(r.units[1].status, Status::Ok);

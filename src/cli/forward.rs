@@ -42,7 +42,9 @@ pub fn run(args: &ForwardArgs) -> Result<ExitCode> {
     emit(&args.common.destination(), |w| {
         let mut t = TableWriter::begin(args.common.format, w, columns.clone(), columns)?;
         let mut cells: Vec<Cell> = Vec::with_capacity(names.len() + 2);
+        let origin = source.describe();
         while let Some(chunk) = source.next_chunk(args.chunk_rows)? {
+            chunk.check_width(&net, &origin)?;
             let out = forward(&net, chunk.inputs.view());
             let best = argmax_rows(out.view());
             for (r, row) in out.rows().into_iter().enumerate() {

@@ -26,6 +26,25 @@ pub struct ProbeChunk {
     pub first_row: usize,
 }
 
+impl ProbeChunk {
+    /// Checks that the chunk has one column per input of `net`; `origin` names the probe.
+    /// The file readers guarantee it; this guards other sources before a forward pass.
+    pub fn check_width(&self, net: &Network, origin: &str) -> Result<()> {
+        if self.inputs.ncols() == net.input.size {
+            return Ok(());
+        }
+        Err(crate::Error::probe(
+            origin,
+            format!(
+                "rows from {} have {} columns but the model has {} inputs",
+                self.first_row,
+                self.inputs.ncols(),
+                net.input.size
+            ),
+        ))
+    }
+}
+
 /// A stream of probe samples, read chunk by chunk.
 pub trait ProbeSource: Send {
     /// Where the samples come from, for messages ("probe.csv", "uniform probe ...").
