@@ -848,16 +848,13 @@ impl ReceptorApp {
                 {
                     self.actions.push(Action::OpenModelDialog);
                 }
-                ui.menu_button("Recent models", |ui| {
-                    if self.state.prefs.recent_models.is_empty() {
-                        ui.weak("none yet");
-                    }
-                    for p in self.state.prefs.recent_models.clone() {
-                        if ui.button(p.display().to_string()).clicked() {
-                            self.actions.push(Action::OpenModel(p));
-                        }
-                    }
-                });
+                recent_menu(
+                    ui,
+                    "Recent models",
+                    &self.state.prefs.recent_models,
+                    &mut self.actions,
+                    Action::OpenModel,
+                );
                 if ui.button("Open the demo model").clicked() {
                     self.actions.push(Action::OpenDemo);
                 }
@@ -868,16 +865,13 @@ impl ReceptorApp {
                 {
                     self.actions.push(Action::OpenProbeDialog);
                 }
-                ui.menu_button("Recent probe data", |ui| {
-                    if self.state.prefs.recent_probes.is_empty() {
-                        ui.weak("none yet");
-                    }
-                    for p in self.state.prefs.recent_probes.clone() {
-                        if ui.button(p.display().to_string()).clicked() {
-                            self.actions.push(Action::OpenProbe(p));
-                        }
-                    }
-                });
+                recent_menu(
+                    ui,
+                    "Recent probe data",
+                    &self.state.prefs.recent_probes,
+                    &mut self.actions,
+                    Action::OpenProbe,
+                );
                 if ui.button("Use the uniform probe").clicked() {
                     self.actions.push(Action::UniformProbe);
                 }
@@ -1103,4 +1097,24 @@ impl eframe::App for ReceptorApp {
     fn save(&mut self, storage: &mut dyn eframe::Storage) {
         eframe::set_value(storage, eframe::APP_KEY, &self.state.prefs);
     }
+}
+
+/// A submenu listing remembered files; clicking one queues `open(path)`.
+fn recent_menu(
+    ui: &mut egui::Ui,
+    title: &str,
+    files: &[PathBuf],
+    actions: &mut Vec<Action>,
+    open: fn(PathBuf) -> Action,
+) {
+    ui.menu_button(title, |ui| {
+        if files.is_empty() {
+            ui.weak("none yet");
+        }
+        for p in files {
+            if ui.button(p.display().to_string()).clicked() {
+                actions.push(open(p.clone()));
+            }
+        }
+    });
 }
