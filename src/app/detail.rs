@@ -48,50 +48,7 @@ impl DetailPanel {
             .auto_shrink([false, false])
             .show(ui, |ui| {
                 ui.add_space(4.0);
-                ui.horizontal(|ui| {
-                    if !state.history.is_empty()
-                        && ui
-                            .button("Back")
-                            .on_hover_text("Back to the unit you came from (Backspace)")
-                            .clicked()
-                        && let Some(prev) = state.history.pop()
-                    {
-                        state.selection = Some(prev);
-                    }
-                    let title = match &layer.labels {
-                        Some(_) => format!(
-                            "Unit {} of layer {} ({})",
-                            sel.unit,
-                            layer.name,
-                            layer.unit_name(sel.unit, "")
-                        ),
-                        None => format!("Unit {} of layer {}", sel.unit, layer.name),
-                    };
-                    ui.heading(title);
-                });
-                let status = match state.screen_of(sel.layer, sel.unit) {
-                    Some(s) => format!(
-                        "{} unit · {}",
-                        layer.activation.name(),
-                        super::state::status_words(s.status)
-                    ),
-                    None if sel.layer + 1 == net.layers.len() => {
-                        format!("{} output unit", layer.activation.name())
-                    }
-                    None => format!("{} unit · screening…", layer.activation.name()),
-                };
-                ui.label(status);
-                ui.add_space(4.0);
-                ui.horizontal(|ui| {
-                    ui.label("Show:");
-                    let v = &mut state.prefs.map_view;
-                    ui.selectable_value(v, MapView::Weights, "Incoming weights")
-                        .on_hover_text("W");
-                    ui.selectable_value(v, MapView::Preferred, "Preferred input")
-                        .on_hover_text("P");
-                    ui.selectable_value(v, MapView::Sensitivity, "Sensitivity")
-                        .on_hover_text("S: gradient of the pre-activation at the mean probe input");
-                });
+                header_ui(ui, state, &net, sel);
                 ui.add_space(4.0);
                 map_ui(ui, state, thumbs, &net, sel);
                 ui.add_space(6.0);
@@ -106,6 +63,55 @@ impl DetailPanel {
                 search_ui(ui, state, sel, actions);
             });
     }
+}
+
+/// Back button, the unit's name and status, and the choice of map.
+fn header_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Selection) {
+    let layer = &net.layers[sel.layer];
+    ui.horizontal(|ui| {
+        if !state.history.is_empty()
+            && ui
+                .button("Back")
+                .on_hover_text("Back to the unit you came from (Backspace)")
+                .clicked()
+            && let Some(prev) = state.history.pop()
+        {
+            state.selection = Some(prev);
+        }
+        let title = match &layer.labels {
+            Some(_) => format!(
+                "Unit {} of layer {} ({})",
+                sel.unit,
+                layer.name,
+                layer.unit_name(sel.unit, "")
+            ),
+            None => format!("Unit {} of layer {}", sel.unit, layer.name),
+        };
+        ui.heading(title);
+    });
+    let status = match state.screen_of(sel.layer, sel.unit) {
+        Some(s) => format!(
+            "{} unit · {}",
+            layer.activation.name(),
+            super::state::status_words(s.status)
+        ),
+        None if sel.layer + 1 == net.layers.len() => {
+            format!("{} output unit", layer.activation.name())
+        }
+        None => format!("{} unit · screening…", layer.activation.name()),
+    };
+    ui.label(status);
+    ui.add_space(4.0);
+    ui.horizontal(|ui| {
+        ui.label("Show:");
+        let v = &mut state.prefs.map_view;
+        ui.selectable_value(v, MapView::Weights, "Incoming weights")
+            .on_hover_text("W");
+        ui.selectable_value(v, MapView::Preferred, "Preferred input")
+            .on_hover_text("P");
+        ui.selectable_value(v, MapView::Sensitivity, "Sensitivity")
+            .on_hover_text("S: gradient of the pre-activation at the mean probe input");
+    });
 }
 
 /// What the current map shows, its values and how to scale them.

@@ -37,9 +37,9 @@ impl UnitsPanel {
             return;
         };
         let layer = state.current_layer();
-        let Some(l) = net.layers.get(layer) else {
+        if layer >= net.layers.len() {
             return;
-        };
+        }
         self.toolbar_ui(ui, state, layer);
         let order = state.order(layer);
         self.keyboard(ui, state, layer, &order);
@@ -56,6 +56,20 @@ impl UnitsPanel {
             return;
         }
 
+        self.grid_ui(ui, state, thumbs, &net, layer, &order);
+    }
+
+    /// The tiles of `layer` in `order`, row by row; only visible rows are drawn. A click
+    /// selects the unit.
+    fn grid_ui(
+        &mut self,
+        ui: &mut egui::Ui,
+        state: &mut AppState,
+        thumbs: &mut Thumbs,
+        net: &crate::model::Network,
+        layer: usize,
+        order: &[usize],
+    ) {
         let tile = state.prefs.tile_size;
         let cell = vec2(tile + GAP, tile + CAPTION + GAP);
         // Leave room for the scroll bar so the last column is never cut.
@@ -91,7 +105,7 @@ impl UnitsPanel {
                                 };
                                 let selected = selected_pos == Some(row * cols + c);
                                 let r = tile_ui(
-                                    ui, state, thumbs, &net, layer, unit, selected, cell, tile,
+                                    ui, state, thumbs, net, layer, unit, selected, cell, tile,
                                 );
                                 if r.clicked() {
                                     clicked = Some(unit);
@@ -107,7 +121,6 @@ impl UnitsPanel {
         if let Some(unit) = clicked {
             state.select(Selection { layer, unit }, false);
         }
-        let _ = l;
     }
 
     fn toolbar_ui(&mut self, ui: &mut egui::Ui, state: &mut AppState, layer: usize) {
