@@ -718,6 +718,26 @@ mod tests {
     }
 
     #[test]
+    fn search_options_saved_by_an_older_version_still_load() {
+        // Older versions saved four fields and no seed; the seed takes the core's default.
+        let p: Prefs = serde_json::from_str(
+            r#"{"search": {"steps": 50, "restarts": 3, "l2": 0.5, "tv": 0.0}}"#,
+        )
+        .unwrap();
+        let want = PreferOptions {
+            steps: 50,
+            restarts: 3,
+            l2: 0.5,
+            ..PreferOptions::default()
+        };
+        assert_eq!(p.search, want);
+        // And what is saved now loads back the same.
+        let text = serde_json::to_string(&p).unwrap();
+        let back: Prefs = serde_json::from_str(&text).unwrap();
+        assert_eq!(back.search, want);
+    }
+
+    #[test]
     fn recent_files_are_newest_first_without_duplicates() {
         let mut list = Vec::new();
         for name in ["a.json", "b.json", "a.json"] {
