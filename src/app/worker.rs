@@ -2,6 +2,10 @@
 //! and results back over a channel, each tagged with the model and probe it was computed
 //! for. Opening files runs on short-lived threads of its own so a slow file never waits
 //! behind an analysis. The frame loop only drains the channel; it never computes.
+//!
+//! The worker is a plain scheduler: each job is a call into the core (`analysis/`,
+//! `probe/`) with the same functions and defaults the command line uses, and its result is
+//! sent back as it is.
 
 use super::state::{ActivityResult, OpenProbe, ScreenResult, Sensitivity, StatsResult, Tag};
 use crate::analysis::activity::{ActivityOptions, trace_activity};
