@@ -277,6 +277,46 @@ fn gradient_block(
     gemm_into(&mut grad, dcur, net.layers[0].weights.view(), false);
 }
 
+/// The sensitivity maps of one layer: the gradient of each unit's pre-activation with
+/// respect to the input, all taken at the same input point.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Sensitivity {
+    /// `dz_u/dx` of unit `u` in row `u`: `[units, inputs]`.
+    pub maps: Array2<f32>,
+    /// The largest finite `|dz_u/dx_i|` over the whole layer (0 when there is none), for a
+    /// colour scale shared by the layer's maps.
+    pub max_abs: f32,
+}
+
+/// Gradients of every unit of `layer` at the input `at: [input size]` (the app evaluates
+/// them at the mean probe input).
+///
+/// # Errors
+/// A usage error when `layer` is not a layer index or `at` does not have one value per
+/// input.
+pub fn sensitivity(net: &Network, layer: usize, at: &[f32]) -> Result<Sensitivity> {
+    let units = net
+        .layers
+        .get(layer)
+        .ok_or_else(|| Error::usage(format!("there is no layer {layer}")))?
+        .units();
+    if at.len() != net.input.size {
+        return Err(Error::usage(format!(
+            "the sensitivity point has {} values but the model has {} inputs",
+            at.len(),
+            net.input.size
+        )));
+    }
+    let x = Array2::from_shape_fn((units, at.len()), |(_, i)| at[i]);
+    let ids: Vec<usize> = (0..units).collect();
+    let (_, maps) = input_gradient(net, layer, &ids, x.view());
+    let max_abs = maps
+        .iter()
+        .filter(|v| v.is_finite())
+        .fold(0.0f32, |m, v| m.max(v.abs()));
+    Ok(Sensitivity { maps, max_abs })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -399,5 +439,33 @@ mod tests {
         let (z, g) = input_gradient(&net, 1, &[0], x.view());
         assert_eq!(z.len(), 0);
         assert_eq!(g.dim(), (0, 3));
+    }
+
+    #[test]
+    fn first_layer_sensitivity_is_the_weight_matrix() {
+        // z_u = w_u . x + b_u, so dz_u/dx = w_u at every point (closed form).
+        let mut rng = ChaCha8Rng::seed_from_u64(30);
+        let net = random_net(
+            &mut rng,
+            &[6, 4, 3],
+            &[Activation::Tanh, Activation::Identity],
+        );
+        let at = [0.1f32, -0.2, 0.3, 0.0, 0.5, -0.9];
+        let s = sensitivity(&net, 0, &at).unwrap();
+        assert_eq!(s.maps, net.layers[0].weights);
+        let want = net.layers[0]
+            .weights
+            .iter()
+            .fold(0.0f32, |m, w| m.max(w.abs()));
+        assert_eq!(s.max_abs, want);
+        // A deeper layer: each row is the gradient of that unit at `at`.
+        let s = sensitivity(&net, 1, &at).unwrap();
+        let x = ndarray::Array2::from_shape_fn((1, 6), |(_, i)| at[i]);
+        for u in 0..3 {
+            let (_, g) = input_gradient(&net, 1, &[u], x.view());
+            assert_eq!(s.maps.row(u), g.row(0));
+        }
+        assert!(sensitivity(&net, 2, &at).is_err());
+        assert!(sensitivity(&net, 0, &at[..5]).is_err());
     }
 }

@@ -1,7 +1,9 @@
-//! The analysis core: forward and backward passes, preferred inputs, sparsity statistics,
-//! interval bounds, screening for dead units and magnitude pruning. Takes `&Network` and
+//! The analysis core: forward and backward passes, preferred inputs, sensitivity, sparsity
+//! statistics and |w| histograms, per-unit activity over a probe, interval bounds,
+//! screening for dead units and magnitude pruning. Takes `&Network` and
 //! arrays, never paths; nothing here depends on the GUI.
 
+pub mod activity;
 pub mod bounds;
 pub mod forward;
 pub mod gradient;

@@ -11,6 +11,9 @@ use crate::error::{Error, Result};
 use crate::model::Network;
 use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeSource};
 
+/// The pruned fractions of a sweep unless told otherwise (0 to 0.9 in steps of 0.1).
+pub const DEFAULT_SWEEP_FRACTIONS: [f64; 10] = [0.0, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9];
+
 /// One point of a pruning sweep.
 #[derive(Debug, Clone, PartialEq)]
 pub struct SweepPoint {

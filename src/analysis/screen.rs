@@ -88,11 +88,15 @@ pub struct UnitScreen {
     pub status: Status,
 }
 
+/// Active fraction below which a unit is `rarely_active` (rectifiers) or `saturated`
+/// (sigmoid, tanh) unless told otherwise.
+pub const DEFAULT_RARE_FRACTION: f64 = 0.01;
+
 /// Options of [`screen`].
 #[derive(Debug, Clone, PartialEq)]
 pub struct ScreenOptions {
     /// Active fraction below which a rectifier is `rarely_active` and a sigmoid/tanh unit
-    /// is `saturated` (default 0.01).
+    /// is `saturated` (default [`DEFAULT_RARE_FRACTION`]).
     pub rare: f64,
     /// Probe rows per forward pass (default [`DEFAULT_CHUNK_ROWS`]).
     pub chunk_rows: usize,
@@ -101,7 +105,7 @@ pub struct ScreenOptions {
 impl Default for ScreenOptions {
     fn default() -> Self {
         ScreenOptions {
-            rare: 0.01,
+            rare: DEFAULT_RARE_FRACTION,
             chunk_rows: DEFAULT_CHUNK_ROWS,
         }
     }

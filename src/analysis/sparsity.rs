@@ -196,6 +196,96 @@ pub fn all_stats(net: &Network, zero_tol: Option<f64>) -> (Vec<UnitStats>, Vec<L
     (all, summaries)
 }
 
+/// Bins of each log10 |w| histogram made by [`magnitude_histogram`].
+pub const MAGNITUDE_BINS: usize = 60;
+
+/// Histogram of log10 |w| for one layer (exact zeros counted apart, they have no log).
+#[derive(Debug, Clone, PartialEq)]
+pub struct MagnitudeHistogram {
+    /// Left edge of bin 0, in log10 units.
+    pub start: f64,
+    /// Bin width in log10 units.
+    pub width: f64,
+    /// Weights per bin, `[MAGNITUDE_BINS]` (empty when every weight is 0).
+    pub counts: Vec<u64>,
+    /// Weights that are exactly 0.
+    pub zeros: u64,
+}
+
+/// Histogram of log10 |w| with [`MAGNITUDE_BINS`] equal-width bins between the smallest
+/// and largest non-zero magnitude (the last bin closed); exact zeros are counted apart.
+/// With no non-zero weight, `counts` is empty.
+pub fn magnitude_histogram<'a>(
+    weights: impl Iterator<Item = &'a f32> + Clone,
+) -> MagnitudeHistogram {
+    let mut lo = f64::INFINITY;
+    let mut hi = f64::NEG_INFINITY;
+    let mut zeros = 0u64;
+    for w in weights.clone() {
+        let a = f64::from(w.abs());
+        if a == 0.0 {
+            zeros += 1;
+        } else {
+            let l = a.log10();
+            lo = lo.min(l);
+            hi = hi.max(l);
+        }
+    }
+    if !lo.is_finite() {
+        return MagnitudeHistogram {
+            start: 0.0,
+            width: 1.0,
+            counts: Vec::new(),
+            zeros,
+        };
+    }
+    let span = (hi - lo).max(1e-6);
+    let width = span / MAGNITUDE_BINS as f64;
+    let mut counts = vec![0u64; MAGNITUDE_BINS];
+    for w in weights {
+        let a = f64::from(w.abs());
+        if a > 0.0 {
+            let b = (((a.log10() - lo) / width) as usize).min(MAGNITUDE_BINS - 1);
+            counts[b] += 1;
+        }
+    }
+    MagnitudeHistogram {
+        start: lo,
+        width,
+        counts,
+        zeros,
+    }
+}
+
+/// The sparsity of a whole network, grouped by layer: what `receptor stats` reports, plus
+/// each layer's |w| histogram.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NetworkSparsity {
+    /// `units[l][u]`: statistics of unit `u` of layer `l`.
+    pub units: Vec<Vec<UnitStats>>,
+    /// One summary per layer.
+    pub layers: Vec<LayerSummary>,
+    /// Per layer, the histogram of log10 |w| over its whole weight matrix.
+    pub magnitude: Vec<MagnitudeHistogram>,
+}
+
+/// Statistics and |w| histograms of every layer; `zero_tol` as in [`layer_stats`].
+pub fn network_sparsity(net: &Network, zero_tol: Option<f64>) -> NetworkSparsity {
+    let (units, layers) = (0..net.layers.len())
+        .map(|l| layer_stats(net, l, zero_tol))
+        .unzip();
+    let magnitude = net
+        .layers
+        .iter()
+        .map(|l| magnitude_histogram(l.weights.iter()))
+        .collect();
+    NetworkSparsity {
+        units,
+        layers,
+        magnitude,
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -328,5 +418,15 @@ mod tests {
         assert_eq!(all[2].near_zero_frac, 1.0);
         assert_eq!(all[2].hoyer, 1.0);
         assert_eq!(all[2].gini, 1.0);
+    }
+
+    #[test]
+    fn magnitude_histogram_counts_every_weight() {
+        let w = [0.0f32, 0.001, -0.01, 0.1, -1.0, 0.0];
+        let h = magnitude_histogram(w.iter());
+        assert_eq!(h.zeros, 2);
+        assert_eq!(h.counts.iter().sum::<u64>(), 4);
+        // 0.001 is not exact in f32 (0.0010000000475), so log10 is -3 only to about 2e-8.
+        approx::assert_abs_diff_eq!(h.start, -3.0, epsilon = 1e-6);
     }
 }

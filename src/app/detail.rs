@@ -48,50 +48,7 @@ impl DetailPanel {
             .auto_shrink([false, false])
             .show(ui, |ui| {
                 ui.add_space(4.0);
-                ui.horizontal(|ui| {
-                    if !state.history.is_empty()
-                        && ui
-                            .button("Back")
-                            .on_hover_text("Back to the unit you came from (Backspace)")
-                            .clicked()
-                        && let Some(prev) = state.history.pop()
-                    {
-                        state.selection = Some(prev);
-                    }
-                    let title = match &layer.labels {
-                        Some(_) => format!(
-                            "Unit {} of layer {} ({})",
-                            sel.unit,
-                            layer.name,
-                            layer.unit_name(sel.unit, "")
-                        ),
-                        None => format!("Unit {} of layer {}", sel.unit, layer.name),
-                    };
-                    ui.heading(title);
-                });
-                let status = match state.screen_of(sel.layer, sel.unit) {
-                    Some(s) => format!(
-                        "{} unit · {}",
-                        layer.activation.name(),
-                        super::state::status_words(s.status)
-                    ),
-                    None if sel.layer + 1 == net.layers.len() => {
-                        format!("{} output unit", layer.activation.name())
-                    }
-                    None => format!("{} unit · screening…", layer.activation.name()),
-                };
-                ui.label(status);
-                ui.add_space(4.0);
-                ui.horizontal(|ui| {
-                    ui.label("Show:");
-                    let v = &mut state.prefs.map_view;
-                    ui.selectable_value(v, MapView::Weights, "Incoming weights")
-                        .on_hover_text("W");
-                    ui.selectable_value(v, MapView::Preferred, "Preferred input")
-                        .on_hover_text("P");
-                    ui.selectable_value(v, MapView::Sensitivity, "Sensitivity")
-                        .on_hover_text("S: gradient of the pre-activation at the mean probe input");
-                });
+                header_ui(ui, state, &net, sel);
                 ui.add_space(4.0);
                 map_ui(ui, state, thumbs, &net, sel);
                 ui.add_space(6.0);
@@ -106,6 +63,55 @@ impl DetailPanel {
                 search_ui(ui, state, sel, actions);
             });
     }
+}
+
+/// Back button, the unit's name and status, and the choice of map.
+fn header_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Selection) {
+    let layer = &net.layers[sel.layer];
+    ui.horizontal(|ui| {
+        if !state.history.is_empty()
+            && ui
+                .button("Back")
+                .on_hover_text("Back to the unit you came from (Backspace)")
+                .clicked()
+            && let Some(prev) = state.history.pop()
+        {
+            state.selection = Some(prev);
+        }
+        let title = match &layer.labels {
+            Some(_) => format!(
+                "Unit {} of layer {} ({})",
+                sel.unit,
+                layer.name,
+                layer.unit_name(sel.unit, "")
+            ),
+            None => format!("Unit {} of layer {}", sel.unit, layer.name),
+        };
+        ui.heading(title);
+    });
+    let status = match state.screen_of(sel.layer, sel.unit) {
+        Some(s) => format!(
+            "{} unit · {}",
+            layer.activation.name(),
+            super::state::status_words(s.status)
+        ),
+        None if sel.layer + 1 == net.layers.len() => {
+            format!("{} output unit", layer.activation.name())
+        }
+        None => format!("{} unit · screening…", layer.activation.name()),
+    };
+    ui.label(status);
+    ui.add_space(4.0);
+    ui.horizontal(|ui| {
+        ui.label("Show:");
+        let v = &mut state.prefs.map_view;
+        ui.selectable_value(v, MapView::Weights, "Incoming weights")
+            .on_hover_text("W");
+        ui.selectable_value(v, MapView::Preferred, "Preferred input")
+            .on_hover_text("P");
+        ui.selectable_value(v, MapView::Sensitivity, "Sensitivity")
+            .on_hover_text("S: gradient of the pre-activation at the mean probe input");
+    });
 }
 
 /// What the current map shows, its values and how to scale them.
@@ -155,14 +161,17 @@ fn map_data(state: &AppState, net: &Network, sel: Selection) -> Result<MapData, 
                 })
             }
         },
-        MapView::Sensitivity => match state.results.sensitivity.get(&sel.layer) {
-            Some((g, layer_max)) => {
-                let row = g.row(sel.unit).to_vec();
-                let m = scale_mode.pick(maps::max_abs(&row), *layer_max);
-                Ok(MapData::SignedInput(row, m, "dz/dx"))
+        MapView::Sensitivity => {
+            let slot = state.results.sensitivity_of(sel.layer);
+            match slot.and_then(|s| s.as_ref()) {
+                Some(s) => {
+                    let row = s.maps.row(sel.unit).to_vec();
+                    let m = scale_mode.pick(maps::max_abs(&row), s.max_abs);
+                    Ok(MapData::SignedInput(row, m, "dz/dx"))
+                }
+                None => Err("Computing the sensitivity at the mean probe input…".into()),
             }
-            None => Err("Computing the sensitivity at the mean probe input…".into()),
-        },
+        }
     }
 }
 
@@ -189,6 +198,7 @@ fn image_of(data: &MapData, net: &Network) -> egui::ColorImage {
     }
 }
 
+/// The large map of the selected unit with its colour key and a caption.
 fn map_ui(
     ui: &mut egui::Ui,
     state: &mut AppState,
@@ -199,31 +209,14 @@ fn map_ui(
     let data = match map_data(state, net, sel) {
         Ok(d) => d,
         Err(msg) => {
-            let (r, _) = ui
-                .allocate_exact_size(vec2(ui.available_width().min(320.0), 160.0), Sense::hover());
-            ui.painter()
-                .rect_filled(r, 2.0, ui.visuals().extreme_bg_color);
-            ui.painter().text(
-                r.center(),
-                egui::Align2::CENTER_CENTER,
-                msg,
-                egui::TextStyle::Body.resolve(ui.style()),
-                ui.visuals().weak_text_color(),
-            );
+            map_placeholder_ui(ui, msg);
             return;
         }
-    };
-    let shared = state.prefs.scale == colour::ScaleMode::SharedLayer;
-    let kind = match (&data, state.prefs.map_view) {
-        (MapData::Cells(..), _) => ThumbKind::Cells(shared),
-        (_, MapView::Weights) => ThumbKind::Weights(shared),
-        (_, MapView::Preferred) => ThumbKind::Preferred,
-        (_, MapView::Sensitivity) => ThumbKind::Sensitivity(shared),
     };
     let key = ThumbKey {
         layer: sel.layer,
         unit: sel.unit,
-        kind,
+        kind: thumb_kind(state, &data),
     };
     let Some(tex) = thumbs.get(ui.ctx(), key, false, || Some(image_of(&data, net))) else {
         return;
@@ -238,78 +231,120 @@ fn map_ui(
         size * s
     };
     ui.horizontal_top(|ui| {
-        let (rect, resp) = ui.allocate_exact_size(draw, Sense::click());
-        ui.painter().image(
-            tex.id(),
-            rect,
-            Rect::from_min_max(pos2(0.0, 0.0), pos2(1.0, 1.0)),
-            Color32::WHITE,
-        );
-        ui.painter().rect_stroke(
-            rect,
-            0.0,
-            ui.visuals().widgets.noninteractive.bg_stroke,
-            egui::StrokeKind::Outside,
-        );
-        let label = format!("map of {} unit {}", net.layers[sel.layer].name, sel.unit);
-        resp.widget_info(|| egui::WidgetInfo::labeled(egui::Role::Image, true, &label));
-        // Hover: which pixel (or lower unit) and its value.
-        if let Some(p) = resp.hover_pos() {
-            let fx = ((p.x - rect.left()) / rect.width() * size.x).floor();
-            let fy = ((p.y - rect.top()) / rect.height() * size.y).floor();
-            if fx >= 0.0 && fy >= 0.0 {
-                let (x, y) = (fx as usize, fy as usize);
-                let text = hover_text(&data, net, sel, x, y);
-                if let Some(t) = &text {
-                    egui::Tooltip::always_open(
-                        ui.ctx().clone(),
-                        ui.layer_id(),
-                        resp.id.with("hover"),
-                        egui::PopupAnchor::Pointer,
-                    )
-                    .show(|ui| ui.label(t));
-                }
-                if let MapData::Cells(w, _) = &data {
-                    let cols = maps::cell_columns(w.len());
-                    let i = y * cols + x;
-                    if resp.clicked() && x < cols && i < w.len() && sel.layer > 0 {
-                        state.select(
-                            Selection {
-                                layer: sel.layer - 1,
-                                unit: i,
-                            },
-                            true,
-                        );
-                    }
-                }
-            }
-        }
-        let height = draw.y.max(140.0);
-        match &data {
-            MapData::SignedInput(_, m, what) => {
-                colour::legend_ui_with(
-                    ui,
-                    ColourKey::standard(),
-                    *m,
-                    what,
-                    LegendOrientation::Vertical,
-                    height - 40.0,
-                );
-            }
-            MapData::Cells(_, m) => {
-                colour::legend_ui_with(
-                    ui,
-                    ColourKey::standard(),
-                    *m,
-                    "weight",
-                    LegendOrientation::Vertical,
-                    height - 40.0,
-                );
-            }
-            MapData::Input(_) => grey_key_ui(ui, net, height - 40.0),
-        }
+        map_picture_ui(ui, state, &tex, draw, &data, net, sel);
+        map_key_ui(ui, &data, net, draw.y.max(140.0) - 40.0);
     });
-    match &data {
+    map_caption_ui(ui, &data, net, sel);
+}
+
+/// A grey box with the reason the map is not there (yet).
+fn map_placeholder_ui(ui: &mut egui::Ui, msg: String) {
+    let (r, _) =
+        ui.allocate_exact_size(vec2(ui.available_width().min(320.0), 160.0), Sense::hover());
+    ui.painter()
+        .rect_filled(r, 2.0, ui.visuals().extreme_bg_color);
+    ui.painter().text(
+        r.center(),
+        egui::Align2::CENTER_CENTER,
+        msg,
+        egui::TextStyle::Body.resolve(ui.style()),
+        ui.visuals().weak_text_color(),
+    );
+}
+
+/// Which cached texture the map is (each kind and scale is cached apart).
+fn thumb_kind(state: &AppState, data: &MapData) -> ThumbKind {
+    let shared = state.prefs.scale == colour::ScaleMode::SharedLayer;
+    match (data, state.prefs.map_view) {
+        (MapData::Cells(..), _) => ThumbKind::Cells(shared),
+        (_, MapView::Weights) => ThumbKind::Weights(shared),
+        (_, MapView::Preferred) => ThumbKind::Preferred,
+        (_, MapView::Sensitivity) => ThumbKind::Sensitivity(shared),
+    }
+}
+
+/// The map picture drawn at `draw` size, with the value under the pointer and, on a grid
+/// of lower units, a click that walks down to the clicked unit.
+fn map_picture_ui(
+    ui: &mut egui::Ui,
+    state: &mut AppState,
+    tex: &egui::TextureHandle,
+    draw: egui::Vec2,
+    data: &MapData,
+    net: &Network,
+    sel: Selection,
+) {
+    let size = tex.size_vec2();
+    let (rect, resp) = ui.allocate_exact_size(draw, Sense::click());
+    ui.painter().image(
+        tex.id(),
+        rect,
+        Rect::from_min_max(pos2(0.0, 0.0), pos2(1.0, 1.0)),
+        Color32::WHITE,
+    );
+    ui.painter().rect_stroke(
+        rect,
+        0.0,
+        ui.visuals().widgets.noninteractive.bg_stroke,
+        egui::StrokeKind::Outside,
+    );
+    let label = format!("map of {} unit {}", net.layers[sel.layer].name, sel.unit);
+    resp.widget_info(|| egui::WidgetInfo::labeled(egui::Role::Image, true, &label));
+    // Hover: which pixel (or lower unit) and its value.
+    let Some(p) = resp.hover_pos() else {
+        return;
+    };
+    let fx = ((p.x - rect.left()) / rect.width() * size.x).floor();
+    let fy = ((p.y - rect.top()) / rect.height() * size.y).floor();
+    if fx < 0.0 || fy < 0.0 {
+        return;
+    }
+    let (x, y) = (fx as usize, fy as usize);
+    if let Some(t) = hover_text(data, net, sel, x, y) {
+        egui::Tooltip::always_open(
+            ui.ctx().clone(),
+            ui.layer_id(),
+            resp.id.with("hover"),
+            egui::PopupAnchor::Pointer,
+        )
+        .show(|ui| ui.label(t));
+    }
+    if let MapData::Cells(w, _) = data {
+        let cols = maps::cell_columns(w.len());
+        let i = y * cols + x;
+        if resp.clicked() && x < cols && i < w.len() && sel.layer > 0 {
+            state.select(
+                Selection {
+                    layer: sel.layer - 1,
+                    unit: i,
+                },
+                true,
+            );
+        }
+    }
+}
+
+/// The key beside the map, `length` points long: the signed colour key, or the grey ramp
+/// of input pictures.
+fn map_key_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, length: f32) {
+    let (m, what) = match data {
+        MapData::SignedInput(_, m, what) => (*m, *what),
+        MapData::Cells(_, m) => (*m, "weight"),
+        MapData::Input(_) => return grey_key_ui(ui, net, length),
+    };
+    colour::legend_ui_with(
+        ui,
+        ColourKey::standard(),
+        m,
+        what,
+        LegendOrientation::Vertical,
+        length,
+    );
+}
+
+/// One line under the map saying how to read it.
+fn map_caption_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, sel: Selection) {
+    match data {
         MapData::Cells(w, _) => {
             ui.weak(format!(
                 "One cell per unit of layer {} ({} cells, row by row). Click a cell to go to that unit.",
@@ -711,8 +746,8 @@ fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &
                     );
                     ui.end_row();
                 });
-            let used = state.results.preferred.get(&sel.layer).map(|p| p.settings);
-            let differs = used.is_some_and(|u| u != state.prefs.search);
+            let used = state.results.preferred.get(&sel.layer).map(|p| &p.settings);
+            let differs = used.is_some_and(|u| *u != state.prefs.search);
             let text = if differs {
                 "Search this layer again with these settings"
             } else {

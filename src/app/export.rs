@@ -100,8 +100,8 @@ pub fn default_file_name(kind: ExportKind, state: &AppState) -> String {
 /// True when the data for `kind` is there.
 pub fn available(kind: ExportKind, state: &AppState) -> bool {
     match kind {
-        ExportKind::StatsCsv | ExportKind::StatsJson => state.results.stats.is_some(),
-        ExportKind::ScreenCsv | ExportKind::ScreenJson => state.results.screen.is_some(),
+        ExportKind::StatsCsv | ExportKind::StatsJson => state.results.stats.is_ready(),
+        ExportKind::ScreenCsv | ExportKind::ScreenJson => state.results.screen.is_ready(),
         ExportKind::MapPng => super::detail::current_map(state).is_some(),
         ExportKind::GridPng | ExportKind::PrunedModel => state.model.is_some(),
     }
@@ -144,7 +144,7 @@ pub fn prepare(
             let s = state
                 .results
                 .stats
-                .clone()
+                .ready()
                 .ok_or_else(|| missing("the statistics are still being computed"))?;
             Ok(ExportData::Stats(
                 s,
@@ -159,7 +159,7 @@ pub fn prepare(
             let s = state
                 .results
                 .screen
-                .clone()
+                .ready()
                 .ok_or_else(|| missing("screening is still running"))?;
             Ok(ExportData::Screen(
                 s,
@@ -180,7 +180,7 @@ pub fn prepare(
                 .ok_or_else(|| missing("no model is open"))?;
             let layer = state.current_layer();
             let order = match &state.order_cache {
-                Some((k, o)) if k.layer == layer && k.tag == state.tag => o.to_vec(),
+                Some((k, o)) if k.layer == layer && k.tag == state.tag() => o.to_vec(),
                 _ => (0..net.layers[layer].units()).collect(),
             };
             let preferred = match state.results.preferred.get(&layer) {

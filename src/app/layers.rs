@@ -4,7 +4,7 @@
 use super::Action;
 use super::state::{AppState, Selection};
 use crate::analysis::screen::Status;
-use crate::model::Layout;
+use crate::model::{Layout, Network};
 
 /// Counts of the problem statuses in one layer.
 #[derive(Debug, Default, Clone, Copy, PartialEq, Eq)]
@@ -58,82 +58,95 @@ pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
                 ui.label(egui::RichText::new(d).small()).on_hover_text(d);
             }
             ui.add_space(4.0);
-            let layout = match net.input.layout {
-                Layout::Image {
-                    height,
-                    width,
-                    channels,
-                } => format!(
-                    "{height} × {width} {}",
-                    if channels == 3 {
-                        "colour image"
-                    } else {
-                        "image"
-                    }
-                ),
-                Layout::Vector => "feature vector".to_string(),
-            };
-            ui.label(format!("Input: {} values, {layout}", net.input.size));
-            ui.label(format!(
-                "Input box: {}",
-                box_range(&net.input.low, &net.input.high)
-            ))
-            .on_hover_text(
-                "The box [low, high] used by the preferred-input search and the bounds.",
-            );
-            match &state.probe {
-                Some(p) => {
-                    let labelled = if p.labelled() { ", labelled" } else { "" };
-                    ui.label(format!(
-                        "Probe: {} ({} samples{labelled})",
-                        short_origin(&p.data.origin),
-                        p.data.inputs.nrows()
-                    ))
-                    .on_hover_text(&p.data.origin);
-                }
-                None => {
-                    ui.label("Probe: reading…");
-                }
-            }
-            ui.horizontal(|ui| {
-                if ui.small_button("Open probe data…").clicked() {
-                    actions.push(Action::OpenProbeDialog);
-                }
-                if state.probe.as_ref().is_some_and(|p| p.path.is_some())
-                    && ui.small_button("Use uniform probe").clicked()
-                {
-                    actions.push(Action::UniformProbe);
-                }
-            });
+            input_ui(ui, &net);
+            probe_ui(ui, state, actions);
             ui.separator();
             ui.strong("Layers");
             ui.add_space(2.0);
-            let current = state.current_layer();
-            let last = net.layers.len().saturating_sub(1);
-            for (i, l) in net.layers.iter().enumerate() {
-                let selected = i == current;
-                let title = format!(
-                    "{}  ·  {} units  ·  {}",
-                    l.name,
-                    l.units(),
-                    l.activation.name()
-                );
-                let resp = ui.add(egui::Button::selectable(
-                    selected,
-                    egui::RichText::new(&title).strong(),
-                ));
-                if resp.clicked() && !selected {
-                    state.select(Selection { layer: i, unit: 0 }, false);
-                }
-                let summary = summary_line(state, i, i == last);
-                ui.indent(("layer-health", i), |ui| {
-                    for line in summary {
-                        ui.label(egui::RichText::new(line).small());
-                    }
-                });
-                ui.add_space(4.0);
+            layer_list_ui(ui, state, &net);
+        });
+}
+
+/// The input's size, layout and box.
+fn input_ui(ui: &mut egui::Ui, net: &Network) {
+    let layout = match net.input.layout {
+        Layout::Image {
+            height,
+            width,
+            channels,
+        } => format!(
+            "{height} × {width} {}",
+            if channels == 3 {
+                "colour image"
+            } else {
+                "image"
+            }
+        ),
+        Layout::Vector => "feature vector".to_string(),
+    };
+    ui.label(format!("Input: {} values, {layout}", net.input.size));
+    ui.label(format!(
+        "Input box: {}",
+        box_range(&net.input.low, &net.input.high)
+    ))
+    .on_hover_text("The box [low, high] used by the preferred-input search and the bounds.");
+}
+
+/// The probe in use, with buttons to open another or go back to the uniform one.
+fn probe_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) {
+    match &state.probe {
+        Some(p) => {
+            let labelled = if p.labelled() { ", labelled" } else { "" };
+            ui.label(format!(
+                "Probe: {} ({} samples{labelled})",
+                short_origin(&p.data.origin),
+                p.data.inputs.nrows()
+            ))
+            .on_hover_text(&p.data.origin);
+        }
+        None => {
+            ui.label("Probe: reading…");
+        }
+    }
+    ui.horizontal(|ui| {
+        if ui.small_button("Open probe data…").clicked() {
+            actions.push(Action::OpenProbeDialog);
+        }
+        if state.probe.as_ref().is_some_and(|p| p.path.is_some())
+            && ui.small_button("Use uniform probe").clicked()
+        {
+            actions.push(Action::UniformProbe);
+        }
+    });
+}
+
+/// One selectable entry per layer, each with its health summary.
+fn layer_list_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network) {
+    let current = state.current_layer();
+    let last = net.layers.len().saturating_sub(1);
+    for (i, l) in net.layers.iter().enumerate() {
+        let selected = i == current;
+        let title = format!(
+            "{}  ·  {} units  ·  {}",
+            l.name,
+            l.units(),
+            l.activation.name()
+        );
+        let resp = ui.add(egui::Button::selectable(
+            selected,
+            egui::RichText::new(&title).strong(),
+        ));
+        if resp.clicked() && !selected {
+            state.select(Selection { layer: i, unit: 0 }, false);
+        }
+        let summary = summary_line(state, i, i == last);
+        ui.indent(("layer-health", i), |ui| {
+            for line in summary {
+                ui.label(egui::RichText::new(line).small());
             }
         });
+        ui.add_space(4.0);
+    }
 }
 
 /// The health summary of a layer, as short lines.

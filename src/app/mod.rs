@@ -8,8 +8,10 @@
 pub mod colour;
 pub mod detail;
 pub mod export;
+mod jobs;
 pub mod layers;
 pub mod maps;
+pub mod menu;
 pub mod sparsity;
 pub mod state;
 pub mod statusbar;
@@ -20,12 +22,12 @@ pub mod worker;
 pub use export::ExportKind;
 
 use crate::model::LoadOptions;
-use state::{AppState, MainView, MapView, OpenModel, Prefs, Selection, Tag};
+use state::{AppState, MainView, MapView, Prefs, Selection};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
-use worker::{Job, ModelSource, ProbeChoice, Reply, Worker};
+use worker::{ModelSource, ProbeChoice, Reply, Worker};
 
 /// The bundled demo model, compiled in so `receptor` with no argument always has a model.
 const DEMO_JSON: &str = include_str!("../../demo-models/solder-joints.json");
@@ -117,15 +119,6 @@ pub enum Action {
     Quit,
 }
 
-/// The running job as the status bar shows it.
-#[derive(Debug, Clone, Default)]
-pub struct Task {
-    /// What runs now, empty when idle.
-    pub title: String,
-    /// Fraction done.
-    pub fraction: f32,
-}
-
 /// The app: state, worker, texture cache and panels.
 pub struct ReceptorApp {
     state: AppState,
@@ -134,23 +127,11 @@ pub struct ReceptorApp {
     units: units::UnitsPanel,
     detail: detail::DetailPanel,
     sparsity: sparsity::SparsityPanel,
-    task: Task,
-    /// Number of the latest open-model request; replies to older ones are ignored.
-    open_request: u64,
-    /// What is being opened, for the status bar.
-    opening: Option<String>,
-    /// The model file of the latest open request (to offer "open again" after an error).
-    last_open_path: Option<PathBuf>,
-    /// Next probe id (probe ids are handed out at request time).
-    next_probe: u64,
-    /// Open the demo's probe file once the demo model is in.
-    demo_probe_pending: bool,
+    /// A file dialog is open (only one at a time).
     dialog_open: bool,
+    /// The keys-and-marks window is open.
     show_help: bool,
-    /// Work was cancelled and is not complete.
-    stopped: bool,
-    /// Longest frame (time spent in `ui`) while work was running.
-    longest_busy_frame: Duration,
+    /// What the panels asked for this frame.
     actions: Vec<Action>,
 }
 
@@ -169,16 +150,8 @@ impl ReceptorApp {
             units: units::UnitsPanel::default(),
             detail: detail::DetailPanel::default(),
             sparsity: sparsity::SparsityPanel::default(),
-            task: Task::default(),
-            open_request: 0,
-            opening: None,
-            last_open_path: None,
-            next_probe: 0,
-            demo_probe_pending: false,
             dialog_open: false,
             show_help: false,
-            stopped: false,
-            longest_busy_frame: Duration::ZERO,
             actions: Vec::new(),
         };
         if let Some(e) = app.worker.spawn_error() {
@@ -195,30 +168,31 @@ impl ReceptorApp {
     /// Opens a model file in the background. When it fails, the error is shown and the
     /// model that was open stays open.
     pub fn open_model(&mut self, path: &Path) {
-        self.open_request += 1;
-        self.opening = Some(path.display().to_string());
-        self.last_open_path = Some(path.to_path_buf());
-        self.demo_probe_pending = false;
+        let opts = self.load_options();
+        let run = &mut self.state.run;
+        run.open_request += 1;
+        run.opening = Some(path.display().to_string());
+        run.last_open_path = Some(path.to_path_buf());
+        run.demo_probe_pending = false;
         self.worker.open_model(
-            self.open_request,
+            run.open_request,
             ModelSource::File(path.to_path_buf()),
-            self.load_options(),
+            opts,
         );
     }
 
     /// Opens the bundled demo model (and its labelled probe when available).
     pub fn open_demo(&mut self) {
-        self.open_request += 1;
-        self.opening = Some(DEMO_ORIGIN.to_string());
-        self.demo_probe_pending = Path::new(DEMO_PROBE).is_file();
-        self.worker.open_model(
-            self.open_request,
-            ModelSource::Text {
-                text: Arc::from(DEMO_JSON),
-                origin: DEMO_ORIGIN.to_string(),
-            },
-            self.load_options(),
-        );
+        let opts = self.load_options();
+        let run = &mut self.state.run;
+        run.open_request += 1;
+        run.opening = Some(DEMO_ORIGIN.to_string());
+        run.demo_probe_pending = Path::new(DEMO_PROBE).is_file();
+        let source = ModelSource::Text {
+            text: Arc::from(DEMO_JSON),
+            origin: DEMO_ORIGIN.to_string(),
+        };
+        self.worker.open_model(run.open_request, source, opts);
     }
 
     /// Opens probe data for the open model in the background. When it fails, the error is
@@ -249,12 +223,12 @@ impl ReceptorApp {
 
     /// True while a file is being opened or analysis work is queued or running.
     pub fn is_busy(&self) -> bool {
-        self.opening.is_some() || self.worker.pending() > 0
+        self.state.run.opening.is_some() || self.worker.pending() > 0
     }
 
     /// What the worker is doing now ("" when idle), as the status bar shows it.
     pub fn current_task(&self) -> &str {
-        &self.task.title
+        &self.state.run.task.title
     }
 
     /// The app's state (for tests and tools).
@@ -269,333 +243,12 @@ impl ReceptorApp {
 
     /// Longest time spent drawing one frame while background work was running.
     pub fn longest_busy_frame(&self) -> Duration {
-        self.longest_busy_frame
+        self.state.run.longest_busy_frame
     }
 
     fn load_options(&self) -> LoadOptions {
         LoadOptions {
             allow_outside_paths: self.state.allow_outside_paths,
-        }
-    }
-
-    fn request_probe(&mut self, choice: ProbeChoice) {
-        let Some(net) = self.state.net().cloned() else {
-            self.state.fail("open a model before opening probe data");
-            return;
-        };
-        self.next_probe += 1;
-        let tag = Tag {
-            model: self.state.tag.model,
-            probe: self.next_probe,
-        };
-        self.worker.submit(Job::LoadProbe(choice), net, tag);
-    }
-
-    fn install_model(&mut self, net: crate::model::Network, origin: String, path: Option<PathBuf>) {
-        // Old work is for the old model: stop it, and its late replies carry the old tag.
-        self.worker.cancel_all();
-        self.stopped = false;
-        self.state.tag.model += 1;
-        self.next_probe += 1;
-        self.state.tag.probe = self.next_probe;
-        self.state.results = state::Results::default();
-        self.state.probe = None;
-        self.state.order_cache = None;
-        self.thumbs.clear();
-        self.detail.reset();
-        let net = Arc::new(net);
-        if let Some(p) = &path {
-            Prefs::remember(&mut self.state.prefs.recent_models, p);
-        }
-        let first = net.layers.iter().position(|l| l.units() > 0).unwrap_or(0);
-        self.state.selection = Some(Selection {
-            layer: first,
-            unit: 0,
-        });
-        self.state.history.clear();
-        self.state.confirm(format!(
-            "Opened {origin}: {} layers, {} parameters",
-            net.layers.len(),
-            net.parameter_count()
-        ));
-        self.state.model = Some(OpenModel {
-            net: net.clone(),
-            origin,
-            path,
-        });
-        self.state.open_error = None;
-        let tag = self.state.tag;
-        self.worker.submit(Job::Model, net.clone(), tag);
-        let choice = if self.demo_probe_pending {
-            ProbeChoice::File(PathBuf::from(DEMO_PROBE))
-        } else {
-            ProbeChoice::Uniform
-        };
-        self.demo_probe_pending = false;
-        self.worker.submit(Job::LoadProbe(choice), net, tag);
-    }
-
-    fn handle_reply(&mut self, reply: Reply) {
-        let tag = self.state.tag;
-        match reply {
-            Reply::Started { tag: t, title } => {
-                if t.model == tag.model {
-                    self.task = Task {
-                        title,
-                        fraction: 0.0,
-                    };
-                }
-            }
-            Reply::Progress { tag: t, fraction } => {
-                if t.model == tag.model {
-                    self.task.fraction = fraction;
-                }
-            }
-            Reply::Finished { .. } => {
-                if self.worker.pending() == 0 {
-                    self.task = Task::default();
-                }
-            }
-            Reply::ModelOpened { request, result } => {
-                if request != self.open_request {
-                    return; // superseded by a later open
-                }
-                self.opening = None;
-                match result {
-                    Ok((net, origin, path)) => self.install_model(net, origin, path),
-                    Err(e) => {
-                        let text = e.to_string();
-                        self.state.open_error = Some(text.clone());
-                        let keep = if self.state.model.is_some() {
-                            " (the open model stays open)"
-                        } else {
-                            ""
-                        };
-                        self.state.fail(format!("{text}{keep}"));
-                    }
-                }
-            }
-            Reply::Model {
-                tag: t,
-                stats,
-                bounds,
-            } => {
-                if t.model == tag.model {
-                    self.state.results.stats = Some(stats);
-                    self.state.results.bounds = Some(bounds);
-                }
-            }
-            Reply::ProbeLoaded { tag: t, result } => {
-                if t.model != tag.model || t.probe < tag.probe {
-                    return;
-                }
-                match result {
-                    Ok(probe) => {
-                        if let Some(p) = &probe.path
-                            && p != Path::new(DEMO_PROBE)
-                        {
-                            Prefs::remember(&mut self.state.prefs.recent_probes, p);
-                        }
-                        let rows = probe.data.inputs.nrows();
-                        let origin = probe.data.origin.clone();
-                        let changed = self.state.probe.is_some();
-                        self.state.tag.probe = t.probe;
-                        let r = &mut self.state.results;
-                        r.screen = None;
-                        r.activity = None;
-                        r.sensitivity.clear();
-                        r.sensitivity_requested.clear();
-                        r.sweep = None;
-                        r.sweep_requested = false;
-                        self.state.order_cache = None;
-                        self.thumbs.clear_probe();
-                        let data = probe.data.clone();
-                        self.state.probe = Some(probe);
-                        if changed {
-                            self.state
-                                .confirm(format!("Using probe {origin} ({rows} samples)"));
-                        }
-                        if let Some(net) = self.state.net().cloned() {
-                            self.worker.submit(Job::Probe(data), net, self.state.tag);
-                        }
-                    }
-                    Err(e) => {
-                        let text = e.to_string();
-                        self.state.open_error = Some(text.clone());
-                        self.state.fail(format!("{text} (the probe in use stays)"));
-                        if self.state.probe.is_none()
-                            && let Some(net) = self.state.net().cloned()
-                        {
-                            // The model needs some probe: fall back to the uniform one.
-                            self.next_probe += 1;
-                            let t = Tag {
-                                model: tag.model,
-                                probe: self.next_probe,
-                            };
-                            self.worker
-                                .submit(Job::LoadProbe(ProbeChoice::Uniform), net, t);
-                        }
-                    }
-                }
-            }
-            Reply::Probe {
-                tag: t,
-                screen,
-                activity,
-            } => {
-                if t != tag {
-                    return;
-                }
-                match screen {
-                    Ok(s) => self.state.results.screen = Some(s),
-                    Err(e) => self.state.fail(format!("screening failed: {e}")),
-                }
-                match activity {
-                    Ok(a) => self.state.results.activity = Some(a),
-                    Err(e) => self.state.fail(format!("tracing activations failed: {e}")),
-                }
-            }
-            Reply::Prefer {
-                tag: t,
-                layer,
-                settings,
-                result,
-            } => {
-                if t.model != tag.model {
-                    return;
-                }
-                let Some(lp) = self.state.results.preferred.get_mut(&layer) else {
-                    return;
-                };
-                if lp.settings != settings {
-                    return;
-                }
-                lp.pending = lp.pending.saturating_sub(1);
-                match result {
-                    Ok(found) => {
-                        for (u, m) in found {
-                            if let Some(slot) = lp.maps.get_mut(u) {
-                                *slot = Some(m);
-                            }
-                        }
-                    }
-                    Err(e) => self
-                        .state
-                        .fail(format!("preferred-input search failed: {e}")),
-                }
-            }
-            Reply::Sensitivity {
-                tag: t,
-                layer,
-                result,
-            } => {
-                if t != tag {
-                    return;
-                }
-                match result {
-                    Ok(g) => {
-                        self.state.results.sensitivity.insert(layer, g);
-                    }
-                    Err(e) => self.state.fail(format!("sensitivity failed: {e}")),
-                }
-            }
-            Reply::Sweep { tag: t, result } => {
-                if t != tag {
-                    return;
-                }
-                match result {
-                    Ok(points) => self.state.results.sweep = Some(points),
-                    Err(e) => self.state.fail(format!("pruning sweep failed: {e}")),
-                }
-            }
-            Reply::Exported { result } => match result {
-                Ok(p) => self.state.confirm(format!("Saved {}", p.display())),
-                Err(e) => self.state.fail(e.to_string()),
-            },
-            Reply::Picked { purpose, path } => {
-                self.dialog_open = false;
-                if let Some(p) = path {
-                    match purpose {
-                        Pick::Model => self.open_model(&p),
-                        Pick::Probe => self.open_probe(&p),
-                        Pick::Export(kind) => self.export_to(kind, p),
-                    }
-                }
-            }
-        }
-    }
-
-    /// Queues the work the visible panels need and that is not yet asked for.
-    fn request_needed(&mut self) {
-        if self.stopped {
-            return;
-        }
-        let Some(net) = self.state.net().cloned() else {
-            return;
-        };
-        let tag = self.state.tag;
-        let layer = self.state.current_layer();
-        if layer < net.layers.len() && !self.state.results.preferred.contains_key(&layer) {
-            self.queue_prefer(&net, layer, None);
-        }
-        if self.state.prefs.map_view == MapView::Sensitivity
-            && let Some(p) = &self.state.probe
-            && !self.state.results.sensitivity_requested.contains(&layer)
-        {
-            let mean = p.mean.clone();
-            self.state.results.sensitivity_requested.insert(layer);
-            self.worker
-                .submit(Job::Sensitivity { layer, mean }, net.clone(), tag);
-        }
-        if self.state.view == MainView::Sparsity
-            && let Some(p) = &self.state.probe
-            && p.labelled()
-            && !self.state.results.sweep_requested
-        {
-            let data = p.data.clone();
-            self.state.results.sweep_requested = true;
-            self.worker.submit(Job::Sweep(data), net, tag);
-        }
-    }
-
-    /// Queues preferred-input batches for `layer` (all units, or only `missing` ones).
-    fn queue_prefer(
-        &mut self,
-        net: &Arc<crate::model::Network>,
-        layer: usize,
-        missing: Option<Vec<usize>>,
-    ) {
-        let n = net.layers[layer].units();
-        let settings = self.state.prefs.search;
-        let units = missing.unwrap_or_else(|| (0..n).collect());
-        let entry = self
-            .state
-            .results
-            .preferred
-            .entry(layer)
-            .or_insert_with(|| state::LayerPreferred {
-                settings,
-                maps: vec![None; n],
-                pending: 0,
-            });
-        // Small batches first so the first tiles appear soon on a large layer, then full
-        // batches (each batch is still one batched call of the core's search).
-        let mut at = 0;
-        let mut size = worker::PREFER_BATCH / 8;
-        while at < units.len() {
-            let end = (at + size).min(units.len());
-            entry.pending += 1;
-            self.worker.submit(
-                Job::Prefer {
-                    layer,
-                    units: units[at..end].to_vec(),
-                    settings,
-                },
-                net.clone(),
-                self.state.tag,
-            );
-            at = end;
-            size = (size * 2).min(worker::PREFER_BATCH);
         }
     }
 
@@ -612,71 +265,14 @@ impl ReceptorApp {
                 if let Some(net) = self.state.net().cloned() {
                     self.state.results.preferred.remove(&layer);
                     self.thumbs.clear_layer(layer);
-                    self.stopped = false;
+                    self.state.run.stopped = false;
                     self.queue_prefer(&net, layer, None);
                 }
             }
-            Action::Cancel => {
-                self.worker.cancel_all();
-                for lp in self.state.results.preferred.values_mut() {
-                    lp.pending = 0;
-                }
-                self.stopped = true;
-                self.state
-                    .confirm("Stopped. Use \"Run again\" to finish the analysis.");
-            }
+            Action::Cancel => self.cancel(),
             Action::RunAgain => self.run_again(),
             Action::Help => self.show_help = true,
             Action::Quit => ctx.send_viewport_cmd(egui::ViewportCommand::Close),
-        }
-    }
-
-    /// After a cancel: queue again what is missing.
-    fn run_again(&mut self) {
-        self.stopped = false;
-        let Some(net) = self.state.net().cloned() else {
-            return;
-        };
-        let tag = self.state.tag;
-        if self.state.results.stats.is_none() {
-            self.worker.submit(Job::Model, net.clone(), tag);
-        }
-        match &self.state.probe {
-            None => self.request_probe(ProbeChoice::Uniform),
-            Some(p) => {
-                if self.state.results.screen.is_none() || self.state.results.activity.is_none() {
-                    self.worker
-                        .submit(Job::Probe(p.data.clone()), net.clone(), tag);
-                }
-            }
-        }
-        let layers: Vec<(usize, Vec<usize>)> = self
-            .state
-            .results
-            .preferred
-            .iter()
-            .map(|(l, lp)| {
-                (
-                    *l,
-                    lp.maps
-                        .iter()
-                        .enumerate()
-                        .filter(|(_, m)| m.is_none())
-                        .map(|(u, _)| u)
-                        .collect(),
-                )
-            })
-            .filter(|(_, m): &(usize, Vec<usize>)| !m.is_empty())
-            .collect();
-        for (l, missing) in layers {
-            self.queue_prefer(&net, l, Some(missing));
-        }
-        self.state
-            .results
-            .sensitivity_requested
-            .retain(|l| self.state.results.sensitivity.contains_key(l));
-        if self.state.results.sweep.is_none() {
-            self.state.results.sweep_requested = false;
         }
     }
 
@@ -834,141 +430,97 @@ impl ReceptorApp {
             }
         }
     }
+}
 
-    fn menu_ui(&mut self, ui: &mut egui::Ui) {
-        let ctx = ui.ctx().clone();
-        let sc = |k: egui::Key| {
-            ctx.format_shortcut(&egui::KeyboardShortcut::new(egui::Modifiers::COMMAND, k))
-        };
-        egui::MenuBar::new().ui(ui, |ui| {
-            ui.menu_button("File", |ui| {
-                if ui
-                    .add(egui::Button::new("Open model…").shortcut_text(sc(egui::Key::O)))
-                    .clicked()
-                {
-                    self.actions.push(Action::OpenModelDialog);
-                }
-                recent_menu(
-                    ui,
-                    "Recent models",
-                    &self.state.prefs.recent_models,
-                    &mut self.actions,
-                    Action::OpenModel,
-                );
-                if ui.button("Open the demo model").clicked() {
-                    self.actions.push(Action::OpenDemo);
-                }
-                ui.separator();
-                if ui
-                    .add(egui::Button::new("Open probe data…").shortcut_text(sc(egui::Key::P)))
-                    .clicked()
-                {
-                    self.actions.push(Action::OpenProbeDialog);
-                }
-                recent_menu(
-                    ui,
-                    "Recent probe data",
-                    &self.state.prefs.recent_probes,
-                    &mut self.actions,
-                    Action::OpenProbe,
-                );
-                if ui.button("Use the uniform probe").clicked() {
-                    self.actions.push(Action::UniformProbe);
-                }
-                ui.separator();
-                ui.menu_button("Export", |ui| {
-                    for kind in ExportKind::ALL {
-                        let b = egui::Button::new(kind.label());
-                        let b = if kind == ExportKind::StatsCsv {
-                            b.shortcut_text(sc(egui::Key::E))
-                        } else {
-                            b
-                        };
-                        if ui
-                            .add_enabled(export::available(kind, &self.state), b)
-                            .clicked()
-                        {
-                            self.actions.push(Action::ExportDialog(kind));
-                        }
-                    }
-                });
-                ui.separator();
-                if ui
-                    .add(egui::Button::new("Quit").shortcut_text(sc(egui::Key::Q)))
-                    .clicked()
-                {
-                    self.actions.push(Action::Quit);
+impl ReceptorApp {
+    /// The main area: the open error (if any), then the Units or Sparsity view.
+    fn central_ui(&mut self, ui: &mut egui::Ui) {
+        if let Some(err) = self.state.open_error.clone() {
+            self.open_error_ui(ui, &err);
+            ui.add_space(4.0);
+        }
+        if self.state.model.is_none() {
+            ui.centered_and_justified(|ui| {
+                if self.state.run.opening.is_some() {
+                    ui.spinner();
+                } else {
+                    ui.label(
+                        "Open a model with File → Open model… (Ctrl+O), or drop a model file here.",
+                    );
                 }
             });
-            ui.menu_button("View", |ui| {
-                ui.selectable_value(&mut self.state.view, MainView::Units, "Units");
-                ui.selectable_value(
-                    &mut self.state.view,
-                    MainView::Sparsity,
-                    "Sparsity and pruning",
+            return;
+        }
+        ui.horizontal(|ui| {
+            ui.selectable_value(&mut self.state.view, MainView::Units, "Units");
+            ui.selectable_value(
+                &mut self.state.view,
+                MainView::Sparsity,
+                "Sparsity and pruning",
+            );
+        });
+        ui.separator();
+        match self.state.view {
+            MainView::Units => {
+                self.units
+                    .ui(ui, &mut self.state, &mut self.thumbs, &mut self.actions);
+            }
+            MainView::Sparsity => self.sparsity.ui(ui, &mut self.state, &mut self.actions),
+        }
+    }
+
+    /// The error from opening a file, in the theme's error colour, with Dismiss and (for
+    /// side files outside the model's folder) a way to agree and open again.
+    fn open_error_ui(&mut self, ui: &mut egui::Ui, err: &str) {
+        let colour = ui.visuals().error_fg_color;
+        let frame = egui::Frame::group(ui.style()).stroke(egui::Stroke::new(1.0, colour));
+        frame.show(ui, |ui| {
+            ui.horizontal(|ui| {
+                ui.colored_label(
+                    colour,
+                    egui::RichText::new("Could not open the file").strong(),
                 );
-                ui.separator();
-                for mode in colour::ScaleMode::ALL {
-                    ui.radio_value(&mut self.state.prefs.scale, mode, mode.label());
+                if ui.small_button("Dismiss").clicked() {
+                    self.state.open_error = None;
                 }
             });
-            ui.menu_button("Help", |ui| {
-                if ui
-                    .add(egui::Button::new("Keys and marks").shortcut_text("F1"))
+            ui.colored_label(colour, err);
+            // The importer refuses side files outside the model's folder unless the
+            // user agrees; here the user can agree for this session.
+            let outside = err.contains("--allow-outside-paths");
+            if outside
+                && !self.state.allow_outside_paths
+                && let Some(path) = self.state.run.last_open_path.clone()
+                && ui
+                    .button("Allow side files outside the model's folder and open again")
                     .clicked()
-                {
-                    self.actions.push(Action::Help);
-                }
-            });
-            ui.separator();
-            if let Some(m) = &self.state.model {
-                ui.label(egui::RichText::new(&m.net.name).strong());
-                ui.weak(&m.origin);
+            {
+                self.state.allow_outside_paths = true;
+                self.state.open_error = None;
+                self.open_model(&path);
+            }
+            if self.state.model.is_some() {
+                ui.weak("The model that was open stays open.");
             }
         });
     }
+}
 
-    fn help_ui(&mut self, ctx: &egui::Context) {
-        let mut open = self.show_help;
-        egui::Window::new("Keys and marks")
-            .open(&mut open)
-            .collapsible(false)
-            .resizable(false)
-            .show(ctx, |ui| {
-                egui::Grid::new("keys")
-                    .num_columns(2)
-                    .striped(true)
-                    .show(ui, |ui| {
-                        for (k, what) in [
-                            ("Arrow keys", "move the selection in the grid"),
-                            ("Home / End", "first / last unit of the grid"),
-                            ("Page Up / Page Down", "layer above / below"),
-                            ("Backspace", "back to the unit you walked down from"),
-                            (
-                                "W / P / S",
-                                "detail map: weights / preferred input / sensitivity",
-                            ),
-                            ("Tab", "switch between Units and Sparsity"),
-                            ("Esc", "stop the running analysis"),
-                            ("Ctrl+O / Ctrl+P", "open a model / probe data"),
-                            ("Ctrl+E", "export sparsity statistics (CSV)"),
-                        ] {
-                            ui.strong(k);
-                            ui.label(what);
-                            ui.end_row();
-                        }
-                    });
-                ui.separator();
-                ui.strong("Marks on unit tiles");
-                units::marks_legend_ui(ui, true);
-                ui.separator();
-                ui.weak(format!(
-                    "Longest frame while analysis ran: {:.1} ms",
-                    self.longest_busy_frame.as_secs_f64() * 1000.0
-                ));
-            });
-        self.show_help = open;
-    }
+/// Darkens the window and says what can be dropped while files are dragged over it.
+fn drop_overlay(ctx: &egui::Context) {
+    let painter = ctx.layer_painter(egui::LayerId::new(
+        egui::Order::Foreground,
+        egui::Id::unique("receptor-drop"),
+    ));
+    let rect = ctx.content_rect();
+    painter.rect_filled(rect, 0.0, egui::Color32::from_black_alpha(160));
+    painter.text(
+        rect.center(),
+        egui::Align2::CENTER_CENTER,
+        "Drop a model (.json) or probe data (.csv, .npy)",
+        egui::TextStyle::Heading.resolve(&ctx.global_style()),
+        egui::Color32::WHITE,
+    );
 }
 
 impl eframe::App for ReceptorApp {
@@ -988,17 +540,17 @@ impl eframe::App for ReceptorApp {
         let started = Instant::now();
         let ctx = ui.ctx().clone();
         self.thumbs.begin_frame();
-        egui::Panel::top("menu").show(ui, |ui| self.menu_ui(ui));
+        egui::Panel::top("menu").show(ui, |ui| {
+            menu::menu_ui(ui, &mut self.state, &mut self.actions)
+        });
         egui::Panel::bottom("status").show(ui, |ui| {
-            statusbar::ui(
-                ui,
-                &self.state,
-                &self.task,
-                self.worker.pending(),
-                self.opening.as_deref(),
-                self.stopped,
-                &mut self.actions,
-            );
+            let line = statusbar::StatusLine {
+                run: &self.state.run,
+                pending: self.worker.pending(),
+                model_open: self.state.model.is_some(),
+                notice: self.state.notice.as_ref(),
+            };
+            statusbar::ui(ui, &line, &mut self.actions);
         });
         egui::Panel::left("layers")
             .resizable(true)
@@ -1015,74 +567,12 @@ impl eframe::App for ReceptorApp {
                         .ui(ui, &mut self.state, &mut self.thumbs, &mut self.actions);
                 });
         }
-        egui::CentralPanel::default().show(ui, |ui| {
-            if let Some(err) = self.state.open_error.clone() {
-                let colour = ui.visuals().error_fg_color;
-                egui::Frame::group(ui.style()).stroke(egui::Stroke::new(1.0, colour)).show(ui, |ui| {
-                    ui.horizontal(|ui| {
-                        ui.colored_label(colour, egui::RichText::new("Could not open the file").strong());
-                        if ui.small_button("Dismiss").clicked() {
-                            self.state.open_error = None;
-                        }
-                    });
-                    ui.colored_label(colour, &err);
-                    // The importer refuses side files outside the model's folder unless the
-                    // user agrees; here the user can agree for this session.
-                    let outside = err.contains("--allow-outside-paths");
-                    if outside
-                        && !self.state.allow_outside_paths
-                        && let Some(path) = self.last_open_path.clone()
-                        && ui
-                            .button("Allow side files outside the model's folder and open again")
-                            .clicked()
-                    {
-                        self.state.allow_outside_paths = true;
-                        self.state.open_error = None;
-                        self.open_model(&path);
-                    }
-                    if self.state.model.is_some() {
-                        ui.weak("The model that was open stays open.");
-                    }
-                });
-                ui.add_space(4.0);
-            }
-            if self.state.model.is_none() {
-                ui.centered_and_justified(|ui| {
-                    if self.opening.is_some() {
-                        ui.spinner();
-                    } else {
-                        ui.label("Open a model with File → Open model… (Ctrl+O), or drop a model file here.");
-                    }
-                });
-                return;
-            }
-            ui.horizontal(|ui| {
-                ui.selectable_value(&mut self.state.view, MainView::Units, "Units");
-                ui.selectable_value(&mut self.state.view, MainView::Sparsity, "Sparsity and pruning");
-            });
-            ui.separator();
-            match self.state.view {
-                MainView::Units => self.units.ui(ui, &mut self.state, &mut self.thumbs, &mut self.actions),
-                MainView::Sparsity => self.sparsity.ui(ui, &mut self.state, &mut self.actions),
-            }
-        });
+        egui::CentralPanel::default().show(ui, |ui| self.central_ui(ui));
         if self.show_help {
-            self.help_ui(&ctx);
+            menu::help_ui(&ctx, &mut self.show_help, self.state.run.longest_busy_frame);
         }
         if ctx.input(|i| !i.raw.hovered_files.is_empty()) {
-            let painter = ctx.layer_painter(egui::LayerId::new(
-                egui::Order::Foreground,
-                egui::Id::unique("receptor-drop"),
-            ));
-            let rect = ctx.content_rect();
-            painter.rect_filled(rect, 0.0, egui::Color32::from_black_alpha(160));
-            painter.text(
-                rect.center(),
-                egui::Align2::CENTER_CENTER,
-                "Drop a model (.json) or probe data (.csv, .npy)",
-                egui::TextStyle::Heading.resolve(&ctx.global_style()),
-                egui::Color32::WHITE,
-            );
+            drop_overlay(&ctx);
         }
         if self.thumbs.deferred() {
             ctx.request_repaint();
@@ -1090,31 +580,12 @@ impl eframe::App for ReceptorApp {
         // Frames while analysis runs on the open model (the first frames, which build the
         // font atlas while the model is read, are not what a user browsing sees).
         if self.worker.pending() > 0 && self.state.model.is_some() {
-            self.longest_busy_frame = self.longest_busy_frame.max(started.elapsed());
+            let run = &mut self.state.run;
+            run.longest_busy_frame = run.longest_busy_frame.max(started.elapsed());
         }
     }
 
     fn save(&mut self, storage: &mut dyn eframe::Storage) {
         eframe::set_value(storage, eframe::APP_KEY, &self.state.prefs);
     }
-}
-
-/// A submenu listing remembered files; clicking one queues `open(path)`.
-fn recent_menu(
-    ui: &mut egui::Ui,
-    title: &str,
-    files: &[PathBuf],
-    actions: &mut Vec<Action>,
-    open: fn(PathBuf) -> Action,
-) {
-    ui.menu_button(title, |ui| {
-        if files.is_empty() {
-            ui.weak("none yet");
-        }
-        for p in files {
-            if ui.button(p.display().to_string()).clicked() {
-                actions.push(open(p.clone()));
-            }
-        }
-    });
 }

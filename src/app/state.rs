@@ -3,16 +3,21 @@
 //! persisted preferences. Panels read it and change the selection; only the worker's
 //! replies fill in results.
 
+pub use crate::analysis::activity::{ActivityResult, UnitActivity};
 use crate::analysis::bounds::Bounds;
+pub use crate::analysis::gradient::Sensitivity;
+use crate::analysis::prefer::{PreferOptions, Preferred};
 use crate::analysis::prune::SweepPoint;
-use crate::analysis::screen::{Status, UnitScreen};
-use crate::analysis::sparsity::{LayerSummary, UnitStats};
+use crate::analysis::screen::{ScreenReport, Status, UnitScreen};
+pub use crate::analysis::sparsity::MagnitudeHistogram;
+use crate::analysis::sparsity::{NetworkSparsity, UnitStats};
 use crate::model::Network;
 use crate::probe::ProbeData;
 use serde::{Deserialize, Serialize};
 use std::collections::HashMap;
 use std::path::PathBuf;
 use std::sync::Arc;
+use std::time::Duration;
 
 /// How many recent files the File menu remembers.
 pub const RECENT_LIMIT: usize = 8;
@@ -86,43 +91,28 @@ pub enum MainView {
     Sparsity,
 }
 
-/// Settings of the preferred-input search (projected gradient ascent), shown in the detail
-/// panel and remembered between runs.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
-#[serde(default)]
-pub struct SearchSettings {
-    /// Gradient steps per restart.
-    pub steps: usize,
-    /// Starting points (one at the box centre, the rest random).
-    pub restarts: usize,
-    /// L2 penalty on the input.
-    pub l2: f32,
-    /// Total-variation penalty (image layouts only).
-    pub tv: f32,
+/// How the preferred-input search options are saved with the preferences. A mirror of
+/// [`PreferOptions`] for serde's remote derive, so the core type carries no persistence
+/// format; missing fields take the core's defaults.
+#[derive(Serialize, Deserialize)]
+#[serde(remote = "PreferOptions", default)]
+struct SavedPreferOptions {
+    steps: usize,
+    restarts: usize,
+    seed: u64,
+    l2: f32,
+    tv: f32,
 }
 
-impl Default for SearchSettings {
+impl Default for SavedPreferOptions {
     fn default() -> Self {
-        // The same defaults as `receptor prefer`, so the app and the command line agree.
-        let d = crate::analysis::prefer::PreferOptions::default();
-        SearchSettings {
+        let d = PreferOptions::default();
+        SavedPreferOptions {
             steps: d.steps,
             restarts: d.restarts,
+            seed: d.seed,
             l2: d.l2,
             tv: d.tv,
-        }
-    }
-}
-
-impl SearchSettings {
-    /// The core's options for these settings (fixed seed 0, as on the command line).
-    pub fn options(&self) -> crate::analysis::prefer::PreferOptions {
-        crate::analysis::prefer::PreferOptions {
-            steps: self.steps,
-            restarts: self.restarts,
-            seed: 0,
-            l2: self.l2,
-            tv: self.tv,
         }
     }
 }
@@ -138,8 +128,10 @@ pub struct Prefs {
     pub recent_probes: Vec<PathBuf>,
     /// Per-unit or per-layer colour scale.
     pub scale: ScaleMode,
-    /// Preferred-input search settings.
-    pub search: SearchSettings,
+    /// Preferred-input search options (the same defaults as `receptor prefer`, so the app
+    /// and the command line agree).
+    #[serde(with = "SavedPreferOptions")]
+    pub search: PreferOptions,
     /// Tile edge in points.
     pub tile_size: f32,
     /// Grid order.
@@ -156,7 +148,7 @@ impl Default for Prefs {
             recent_models: Vec::new(),
             recent_probes: Vec::new(),
             scale: ScaleMode::default(),
-            search: SearchSettings::default(),
+            search: PreferOptions::default(),
             tile_size: 64.0,
             sort: SortKey::default(),
             problems_only: false,
@@ -213,29 +205,9 @@ impl OpenProbe {
     }
 }
 
-/// Sparsity statistics of the whole model, as `receptor stats` computes them.
-#[derive(Debug, Clone)]
-pub struct StatsResult {
-    /// Per layer, per unit.
-    pub units: Vec<Vec<UnitStats>>,
-    /// Per layer.
-    pub layers: Vec<LayerSummary>,
-    /// Per layer, histogram of log10 |w| over the whole weight matrix.
-    pub magnitude: Vec<MagnitudeHistogram>,
-}
-
-/// Histogram of log10 |w| for one layer (exact zeros counted apart, they have no log).
-#[derive(Debug, Clone)]
-pub struct MagnitudeHistogram {
-    /// Left edge of bin 0, in log10 units.
-    pub start: f64,
-    /// Bin width in log10 units.
-    pub width: f64,
-    /// Weights per bin.
-    pub counts: Vec<u64>,
-    /// Weights that are exactly 0.
-    pub zeros: u64,
-}
+/// Sparsity statistics and |w| histograms of the whole model, as `receptor stats`
+/// computes them.
+pub type StatsResult = NetworkSparsity;
 
 /// Screening results, per hidden layer, per unit.
 #[derive(Debug, Clone)]
@@ -250,72 +222,248 @@ pub struct ScreenResult {
     pub rows: Arc<Vec<UnitScreen>>,
 }
 
-/// A unit's activations over the probe: histogram and the samples that drive it hardest.
-#[derive(Debug, Clone, Default)]
-pub struct UnitActivity {
-    /// Smallest activation seen.
-    pub lo: f32,
-    /// Largest activation seen.
-    pub hi: f32,
-    /// Counts per equal-width bin over `[lo, hi]`.
-    pub hist: Vec<u32>,
-    /// Up to 8 (probe row, pre-activation, activation), highest pre-activation first.
-    pub top: Vec<(usize, f32, f32)>,
-}
-
-/// Activity of every unit of every layer over the probe: `layers[l][u]`.
-#[derive(Debug, Clone)]
-pub struct ActivityResult {
-    /// Per layer, per unit.
-    pub layers: Vec<Vec<UnitActivity>>,
-}
-
-/// The preferred input of one unit, as shown in tiles and the detail panel.
-#[derive(Debug, Clone)]
-pub struct PreferredMap {
-    /// The input, `[input size]`, inside the box.
-    pub input: Vec<f32>,
-    /// Raw pre-activation reached there.
-    pub preactivation: f32,
-    /// The unit's output there.
-    pub activation: f32,
-    /// False when the search produced NaN or infinity.
-    pub finite: bool,
+impl ScreenResult {
+    /// Groups the core's report by layer for `net`.
+    pub fn new(net: &Network, report: ScreenReport) -> Self {
+        let mut layers: Vec<Vec<UnitScreen>> = vec![Vec::new(); net.layers.len().saturating_sub(1)];
+        for u in &report.units {
+            if let Some(v) = layers.get_mut(u.layer_index) {
+                v.push(u.clone());
+            }
+        }
+        ScreenResult {
+            layers,
+            samples: report.samples,
+            probe: report.probe,
+            rows: Arc::new(report.units),
+        }
+    }
 }
 
 /// Preferred inputs of one layer, filled in as batches arrive.
 #[derive(Debug, Clone)]
 pub struct LayerPreferred {
-    /// The settings these results were computed with.
-    pub settings: SearchSettings,
+    /// The options these results were computed with.
+    pub settings: PreferOptions,
     /// One entry per unit; `None` until its batch arrives.
-    pub maps: Vec<Option<PreferredMap>>,
+    pub maps: Vec<Option<Preferred>>,
     /// Batches still queued or running for this layer.
     pub pending: usize,
 }
 
-/// Everything computed for the open model and probe. Replaced wholesale when either changes.
+/// One result in the cache: not asked for yet, being computed, there, or failed (with the
+/// message shown to the user). A failed result is not asked for again until "Run again".
+#[derive(Debug, Clone, Default)]
+pub enum Slot<T> {
+    /// Not asked for.
+    #[default]
+    Empty,
+    /// Queued or running on the worker.
+    Pending,
+    /// Computed.
+    Ready(T),
+    /// The computation failed with this message.
+    Failed(String),
+}
+
+impl<T> Slot<T> {
+    /// The result when it is there.
+    pub fn as_ref(&self) -> Option<&T> {
+        match self {
+            Slot::Ready(v) => Some(v),
+            _ => None,
+        }
+    }
+
+    /// True when the result is there.
+    pub fn is_ready(&self) -> bool {
+        matches!(self, Slot::Ready(_))
+    }
+
+    /// True when the result has not been asked for.
+    pub fn is_empty(&self) -> bool {
+        matches!(self, Slot::Empty)
+    }
+
+    /// Marks the result as asked for.
+    pub fn request(&mut self) {
+        *self = Slot::Pending;
+    }
+
+    /// Stores a finished computation: the value, or the failure's message prefixed with
+    /// `what failed` (the message is also returned, for the status bar).
+    pub fn settle(&mut self, result: crate::error::Result<T>, what: &str) -> Option<String> {
+        match result {
+            Ok(v) => {
+                *self = Slot::Ready(v);
+                None
+            }
+            Err(e) => {
+                let text = format!("{what} failed: {e}");
+                *self = Slot::Failed(text.clone());
+                Some(text)
+            }
+        }
+    }
+}
+
+impl<T: Clone> Slot<T> {
+    /// A copy of the result when it is there.
+    pub fn ready(&self) -> Option<T> {
+        self.as_ref().cloned()
+    }
+}
+
+/// Everything computed for one model and probe, keyed by their [`Tag`]: replies carry the
+/// tag they were computed for, and the cache takes only those that match its own.
+/// Model results (statistics, bounds, preferred inputs) need the same `model`; probe
+/// results (screening, activity, sensitivity, the pruning curve) the same model and probe.
 #[derive(Debug, Default)]
 pub struct Results {
+    /// The model and probe these results belong to.
+    tag: Tag,
     /// Sparsity statistics (model only).
-    pub stats: Option<Arc<StatsResult>>,
+    pub stats: Slot<Arc<StatsResult>>,
     /// Interval bounds of every layer's pre-activations (model only).
-    pub bounds: Option<Arc<Bounds>>,
+    pub bounds: Slot<Arc<Bounds>>,
     /// Screening on the probe.
-    pub screen: Option<Arc<ScreenResult>>,
+    pub screen: Slot<Arc<ScreenResult>>,
     /// Activations over the probe.
-    pub activity: Option<Arc<ActivityResult>>,
+    pub activity: Slot<Arc<ActivityResult>>,
     /// Preferred inputs per layer (model only).
     pub preferred: HashMap<usize, LayerPreferred>,
-    /// Sensitivity maps per layer, `[units, inputs]`, with their largest |value| (model and
-    /// probe).
-    pub sensitivity: HashMap<usize, (Arc<ndarray::Array2<f32>>, f32)>,
+    /// Sensitivity maps per layer at the mean probe input (model and probe).
+    pub sensitivity: HashMap<usize, Slot<Arc<Sensitivity>>>,
     /// The pruning curve (model and a labelled probe).
-    pub sweep: Option<Arc<Vec<SweepPoint>>>,
-    /// A sweep has been asked for (so it is not queued twice).
-    pub sweep_requested: bool,
-    /// Sensitivity has been asked for, per layer.
-    pub sensitivity_requested: std::collections::HashSet<usize>,
+    pub sweep: Slot<Arc<Vec<SweepPoint>>>,
+}
+
+impl Results {
+    /// An empty cache for `tag`.
+    pub fn new(tag: Tag) -> Self {
+        Results {
+            tag,
+            ..Results::default()
+        }
+    }
+
+    /// The model and probe the cached results belong to.
+    pub fn tag(&self) -> Tag {
+        self.tag
+    }
+
+    /// True when a result computed for `t` belongs to the cached model.
+    pub fn is_model(&self, t: Tag) -> bool {
+        t.model == self.tag.model
+    }
+
+    /// True when a result computed for `t` belongs to the cached model and probe.
+    pub fn is_current(&self, t: Tag) -> bool {
+        t == self.tag
+    }
+
+    /// Switches to probe `probe` of the same model: the probe results are dropped, the
+    /// model results kept.
+    pub fn change_probe(&mut self, probe: u64) {
+        self.tag.probe = probe;
+        self.screen = Slot::Empty;
+        self.activity = Slot::Empty;
+        self.sensitivity.clear();
+        self.sweep = Slot::Empty;
+    }
+
+    /// The sensitivity slot of `layer` (empty when never asked for).
+    pub fn sensitivity_of(&self, layer: usize) -> Option<&Slot<Arc<Sensitivity>>> {
+        self.sensitivity.get(&layer)
+    }
+
+    /// After a cancel: every pending result becomes not-asked-for (its job was dropped),
+    /// and no preferred-input batch is counted as pending.
+    pub fn cancel_pending(&mut self) {
+        for lp in self.preferred.values_mut() {
+            lp.pending = 0;
+        }
+        self.each_slot(|s| s.forget_pending());
+    }
+
+    /// Before "Run again": every result that is not there (pending or failed) becomes
+    /// not-asked-for, so it is asked for again.
+    pub fn forget_unfinished(&mut self) {
+        self.each_slot(|s| s.forget_unfinished());
+    }
+
+    /// Runs `f` on the state of every slot.
+    fn each_slot(&mut self, f: impl Fn(&mut dyn SlotState)) {
+        f(&mut self.stats);
+        f(&mut self.bounds);
+        f(&mut self.screen);
+        f(&mut self.activity);
+        f(&mut self.sweep);
+        for s in self.sensitivity.values_mut() {
+            f(s);
+        }
+    }
+}
+
+/// The part of a [`Slot`] that does not depend on its value type.
+trait SlotState {
+    /// Pending becomes empty.
+    fn forget_pending(&mut self);
+    /// Pending or failed becomes empty.
+    fn forget_unfinished(&mut self);
+}
+
+impl<T> SlotState for Slot<T> {
+    fn forget_pending(&mut self) {
+        if matches!(self, Slot::Pending) {
+            *self = Slot::Empty;
+        }
+    }
+
+    fn forget_unfinished(&mut self) {
+        if !self.is_ready() {
+            *self = Slot::Empty;
+        }
+    }
+}
+
+/// The running job as the status bar shows it.
+#[derive(Debug, Clone, Default)]
+pub struct Task {
+    /// What runs now, empty when idle.
+    pub title: String,
+    /// Fraction done.
+    pub fraction: f32,
+}
+
+/// What the app is doing: the running job, the file being opened, and the request
+/// counters that tell a fresh reply from a stale one.
+#[derive(Debug, Default)]
+pub struct RunState {
+    /// The running job.
+    pub task: Task,
+    /// What is being opened, for the status bar.
+    pub opening: Option<String>,
+    /// Number of the latest open-model request; replies to older ones are ignored.
+    pub open_request: u64,
+    /// The model file of the latest open request (to offer "open again" after an error).
+    pub last_open_path: Option<PathBuf>,
+    /// The last probe id handed out (probe ids are handed out at request time).
+    pub last_probe: u64,
+    /// Open the demo's probe file once the demo model is in.
+    pub demo_probe_pending: bool,
+    /// Work was cancelled and is not complete.
+    pub stopped: bool,
+    /// Longest frame (time spent in `ui`) while work was running.
+    pub longest_busy_frame: Duration,
+}
+
+impl RunState {
+    /// A fresh probe id.
+    pub fn new_probe_id(&mut self) -> u64 {
+        self.last_probe += 1;
+        self.last_probe
+    }
 }
 
 /// A one-line message for the status bar.
@@ -334,10 +482,10 @@ pub struct AppState {
     pub model: Option<OpenModel>,
     /// The probe in use (the uniform probe until the user opens a file).
     pub probe: Option<OpenProbe>,
-    /// Identity of the current model and probe.
-    pub tag: Tag,
-    /// Results for `tag`.
+    /// Results for the current model and probe, keyed by their identity.
     pub results: Results,
+    /// What runs now and what is being opened.
+    pub run: RunState,
     /// The selected unit.
     pub selection: Option<Selection>,
     /// Units visited before walking down, for the Back button.
@@ -380,8 +528,8 @@ impl AppState {
         AppState {
             model: None,
             probe: None,
-            tag: Tag::default(),
             results: Results::default(),
+            run: RunState::default(),
             selection: None,
             history: Vec::new(),
             prefs,
@@ -392,6 +540,11 @@ impl AppState {
             order_cache: None,
             prune_fraction: 0.5,
         }
+    }
+
+    /// Identity of the current model and probe (the key of [`Self::results`]).
+    pub fn tag(&self) -> Tag {
+        self.results.tag()
     }
 
     /// The open network.
@@ -439,7 +592,7 @@ impl AppState {
     }
 
     /// Preferred input of a unit, once its batch arrived.
-    pub fn preferred_of(&self, layer: usize, unit: usize) -> Option<&PreferredMap> {
+    pub fn preferred_of(&self, layer: usize, unit: usize) -> Option<&Preferred> {
         self.results
             .preferred
             .get(&layer)
@@ -471,13 +624,13 @@ impl AppState {
             .get(&layer)
             .map_or(0, |p| p.maps.iter().filter(|m| m.is_some()).count());
         let key = OrderKey {
-            tag: self.tag,
+            tag: self.tag(),
             layer,
             sort: self.prefs.sort,
             problems_only: self.prefs.problems_only,
             have: (
-                self.results.screen.is_some(),
-                self.results.stats.is_some(),
+                self.results.screen.is_ready(),
+                self.results.stats.is_ready(),
                 pref_count,
             ),
         };
@@ -560,8 +713,28 @@ mod tests {
         let p: Prefs = serde_json::from_str(r#"{"tile_size": 96.0, "retired_option": 3}"#).unwrap();
         assert_eq!(p.tile_size, 96.0);
         assert_eq!(p.sort, SortKey::Index);
-        assert_eq!(p.search, SearchSettings::default());
+        assert_eq!(p.search, PreferOptions::default());
         assert!(p.recent_models.is_empty());
+    }
+
+    #[test]
+    fn search_options_saved_by_an_older_version_still_load() {
+        // Older versions saved four fields and no seed; the seed takes the core's default.
+        let p: Prefs = serde_json::from_str(
+            r#"{"search": {"steps": 50, "restarts": 3, "l2": 0.5, "tv": 0.0}}"#,
+        )
+        .unwrap();
+        let want = PreferOptions {
+            steps: 50,
+            restarts: 3,
+            l2: 0.5,
+            ..PreferOptions::default()
+        };
+        assert_eq!(p.search, want);
+        // And what is saved now loads back the same.
+        let text = serde_json::to_string(&p).unwrap();
+        let back: Prefs = serde_json::from_str(&text).unwrap();
+        assert_eq!(back.search, want);
     }
 
     #[test]

@@ -1,19 +1,25 @@
 //! The status bar: what runs now (with a progress bar and a Cancel button), what is being
 //! opened, and the last confirmation or error (errors in the theme's error colour).
 
-use super::state::AppState;
-use super::{Action, Task};
+use super::Action;
+use super::state::{Notice, RunState};
+
+/// What the status bar shows.
+#[derive(Debug, Clone, Copy)]
+pub struct StatusLine<'a> {
+    /// The running job, what is being opened, and whether work was stopped.
+    pub run: &'a RunState,
+    /// Jobs queued or running.
+    pub pending: usize,
+    /// A model is open.
+    pub model_open: bool,
+    /// The last confirmation or error.
+    pub notice: Option<&'a Notice>,
+}
 
 /// Draws the status bar.
-pub fn ui(
-    ui: &mut egui::Ui,
-    state: &AppState,
-    task: &Task,
-    pending: usize,
-    opening: Option<&str>,
-    stopped: bool,
-    actions: &mut Vec<Action>,
-) {
+pub fn ui(ui: &mut egui::Ui, line: &StatusLine<'_>, actions: &mut Vec<Action>) {
+    let (task, pending, opening) = (&line.run.task, line.pending, line.run.opening.as_deref());
     ui.horizontal(|ui| {
         if let Some(o) = opening {
             ui.spinner();
@@ -45,17 +51,17 @@ pub fn ui(
                 ui.weak(format!("({} more queued)", pending - 1));
             }
             ui.separator();
-        } else if stopped {
+        } else if line.run.stopped {
             ui.label("Analysis stopped before it finished.");
             if ui.button("Run again").clicked() {
                 actions.push(Action::RunAgain);
             }
             ui.separator();
-        } else if opening.is_none() && state.model.is_some() {
+        } else if opening.is_none() && line.model_open {
             ui.weak("Ready");
             ui.separator();
         }
-        if let Some(n) = &state.notice {
+        if let Some(n) = line.notice {
             let colour = if n.error {
                 ui.visuals().error_fg_color
             } else {

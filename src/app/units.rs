@@ -37,9 +37,9 @@ impl UnitsPanel {
             return;
         };
         let layer = state.current_layer();
-        let Some(l) = net.layers.get(layer) else {
+        if layer >= net.layers.len() {
             return;
-        };
+        }
         self.toolbar_ui(ui, state, layer);
         let order = state.order(layer);
         self.keyboard(ui, state, layer, &order);
@@ -47,7 +47,7 @@ impl UnitsPanel {
         if order.is_empty() {
             ui.add_space(20.0);
             ui.vertical_centered(|ui| {
-                if state.prefs.problems_only && state.results.screen.is_none() {
+                if state.prefs.problems_only && !state.results.screen.is_ready() {
                     ui.label("Screening is still running; problem units appear when it is done.");
                 } else {
                     ui.label("No unit of this layer has a problem status.");
@@ -56,6 +56,20 @@ impl UnitsPanel {
             return;
         }
 
+        self.grid_ui(ui, state, thumbs, &net, layer, &order);
+    }
+
+    /// The tiles of `layer` in `order`, row by row; only visible rows are drawn. A click
+    /// selects the unit.
+    fn grid_ui(
+        &mut self,
+        ui: &mut egui::Ui,
+        state: &mut AppState,
+        thumbs: &mut Thumbs,
+        net: &crate::model::Network,
+        layer: usize,
+        order: &[usize],
+    ) {
         let tile = state.prefs.tile_size;
         let cell = vec2(tile + GAP, tile + CAPTION + GAP);
         // Leave room for the scroll bar so the last column is never cut.
@@ -91,7 +105,7 @@ impl UnitsPanel {
                                 };
                                 let selected = selected_pos == Some(row * cols + c);
                                 let r = tile_ui(
-                                    ui, state, thumbs, &net, layer, unit, selected, cell, tile,
+                                    ui, state, thumbs, net, layer, unit, selected, cell, tile,
                                 );
                                 if r.clicked() {
                                     clicked = Some(unit);
@@ -107,7 +121,6 @@ impl UnitsPanel {
         if let Some(unit) = clicked {
             state.select(Selection { layer, unit }, false);
         }
-        let _ = l;
     }
 
     fn toolbar_ui(&mut self, ui: &mut egui::Ui, state: &mut AppState, layer: usize) {
@@ -213,58 +226,12 @@ fn tile_ui(
     }
     let rect = Rect::from_min_size(outer.min + vec2(GAP / 2.0, GAP / 2.0), Vec2::splat(tile));
     let visuals = ui.visuals().clone();
-    let painter = ui.painter();
-    painter.rect_filled(rect, 2.0, visuals.extreme_bg_color);
-
-    let scale = state.prefs.scale;
-    let shared = scale == super::colour::ScaleMode::SharedLayer;
-    // The layer's largest |w| comes with the statistics; a shared-scale tile waits for it
-    // rather than scanning the whole weight matrix inside a frame.
-    let layer_max = state
-        .results
-        .stats
-        .as_ref()
-        .and_then(|s| s.layers.get(layer))
-        .map(|s| s.max_abs as f32);
-    let tex = if layer == 0 && (!shared || layer_max.is_some()) {
-        thumbs.get(
-            ui.ctx(),
-            ThumbKey {
-                layer,
-                unit,
-                kind: ThumbKind::Weights(shared),
-            },
-            true,
-            || {
-                let w = net.layers[0].weights.row(unit).to_vec();
-                let m = scale.pick(maps::max_abs(&w), layer_max.unwrap_or(0.0));
-                Some(maps::signed_input_map(&net.input, &w, m))
-            },
-        )
-    } else if layer == 0 {
-        None
-    } else {
-        match state.preferred_of(layer, unit) {
-            Some(p) => {
-                let input = p.input.clone();
-                thumbs.get(
-                    ui.ctx(),
-                    ThumbKey {
-                        layer,
-                        unit,
-                        kind: ThumbKind::Preferred,
-                    },
-                    true,
-                    || Some(maps::input_picture(&net.input, &input)),
-                )
-            }
-            None => None,
-        }
-    };
-    match tex {
+    ui.painter()
+        .rect_filled(rect, 2.0, visuals.extreme_bg_color);
+    match tile_texture(ui.ctx(), state, thumbs, net, layer, unit) {
         Some(t) => {
             let r = fit(t.size_vec2(), rect.shrink(2.0));
-            painter.image(
+            ui.painter().image(
                 t.id(),
                 r,
                 Rect::from_min_max(pos2(0.0, 0.0), pos2(1.0, 1.0)),
@@ -283,7 +250,7 @@ fn tile_ui(
             } else {
                 "…"
             };
-            painter.text(
+            ui.painter().text(
                 rect.center(),
                 egui::Align2::CENTER_CENTER,
                 text,
@@ -293,15 +260,65 @@ fn tile_ui(
         }
     }
     if let Some(s) = status {
-        draw_mark(painter, pos2(rect.right() - 8.0, rect.top() + 8.0), s, 5.5);
+        draw_mark(
+            ui.painter(),
+            pos2(rect.right() - 8.0, rect.top() + 8.0),
+            s,
+            5.5,
+        );
     }
+    tile_frame_and_caption(ui, rect, unit, selected, response.hovered());
+    response.on_hover_ui(|ui| tile_tooltip_ui(ui, state, net, layer, unit, &label))
+}
+
+/// The tile's picture: first-layer units show their incoming weights (a shared-scale tile
+/// waits for the layer's largest |w|), deeper units their preferred input once it is there.
+fn tile_texture(
+    ctx: &egui::Context,
+    state: &AppState,
+    thumbs: &mut Thumbs,
+    net: &crate::model::Network,
+    layer: usize,
+    unit: usize,
+) -> Option<egui::TextureHandle> {
+    let key = |kind| ThumbKey { layer, unit, kind };
+    if layer > 0 {
+        let input = state.preferred_of(layer, unit)?.input.clone();
+        return thumbs.get(ctx, key(ThumbKind::Preferred), true, || {
+            Some(maps::input_picture(&net.input, &input))
+        });
+    }
+    let scale = state.prefs.scale;
+    let shared = scale == super::colour::ScaleMode::SharedLayer;
+    // The layer's largest |w| comes with the statistics; a shared-scale tile waits for it
+    // rather than scanning the whole weight matrix inside a frame.
+    let layer_max = state
+        .results
+        .stats
+        .as_ref()
+        .and_then(|s| s.layers.get(layer))
+        .map(|s| s.max_abs as f32);
+    if shared && layer_max.is_none() {
+        return None;
+    }
+    thumbs.get(ctx, key(ThumbKind::Weights(shared)), true, || {
+        let w = net.layers[0].weights.row(unit).to_vec();
+        let m = scale.pick(maps::max_abs(&w), layer_max.unwrap_or(0.0));
+        Some(maps::signed_input_map(&net.input, &w, m))
+    })
+}
+
+/// The frame around a tile (thick when selected, bright when hovered) and its unit number.
+fn tile_frame_and_caption(ui: &egui::Ui, rect: Rect, unit: usize, selected: bool, hovered: bool) {
+    let visuals = ui.visuals();
     let frame = if selected {
         Stroke::new(2.5, visuals.selection.stroke.color)
-    } else if response.hovered() {
+    } else if hovered {
         visuals.widgets.hovered.fg_stroke
     } else {
         Stroke::new(1.0, visuals.widgets.noninteractive.bg_stroke.color)
     };
+    let painter = ui.painter();
     painter.rect_stroke(rect, 2.0, frame, egui::StrokeKind::Outside);
     painter.text(
         pos2(rect.center().x, rect.bottom() + 2.0),
@@ -314,30 +331,39 @@ fn tile_ui(
             visuals.text_color()
         },
     );
-    response.on_hover_ui(|ui| {
-        ui.strong(&label);
-        match state.screen_of(layer, unit) {
-            Some(s) => {
-                ui.label(format!("status: {}", super::state::status_words(s.status)));
-                ui.label(format!(
-                    "active on {:.1}% of the probe",
-                    100.0 * s.active_frac
-                ));
-            }
-            None if layer + 1 == net.layers.len() => {
-                ui.label("output unit (not screened)");
-            }
-            None => {
-                ui.label("screening…");
-            }
+}
+
+/// The tile's tooltip: status, activity, sparsity and the pre-activation reached.
+fn tile_tooltip_ui(
+    ui: &mut egui::Ui,
+    state: &AppState,
+    net: &crate::model::Network,
+    layer: usize,
+    unit: usize,
+    label: &str,
+) {
+    ui.strong(label);
+    match state.screen_of(layer, unit) {
+        Some(s) => {
+            ui.label(format!("status: {}", super::state::status_words(s.status)));
+            ui.label(format!(
+                "active on {:.1}% of the probe",
+                100.0 * s.active_frac
+            ));
         }
-        if let Some(st) = state.stats_of(layer, unit) {
-            ui.label(format!("Hoyer sparsity {:.3}", st.hoyer));
+        None if layer + 1 == net.layers.len() => {
+            ui.label("output unit (not screened)");
         }
-        if let Some(p) = state.preferred_of(layer, unit) {
-            ui.label(format!("pre-activation reached {:.4}", p.preactivation));
+        None => {
+            ui.label("screening…");
         }
-    })
+    }
+    if let Some(st) = state.stats_of(layer, unit) {
+        ui.label(format!("Hoyer sparsity {:.3}", st.hoyer));
+    }
+    if let Some(p) = state.preferred_of(layer, unit) {
+        ui.label(format!("pre-activation reached {:.4}", p.preactivation));
+    }
 }
 
 /// The largest rectangle of `size`'s aspect ratio inside `outer`, centred; very flat maps

@@ -2,17 +2,21 @@
 //! and results back over a channel, each tagged with the model and probe it was computed
 //! for. Opening files runs on short-lived threads of its own so a slow file never waits
 //! behind an analysis. The frame loop only drains the channel; it never computes.
+//!
+//! The worker is a plain scheduler: each job is a call into the core (`analysis/`,
+//! `probe/`) with the same functions and defaults the command line uses, and its result is
+//! sent back as it is.
 
-use super::state::{
-    ActivityResult, MagnitudeHistogram, OpenProbe, PreferredMap, ScreenResult, StatsResult, Tag,
-    UnitActivity,
-};
-use crate::analysis::Progress;
-use crate::analysis::prune::SweepPoint;
+use super::state::{ActivityResult, OpenProbe, ScreenResult, Sensitivity, StatsResult, Tag};
+use crate::analysis::activity::{ActivityOptions, trace_activity};
+use crate::analysis::prefer::{PreferOptions, Preferred};
+use crate::analysis::prune::{DEFAULT_SWEEP_FRACTIONS, SweepPoint};
+use crate::analysis::screen::ScreenOptions;
+use crate::analysis::{Progress, bounds, gradient, prefer, prune, screen, sparsity};
 use crate::error::{Error, Result};
 use crate::model::{LoadOptions, Network};
-use crate::probe::{self, ProbeChunk, ProbeData, ProbeSource};
-use ndarray::{Array2, s};
+use crate::probe::ProbeData;
+use crate::probe::memory::{MemoryProbe, read_probe};
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, AtomicU32, AtomicUsize, Ordering};
 use std::sync::mpsc::{Receiver, Sender, channel};
@@ -24,14 +28,6 @@ pub const PREFER_BATCH: usize = 128;
 /// Probe rows per forward pass when tracing activations and screening: small enough that
 /// a cancel is seen within a fraction of a second on a 784-2048-2048-10 network.
 const TRACE_CHUNK: usize = 512;
-/// Bins of each unit's activation histogram.
-pub const HIST_BINS: usize = 32;
-/// Samples kept per unit as "drives it hardest".
-pub const TOP_SAMPLES: usize = 8;
-/// Bins of the |w| histograms (log axis).
-const MAGNITUDE_BINS: usize = 60;
-/// Pruned fractions of the sweep, as `receptor prune-sweep` uses them.
-pub const SWEEP_FRACTIONS: [f64; 10] = [0.0, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9];
 
 /// Where a model comes from.
 #[derive(Debug, Clone)]
@@ -71,8 +67,8 @@ pub enum Job {
         layer: usize,
         /// Units of the batch.
         units: Vec<usize>,
-        /// Search settings.
-        settings: super::state::SearchSettings,
+        /// Search options.
+        settings: PreferOptions,
     },
     /// Sensitivity of every unit of `layer` at the mean probe input.
     Sensitivity {
@@ -180,19 +176,19 @@ pub enum Reply {
         tag: Tag,
         /// Layer index.
         layer: usize,
-        /// Settings used.
-        settings: super::state::SearchSettings,
-        /// (unit, map) pairs, or the error.
-        result: Result<Vec<(usize, PreferredMap)>>,
+        /// Options used.
+        settings: PreferOptions,
+        /// The preferred input of each unit of the batch, or the error.
+        result: Result<Vec<Preferred>>,
     },
-    /// Sensitivity maps of a layer, `[units, inputs]`.
+    /// Sensitivity maps of a layer.
     Sensitivity {
         /// Tag.
         tag: Tag,
         /// Layer index.
         layer: usize,
-        /// Maps and their largest |value|, or the error.
-        result: Result<(Arc<Array2<f32>>, f32)>,
+        /// Maps, or the error.
+        result: Result<Arc<Sensitivity>>,
     },
     /// The pruning curve.
     Sweep {
@@ -432,414 +428,96 @@ fn run_jobs(
 fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
     let net = &*t.net;
     let tag = t.tag;
-    match &t.job {
+    let reply = match &t.job {
         Job::Model => {
-            let (units, layers) = crate::analysis::sparsity::all_stats(net, None);
-            let mut per_layer: Vec<Vec<_>> = vec![Vec::new(); net.layers.len()];
-            for u in units {
-                if let Some(v) = per_layer.get_mut(u.layer_index) {
-                    v.push(u);
-                }
-            }
-            progress.set(0.3);
-            let magnitude = net
-                .layers
-                .iter()
-                .map(|l| magnitude_histogram(l.weights.iter()))
-                .collect();
+            let stats = sparsity::network_sparsity(net, None);
             progress.set(0.5);
-            let bounds = crate::analysis::bounds::interval_bounds(net);
-            Some(Reply::Model {
+            Reply::Model {
                 tag,
-                stats: Arc::new(StatsResult {
-                    units: per_layer,
-                    layers,
-                    magnitude,
-                }),
-                bounds: Arc::new(bounds),
-            })
+                stats: Arc::new(stats),
+                bounds: Arc::new(bounds::interval_bounds(net)),
+            }
         }
-        Job::LoadProbe(choice) => {
-            let result = load_probe(net, choice);
-            Some(Reply::ProbeLoaded { tag, result })
-        }
+        Job::LoadProbe(choice) => Reply::ProbeLoaded {
+            tag,
+            result: load_probe(net, choice),
+        },
         Job::Probe(data) => {
-            let mut src = MemoryProbe::new(data.clone());
-            let opts = crate::analysis::screen::ScreenOptions {
-                chunk_rows: TRACE_CHUNK,
-                ..Default::default()
-            };
-            let screen =
-                crate::analysis::screen::screen(net, &mut src, &opts, &progress.sub(0.0, 0.4)).map(
-                    |r| {
-                        let mut layers: Vec<Vec<_>> =
-                            vec![Vec::new(); net.layers.len().saturating_sub(1)];
-                        for u in &r.units {
-                            if let Some(v) = layers.get_mut(u.layer_index) {
-                                v.push(u.clone());
-                            }
-                        }
-                        Arc::new(ScreenResult {
-                            layers,
-                            samples: r.samples,
-                            probe: r.probe.clone(),
-                            rows: Arc::new(r.units),
-                        })
-                    },
-                );
-            if matches!(screen, Err(Error::Cancelled)) {
-                return None;
-            }
-            let activity = trace_activity(net, data, &progress.sub(0.4, 1.0)).map(Arc::new);
-            if matches!(activity, Err(Error::Cancelled)) {
-                return None;
-            }
-            Some(Reply::Probe {
+            let (screen, activity) = screen_and_trace(net, data, progress)?;
+            Reply::Probe {
                 tag,
                 screen,
                 activity,
-            })
+            }
         }
         Job::Prefer {
             layer,
             units,
             settings,
-        } => {
-            let result = prefer_batch(net, *layer, units, settings, progress);
-            if matches!(result, Err(Error::Cancelled)) {
-                return None;
-            }
-            Some(Reply::Prefer {
-                tag,
-                layer: *layer,
-                settings: *settings,
-                result,
-            })
-        }
-        Job::Sensitivity { layer, mean } => {
-            let result = sensitivity(net, *layer, mean);
-            Some(Reply::Sensitivity {
-                tag,
-                layer: *layer,
-                result,
-            })
-        }
+        } => Reply::Prefer {
+            tag,
+            layer: *layer,
+            settings: settings.clone(),
+            result: not_cancelled(prefer::prefer(net, *layer, units, settings, progress))?,
+        },
+        Job::Sensitivity { layer, mean } => Reply::Sensitivity {
+            tag,
+            layer: *layer,
+            result: gradient::sensitivity(net, *layer, mean).map(Arc::new),
+        },
         Job::Sweep(data) => {
             let mut src = MemoryProbe::new(data.clone());
-            let result =
-                crate::analysis::prune::prune_sweep(net, &mut src, &SWEEP_FRACTIONS, progress)
-                    .map(Arc::new);
-            if matches!(result, Err(Error::Cancelled)) {
-                return None;
+            let result = prune::prune_sweep(net, &mut src, &DEFAULT_SWEEP_FRACTIONS, progress);
+            Reply::Sweep {
+                tag,
+                result: not_cancelled(result)?.map(Arc::new),
             }
-            Some(Reply::Sweep { tag, result })
         }
-    }
+    };
+    Some(reply)
 }
 
-/// Reads the chosen probe into memory and computes its mean input (f64 sums).
-pub fn load_probe(net: &Network, choice: &ProbeChoice) -> Result<OpenProbe> {
-    let (mut src, path) = match choice {
-        ProbeChoice::Uniform => (
-            probe::uniform(
-                net,
-                probe::DEFAULT_UNIFORM_SAMPLES,
-                probe::DEFAULT_UNIFORM_SEED,
-            ),
-            None,
-        ),
-        ProbeChoice::File(p) => (probe::open(p, net)?, Some(p.clone())),
+/// `None` for a cancelled computation (nothing to send), else the result as it is.
+fn not_cancelled<T>(result: Result<T>) -> Option<Result<T>> {
+    (!matches!(result, Err(Error::Cancelled))).then_some(result)
+}
+
+/// The two results of a probe job.
+type ProbeResults = (Result<Arc<ScreenResult>>, Result<Arc<ActivityResult>>);
+
+/// Screening and activity on an in-memory probe, as one job (screening takes the first 40%
+/// of the progress bar); `None` when cancelled.
+fn screen_and_trace(
+    net: &Network,
+    data: &Arc<ProbeData>,
+    progress: &JobProgress<'_>,
+) -> Option<ProbeResults> {
+    let mut src = MemoryProbe::new(data.clone());
+    let opts = ScreenOptions {
+        chunk_rows: TRACE_CHUNK,
+        ..ScreenOptions::default()
     };
-    let data = probe::read_all(src.as_mut())?;
-    let rows = data.inputs.nrows();
-    if rows == 0 {
-        return Err(Error::probe(&data.origin, "the probe has no samples"));
-    }
-    let mut sums = vec![0.0f64; data.inputs.ncols()];
-    for row in data.inputs.rows() {
-        for (s, v) in sums.iter_mut().zip(row.iter()) {
-            *s += f64::from(*v);
-        }
-    }
-    let mean = sums.iter().map(|s| (s / rows as f64) as f32).collect();
+    let report = screen::screen(net, &mut src, &opts, &progress.sub(0.0, 0.4));
+    let screen = not_cancelled(report)?.map(|r| Arc::new(ScreenResult::new(net, r)));
+    let opts = ActivityOptions {
+        chunk_rows: TRACE_CHUNK,
+        ..ActivityOptions::default()
+    };
+    let activity = trace_activity(net, data.inputs.view(), &opts, &progress.sub(0.4, 1.0));
+    Some((screen, not_cancelled(activity)?.map(Arc::new)))
+}
+
+/// Reads the chosen probe into memory with its mean input.
+fn load_probe(net: &Network, choice: &ProbeChoice) -> Result<OpenProbe> {
+    let path = match choice {
+        ProbeChoice::Uniform => None,
+        ProbeChoice::File(p) => Some(p.clone()),
+    };
+    let data = read_probe(net, path.as_deref())?;
+    let mean = data.mean_input()?;
     Ok(OpenProbe {
         data: Arc::new(data),
         mean: Arc::new(mean),
         path,
     })
-}
-
-/// Histogram of log10 |w| with [`MAGNITUDE_BINS`] bins between the smallest and largest
-/// non-zero magnitude; exact zeros are counted apart.
-pub fn magnitude_histogram<'a>(
-    weights: impl Iterator<Item = &'a f32> + Clone,
-) -> MagnitudeHistogram {
-    let mut lo = f64::INFINITY;
-    let mut hi = f64::NEG_INFINITY;
-    let mut zeros = 0u64;
-    for w in weights.clone() {
-        let a = f64::from(w.abs());
-        if a == 0.0 {
-            zeros += 1;
-        } else {
-            let l = a.log10();
-            lo = lo.min(l);
-            hi = hi.max(l);
-        }
-    }
-    if !lo.is_finite() {
-        return MagnitudeHistogram {
-            start: 0.0,
-            width: 1.0,
-            counts: Vec::new(),
-            zeros,
-        };
-    }
-    let span = (hi - lo).max(1e-6);
-    let width = span / MAGNITUDE_BINS as f64;
-    let mut counts = vec![0u64; MAGNITUDE_BINS];
-    for w in weights {
-        let a = f64::from(w.abs());
-        if a > 0.0 {
-            let b = (((a.log10() - lo) / width) as usize).min(MAGNITUDE_BINS - 1);
-            counts[b] += 1;
-        }
-    }
-    MagnitudeHistogram {
-        start: lo,
-        width,
-        counts,
-        zeros,
-    }
-}
-
-/// Preferred inputs of one batch of units. The first layer uses the closed form (exact and
-/// instant: b + sum of max(w*low, w*high)); deeper layers use the core's batched search.
-fn prefer_batch(
-    net: &Network,
-    layer: usize,
-    units: &[usize],
-    settings: &super::state::SearchSettings,
-    progress: &dyn Progress,
-) -> Result<Vec<(usize, PreferredMap)>> {
-    if layer == 0 && settings.l2 == 0.0 && settings.tv == 0.0 {
-        let l = &net.layers[0];
-        return Ok(units
-            .iter()
-            .map(|&u| {
-                let (value, input) = crate::analysis::prefer::closed_form_first_layer(net, u);
-                let z = value as f32;
-                let activation = if matches!(l.activation, crate::model::Activation::Softmax) {
-                    f32::NAN
-                } else {
-                    l.activation.apply_scalar(z)
-                };
-                (
-                    u,
-                    PreferredMap {
-                        input,
-                        preactivation: z,
-                        activation,
-                        finite: value.is_finite(),
-                    },
-                )
-            })
-            .collect());
-    }
-    let found = crate::analysis::prefer::prefer(net, layer, units, &settings.options(), progress)?;
-    Ok(found
-        .into_iter()
-        .map(|p| {
-            (
-                p.unit,
-                PreferredMap {
-                    input: p.input,
-                    preactivation: p.preactivation,
-                    activation: p.activation,
-                    finite: p.finite,
-                },
-            )
-        })
-        .collect())
-}
-
-/// Gradients of every unit of `layer` at the mean probe input: `[units, inputs]`.
-fn sensitivity(net: &Network, layer: usize, mean: &[f32]) -> Result<(Arc<Array2<f32>>, f32)> {
-    let units = net
-        .layers
-        .get(layer)
-        .ok_or_else(|| Error::usage(format!("there is no layer {layer}")))?
-        .units();
-    let d = mean.len();
-    let mut x = Array2::<f32>::zeros((units, d));
-    for mut row in x.rows_mut() {
-        for (v, m) in row.iter_mut().zip(mean) {
-            *v = *m;
-        }
-    }
-    let ids: Vec<usize> = (0..units).collect();
-    let (_, g) = crate::analysis::gradient::input_gradient(net, layer, &ids, x.view());
-    let m = g
-        .iter()
-        .filter(|v| v.is_finite())
-        .fold(0.0f32, |m, v| m.max(v.abs()));
-    Ok((Arc::new(g), m))
-}
-
-/// Activation histograms and top samples of every unit, in two chunked passes over the
-/// probe (range first, then counts), so memory stays bounded by one chunk's trace.
-fn trace_activity(
-    net: &Network,
-    data: &ProbeData,
-    progress: &dyn Progress,
-) -> Result<ActivityResult> {
-    let rows = data.inputs.nrows();
-    let last = net.layers.len() - 1;
-    let mut layers: Vec<Vec<UnitActivity>> = net
-        .layers
-        .iter()
-        .map(|l| {
-            vec![
-                UnitActivity {
-                    lo: f32::INFINITY,
-                    hi: f32::NEG_INFINITY,
-                    hist: vec![0; HIST_BINS],
-                    top: Vec::new(),
-                };
-                l.units()
-            ]
-        })
-        .collect();
-    let chunks = rows.div_ceil(TRACE_CHUNK).max(1);
-    for pass in 0..2 {
-        for c in 0..chunks {
-            if progress.cancelled() {
-                return Err(Error::Cancelled);
-            }
-            progress.set((pass * chunks + c) as f32 / (2 * chunks) as f32);
-            let start = c * TRACE_CHUNK;
-            let end = (start + TRACE_CHUNK).min(rows);
-            let x = data.inputs.slice(s![start..end, ..]);
-            let trace = crate::analysis::forward::forward_trace(net, x, last);
-            for (l, acts) in layers.iter_mut().enumerate() {
-                let (Some(pre), Some(post)) = (trace.pre.get(l), trace.post.get(l)) else {
-                    continue;
-                };
-                for (u, a) in acts.iter_mut().enumerate() {
-                    let zc = pre.column(u);
-                    let ac = post.column(u);
-                    if pass == 0 {
-                        for (r, (&z, &v)) in zc.iter().zip(ac.iter()).enumerate() {
-                            if v.is_finite() {
-                                a.lo = a.lo.min(v);
-                                a.hi = a.hi.max(v);
-                            }
-                            push_top(&mut a.top, (start + r, z, v));
-                        }
-                    } else {
-                        let span = a.hi - a.lo;
-                        for &v in ac.iter() {
-                            if !v.is_finite() {
-                                continue;
-                            }
-                            let b = if span > 0.0 {
-                                (((v - a.lo) / span) * HIST_BINS as f32) as usize
-                            } else {
-                                0
-                            };
-                            a.hist[b.min(HIST_BINS - 1)] += 1;
-                        }
-                    }
-                }
-            }
-        }
-    }
-    progress.set(1.0);
-    Ok(ActivityResult { layers })
-}
-
-/// Keeps the [`TOP_SAMPLES`] entries with the highest pre-activation, highest first.
-fn push_top(top: &mut Vec<(usize, f32, f32)>, item: (usize, f32, f32)) {
-    if !item.1.is_finite() {
-        return;
-    }
-    if top.len() == TOP_SAMPLES && top.last().is_some_and(|t| t.1 >= item.1) {
-        return;
-    }
-    let at = top.partition_point(|t| t.1 >= item.1);
-    top.insert(at, item);
-    top.truncate(TOP_SAMPLES);
-}
-
-/// A probe held in memory, served in chunks to the core's streaming functions.
-pub struct MemoryProbe {
-    data: Arc<ProbeData>,
-    at: usize,
-}
-
-impl MemoryProbe {
-    /// Serves `data` from its first row.
-    pub fn new(data: Arc<ProbeData>) -> Self {
-        MemoryProbe { data, at: 0 }
-    }
-}
-
-impl ProbeSource for MemoryProbe {
-    fn describe(&self) -> String {
-        self.data.origin.clone()
-    }
-
-    fn next_chunk(&mut self, max_rows: usize) -> Result<Option<ProbeChunk>> {
-        let rows = self.data.inputs.nrows();
-        if rows == 0 {
-            return Err(Error::probe(&self.data.origin, "the probe has no samples"));
-        }
-        if self.at >= rows {
-            return Ok(None);
-        }
-        let end = (self.at + max_rows.max(1)).min(rows);
-        let chunk = ProbeChunk {
-            inputs: self.data.inputs.slice(s![self.at..end, ..]).to_owned(),
-            labels: self.data.labels.as_ref().map(|l| l[self.at..end].to_vec()),
-            first_row: self.at,
-        };
-        self.at = end;
-        Ok(Some(chunk))
-    }
-
-    fn total_rows(&self) -> Option<usize> {
-        Some(self.data.inputs.nrows())
-    }
-
-    fn has_labels(&self) -> bool {
-        self.data.labels.is_some()
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn top_keeps_highest_first() {
-        let mut top = Vec::new();
-        for (r, z) in [3.0f32, 1.0, 9.0, 4.0, 7.0, 2.0, 8.0, 6.0, 5.0, 0.5]
-            .iter()
-            .enumerate()
-        {
-            push_top(&mut top, (r, *z, *z));
-        }
-        let zs: Vec<f32> = top.iter().map(|t| t.1).collect();
-        assert_eq!(zs, vec![9.0, 8.0, 7.0, 6.0, 5.0, 4.0, 3.0, 2.0]);
-    }
-
-    #[test]
-    fn magnitude_histogram_counts_every_weight() {
-        let w = [0.0f32, 0.001, -0.01, 0.1, -1.0, 0.0];
-        let h = magnitude_histogram(w.iter());
-        assert_eq!(h.zeros, 2);
-        assert_eq!(h.counts.iter().sum::<u64>(), 4);
-        // 0.001 is not exact in f32 (0.0010000000475), so log10 is -3 only to about 2e-8.
-        approx::assert_abs_diff_eq!(h.start, -3.0, epsilon = 1e-6);
-    }
 }

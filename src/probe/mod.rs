@@ -70,6 +70,7 @@ pub struct ProbeData {
 }
 
 pub mod csv;
+pub mod memory;
 pub mod npy;
 pub mod uniform;
 

@@ -1,0 +1,421 @@
+//! What the app asks the worker for and what it does with each reply. Requests mark their
+//! slot in the results cache as pending; replies are stored only when they carry the
+//! cache's model (and, for probe results, probe) identity, so a late reply for a model
+//! that is no longer open is dropped.
+
+use super::state::{
+    ActivityResult, LayerPreferred, MainView, MapView, OpenModel, OpenProbe, Prefs, Results,
+    ScreenResult, Selection, Slot, Tag, Task,
+};
+use super::worker::{self, Job, ProbeChoice, Reply};
+use super::{DEMO_PROBE, Pick, ReceptorApp};
+use crate::analysis::prefer::{PreferOptions, Preferred};
+use crate::error::Result;
+use crate::model::Network;
+use crate::probe::ProbeData;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+impl ReceptorApp {
+    /// Hands a reply to its handler.
+    pub(super) fn handle_reply(&mut self, reply: Reply) {
+        match reply {
+            Reply::Started { tag, title } => self.on_started(tag, title),
+            Reply::Progress { tag, fraction } => self.on_progress(tag, fraction),
+            Reply::Finished { .. } => self.on_finished(),
+            Reply::ModelOpened { request, result } => self.on_model_opened(request, result),
+            Reply::Model { tag, stats, bounds } => {
+                if self.state.results.is_model(tag) {
+                    self.state.results.stats = Slot::Ready(stats);
+                    self.state.results.bounds = Slot::Ready(bounds);
+                }
+            }
+            Reply::ProbeLoaded { tag, result } => self.on_probe_loaded(tag, result),
+            Reply::Probe {
+                tag,
+                screen,
+                activity,
+            } => self.on_probe_results(tag, screen, activity),
+            Reply::Prefer {
+                tag,
+                layer,
+                settings,
+                result,
+            } => self.on_preferred(tag, layer, &settings, result),
+            Reply::Sensitivity { tag, layer, result } => {
+                if self.state.results.is_current(tag) {
+                    let slot = self.state.results.sensitivity.entry(layer).or_default();
+                    let failed = slot.settle(result, "sensitivity");
+                    self.notify_failure(failed);
+                }
+            }
+            Reply::Sweep { tag, result } => {
+                if self.state.results.is_current(tag) {
+                    let failed = self.state.results.sweep.settle(result, "pruning sweep");
+                    self.notify_failure(failed);
+                }
+            }
+            Reply::Exported { result } => match result {
+                Ok(p) => self.state.confirm(format!("Saved {}", p.display())),
+                Err(e) => self.state.fail(e.to_string()),
+            },
+            Reply::Picked { purpose, path } => self.on_picked(purpose, path),
+        }
+    }
+
+    /// Shows a failure message in the status bar, when there is one.
+    fn notify_failure(&mut self, failure: Option<String>) {
+        if let Some(text) = failure {
+            self.state.fail(text);
+        }
+    }
+
+    fn on_started(&mut self, tag: Tag, title: String) {
+        if self.state.results.is_model(tag) {
+            self.state.run.task = Task {
+                title,
+                fraction: 0.0,
+            };
+        }
+    }
+
+    fn on_progress(&mut self, tag: Tag, fraction: f32) {
+        if self.state.results.is_model(tag) {
+            self.state.run.task.fraction = fraction;
+        }
+    }
+
+    fn on_finished(&mut self) {
+        if self.worker.pending() == 0 {
+            self.state.run.task = Task::default();
+        }
+    }
+
+    fn on_model_opened(
+        &mut self,
+        request: u64,
+        result: Result<(Network, String, Option<PathBuf>)>,
+    ) {
+        if request != self.state.run.open_request {
+            return; // superseded by a later open
+        }
+        self.state.run.opening = None;
+        match result {
+            Ok((net, origin, path)) => self.install_model(net, origin, path),
+            Err(e) => {
+                let text = e.to_string();
+                self.state.open_error = Some(text.clone());
+                let keep = if self.state.model.is_some() {
+                    " (the open model stays open)"
+                } else {
+                    ""
+                };
+                self.state.fail(format!("{text}{keep}"));
+            }
+        }
+    }
+
+    fn on_probe_loaded(&mut self, tag: Tag, result: Result<OpenProbe>) {
+        let current = self.state.tag();
+        if tag.model != current.model || tag.probe < current.probe {
+            return;
+        }
+        match result {
+            Ok(probe) => self.install_probe(tag, probe),
+            Err(e) => {
+                let text = e.to_string();
+                self.state.open_error = Some(text.clone());
+                self.state.fail(format!("{text} (the probe in use stays)"));
+                if self.state.probe.is_none() {
+                    // The model needs some probe: fall back to the uniform one.
+                    self.request_probe(ProbeChoice::Uniform);
+                }
+            }
+        }
+    }
+
+    /// Makes `probe` the probe in use: drops the results on the old probe and starts
+    /// screening and tracing on the new one.
+    fn install_probe(&mut self, tag: Tag, probe: OpenProbe) {
+        if let Some(p) = &probe.path
+            && p != Path::new(DEMO_PROBE)
+        {
+            Prefs::remember(&mut self.state.prefs.recent_probes, p);
+        }
+        let rows = probe.data.inputs.nrows();
+        let origin = probe.data.origin.clone();
+        let changed = self.state.probe.is_some();
+        self.state.results.change_probe(tag.probe);
+        self.state.order_cache = None;
+        self.thumbs.clear_probe();
+        let data = probe.data.clone();
+        self.state.probe = Some(probe);
+        if changed {
+            self.state
+                .confirm(format!("Using probe {origin} ({rows} samples)"));
+        }
+        self.submit_probe_job(data);
+    }
+
+    fn on_probe_results(
+        &mut self,
+        tag: Tag,
+        screen: Result<Arc<ScreenResult>>,
+        activity: Result<Arc<ActivityResult>>,
+    ) {
+        if !self.state.results.is_current(tag) {
+            return;
+        }
+        let r = &mut self.state.results;
+        let screen_failed = r.screen.settle(screen, "screening");
+        let trace_failed = r.activity.settle(activity, "tracing activations");
+        self.notify_failure(screen_failed);
+        self.notify_failure(trace_failed);
+    }
+
+    fn on_preferred(
+        &mut self,
+        tag: Tag,
+        layer: usize,
+        settings: &PreferOptions,
+        result: Result<Vec<Preferred>>,
+    ) {
+        if !self.state.results.is_model(tag) {
+            return;
+        }
+        let Some(lp) = self.state.results.preferred.get_mut(&layer) else {
+            return;
+        };
+        if lp.settings != *settings {
+            return;
+        }
+        lp.pending = lp.pending.saturating_sub(1);
+        match result {
+            Ok(found) => {
+                for p in found {
+                    if let Some(slot) = lp.maps.get_mut(p.unit) {
+                        *slot = Some(p);
+                    }
+                }
+            }
+            Err(e) => self
+                .state
+                .fail(format!("preferred-input search failed: {e}")),
+        }
+    }
+
+    fn on_picked(&mut self, purpose: Pick, path: Option<PathBuf>) {
+        self.dialog_open = false;
+        if let Some(p) = path {
+            match purpose {
+                Pick::Model => self.open_model(&p),
+                Pick::Probe => self.open_probe(&p),
+                Pick::Export(kind) => self.export_to(kind, p),
+            }
+        }
+    }
+
+    /// Makes `net` the open model: stops the old model's work (its late replies carry the
+    /// old identity and are dropped), starts a fresh results cache, and queues the
+    /// statistics and the probe.
+    pub(super) fn install_model(&mut self, net: Network, origin: String, path: Option<PathBuf>) {
+        self.worker.cancel_all();
+        self.state.run.stopped = false;
+        let tag = Tag {
+            model: self.state.tag().model + 1,
+            probe: self.state.run.new_probe_id(),
+        };
+        self.state.results = Results::new(tag);
+        self.state.probe = None;
+        self.state.order_cache = None;
+        self.thumbs.clear();
+        self.detail.reset();
+        let net = Arc::new(net);
+        if let Some(p) = &path {
+            Prefs::remember(&mut self.state.prefs.recent_models, p);
+        }
+        let first = net.layers.iter().position(|l| l.units() > 0).unwrap_or(0);
+        self.state.selection = Some(Selection {
+            layer: first,
+            unit: 0,
+        });
+        self.state.history.clear();
+        self.state.confirm(format!(
+            "Opened {origin}: {} layers, {} parameters",
+            net.layers.len(),
+            net.parameter_count()
+        ));
+        self.state.model = Some(OpenModel {
+            net: net.clone(),
+            origin,
+            path,
+        });
+        self.state.open_error = None;
+        self.submit_model_job(net.clone());
+        let choice = if std::mem::take(&mut self.state.run.demo_probe_pending) {
+            ProbeChoice::File(PathBuf::from(DEMO_PROBE))
+        } else {
+            ProbeChoice::Uniform
+        };
+        self.worker.submit(Job::LoadProbe(choice), net, tag);
+    }
+
+    /// Queues reading a probe for the open model under a fresh probe id.
+    pub(super) fn request_probe(&mut self, choice: ProbeChoice) {
+        let Some(net) = self.state.net().cloned() else {
+            self.state.fail("open a model before opening probe data");
+            return;
+        };
+        let tag = Tag {
+            model: self.state.tag().model,
+            probe: self.state.run.new_probe_id(),
+        };
+        self.worker.submit(Job::LoadProbe(choice), net, tag);
+    }
+
+    /// Queues statistics and bounds of the open model.
+    fn submit_model_job(&mut self, net: Arc<Network>) {
+        self.state.results.stats.request();
+        self.state.results.bounds.request();
+        self.worker.submit(Job::Model, net, self.state.tag());
+    }
+
+    /// Queues screening and tracing of `data`, the probe in use.
+    fn submit_probe_job(&mut self, data: Arc<ProbeData>) {
+        let Some(net) = self.state.net().cloned() else {
+            return;
+        };
+        self.state.results.screen.request();
+        self.state.results.activity.request();
+        self.worker.submit(Job::Probe(data), net, self.state.tag());
+    }
+
+    /// Queues the work the visible panels need and that is not yet asked for.
+    pub(super) fn request_needed(&mut self) {
+        if self.state.run.stopped {
+            return;
+        }
+        let Some(net) = self.state.net().cloned() else {
+            return;
+        };
+        let tag = self.state.tag();
+        let layer = self.state.current_layer();
+        if layer < net.layers.len() && !self.state.results.preferred.contains_key(&layer) {
+            self.queue_prefer(&net, layer, None);
+        }
+        let results = &mut self.state.results;
+        if self.state.prefs.map_view == MapView::Sensitivity
+            && let Some(p) = &self.state.probe
+            && results.sensitivity_of(layer).is_none_or(|s| s.is_empty())
+        {
+            results.sensitivity.entry(layer).or_default().request();
+            let mean = p.mean.clone();
+            self.worker
+                .submit(Job::Sensitivity { layer, mean }, net.clone(), tag);
+        }
+        if self.state.view == MainView::Sparsity
+            && let Some(p) = &self.state.probe
+            && p.labelled()
+            && results.sweep.is_empty()
+        {
+            results.sweep.request();
+            self.worker.submit(Job::Sweep(p.data.clone()), net, tag);
+        }
+    }
+
+    /// Queues preferred-input batches for `layer` (all units, or only `missing` ones).
+    pub(super) fn queue_prefer(
+        &mut self,
+        net: &Arc<Network>,
+        layer: usize,
+        missing: Option<Vec<usize>>,
+    ) {
+        let n = net.layers[layer].units();
+        let settings = self.state.prefs.search.clone();
+        let units = missing.unwrap_or_else(|| (0..n).collect());
+        let tag = self.state.tag();
+        let entry = self
+            .state
+            .results
+            .preferred
+            .entry(layer)
+            .or_insert_with(|| LayerPreferred {
+                settings: settings.clone(),
+                maps: vec![None; n],
+                pending: 0,
+            });
+        // Small batches first so the first tiles appear soon on a large layer, then full
+        // batches (each batch is still one batched call of the core's search).
+        let mut at = 0;
+        let mut size = worker::PREFER_BATCH / 8;
+        while at < units.len() {
+            let end = (at + size).min(units.len());
+            entry.pending += 1;
+            self.worker.submit(
+                Job::Prefer {
+                    layer,
+                    units: units[at..end].to_vec(),
+                    settings: settings.clone(),
+                },
+                net.clone(),
+                tag,
+            );
+            at = end;
+            size = (size * 2).min(worker::PREFER_BATCH);
+        }
+    }
+
+    /// Stops the running work; "Run again" finishes it later.
+    pub(super) fn cancel(&mut self) {
+        self.worker.cancel_all();
+        self.state.results.cancel_pending();
+        self.state.run.stopped = true;
+        self.state
+            .confirm("Stopped. Use \"Run again\" to finish the analysis.");
+    }
+
+    /// After a cancel: queue again what is missing (what the panels need on screen is
+    /// asked for again by [`Self::request_needed`]).
+    pub(super) fn run_again(&mut self) {
+        self.state.run.stopped = false;
+        let Some(net) = self.state.net().cloned() else {
+            return;
+        };
+        self.state.results.forget_unfinished();
+        if self.state.results.stats.is_empty() {
+            self.submit_model_job(net.clone());
+        }
+        match &self.state.probe {
+            None => self.request_probe(ProbeChoice::Uniform),
+            Some(p) => {
+                let r = &self.state.results;
+                if r.screen.is_empty() || r.activity.is_empty() {
+                    let data = p.data.clone();
+                    self.submit_probe_job(data);
+                }
+            }
+        }
+        for (layer, missing) in missing_preferred(&self.state.results) {
+            self.queue_prefer(&net, layer, Some(missing));
+        }
+    }
+}
+
+/// The units of each layer whose preferred input is missing, for layers with any missing.
+fn missing_preferred(results: &Results) -> Vec<(usize, Vec<usize>)> {
+    results
+        .preferred
+        .iter()
+        .map(|(l, lp)| {
+            let missing = lp
+                .maps
+                .iter()
+                .enumerate()
+                .filter(|(_, m)| m.is_none())
+                .map(|(u, _)| u)
+                .collect();
+            (*l, missing)
+        })
+        .filter(|(_, m): &(usize, Vec<usize>)| !m.is_empty())
+        .collect()
+}
