@@ -154,21 +154,40 @@ fn write_json_object<'a>(
     w.write_all(b"}")
 }
 
+/// Passes writes through and leaves flushing to the owner of the writer: the `csv` crate
+/// flushes its writer when dropped, and a table abandoned after an error must not push what
+/// [`emit`] holds back for standard output.
+struct NoFlush<'w>(&'w mut dyn Write);
+
+impl Write for NoFlush<'_> {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        self.0.write(buf)
+    }
+
+    fn write_all(&mut self, buf: &[u8]) -> std::io::Result<()> {
+        self.0.write_all(buf)
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        Ok(())
+    }
+}
+
 /// A CSV writer over `w`: RFC 4180 quoting by the `csv` crate (a field holding the delimiter,
 /// a quote or a line feed is enclosed in quotes, inner quotes doubled), `\n` line ends, and
-/// no check that every line has the header's number of fields (a vector column makes rows
-/// as wide as the header only when the caller sized the header for it).
-fn csv_writer(w: &mut dyn Write) -> csv::Writer<&mut dyn Write> {
+/// no check that every line has the header's number of fields (the caller sizes the header
+/// for vector columns).
+fn csv_writer(w: &mut dyn Write) -> csv::Writer<NoFlush<'_>> {
     csv::WriterBuilder::new()
         .has_headers(false)
         .flexible(true)
-        .from_writer(w)
+        .from_writer(NoFlush(w))
 }
 
 /// Where rows go: a CSV writer (which buffers) or the raw writer for JSON.
 enum Sink<'w> {
     // Boxed: the CSV writer carries its buffer state, the JSON side one pointer.
-    Csv(Box<csv::Writer<&'w mut dyn Write>>),
+    Csv(Box<csv::Writer<NoFlush<'w>>>),
     Json(&'w mut dyn Write),
 }
 
@@ -443,5 +462,65 @@ mod tests {
             serde_json::from_str::<serde_json::Value>(&empty).unwrap(),
             serde_json::json!({"rows": []})
         );
+    }
+
+    #[test]
+    fn csv_quoting_follows_rfc_4180() {
+        // RFC 4180, section 2, rules 6 and 7: a field holding a comma, a double quote or a
+        // line break is enclosed in double quotes, and a quote inside it is doubled.
+        let mut out = Vec::new();
+        let cols = vec!["a".to_string(), "b".to_string()];
+        let mut t = TableWriter::begin(Format::Csv, &mut out, cols.clone(), cols).unwrap();
+        t.row(&[Cell::from("say \"hi\""), Cell::from("two\nlines")])
+            .unwrap();
+        t.row(&[Cell::OptStr(None), Cell::Bool(true)]).unwrap();
+        t.finish(&[]).unwrap();
+        assert_eq!(
+            String::from_utf8(out).unwrap(),
+            "a,b\n\"say \"\"hi\"\"\",\"two\nlines\"\n,true\n"
+        );
+    }
+
+    /// A writer that records what reaches it and how often it is flushed.
+    #[derive(Default)]
+    struct Recorder {
+        bytes: Vec<u8>,
+        flushes: usize,
+    }
+
+    impl Write for Recorder {
+        fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+            self.bytes.extend_from_slice(buf);
+            Ok(buf.len())
+        }
+        fn flush(&mut self) -> std::io::Result<()> {
+            self.flushes += 1;
+            Ok(())
+        }
+    }
+
+    #[test]
+    fn an_abandoned_table_never_flushes_the_destination() {
+        // emit() holds standard output back so that a failed command prints nothing; a table
+        // dropped after an error (without finish) must not flush it through.
+        for format in [Format::Csv, Format::Json] {
+            let mut rec = Recorder::default();
+            {
+                let cols = vec!["a".to_string()];
+                let mut t = TableWriter::begin(format, &mut rec, cols.clone(), cols).unwrap();
+                t.row(&[Cell::UInt(1)]).unwrap();
+            }
+            assert_eq!(rec.flushes, 0, "{format:?}");
+            let mut rec = Recorder::default();
+            let cols = vec!["a".to_string()];
+            let mut t = TableWriter::begin(format, &mut rec, cols.clone(), cols).unwrap();
+            t.row(&[Cell::UInt(1)]).unwrap();
+            t.finish(&[]).unwrap();
+            assert_eq!(rec.flushes, 0, "{format:?}");
+            assert!(
+                String::from_utf8_lossy(&rec.bytes).contains('1'),
+                "{format:?}"
+            );
+        }
     }
 }
