@@ -2,9 +2,9 @@
 """Independent check of receptor's colour key (assets/colour-key.json).
 
 Uses colour-science (tested with 0.4.7) and numpy (tested with 2.4) instead of receptor's own
-conversion code, and prints the numbers quoted in src/app/colour.rs:
+conversion code, and prints the numbers quoted in src/report/colour.rs:
   * the Machado, Oliveira & Fernandes (2009) matrices for protanopia / deuteranopia at severity 1.0
-    from colour-science's table, compared with the values typed into src/app/colour.rs;
+    from colour-science's table, compared with the values typed into src/report/colour.rs;
   * every stop as 8-bit sRGB (the FIXTURE_STOP_SRGB table of the Rust tests);
   * L* symmetry of the key (sampled), the gamut, and CIE76 Delta E between the ends and the centre
     under normal vision and both simulations.
@@ -23,7 +23,7 @@ import numpy as np
 ROOT = pathlib.Path(__file__).resolve().parent.parent
 KEY = json.loads((ROOT / "assets" / "colour-key.json").read_text())
 
-# The values in src/app/colour.rs (PROTANOPIA, DEUTERANOPIA).
+# The values in src/report/colour.rs (PROTANOPIA, DEUTERANOPIA).
 RUST_PROTAN = np.array([[0.152286, 1.052583, -0.204868],
                         [0.114503, 0.786281, 0.099216],
                         [-0.003882, -0.048116, 1.051998]])

@@ -1,7 +1,8 @@
 //! receptor: inspect trained feed-forward networks.
 //!
-//! The core (`model`, `probe`, `analysis`) has no GUI dependency; `cli` and `app` are thin
-//! layers over it.
+//! The core (`model`, `probe`, `analysis`) has no GUI dependency; `report` (tables, the
+//! colour key, pictures) builds on it, also without GUI; `cli` and `app` are thin layers over
+//! both and never use each other.
 
 pub mod analysis;
 #[cfg(feature = "gui")]
@@ -11,6 +12,7 @@ pub mod cli;
 pub mod error;
 pub mod model;
 pub mod probe;
+pub mod report;
 
 pub use error::{Error, Result};
 pub use model::Network;

@@ -10,6 +10,7 @@ use super::maps;
 use super::state::{AppState, MapView, Selection};
 use super::thumbs::{ThumbKey, ThumbKind, Thumbs};
 use crate::model::{Layout, Network};
+use crate::report::picture::{self, Picture};
 use egui::{Color32, Rect, Sense, pos2, vec2};
 
 /// Strongest incoming connections listed.
@@ -177,7 +178,7 @@ fn map_data(state: &AppState, net: &Network, sel: Selection) -> Result<MapData, 
 
 /// The picture of the current map of the selected unit (also used by the PNG export), with
 /// a name for the file.
-pub fn current_map(state: &AppState) -> Option<(String, egui::ColorImage)> {
+pub fn current_map(state: &AppState) -> Option<(String, Picture)> {
     let net = state.net()?;
     let sel = state.selection?;
     let data = map_data(state, net, sel).ok()?;
@@ -190,11 +191,11 @@ pub fn current_map(state: &AppState) -> Option<(String, egui::ColorImage)> {
     Some((name, image_of(&data, net)))
 }
 
-fn image_of(data: &MapData, net: &Network) -> egui::ColorImage {
+fn image_of(data: &MapData, net: &Network) -> Picture {
     match data {
-        MapData::SignedInput(v, m, _) => maps::signed_input_map(&net.input, v, *m),
-        MapData::Cells(v, m) => maps::cell_grid(v, *m),
-        MapData::Input(v) => maps::input_picture(&net.input, v),
+        MapData::SignedInput(v, m, _) => picture::signed_input_map(&net.input, v, *m),
+        MapData::Cells(v, m) => picture::cell_grid(v, *m),
+        MapData::Input(v) => picture::input_picture(&net.input, v),
     }
 }
 
@@ -218,7 +219,9 @@ fn map_ui(
         unit: sel.unit,
         kind: thumb_kind(state, &data),
     };
-    let Some(tex) = thumbs.get(ui.ctx(), key, false, || Some(image_of(&data, net))) else {
+    let Some(tex) = thumbs.get(ui.ctx(), key, false, || {
+        Some(maps::to_color_image(&image_of(&data, net)))
+    }) else {
         return;
     };
     let size = tex.size_vec2();

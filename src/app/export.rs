@@ -5,16 +5,14 @@
 //! off the frame thread.
 
 use super::colour::ScaleMode;
-use super::maps;
 use super::state::{AppState, ScreenResult, StatsResult};
-use crate::cli::output::{Cell, Format};
 use crate::error::{Error, Result};
 use crate::model::Network;
+use crate::report::picture::{self, Picture};
+use crate::report::table::Format;
+use crate::report::tables;
 use std::path::Path;
 use std::sync::Arc;
-
-/// Pixels between tiles in a grid PNG.
-const GRID_GAP: u32 = 2;
 
 /// What to export.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -114,7 +112,7 @@ pub enum ExportData {
     /// Screening in one format.
     Screen(Arc<ScreenResult>, Format),
     /// One picture.
-    Image(egui::ColorImage),
+    Image(Picture),
     /// The tiles of a layer in grid order.
     Grid {
         /// The model.
@@ -136,7 +134,7 @@ pub enum ExportData {
 pub fn prepare(
     kind: ExportKind,
     state: &AppState,
-    map: Option<(String, egui::ColorImage)>,
+    map: Option<(String, Picture)>,
 ) -> Result<ExportData> {
     let missing = |what: &str| Error::usage(format!("nothing to export yet: {what}"));
     match kind {
@@ -218,14 +216,17 @@ pub fn write(data: &ExportData, path: &Path) -> Result<()> {
         ExportData::Screen(s, format) => {
             crate::atomic::write_atomic(path, |w| write_screen(w, s, *format))
         }
-        ExportData::Image(img) => write_png(path, &maps::to_rgba(img, zoom_for(img.size))),
+        ExportData::Image(img) => {
+            let zoom = zoom_for(img.size());
+            img.zoomed(zoom, zoom).write_png(path)
+        }
         ExportData::Grid {
             net,
             layer,
             order,
             preferred,
             scale,
-        } => write_png(path, &grid_image(net, *layer, order, preferred, *scale)),
+        } => grid_image(net, *layer, order, preferred, *scale)?.write_png(path),
         ExportData::Pruned(net, fraction) => {
             let pruned = crate::analysis::prune::prune_by_magnitude(net, *fraction);
             crate::model::write_json(&pruned, path)
@@ -239,7 +240,7 @@ pub fn write_stats(
     s: &StatsResult,
     format: Format,
 ) -> std::io::Result<()> {
-    crate::cli::stats::write_table(format, w, s.units.iter().flatten(), &s.layers)
+    tables::write_stats(format, w, s.units.iter().flatten(), &s.layers)
 }
 
 /// The screening table, exactly the columns of `receptor screen`.
@@ -249,16 +250,8 @@ pub fn write_screen(
     format: Format,
 ) -> std::io::Result<()> {
     let rare = crate::analysis::screen::ScreenOptions::default().rare;
-    crate::cli::screen::write_table(
-        format,
-        w,
-        &s.rows,
-        &[
-            ("samples", Cell::from(s.samples)),
-            ("probe", Cell::from(s.probe.as_str())),
-            ("rare", Cell::F64(rare)),
-        ],
-    )
+    let extra = tables::screen_extra(s.samples, &s.probe, rare, None);
+    tables::write_screen(format, w, &s.rows, &extra)
 }
 
 /// Enlargement for a single map so small inputs (12 x 12) give a usable picture.
@@ -268,55 +261,22 @@ fn zoom_for(size: [usize; 2]) -> usize {
 }
 
 /// All tiles of a layer in grid order: first-layer weight maps, or preferred inputs (a
-/// neutral grey tile where a search has not finished).
-fn grid_image(
+/// neutral grey tile where a search has not finished), drawn exactly as
+/// `receptor prefer --png` draws them.
+pub fn grid_image(
     net: &Network,
     layer: usize,
     order: &[usize],
     preferred: &[Option<Vec<f32>>],
     scale: ScaleMode,
-) -> image::RgbaImage {
-    let l = &net.layers[layer];
-    let layer_max = maps::max_abs(l.weights.as_slice().unwrap_or(&[]));
-    let tile = |u: usize| -> egui::ColorImage {
-        if layer == 0 {
-            let w = l.weights.row(u).to_vec();
-            maps::signed_input_map(&net.input, &w, scale.pick(maps::max_abs(&w), layer_max))
-        } else {
-            match preferred.get(u).and_then(|p| p.as_ref()) {
-                Some(x) => maps::input_picture(&net.input, x),
-                None => {
-                    let (w, h) = maps::input_dims(&net.input, false);
-                    egui::ColorImage::filled([w, h], egui::Color32::from_gray(128))
-                }
-            }
-        }
-    };
-    let first = tile(order.first().copied().unwrap_or(0));
-    let zoom = (64 / first.size[0].max(first.size[1]).max(1)).clamp(1, 8);
-    let (tw, th) = ((first.size[0] * zoom) as u32, (first.size[1] * zoom) as u32);
-    let cols = maps::cell_columns(order.len()) as u32;
-    let rows = (order.len() as u32).div_ceil(cols).max(1);
-    let mut out = image::RgbaImage::from_pixel(
-        cols * (tw + GRID_GAP) + GRID_GAP,
-        rows * (th + GRID_GAP) + GRID_GAP,
-        image::Rgba([255, 255, 255, 255]),
-    );
-    for (k, &u) in order.iter().enumerate() {
-        let img = maps::to_rgba(&tile(u), zoom);
-        let x0 = GRID_GAP + (k as u32 % cols) * (tw + GRID_GAP);
-        let y0 = GRID_GAP + (k as u32 / cols) * (th + GRID_GAP);
-        image::imageops::overlay(&mut out, &img, i64::from(x0), i64::from(y0));
+) -> Result<Picture> {
+    if layer == 0 {
+        picture::weight_grid(&net.input, net.layers[0].weights.view(), order, scale)
+    } else {
+        let inputs: Vec<Option<&[f32]>> = order
+            .iter()
+            .map(|&u| preferred.get(u).and_then(|p| p.as_deref()))
+            .collect();
+        picture::preferred_grid(&net.input, &inputs)
     }
-    out
-}
-
-fn write_png(path: &Path, img: &image::RgbaImage) -> Result<()> {
-    let mut bytes = Vec::new();
-    img.write_to(
-        &mut std::io::Cursor::new(&mut bytes),
-        image::ImageFormat::Png,
-    )
-    .map_err(|e| Error::io(path, "cannot encode the PNG", std::io::Error::other(e)))?;
-    crate::atomic::write_bytes_atomic(path, &bytes)
 }

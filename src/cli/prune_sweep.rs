@@ -1,7 +1,7 @@
 //! `receptor prune-sweep MODEL --probe DATA`: accuracy after magnitude pruning at several
 //! fractions, and `--write-pruned FRAC --out FILE` to save a pruned model.
 
-use super::output::{Cell, Stop, TableWriter, emit};
+use super::output::{Stop, emit};
 use super::{CommonArgs, check_fraction};
 use crate::analysis::Silent;
 use crate::analysis::prune::{prune_by_magnitude, prune_sweep};
@@ -41,9 +41,6 @@ pub struct PruneSweepArgs {
     #[command(flatten)]
     pub common: CommonArgs,
 }
-
-/// The CSV/JSON columns of `prune-sweep`, in order.
-pub const COLUMNS: [&str; 4] = ["fraction", "zeroed", "total", "accuracy"];
 
 /// Weights that are exactly zero, and all weights, over every layer.
 pub fn zero_count(net: &Network) -> (usize, usize) {
@@ -102,18 +99,9 @@ pub fn run(args: &PruneSweepArgs) -> Result<ExitCode> {
     let mut source = probe::open(probe_path, &net)?;
     require_labels(&*source, probe_path)?;
     let points = prune_sweep(&net, &mut *source, &args.fractions, &Silent)?;
-    let columns: Vec<String> = COLUMNS.iter().map(|c| c.to_string()).collect();
+    let probe_name = probe_path.display().to_string();
     emit(&args.common.destination(), |w| {
-        let mut t = TableWriter::begin(args.common.format, w, columns.clone(), columns)?;
-        for p in &points {
-            t.row(&[
-                Cell::F64(p.fraction),
-                Cell::from(p.zeroed),
-                Cell::from(p.total),
-                Cell::F64(p.accuracy),
-            ])?;
-        }
-        t.finish(&[("probe", Cell::from(probe_path.display().to_string()))])?;
+        crate::report::tables::write_prune_sweep(args.common.format, w, &points, &probe_name)?;
         Ok::<(), Stop>(())
     })?;
     Ok(ExitCode::SUCCESS)

@@ -1,13 +1,14 @@
 //! `receptor screen MODEL [--probe DATA]`: dead, rarely active, always active and saturated
 //! hidden units, on probe data and by interval bound propagation.
 
-use super::output::{Cell, Format, Stop, TableWriter, emit};
 use super::{CommonArgs, ProbeArgs, check_fraction};
 use crate::analysis::Silent;
-use crate::analysis::screen::{ScreenOptions, ScreenReport, UnitScreen, screen};
+use crate::analysis::screen::{ScreenOptions, ScreenReport, screen};
 use crate::error::{Error, Result};
 use crate::model::Network;
 use crate::probe;
+use crate::report::table::{Stop, emit};
+use crate::report::tables;
 use clap::Args;
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -40,18 +41,6 @@ pub struct ScreenArgs {
     pub common: CommonArgs,
 }
 
-/// The CSV/JSON columns of `screen`, in order.
-pub const COLUMNS: [&str; 8] = [
-    "layer",
-    "unit",
-    "activation",
-    "active_frac",
-    "mean",
-    "max",
-    "upper_bound",
-    "status",
-];
-
 /// Loads the model, opens the probe and screens; shared by `screen` and `check`.
 /// Returns the network, the report and the uniform probe's seed when one was used.
 pub fn load_and_screen(
@@ -82,41 +71,9 @@ pub fn run(args: &ScreenArgs) -> Result<ExitCode> {
         args.chunk_rows,
     )?;
     emit(&args.common.destination(), |w| {
-        let mut extra = vec![
-            ("samples", Cell::from(report.samples)),
-            ("probe", Cell::from(report.probe.as_str())),
-            ("rare", Cell::F64(args.rare)),
-        ];
-        if let Some(s) = seed {
-            extra.push(("seed", Cell::UInt(s)));
-        }
-        write_table(args.common.format, w, &report.units, &extra)?;
+        let extra = tables::screen_extra(report.samples, &report.probe, args.rare, seed);
+        tables::write_screen(args.common.format, w, &report.units, &extra)?;
         Ok::<(), Stop>(())
     })?;
     Ok(ExitCode::SUCCESS)
-}
-
-/// Writes the `screen` table (one row per hidden unit, [`COLUMNS`]; JSON adds `extra` as
-/// top-level keys). Shared by the command and the app's export.
-pub fn write_table(
-    format: Format,
-    w: &mut dyn std::io::Write,
-    units: &[UnitScreen],
-    extra: &[(&str, Cell)],
-) -> std::io::Result<()> {
-    let columns: Vec<String> = COLUMNS.iter().map(|c| c.to_string()).collect();
-    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
-    for u in units {
-        t.row(&[
-            Cell::from(u.layer.as_str()),
-            Cell::from(u.unit),
-            Cell::from(u.activation),
-            Cell::F64(u.active_frac),
-            Cell::F64(u.mean),
-            Cell::F64(u.max),
-            Cell::F64(u.upper_bound),
-            Cell::from(u.status.as_str()),
-        ])?;
-    }
-    t.finish(extra)
 }

@@ -1,0 +1,18 @@
+//! The report layer: what the command line and the app both show, free of any GUI crate.
+//!
+//! - [`table`]: tables as CSV or JSON, one number format on both fronts;
+//! - [`tables`]: the columns and rows of the `stats`, `screen`, `prune-sweep` and `prefer`
+//!   tables, written by the commands and by the app's exports;
+//! - [`colour`]: the diverging colour key (CIELAB stops from `assets/colour-key.json`) and
+//!   the tick labels of its legend;
+//! - [`picture`]: the one renderer of maps, input pictures, cell grids and tile grids into
+//!   RGBA buffers and PNG bytes, so `receptor prefer --png`, the app's textures and its PNG
+//!   exports draw the same pixels.
+//!
+//! Like `model/`, `probe/` and `analysis/`, nothing here names egui, eframe or rfd
+//! (`.ci/run` greps); `cli/` and `app/` both build on it and never on each other.
+
+pub mod colour;
+pub mod picture;
+pub mod table;
+pub mod tables;

@@ -1,0 +1,189 @@
+//! The tables of the analysis commands: their columns, in order, and how one result becomes
+//! rows. The commands (`receptor stats`, `screen`, `prune-sweep`, `prefer`) and the app's
+//! exports write through these functions, so a file from either front has the same columns
+//! and the same numbers.
+
+use super::table::{Cell, Format, TableWriter};
+use crate::analysis::prefer::Preferred;
+use crate::analysis::prune::SweepPoint;
+use crate::analysis::screen::UnitScreen;
+use crate::analysis::sparsity::{LayerSummary, UnitStats};
+use std::io::Write;
+
+/// The CSV/JSON columns of the statistics table (`receptor stats`), in order.
+pub const STATS_COLUMNS: [&str; 10] = [
+    "layer",
+    "unit",
+    "fan_in",
+    "l1",
+    "l2",
+    "max_abs",
+    "near_zero_frac",
+    "hoyer",
+    "gini",
+    "bias",
+];
+
+/// The CSV/JSON columns of the screening table (`receptor screen`), in order.
+pub const SCREEN_COLUMNS: [&str; 8] = [
+    "layer",
+    "unit",
+    "activation",
+    "active_frac",
+    "mean",
+    "max",
+    "upper_bound",
+    "status",
+];
+
+/// The CSV/JSON columns of the pruning sweep (`receptor prune-sweep`), in order.
+pub const PRUNE_SWEEP_COLUMNS: [&str; 4] = ["fraction", "zeroed", "total", "accuracy"];
+
+/// The JSON columns of the preferred-input table (`receptor prefer`), in order. In CSV the
+/// vector `input` becomes one column per input element, `x0`, `x1`, ….
+pub const PREFER_COLUMNS: [&str; 6] = [
+    "layer",
+    "unit",
+    "preactivation",
+    "activation",
+    "steps",
+    "input",
+];
+
+fn owned(columns: &[&str]) -> Vec<String> {
+    columns.iter().map(|c| (*c).to_string()).collect()
+}
+
+/// Writes the statistics table: one row per unit ([`STATS_COLUMNS`]); JSON adds the
+/// per-layer summaries under `"layers"`.
+pub fn write_stats<'a>(
+    format: Format,
+    w: &mut dyn Write,
+    units: impl IntoIterator<Item = &'a UnitStats>,
+    layers: &[LayerSummary],
+) -> std::io::Result<()> {
+    let columns = owned(&STATS_COLUMNS);
+    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
+    for u in units {
+        t.row(&[
+            Cell::from(u.layer.as_str()),
+            Cell::from(u.unit),
+            Cell::from(u.fan_in),
+            Cell::F64(u.l1),
+            Cell::F64(u.l2),
+            Cell::F64(u.max_abs),
+            Cell::F64(u.near_zero_frac),
+            Cell::F64(u.hoyer),
+            Cell::F64(u.gini),
+            Cell::F32(u.bias),
+        ])?;
+    }
+    let summaries = layers
+        .iter()
+        .map(|l| {
+            vec![
+                ("layer".to_string(), Cell::from(l.layer.as_str())),
+                ("units".to_string(), Cell::from(l.units)),
+                ("fan_in".to_string(), Cell::from(l.fan_in)),
+                ("zero_tol".to_string(), Cell::F64(l.zero_tol)),
+                ("mean_hoyer".to_string(), Cell::F64(l.mean_hoyer)),
+                ("mean_gini".to_string(), Cell::F64(l.mean_gini)),
+                ("near_zero_frac".to_string(), Cell::F64(l.near_zero_frac)),
+                ("max_abs".to_string(), Cell::F64(l.max_abs)),
+            ]
+        })
+        .collect();
+    t.finish(&[("layers", Cell::Objects(summaries))])
+}
+
+/// The top-level keys that follow the screening rows in JSON: the number of probe samples,
+/// the probe's description, the `rare` threshold and, for the seeded uniform probe, its seed.
+pub fn screen_extra(
+    samples: usize,
+    probe: &str,
+    rare: f64,
+    seed: Option<u64>,
+) -> Vec<(&str, Cell)> {
+    let mut extra = vec![
+        ("samples", Cell::from(samples)),
+        ("probe", Cell::from(probe)),
+        ("rare", Cell::F64(rare)),
+    ];
+    if let Some(s) = seed {
+        extra.push(("seed", Cell::UInt(s)));
+    }
+    extra
+}
+
+/// Writes the screening table: one row per hidden unit ([`SCREEN_COLUMNS`]); JSON adds
+/// `extra` (see [`screen_extra`]) as top-level keys.
+pub fn write_screen(
+    format: Format,
+    w: &mut dyn Write,
+    units: &[UnitScreen],
+    extra: &[(&str, Cell)],
+) -> std::io::Result<()> {
+    let columns = owned(&SCREEN_COLUMNS);
+    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
+    for u in units {
+        t.row(&[
+            Cell::from(u.layer.as_str()),
+            Cell::from(u.unit),
+            Cell::from(u.activation),
+            Cell::F64(u.active_frac),
+            Cell::F64(u.mean),
+            Cell::F64(u.max),
+            Cell::F64(u.upper_bound),
+            Cell::from(u.status.as_str()),
+        ])?;
+    }
+    t.finish(extra)
+}
+
+/// Writes the pruning sweep: one row per fraction ([`PRUNE_SWEEP_COLUMNS`]); JSON adds the
+/// probe's name under `"probe"`.
+pub fn write_prune_sweep(
+    format: Format,
+    w: &mut dyn Write,
+    points: &[SweepPoint],
+    probe: &str,
+) -> std::io::Result<()> {
+    let columns = owned(&PRUNE_SWEEP_COLUMNS);
+    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
+    for p in points {
+        t.row(&[
+            Cell::F64(p.fraction),
+            Cell::from(p.zeroed),
+            Cell::from(p.total),
+            Cell::F64(p.accuracy),
+        ])?;
+    }
+    t.finish(&[("probe", Cell::from(probe))])
+}
+
+/// Writes the preferred inputs of units of layer `layer` ([`PREFER_COLUMNS`]; `input_size`
+/// CSV columns `x0`, `x1`, … for the input); JSON adds the search settings in `extra`.
+pub fn write_prefer(
+    format: Format,
+    w: &mut dyn Write,
+    layer: &str,
+    input_size: usize,
+    found: &[Preferred],
+    extra: &[(&str, Cell)],
+) -> std::io::Result<()> {
+    let columns = owned(&PREFER_COLUMNS);
+    let mut csv_header: Vec<String> = columns[..5].to_vec();
+    csv_header.extend((0..input_size).map(|i| format!("x{i}")));
+    let mut t = TableWriter::begin(format, w, columns, csv_header)?;
+    for p in found {
+        t.row(&[
+            Cell::from(layer),
+            Cell::from(p.unit),
+            Cell::F32(p.preactivation),
+            Cell::F32(p.activation),
+            Cell::from(p.steps),
+            Cell::F32s(p.input.clone()),
+        ])?;
+    }
+    t.finish(extra)
+}
