@@ -248,7 +248,7 @@ pub fn write_screen(
     s: &ScreenResult,
     format: Format,
 ) -> std::io::Result<()> {
-    let rare = crate::analysis::screen::ScreenOptions::default().rare;
+    let rare = crate::analysis::screen::DEFAULT_RARE_FRACTION;
     crate::cli::screen::write_table(
         format,
         w,

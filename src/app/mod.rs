@@ -141,6 +141,8 @@ pub struct ReceptorApp {
     opening: Option<String>,
     /// The model file of the latest open request (to offer "open again" after an error).
     last_open_path: Option<PathBuf>,
+    /// The shown open error is a side file outside the model's folder (offer to allow it).
+    open_error_outside: bool,
     /// Next probe id (probe ids are handed out at request time).
     next_probe: u64,
     /// Open the demo's probe file once the demo model is in.
@@ -173,6 +175,7 @@ impl ReceptorApp {
             open_request: 0,
             opening: None,
             last_open_path: None,
+            open_error_outside: false,
             next_probe: 0,
             demo_probe_pending: false,
             dialog_open: false,
@@ -364,6 +367,7 @@ impl ReceptorApp {
                 match result {
                     Ok((net, origin, path)) => self.install_model(net, origin, path),
                     Err(e) => {
+                        self.open_error_outside = matches!(e, crate::Error::OutsidePath { .. });
                         let text = e.to_string();
                         self.state.open_error = Some(text.clone());
                         let keep = if self.state.model.is_some() {
@@ -420,6 +424,7 @@ impl ReceptorApp {
                         }
                     }
                     Err(e) => {
+                        self.open_error_outside = false;
                         let text = e.to_string();
                         self.state.open_error = Some(text.clone());
                         self.state.fail(format!("{text} (the probe in use stays)"));
@@ -1028,8 +1033,7 @@ impl eframe::App for ReceptorApp {
                     ui.colored_label(colour, &err);
                     // The importer refuses side files outside the model's folder unless the
                     // user agrees; here the user can agree for this session.
-                    let outside = err.contains("--allow-outside-paths");
-                    if outside
+                    if self.open_error_outside
                         && !self.state.allow_outside_paths
                         && let Some(path) = self.last_open_path.clone()
                         && ui

@@ -106,24 +106,19 @@ impl Default for SearchSettings {
         // The same defaults as `receptor prefer`, so the app and the command line agree.
         let d = crate::analysis::prefer::PreferOptions::default();
         SearchSettings {
-            steps: d.steps,
-            restarts: d.restarts,
-            l2: d.l2,
-            tv: d.tv,
+            steps: d.steps(),
+            restarts: d.restarts(),
+            l2: d.l2(),
+            tv: d.tv(),
         }
     }
 }
 
 impl SearchSettings {
-    /// The core's options for these settings (fixed seed 0, as on the command line).
-    pub fn options(&self) -> crate::analysis::prefer::PreferOptions {
-        crate::analysis::prefer::PreferOptions {
-            steps: self.steps,
-            restarts: self.restarts,
-            seed: 0,
-            l2: self.l2,
-            tv: self.tv,
-        }
+    /// The core's options for these settings (fixed seed 0, as on the command line), or
+    /// the core's refusal of a bad value.
+    pub fn options(&self) -> crate::Result<crate::analysis::prefer::PreferOptions> {
+        crate::analysis::prefer::PreferOptions::new(self.steps, self.restarts, 0, self.l2, self.tv)
     }
 }
 

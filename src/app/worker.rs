@@ -465,10 +465,9 @@ fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
         }
         Job::Probe(data) => {
             let mut src = MemoryProbe::new(data.clone());
-            let opts = crate::analysis::screen::ScreenOptions {
-                chunk_rows: TRACE_CHUNK,
-                ..Default::default()
-            };
+            let opts = crate::analysis::screen::ScreenOptions::default().with_chunk_rows(
+                std::num::NonZeroUsize::new(TRACE_CHUNK).unwrap_or(std::num::NonZeroUsize::MIN),
+            );
             let screen =
                 crate::analysis::screen::screen(net, &mut src, &opts, &progress.sub(0.0, 0.4)).map(
                     |r| {
@@ -646,7 +645,7 @@ fn prefer_batch(
             })
             .collect());
     }
-    let found = crate::analysis::prefer::prefer(net, layer, units, &settings.options(), progress)?;
+    let found = crate::analysis::prefer::prefer(net, layer, units, &settings.options()?, progress)?;
     Ok(found
         .into_iter()
         .map(|p| {
