@@ -33,7 +33,7 @@ pub fn check_fractions(fractions: &[f64]) -> Result<()> {
         Some(f) => Err(Error::bad_option(
             "fractions",
             f,
-            "must be numbers from 0 to 1",
+            "must be a number from 0 to 1",
         )),
         None => Ok(()),
     }
