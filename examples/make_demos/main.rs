@@ -343,7 +343,7 @@ fn solder_models(out: &Path) -> Result<()> {
         "Invented data, for demos only. Solder-joint inspection after reflow: a 12 x 12 grey \
          patch of one joint (brightness scaled to [-1, 1]) sorted into five classes. Trained \
          with Adam (learning rate 0.002, L2 weight decay 1e-2) on {} synthetic patches \
-         (examples/make_demos.rs).",
+         (examples/make_demos/).",
         x.nrows()
     ));
     model::write_json(&good, &out.join("solder-joints.json"))?;
@@ -569,7 +569,7 @@ fn cold_storage_model(out: &Path) -> Result<()> {
          2..4 °C): eight hourly sensor readings in physical units flag normal operation, a \
          door left open, compressor wear or a defrost fault. Tanh units; the input \
          standardisation is folded into the first-layer weights, so the inputs are raw \
-         units. Trained with Adam on {} synthetic hours (examples/make_demos.rs).",
+         units. Trained with Adam on {} synthetic hours (examples/make_demos/).",
         x.nrows()
     ));
     model::validate::validate(&net, "cold-storage (folded)")?;
