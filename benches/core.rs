@@ -308,7 +308,7 @@ fn main() -> BenchResult<()> {
         "screen",
         format!(
             "{PROBE_ROWS} rows from probe.npy, chunks of {}",
-            screen_opts.chunk_rows
+            screen_opts.chunk_rows()
         ),
         runs,
         || {
@@ -333,7 +333,7 @@ fn main() -> BenchResult<()> {
         runs,
         || Ok(bounds::interval_bounds(&net)),
     )?);
-    let chunk = screen_opts.chunk_rows;
+    let chunk = screen_opts.chunk_rows();
     timings.push(measure(
         "screen_part_forward",
         format!("forward_trace of the hidden layers, in-memory rows, chunks of {chunk}"),
@@ -356,13 +356,7 @@ fn main() -> BenchResult<()> {
     )?);
 
     let units: Vec<usize> = (0..SIZES[2]).collect();
-    let popts = prefer::PreferOptions {
-        steps: PREFER_STEPS,
-        restarts,
-        seed: 0,
-        l2: 0.0,
-        tv: 0.0,
-    };
+    let popts = prefer::PreferOptions::new(PREFER_STEPS, restarts, 0, 0.0, 0.0)?;
     let mut last: Vec<prefer::Preferred> = Vec::new();
     timings.push(measure(
         "prefer_all",

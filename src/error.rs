@@ -38,9 +38,52 @@ pub enum Error {
         #[source]
         source: std::io::Error,
     },
-    /// The request itself does not make sense for this model (unknown layer, unit out of range, ...).
+    /// A side file named in a model lies outside the model's folder (or is absolute) and the
+    /// loader was not told to allow that. The message names no way to allow it: each front
+    /// says that in its own terms (a command-line flag, a button).
+    #[error(
+        "{file}: {what}: side-file path '{path}' {}; side files must stay in the model's folder",
+        if *absolute { "is absolute" } else { "climbs out of the model's folder" }
+    )]
+    OutsidePath {
+        /// The model file that names the side file, as the user named it.
+        file: String,
+        /// What refers to the side file, e.g. "layer 'h1' weights".
+        what: String,
+        /// The side-file path as written in the model.
+        path: String,
+        /// True for an absolute path, false for one that climbs out with `..`.
+        absolute: bool,
+    },
+    /// A layer was asked for by a name the model does not have.
+    #[error("there is no layer '{name}'; the layers are: {}", layers.join(", "))]
+    UnknownLayer {
+        /// The name asked for.
+        name: String,
+        /// The model's layer names, in order.
+        layers: Vec<String>,
+    },
+    /// An option value is outside what is allowed, on its own (`restarts` 0) or for this
+    /// model (a unit the layer does not have, a total-variation penalty on a vector input).
+    #[error("{option} {allowed} (got {value})")]
+    BadOption {
+        /// The option's name, in the core's terms (`restarts`, `chunk_rows`, ...); the command
+        /// line shows it as its flag (`--restarts`, `--chunk-rows`).
+        option: &'static str,
+        /// The value given, as text.
+        value: String,
+        /// What is allowed, as a phrase that follows the option's name ("must be at least 1").
+        allowed: String,
+    },
+    /// A request that cannot be carried out in the current state (for example nothing to
+    /// export yet). The typed variants above cover bad options, unknown layers and side
+    /// files outside the model's folder.
     #[error("{0}")]
     Usage(String),
+    /// A failure of the program itself rather than of its input: a thread that cannot be
+    /// started, an image that cannot be encoded, a buffer of the wrong length.
+    #[error("internal error: {0}")]
+    Internal(String),
     /// Long work was cancelled by the user.
     #[error("cancelled")]
     Cancelled,
@@ -72,8 +115,41 @@ impl Error {
         }
     }
 
-    /// A usage error (bad request for this model).
+    /// A request that cannot be carried out now (see [`Error::Usage`]).
     pub fn usage(msg: impl Into<String>) -> Self {
         Error::Usage(msg.into())
+    }
+
+    /// A bad value `value` of `option`; `allowed` follows the option's name in the message
+    /// ("must be at least 1").
+    pub fn bad_option(
+        option: &'static str,
+        value: impl std::fmt::Display,
+        allowed: impl Into<String>,
+    ) -> Self {
+        Error::BadOption {
+            option,
+            value: value.to_string(),
+            allowed: allowed.into(),
+        }
+    }
+
+    /// A failure of the program itself (see [`Error::Internal`]).
+    pub fn internal(msg: impl Into<String>) -> Self {
+        Error::Internal(msg.into())
+    }
+
+    /// The same error with a [`Error::BadOption`]'s option renamed to `option` (for a value
+    /// checked by a shared rule under another name); other errors are returned unchanged.
+    #[must_use]
+    pub fn for_option(self, option: &'static str) -> Self {
+        match self {
+            Error::BadOption { value, allowed, .. } => Error::BadOption {
+                option,
+                value,
+                allowed,
+            },
+            other => other,
+        }
     }
 }

@@ -20,9 +20,8 @@ fn main() -> ExitCode {
         Some(command) => match cli::run(command) {
             Ok(code) => code,
             Err(e) => {
-                // One line, whatever the message holds.
-                let msg = e.to_string().replace(['\n', '\r'], " ");
-                eprintln!("receptor: {msg}");
+                // One line, worded for the command line (flags by name).
+                eprintln!("receptor: {}", cli::message(&e));
                 ExitCode::from(EXIT_BAD_INPUT)
             }
         },

@@ -131,10 +131,11 @@ proptest! {
     fn prefer_reaches_closed_form_and_respects_bounds(seed in any::<u64>(), sizes in sizes_strategy()) {
         let net = random_net(seed, &sizes);
         let b = bounds::interval_bounds(&net);
-        let opts = prefer::PreferOptions { steps: 200, restarts: 3, ..Default::default() };
+        let opts = prefer::PreferOptions::new(200, 3, 0, 0.0, 0.0).expect("valid options");
         for layer in 0..net.layers.len() {
             let units: Vec<usize> = (0..net.layers[layer].units()).collect();
-            let res = prefer::prefer(&net, layer, &units, &opts, &Silent).expect("prefer");
+            // The search itself (`prefer` answers the first layer from the closed form).
+            let res = prefer::prefer_by_ascent(&net, layer, &units, &opts, &Silent).expect("prefer");
             for r in &res {
                 prop_assert!(r.finite);
                 for (i, &x) in r.input.iter().enumerate() {

@@ -1,6 +1,6 @@
 //! The bundled demo models in `demo-models/`: each loads, reaches a stated accuracy on its
 //! own labelled probe, the over-driven run shows both kinds of dead ReLU unit, and the
-//! generator `examples/make_demos.rs` reproduces every file byte for byte.
+//! generator `examples/make_demos/` reproduces every file byte for byte.
 //!
 //! Validation against `assets/model-schema.json` is done for every bundled model by
 //! `tests/schema.rs`.
@@ -20,7 +20,7 @@ use receptor::probe;
 use std::path::{Path, PathBuf};
 
 #[allow(dead_code)]
-#[path = "../examples/make_demos.rs"]
+#[path = "../examples/make_demos/main.rs"]
 mod make_demos;
 
 fn demo_dir() -> PathBuf {

@@ -118,7 +118,8 @@ fn a_bad_file_shows_the_error_and_keeps_the_model() {
         .state()
         .open_error
         .clone()
-        .expect("an error is shown");
+        .expect("an error is shown")
+        .text;
     assert!(
         msg.contains("broken-model.json"),
         "message names the file: {msg}"
@@ -428,7 +429,7 @@ fn side_files_outside_the_folder_need_the_users_consent() {
     wait_idle(&mut h, Duration::from_secs(60));
     h.state_mut().open_model(&model);
     wait_idle(&mut h, Duration::from_secs(30));
-    let msg = h.state().state().open_error.clone().expect("refused");
+    let msg = h.state().state().open_error.clone().expect("refused").text;
     assert!(
         msg.contains("outside.json") && msg.contains("climbs out"),
         "{msg}"

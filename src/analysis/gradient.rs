@@ -151,7 +151,8 @@ fn fill_bias(out: &mut [f32], bias: &[f32]) {
     par_rows_mut(out, bias.len(), |row| row.copy_from_slice(bias));
 }
 
-/// One block of [`input_gradient_into`].
+/// One block of [`input_gradient_into`]: forward through the layers below the target,
+/// the target's z and error signal, then back to the input.
 fn gradient_block(
     net: &Network,
     layer: usize,
@@ -161,7 +162,6 @@ fn gradient_block(
     mut grad: ArrayViewMut2<f32>,
     ws: &mut GradWorkspace,
 ) {
-    let rows = x.nrows();
     let unit_of = |b: usize| if units.len() == 1 { units[0] } else { units[b] };
     let target = &net.layers[layer];
     if layer == 0 {
@@ -173,14 +173,22 @@ fn gradient_block(
         }
         return;
     }
+    forward_below(net, layer, x, ws);
+    target_and_delta(net, layer, x.nrows(), &unit_of, z_out, ws);
+    backward_to_input(net, layer, x.nrows(), &mut grad, ws);
+}
+
+/// Forward through the layers below `layer` (at least 1) for the `x.nrows()` rows of `x`,
+/// keeping each pre-activation `ws.z[l]: [rows, units_l]` for the backward pass;
+/// activations `ws.a[l]` are materialised only where the next product needs them.
+fn forward_below(net: &Network, layer: usize, x: ArrayView2<f32>, ws: &mut GradWorkspace) {
+    let rows = x.nrows();
     if ws.z.len() < layer {
         ws.z.resize_with(layer, Vec::new);
     }
     if ws.a.len() < layer {
         ws.a.resize_with(layer, Vec::new);
     }
-    // Forward through the layers below the target, keeping each pre-activation for the
-    // backward pass; activations are materialised only where the next product needs them.
     for l in 0..layer {
         let lay = &net.layers[l];
         let width = lay.units();
@@ -213,16 +221,27 @@ fn gradient_block(
                 });
         }
     }
-    // Target: z[b] = b_L[u_b] + sum_j W_L[u_b, j] f(z_{L-1}[b, j]) (f64 accumulation), and
-    // delta_{L-1}[b, j] = W_L[u_b, j] f'(z_{L-1}[b, j]).
+}
+
+/// The target units' z, `z_out[b] = b_L[u_b] + sum_j W_L[u_b, j] f(z_{L-1}[b, j])` (f64
+/// accumulation), and the error signal of the layer below,
+/// `ws.d[0][b, j] = W_L[u_b, j] f'(z_{L-1}[b, j])`, from [`forward_below`]'s `ws.z`.
+fn target_and_delta(
+    net: &Network,
+    layer: usize,
+    rows: usize,
+    unit_of: &(impl Fn(usize) -> usize + Sync),
+    z_out: &mut [f32],
+    ws: &mut GradWorkspace,
+) {
+    let target = &net.layers[layer];
     let below = &net.layers[layer - 1];
     let act = below.activation;
     let width = below.units();
     let zb: &[f32] = &ws.z[layer - 1][..rows * width];
     let w_t = target.weights.view();
     let b_t = target.bias.view();
-    let [d0, d1] = &mut ws.d;
-    let delta = ensure(d0, rows * width);
+    let delta = ensure(&mut ws.d[0], rows * width);
     if width > 0 {
         delta
             .par_chunks_mut(width)
@@ -245,10 +264,22 @@ fn gradient_block(
             .enumerate()
             .for_each(|(b, zo)| *zo = b_t[unit_of(b)]);
     }
-    // Back through layers layer-1 .. 1: delta_{l-1} = (delta_l · W_l) ⊙ f'(z_{l-1}).
+}
+
+/// Back from the error signal `ws.d[0]` of layer `layer - 1` through layers
+/// `layer - 1 .. 1`, `delta_{l-1} = (delta_l · W_l) ⊙ f'(z_{l-1})`, then into the input:
+/// `grad = delta_0 · W_0`, `[rows, inputs]`.
+fn backward_to_input(
+    net: &Network,
+    layer: usize,
+    rows: usize,
+    grad: &mut ArrayViewMut2<f32>,
+    ws: &mut GradWorkspace,
+) {
+    let [d0, d1] = &mut ws.d;
     let mut cur: &mut Vec<f32> = d0;
     let mut next: &mut Vec<f32> = d1;
-    let mut cur_w = width;
+    let mut cur_w = net.layers[layer - 1].units();
     for l in (1..layer).rev() {
         let w = net.layers[l].weights.view(); // [units_l, units_{l-1}]
         let nw = w.ncols();
@@ -274,7 +305,7 @@ fn gradient_block(
     }
     let dcur = ArrayView2::from_shape((rows, cur_w), &cur[..rows * cur_w])
         .expect("buffer length equals rows x width");
-    gemm_into(&mut grad, dcur, net.layers[0].weights.view(), false);
+    gemm_into(grad, dcur, net.layers[0].weights.view(), false);
 }
 
 /// The sensitivity maps of one layer: the gradient of each unit's pre-activation with
@@ -292,20 +323,26 @@ pub struct Sensitivity {
 /// them at the mean probe input).
 ///
 /// # Errors
-/// A usage error when `layer` is not a layer index or `at` does not have one value per
-/// input.
+/// [`Error::BadOption`] when `layer` is not a layer index or `at` does not have one value
+/// per input.
 pub fn sensitivity(net: &Network, layer: usize, at: &[f32]) -> Result<Sensitivity> {
     let units = net
         .layers
         .get(layer)
-        .ok_or_else(|| Error::usage(format!("there is no layer {layer}")))?
+        .ok_or_else(|| {
+            Error::bad_option(
+                "layer",
+                layer,
+                format!("must be a layer index below {}", net.layers.len()),
+            )
+        })?
         .units();
     if at.len() != net.input.size {
-        return Err(Error::usage(format!(
-            "the sensitivity point has {} values but the model has {} inputs",
-            at.len(),
-            net.input.size
-        )));
+        return Err(Error::bad_option(
+            "at",
+            format!("{} values", at.len()),
+            format!("must have one value per input ({})", net.input.size),
+        ));
     }
     let x = Array2::from_shape_fn((units, at.len()), |(_, i)| at[i]);
     let ids: Vec<usize> = (0..units).collect();

@@ -13,7 +13,6 @@ pub mod screen;
 pub mod sparsity;
 #[cfg(test)]
 mod test_nets;
-pub mod train;
 
 /// Progress reporting and cancellation for long work.
 ///

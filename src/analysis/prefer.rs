@@ -14,9 +14,10 @@
 //! independent of the scale of the input, so the same rule works on any model. After each
 //! step the input is projected (clamped) back into the box.
 //!
-//! For a first-layer unit the objective is linear and the ascent ends on the vertex
-//! `x_i = high_i if w_i > 0 else low_i`, whose value is the closed form
-//! `b + sum_i max(w_i low_i, w_i high_i)` ([`closed_form_first_layer`]).
+//! For a first-layer unit without a penalty the objective is linear, and its maximum over
+//! the box is the vertex `x_i = high_i if w_i > 0 else low_i`, with the value
+//! `b + sum_i max(w_i low_i, w_i high_i)` ([`closed_form_first_layer`]): [`prefer`] returns
+//! that vertex without searching (the ascent, [`prefer_by_ascent`], ends there too).
 //!
 //! Restarts: start 0 is the box centre, the others are uniform in the box from a
 //! `ChaCha8Rng` seeded with `seed`. A start stops early once it is provably stuck: every
@@ -38,19 +39,16 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 
-/// Options of the preferred-input search.
+/// Options of the preferred-input search, valid by construction: at least one restart, and
+/// penalties that are finite and not negative ([`PreferOptions::new`] checks them once;
+/// the search does not check them again).
 #[derive(Debug, Clone, PartialEq)]
 pub struct PreferOptions {
-    /// Gradient steps per start (default 200).
-    pub steps: usize,
-    /// Starts per unit: the box centre plus `restarts - 1` random points (default 8).
-    pub restarts: usize,
-    /// Seed of the random starts (default 0).
-    pub seed: u64,
-    /// Weight of the `||x||^2` penalty (default 0: none).
-    pub l2: f32,
-    /// Weight of the total-variation penalty, image layouts only (default 0: none).
-    pub tv: f32,
+    steps: usize,
+    restarts: usize,
+    seed: u64,
+    l2: f32,
+    tv: f32,
 }
 
 impl Default for PreferOptions {
@@ -62,6 +60,67 @@ impl Default for PreferOptions {
             l2: 0.0,
             tv: 0.0,
         }
+    }
+}
+
+impl PreferOptions {
+    /// Checked options: `steps` gradient steps per start, `restarts` starts per unit (the
+    /// box centre plus `restarts - 1` random points from `seed`), and the weights of the
+    /// `||x||^2` penalty (`l2`) and of the total-variation penalty (`tv`, image layouts
+    /// only; whether the model has one is checked by [`prefer`]).
+    ///
+    /// Errors: [`Error::BadOption`] for zero restarts or a negative or non-finite penalty.
+    pub fn new(steps: usize, restarts: usize, seed: u64, l2: f32, tv: f32) -> Result<Self> {
+        if restarts == 0 {
+            return Err(Error::bad_option(
+                "restarts",
+                restarts,
+                "must be at least 1",
+            ));
+        }
+        for (option, v) in [("l2", l2), ("tv", tv)] {
+            if !(v.is_finite() && v >= 0.0) {
+                return Err(Error::bad_option(option, v, "must be a finite number >= 0"));
+            }
+        }
+        Ok(PreferOptions {
+            steps,
+            restarts,
+            seed,
+            l2,
+            tv,
+        })
+    }
+
+    /// Gradient steps per start (default 200).
+    pub fn steps(&self) -> usize {
+        self.steps
+    }
+
+    /// Starts per unit, at least 1 (default 8).
+    pub fn restarts(&self) -> usize {
+        self.restarts
+    }
+
+    /// Seed of the random starts (default 0).
+    pub fn seed(&self) -> u64 {
+        self.seed
+    }
+
+    /// Weight of the `||x||^2` penalty (default 0: none).
+    pub fn l2(&self) -> f32 {
+        self.l2
+    }
+
+    /// Weight of the total-variation penalty, image layouts only (default 0: none).
+    pub fn tv(&self) -> f32 {
+        self.tv
+    }
+
+    /// True when the objective is the plain pre-activation (no penalty), which is linear in
+    /// the input for a first-layer unit.
+    fn unpenalised(&self) -> bool {
+        self.l2 == 0.0 && self.tv == 0.0
     }
 }
 
@@ -141,39 +200,36 @@ pub fn closed_form_first_layer(net: &Network, unit: usize) -> (f64, Vec<f32>) {
     (value, x)
 }
 
-/// Checks a request before any work.
-fn validate(net: &Network, layer: usize, units: &[usize], opts: &PreferOptions) -> Result<()> {
+/// Checks what depends on the model (the options themselves are valid by construction):
+/// the layer and units exist, and a total-variation penalty has an image to smooth.
+fn check_request(net: &Network, layer: usize, units: &[usize], opts: &PreferOptions) -> Result<()> {
     let Some(l) = net.layers.get(layer) else {
-        return Err(Error::usage(format!(
-            "layer index {layer} is out of range: the network has {} layers",
-            net.layers.len()
-        )));
+        return Err(Error::bad_option(
+            "layer",
+            layer,
+            format!(
+                "must be a layer index below {}, the number of layers",
+                net.layers.len()
+            ),
+        ));
     };
     if let Some(&u) = units.iter().find(|&&u| u >= l.units()) {
-        return Err(Error::usage(format!(
-            "unit {u} is out of range: layer '{}' has {} units (counted from 0)",
-            l.name,
-            l.units()
-        )));
-    }
-    if opts.restarts == 0 {
-        return Err(Error::usage("restarts must be at least 1"));
-    }
-    if !(opts.l2.is_finite() && opts.l2 >= 0.0) {
-        return Err(Error::usage(format!(
-            "the L2 penalty must be a finite number >= 0, got {}",
-            opts.l2
-        )));
-    }
-    if !(opts.tv.is_finite() && opts.tv >= 0.0) {
-        return Err(Error::usage(format!(
-            "the total-variation penalty must be a finite number >= 0, got {}",
-            opts.tv
-        )));
+        return Err(Error::bad_option(
+            "unit",
+            u,
+            format!(
+                "must name a unit of the layer: layer '{}' has {} units (0 to {}), there is no unit {u}",
+                l.name,
+                l.units(),
+                l.units().saturating_sub(1)
+            ),
+        ));
     }
     if opts.tv > 0.0 && !matches!(net.input.layout, Layout::Image { .. }) {
-        return Err(Error::usage(
-            "the total-variation penalty needs an image input layout; this model's input is a vector",
+        return Err(Error::bad_option(
+            "tv",
+            opts.tv,
+            "needs an image layout, and this model's input is a vector",
         ));
     }
     Ok(())
@@ -247,13 +303,17 @@ fn learning_rate(t: usize, steps: usize) -> f32 {
     LR_END + (LR_START - LR_END) * 0.5 * (1.0 + (std::f32::consts::PI * frac).cos())
 }
 
-/// Preferred inputs of `units` of `layer`, all optimised together as one batch of
-/// `units.len() x opts.restarts` rows per step (see the module docs for the method).
+/// Preferred inputs of `units` of `layer` (see the module docs for the method).
 ///
-/// Errors: a usage error for an unknown layer or unit, zero restarts, a negative or
-/// non-finite penalty, or a TV penalty on a vector layout; [`Error::Cancelled`] when
-/// `progress` asks to stop (checked every step). NaN or infinity in the search is not an
-/// error: the unit is returned with `finite == false`.
+/// A first-layer unit searched without a penalty has a linear objective, whose maximum
+/// over the box is known: such units get the closed-form optimum
+/// ([`closed_form_first_layer`], 0 steps) without any search, so every front gives the
+/// same exact answer. Every other request runs [`prefer_by_ascent`].
+///
+/// Errors: [`Error::BadOption`] for a layer index or unit the model does not have, or a TV
+/// penalty on a vector layout; [`Error::Cancelled`] when `progress` asks to stop (checked
+/// every step). NaN or infinity in the search is not an error: the unit is returned with
+/// `finite == false`.
 pub fn prefer(
     net: &Network,
     layer: usize,
@@ -261,25 +321,79 @@ pub fn prefer(
     opts: &PreferOptions,
     progress: &dyn Progress,
 ) -> Result<Vec<Preferred>> {
-    validate(net, layer, units, opts)?;
+    check_request(net, layer, units, opts)?;
+    if layer == 0 && opts.unpenalised() {
+        let mut inputs = Array2::<f32>::zeros((units.len(), net.input.size));
+        for (mut row, &u) in inputs.rows_mut().into_iter().zip(units) {
+            let (_, x) = closed_form_first_layer(net, u);
+            row.iter_mut().zip(&x).for_each(|(d, s)| *d = *s);
+        }
+        let outcome = vec![
+            Outcome {
+                steps: 0,
+                finite: true
+            };
+            units.len()
+        ];
+        progress.set(1.0);
+        return Ok(evaluate(net, layer, units, &inputs, &outcome));
+    }
+    ascend(net, layer, units, opts, progress)
+}
+
+/// Preferred inputs of `units` of `layer` by projected gradient ascent, all optimised
+/// together as one batch of `units.len() x opts.restarts()` rows per step, even where
+/// [`prefer`] would use the closed form. Errors as for [`prefer`].
+pub fn prefer_by_ascent(
+    net: &Network,
+    layer: usize,
+    units: &[usize],
+    opts: &PreferOptions,
+    progress: &dyn Progress,
+) -> Result<Vec<Preferred>> {
+    check_request(net, layer, units, opts)?;
+    ascend(net, layer, units, opts, progress)
+}
+
+/// How the search of one unit went.
+#[derive(Debug, Clone, Copy)]
+struct Outcome {
+    /// The most steps any start of the unit ran.
+    steps: usize,
+    /// No start met NaN or infinity, and some start reached a finite objective.
+    finite: bool,
+}
+
+/// The ascent of a checked request.
+fn ascend(
+    net: &Network,
+    layer: usize,
+    units: &[usize],
+    opts: &PreferOptions,
+    progress: &dyn Progress,
+) -> Result<Vec<Preferred>> {
     if units.is_empty() {
         progress.set(1.0);
         return Ok(Vec::new());
     }
-    let n = net.input.size;
-    let low = &net.input.low;
-    let high = &net.input.high;
-    let width: Vec<f32> = low.iter().zip(high).map(|(l, h)| h - l).collect();
-    let layout = net.input.layout;
-    let restarts = opts.restarts;
-    let total_rows = units.len() * restarts;
+    let mut rows = start_rows(net, units.len(), opts);
+    // Row `unit_position * restarts + r` searches for `units[unit_position]`.
+    let row_unit: Vec<usize> = (0..rows.len()).map(|r| units[r / opts.restarts]).collect();
+    run_ascent(net, layer, &mut rows, &row_unit, opts, progress)?;
+    let (inputs, outcome) = best_starts(net, &rows, units.len(), opts.restarts);
+    Ok(evaluate(net, layer, units, &inputs, &outcome))
+}
 
-    // Starts: row = unit_position * restarts + r; r = 0 is the centre.
+/// The starts of every unit, `restarts` per unit in unit order: start 0 is the box centre,
+/// the others uniform in the box from a `ChaCha8Rng` seeded with the options' seed.
+fn start_rows(net: &Network, units: usize, opts: &PreferOptions) -> Vec<Row> {
+    let n = net.input.size;
+    let (low, high) = (&net.input.low, &net.input.high);
     let centre = net.input.centre();
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
-    let mut rows: Vec<Row> = (0..total_rows)
+    (0..units * opts.restarts)
         .map(|row| {
-            let x: Vec<f32> = if row % restarts == 0 {
+            let x: Vec<f32> = if row % opts.restarts == 0 {
                 centre.clone()
             } else {
                 low.iter()
@@ -298,138 +412,177 @@ pub fn prefer(
                 nonfinite: false,
             }
         })
-        .collect();
-    let row_unit: Vec<usize> = (0..total_rows).map(|r| units[r / restarts]).collect();
+        .collect()
+}
 
-    // Buffers reused across steps: the gathered batch `[active, inputs]`, z `[active]`,
-    // the gradient `[active, inputs]` and the backward pass's intermediates.
-    let mut ws = GradWorkspace::default();
-    let mut xbuf: Vec<f32> = Vec::new();
-    let mut zbuf: Vec<f32> = Vec::new();
-    let mut gbuf: Vec<f32> = Vec::new();
-    let mut active_idx: Vec<usize> = Vec::with_capacity(total_rows);
-    let mut active_units: Vec<usize> = Vec::with_capacity(total_rows);
+/// Buffers reused across steps: the gathered batch `[active, inputs]`, z `[active]`, the
+/// gradient `[active, inputs]` and the backward pass's intermediates.
+#[derive(Default)]
+struct Batch {
+    ws: GradWorkspace,
+    x: Vec<f32>,
+    z: Vec<f32>,
+    g: Vec<f32>,
+    /// Rows still moving, by index into the rows.
+    rows: Vec<usize>,
+    /// The unit each moving row searches for.
+    units: Vec<usize>,
+}
+
+/// Runs every step (and the final evaluation) of the ascent on `rows`, one batch of the
+/// rows still moving per step, until all are stuck or the steps are used up.
+fn run_ascent(
+    net: &Network,
+    layer: usize,
+    rows: &mut [Row],
+    row_unit: &[usize],
+    opts: &PreferOptions,
+    progress: &dyn Progress,
+) -> Result<()> {
+    let n = net.input.size;
+    let low = &net.input.low;
+    let high = &net.input.high;
+    let width: Vec<f32> = low.iter().zip(high).map(|(l, h)| h - l).collect();
+    let mut batch = Batch::default();
     let steps = opts.steps;
-    let chunk = n.max(1);
     for t in 0..=steps {
         if progress.cancelled() {
             return Err(Error::Cancelled);
         }
-        active_idx.clear();
-        active_idx.extend((0..total_rows).filter(|&r| rows[r].active));
-        if active_idx.is_empty() {
+        batch.rows.clear();
+        batch
+            .rows
+            .extend((0..rows.len()).filter(|&r| rows[r].active));
+        if batch.rows.is_empty() {
             break;
         }
-        let na = active_idx.len();
-        active_units.clear();
-        active_units.extend(active_idx.iter().map(|&r| row_unit[r]));
-        // Gather the moving rows into one batch.
-        xbuf.resize(na * n, 0.0);
-        zbuf.resize(na, 0.0);
-        gbuf.resize(na * n, 0.0);
-        {
-            let src = &rows;
-            xbuf[..na * n]
-                .par_chunks_mut(chunk)
-                .zip(active_idx.par_iter())
-                .for_each(|(dst, &r)| dst.copy_from_slice(&src[r].x));
-        }
-        let (Ok(xview), Ok(gview)) = (
-            ArrayView2::from_shape((na, n), &xbuf[..na * n]),
-            ArrayViewMut2::from_shape((na, n), &mut gbuf[..na * n]),
-        ) else {
-            return Err(Error::usage(
-                "internal error: batch buffer has the wrong length",
-            ));
+        batch.units.clear();
+        batch.units.extend(batch.rows.iter().map(|&r| row_unit[r]));
+        gradients_of_moving_rows(net, layer, rows, &mut batch, progress)?;
+        let params = StepParams {
+            low,
+            high,
+            width: &width,
+            lr: learning_rate(t, steps),
+            bc1: 1.0 - BETA1.powi(t as i32 + 1),
+            bc2: 1.0 - BETA2.powi(t as i32 + 1),
+            l2: opts.l2,
+            tv: opts.tv,
+            layout: net.input.layout,
+            last: t == steps,
         };
-        input_gradient_into(
-            net,
-            layer,
-            &active_units,
-            xview,
-            &mut zbuf[..na],
-            gview,
-            &mut ws,
-            &|| progress.cancelled(),
-        )?;
-        let z = &zbuf[..na];
-        let gflat = &mut gbuf[..na * n];
-        let lr = learning_rate(t, steps);
-        let last = t == steps;
-        let bc1 = 1.0 - BETA1.powi(t as i32 + 1);
-        let bc2 = 1.0 - BETA2.powi(t as i32 + 1);
-        // Position of each active row in the batch.
-        let mut pos = vec![usize::MAX; total_rows];
-        for (p, &r) in active_idx.iter().enumerate() {
-            pos[r] = p;
-        }
-        let gchunks: Vec<&mut [f32]> = gflat.chunks_mut(chunk).collect();
-        let mut pairs: Vec<(&mut Row, &mut [f32], f32)> = Vec::with_capacity(active_idx.len());
-        {
-            let mut gi = gchunks.into_iter();
-            for (r, row) in rows.iter_mut().enumerate() {
-                if pos[r] != usize::MAX
-                    && let Some(g) = gi.next()
-                {
-                    pairs.push((row, g, z[pos[r]]));
-                }
-            }
-        }
-        pairs.par_iter_mut().for_each(|(row, g, zr)| {
-            step_row(
-                row,
-                g,
-                *zr,
-                StepParams {
-                    low,
-                    high,
-                    width: &width,
-                    lr,
-                    bc1,
-                    bc2,
-                    l2: opts.l2,
-                    tv: opts.tv,
-                    layout,
-                    last,
-                },
-            );
-        });
+        step_moving_rows(rows, &mut batch, n, params);
         progress.set((t + 1) as f32 / (steps + 1) as f32);
     }
+    Ok(())
+}
 
-    // Pick the best start per unit and evaluate it once more with a plain forward pass.
-    let mut chosen: Vec<(usize, bool, usize)> = Vec::with_capacity(units.len());
-    for ui in 0..units.len() {
+/// Gathers the moving rows into one batch and computes their z and input gradients (one
+/// matrix product per layer for the whole batch).
+fn gradients_of_moving_rows(
+    net: &Network,
+    layer: usize,
+    rows: &[Row],
+    batch: &mut Batch,
+    progress: &dyn Progress,
+) -> Result<()> {
+    let n = net.input.size;
+    let na = batch.rows.len();
+    batch.x.resize(na * n, 0.0);
+    batch.z.resize(na, 0.0);
+    batch.g.resize(na * n, 0.0);
+    batch.x[..na * n]
+        .par_chunks_mut(n.max(1))
+        .zip(batch.rows.par_iter())
+        .for_each(|(dst, &r)| dst.copy_from_slice(&rows[r].x));
+    let (Ok(xview), Ok(gview)) = (
+        ArrayView2::from_shape((na, n), &batch.x[..na * n]),
+        ArrayViewMut2::from_shape((na, n), &mut batch.g[..na * n]),
+    ) else {
+        return Err(Error::internal("the batch buffer has the wrong length"));
+    };
+    input_gradient_into(
+        net,
+        layer,
+        &batch.units,
+        xview,
+        &mut batch.z[..na],
+        gview,
+        &mut batch.ws,
+        &|| progress.cancelled(),
+    )
+}
+
+/// Takes one step (see [`step_row`]) on every moving row, in parallel, with the z and
+/// gradient computed for it in `batch`.
+fn step_moving_rows(rows: &mut [Row], batch: &mut Batch, n: usize, params: StepParams<'_>) {
+    let na = batch.rows.len();
+    // Position of each moving row in the batch.
+    let mut pos = vec![usize::MAX; rows.len()];
+    for (p, &r) in batch.rows.iter().enumerate() {
+        pos[r] = p;
+    }
+    let z = &batch.z[..na];
+    let mut grads = batch.g[..na * n].chunks_mut(n.max(1));
+    let mut pairs: Vec<(&mut Row, &mut [f32], f32)> = Vec::with_capacity(na);
+    for (r, row) in rows.iter_mut().enumerate() {
+        if pos[r] != usize::MAX
+            && let Some(g) = grads.next()
+        {
+            pairs.push((row, g, z[pos[r]]));
+        }
+    }
+    pairs
+        .par_iter_mut()
+        .for_each(|(row, g, zr)| step_row(row, g, *zr, params));
+}
+
+/// The best start of each unit (by the penalised objective) as `[units, inputs]`, with how
+/// its search went; a unit with no finite start gets the box centre.
+fn best_starts(
+    net: &Network,
+    rows: &[Row],
+    units: usize,
+    restarts: usize,
+) -> (Array2<f32>, Vec<Outcome>) {
+    let centre = net.input.centre();
+    let mut inputs = Array2::<f32>::zeros((units, net.input.size));
+    let mut outcome = Vec::with_capacity(units);
+    for (ui, mut dst) in inputs.rows_mut().into_iter().enumerate() {
         let range = ui * restarts..(ui + 1) * restarts;
         let best = range
             .clone()
             .filter(|&r| rows[r].best_obj.is_finite())
             .max_by(|&a, &b| rows[a].best_obj.total_cmp(&rows[b].best_obj));
         let any_nonfinite = range.clone().any(|r| rows[r].nonfinite);
-        let steps_run = range.map(|r| rows[r].steps).max().unwrap_or(0);
-        chosen.push((best.unwrap_or(usize::MAX), !any_nonfinite, steps_run));
+        let steps = range.map(|r| rows[r].steps).max().unwrap_or(0);
+        let src = best.map_or(&centre, |b| &rows[b].best_x);
+        dst.iter_mut().zip(src).for_each(|(d, s)| *d = *s);
+        outcome.push(Outcome {
+            steps,
+            finite: best.is_some() && !any_nonfinite,
+        });
     }
-    let mut inputs = Array2::<f32>::zeros((units.len(), n));
-    for (ui, &(best, _, _)) in chosen.iter().enumerate() {
-        let src = if best == usize::MAX {
-            &centre
-        } else {
-            &rows[best].best_x
-        };
-        inputs
-            .row_mut(ui)
-            .iter_mut()
-            .zip(src)
-            .for_each(|(d, s)| *d = *s);
-    }
+    (inputs, outcome)
+}
+
+/// The result per unit: `inputs: [units, inputs]` evaluated once more with a plain forward
+/// pass (the raw z and the activation there).
+fn evaluate(
+    net: &Network,
+    layer: usize,
+    units: &[usize],
+    inputs: &Array2<f32>,
+    outcome: &[Outcome],
+) -> Vec<Preferred> {
     let trace = forward_trace(net, inputs.view(), layer);
     let pre = &trace.pre[layer];
     let post = &trace.post[layer];
-    let out = units
+    units
         .iter()
+        .zip(outcome)
         .enumerate()
-        .map(|(ui, &u)| {
-            let (best, ok, steps_run) = chosen[ui];
+        .map(|(ui, (&u, o))| {
             let preactivation = pre[[ui, u]];
             let activation = post[[ui, u]];
             Preferred {
@@ -438,15 +591,11 @@ pub fn prefer(
                 input: inputs.row(ui).to_vec(),
                 preactivation,
                 activation,
-                steps: steps_run,
-                finite: ok
-                    && best != usize::MAX
-                    && preactivation.is_finite()
-                    && activation.is_finite(),
+                steps: o.steps,
+                finite: o.finite && preactivation.is_finite() && activation.is_finite(),
             }
         })
-        .collect();
-    Ok(out)
+        .collect()
 }
 
 /// Per-step constants shared by all rows.
@@ -556,7 +705,9 @@ mod tests {
             Layout::Vector,
         );
         let units: Vec<usize> = (0..12).collect();
-        let res = prefer(&net, 0, &units, &PreferOptions::default(), &Silent).expect("prefer");
+        // The ascent itself (`prefer` would answer from the closed form without searching).
+        let res =
+            prefer_by_ascent(&net, 0, &units, &PreferOptions::default(), &Silent).expect("prefer");
         assert_eq!(res.len(), 12);
         for r in &res {
             let (want, argmax) = closed_form_first_layer(&net, r.unit);
@@ -571,6 +722,40 @@ mod tests {
         }
         // Reaching the vertex makes every start stuck long before 200 steps.
         assert!(res.iter().all(|r| r.steps < 200));
+    }
+
+    #[test]
+    fn first_layer_without_penalty_takes_the_closed_form() {
+        // Same closed form as above, b + sum_i max(w_i low_i, w_i high_i) at the vertex
+        // x_i = high_i if w_i > 0 else low_i, now returned by `prefer` without a search.
+        let net = random_net(
+            10,
+            &[30, 12, 4],
+            &[Activation::Relu, Activation::Softmax],
+            Layout::Vector,
+        );
+        let units: Vec<usize> = (0..12).collect();
+        let opts = PreferOptions::default();
+        let res = prefer(&net, 0, &units, &opts, &Silent).expect("prefer");
+        let ascent = prefer_by_ascent(&net, 0, &units, &opts, &Silent).expect("ascent");
+        for (r, a) in res.iter().zip(&ascent) {
+            let (want, argmax) = closed_form_first_layer(&net, r.unit);
+            assert!(r.finite);
+            assert_eq!(r.steps, 0, "no search for unit {}", r.unit);
+            assert_eq!(r.input, argmax, "the vertex itself for unit {}", r.unit);
+            let rel = (f64::from(r.preactivation) - want).abs() / want.abs().max(1.0);
+            assert!(rel < 1e-6, "unit {}: {} vs {want}", r.unit, r.preactivation);
+            assert_abs_diff_eq!(r.activation, r.preactivation.max(0.0), epsilon = 1e-6);
+            // Never below what the ascent reaches.
+            assert!(r.preactivation >= a.preactivation - 1e-5 * want.abs().max(1.0) as f32);
+        }
+        // With a penalty the objective is no longer linear: the search runs.
+        let l2 = PreferOptions::new(200, 8, 0, 0.1, 0.0).expect("valid options");
+        let res = prefer(&net, 0, &[0], &l2, &Silent).expect("prefer");
+        assert!(res[0].steps > 0);
+        // Deeper layers are searched.
+        let res = prefer(&net, 1, &[0], &opts, &Silent).expect("prefer");
+        assert!(res[0].steps > 0);
     }
 
     #[test]
@@ -690,11 +875,14 @@ mod tests {
             Layout::Vector,
         );
         let err = prefer(&vec_net, 0, &[0], &opts, &Silent).expect_err("tv on vector");
-        assert!(matches!(err, Error::Usage(_)));
+        assert!(
+            matches!(err, Error::BadOption { option: "tv", .. }),
+            "{err:?}"
+        );
     }
 
     #[test]
-    fn bad_requests_are_usage_errors() {
+    fn bad_requests_are_bad_option_errors() {
         let net = random_net(
             7,
             &[4, 2, 2],
@@ -704,28 +892,37 @@ mod tests {
         let o = PreferOptions::default();
         assert!(matches!(
             prefer(&net, 5, &[0], &o, &Silent),
-            Err(Error::Usage(_))
+            Err(Error::BadOption {
+                option: "layer",
+                ..
+            })
         ));
+        let e = prefer(&net, 0, &[2], &o, &Silent).expect_err("unit 2 of 2");
+        assert!(
+            matches!(e, Error::BadOption { option: "unit", .. }),
+            "{e:?}"
+        );
+        assert!(e.to_string().contains("no unit 2"), "{e}");
+        // The options refuse bad values when they are made.
         assert!(matches!(
-            prefer(&net, 0, &[2], &o, &Silent),
-            Err(Error::Usage(_))
+            PreferOptions::new(200, 0, 0, 0.0, 0.0),
+            Err(Error::BadOption {
+                option: "restarts",
+                ..
+            })
         ));
-        let zero = PreferOptions {
-            restarts: 0,
-            ..o.clone()
-        };
-        assert!(matches!(
-            prefer(&net, 0, &[0], &zero, &Silent),
-            Err(Error::Usage(_))
-        ));
-        let neg = PreferOptions {
-            l2: -1.0,
-            ..o.clone()
-        };
-        assert!(matches!(
-            prefer(&net, 0, &[0], &neg, &Silent),
-            Err(Error::Usage(_))
-        ));
+        for (l2, tv) in [
+            (-1.0, 0.0),
+            (f32::NAN, 0.0),
+            (0.0, -0.5),
+            (0.0, f32::INFINITY),
+        ] {
+            assert!(PreferOptions::new(200, 8, 0, l2, tv).is_err(), "{l2} {tv}");
+        }
+        assert_eq!(
+            PreferOptions::new(200, 8, 0, 0.0, 0.0).expect("valid"),
+            PreferOptions::default()
+        );
         assert!(prefer(&net, 0, &[], &o, &Silent).expect("empty").is_empty());
     }
 
@@ -793,7 +990,7 @@ mod tests {
             restarts: 1,
             ..PreferOptions::default()
         };
-        let r = prefer(&net, 0, &[1], &o, &Silent).expect("prefer");
+        let r = prefer_by_ascent(&net, 0, &[1], &o, &Silent).expect("prefer");
         assert_eq!(r[0].steps, 0);
         assert_eq!(r[0].input, net.input.centre());
     }

@@ -11,8 +11,33 @@ use crate::error::{Error, Result};
 use crate::model::Network;
 use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeSource};
 
-/// The pruned fractions of a sweep unless told otherwise (0 to 0.9 in steps of 0.1).
+/// The fractions of a sweep when none are given: 0, 0.1, ..., 0.9 (the command line's
+/// `prune-sweep` default and the app's sweep).
 pub const DEFAULT_SWEEP_FRACTIONS: [f64; 10] = [0.0, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9];
+
+/// Checks pruning fractions: at least one, each a number from 0 to 1.
+///
+/// Errors: [`Error::BadOption`] (option `fractions`) naming the first bad value.
+pub fn check_fractions(fractions: &[f64]) -> Result<()> {
+    if fractions.is_empty() {
+        return Err(Error::bad_option(
+            "fractions",
+            "none",
+            "needs at least one value",
+        ));
+    }
+    match fractions
+        .iter()
+        .find(|f| !(f.is_finite() && (0.0..=1.0).contains(*f)))
+    {
+        Some(f) => Err(Error::bad_option(
+            "fractions",
+            f,
+            "must be a number from 0 to 1",
+        )),
+        None => Ok(()),
+    }
+}
 
 /// One point of a pruning sweep.
 #[derive(Debug, Clone, PartialEq)]
@@ -70,7 +95,8 @@ pub fn prune_by_magnitude(net: &Network, fraction: f64) -> Network {
 /// Accuracy of the network pruned at each of `fractions` on a labelled probe, streamed
 /// once in chunks (every pruned copy runs on each chunk).
 ///
-/// Errors: a usage error when the probe has no labels or a fraction is outside [0, 1];
+/// Errors: a probe error when the probe has no labels; [`Error::BadOption`] from
+/// [`check_fractions`];
 /// a probe error when a chunk lacks labels, a label is not an output unit, or the probe
 /// has no samples; [`Error::Cancelled`] when `progress` asks to stop (checked per chunk).
 pub fn prune_sweep(
@@ -80,18 +106,12 @@ pub fn prune_sweep(
     progress: &dyn Progress,
 ) -> Result<Vec<SweepPoint>> {
     let describe = probe.describe();
+    check_fractions(fractions)?;
     if !probe.has_labels() {
-        return Err(Error::usage(format!(
-            "a pruning sweep needs a labelled probe, but {describe} has no labels (add a 'label' column)"
-        )));
-    }
-    if let Some(f) = fractions
-        .iter()
-        .find(|f| !(f.is_finite() && (0.0..=1.0).contains(*f)))
-    {
-        return Err(Error::usage(format!(
-            "pruning fractions must be between 0 and 1, got {f}"
-        )));
+        return Err(Error::probe(
+            &describe,
+            "has no labels: a pruning sweep needs a labelled probe (add a 'label' column)",
+        ));
     }
     let outputs = net.output_layer().units();
     let pruned: Vec<Network> = fractions
@@ -297,13 +317,18 @@ mod tests {
         let mut probe = MemProbe::new(x.clone(), None);
         assert!(matches!(
             prune_sweep(&net, &mut probe, &[0.1], &Silent),
-            Err(Error::Usage(_))
+            Err(Error::Probe { .. })
         ));
-        let mut probe = MemProbe::new(x.clone(), Some(vec![0, 1, 2]));
-        assert!(matches!(
-            prune_sweep(&net, &mut probe, &[1.5], &Silent),
-            Err(Error::Usage(_))
-        ));
+        for bad in [&[1.5][..], &[0.2, -0.1], &[f64::NAN], &[]] {
+            let mut probe = MemProbe::new(x.clone(), Some(vec![0, 1, 2]));
+            assert!(matches!(
+                prune_sweep(&net, &mut probe, bad, &Silent),
+                Err(Error::BadOption {
+                    option: "fractions",
+                    ..
+                })
+            ));
+        }
         let mut probe = MemProbe::new(x, Some(vec![0, 1, 7]));
         assert!(matches!(
             prune_sweep(&net, &mut probe, &[0.1], &Silent),

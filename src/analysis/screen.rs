@@ -22,9 +22,10 @@ use super::bounds::interval_bounds_upto;
 use super::forward::{activate_in_place, linear};
 use crate::error::{Error, Result};
 use crate::model::{Activation, Network, SIGMOID_SATURATION_Z, TANH_SATURATION_Z};
-use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeSource};
+use crate::probe::{DEFAULT_CHUNK_ROWS_NONZERO, ProbeSource};
 use ndarray::ArrayView2;
 use rayon::prelude::*;
+use std::num::NonZeroUsize;
 
 /// A unit's screening verdict.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
@@ -88,26 +89,57 @@ pub struct UnitScreen {
     pub status: Status,
 }
 
-/// Active fraction below which a unit is `rarely_active` (rectifiers) or `saturated`
-/// (sigmoid, tanh) unless told otherwise.
+/// The default active fraction below which a rectifier is `rarely_active` and a
+/// sigmoid/tanh unit is `saturated` (the command line's `--rare`, the app's screening).
 pub const DEFAULT_RARE_FRACTION: f64 = 0.01;
 
-/// Options of [`screen`].
+/// Options of [`screen`], valid by construction: `rare` in [0, 1] and at least one row per
+/// chunk ([`ScreenOptions::new`] checks them once; [`screen`] does not check them again).
 #[derive(Debug, Clone, PartialEq)]
 pub struct ScreenOptions {
-    /// Active fraction below which a rectifier is `rarely_active` and a sigmoid/tanh unit
-    /// is `saturated` (default [`DEFAULT_RARE_FRACTION`]).
-    pub rare: f64,
-    /// Probe rows per forward pass (default [`DEFAULT_CHUNK_ROWS`]).
-    pub chunk_rows: usize,
+    rare: f64,
+    chunk_rows: NonZeroUsize,
 }
 
 impl Default for ScreenOptions {
     fn default() -> Self {
         ScreenOptions {
             rare: DEFAULT_RARE_FRACTION,
-            chunk_rows: DEFAULT_CHUNK_ROWS,
+            chunk_rows: DEFAULT_CHUNK_ROWS_NONZERO,
         }
+    }
+}
+
+impl ScreenOptions {
+    /// Checked options: the `rare` active fraction and the probe rows per forward pass.
+    ///
+    /// Errors: [`Error::BadOption`] when `rare` is not a number from 0 to 1.
+    pub fn new(rare: f64, chunk_rows: NonZeroUsize) -> Result<Self> {
+        if !(rare.is_finite() && (0.0..=1.0).contains(&rare)) {
+            return Err(Error::bad_option(
+                "rare",
+                rare,
+                "must be a number from 0 to 1",
+            ));
+        }
+        Ok(ScreenOptions { rare, chunk_rows })
+    }
+
+    /// The same options with `chunk_rows` probe rows per forward pass.
+    #[must_use]
+    pub fn with_chunk_rows(self, chunk_rows: NonZeroUsize) -> Self {
+        ScreenOptions { chunk_rows, ..self }
+    }
+
+    /// Active fraction below which a rectifier is `rarely_active` and a sigmoid/tanh unit
+    /// is `saturated` (default [`DEFAULT_RARE_FRACTION`]).
+    pub fn rare(&self) -> f64 {
+        self.rare
+    }
+
+    /// Probe rows per forward pass (default [`crate::probe::DEFAULT_CHUNK_ROWS`]).
+    pub fn chunk_rows(&self) -> usize {
+        self.chunk_rows.get()
     }
 }
 
@@ -235,24 +267,14 @@ fn status_of(act: Activation, acc: &Acc, samples: usize, upper: f64, rare: f64) 
 /// bounds over the input box.
 ///
 /// Errors: those of the probe source (an empty probe is its error); a probe error when it
-/// yields no rows or a chunk of the wrong width; a usage error for `rare` outside [0, 1]
-/// or `chunk_rows == 0`; [`Error::Cancelled`] when `progress` asks to stop (checked per
-/// chunk).
+/// yields no rows or a chunk of the wrong width; [`Error::Cancelled`] when `progress` asks
+/// to stop (checked per chunk).
 pub fn screen(
     net: &Network,
     probe: &mut dyn ProbeSource,
     opts: &ScreenOptions,
     progress: &dyn Progress,
 ) -> Result<ScreenReport> {
-    if !(opts.rare.is_finite() && (0.0..=1.0).contains(&opts.rare)) {
-        return Err(Error::usage(format!(
-            "the rare fraction must be between 0 and 1, got {}",
-            opts.rare
-        )));
-    }
-    if opts.chunk_rows == 0 {
-        return Err(Error::usage("chunk_rows must be at least 1"));
-    }
     let describe = probe.describe();
     let hidden = net.layers.len().saturating_sub(1);
     let bounds = interval_bounds_upto(net, hidden);
@@ -262,7 +284,7 @@ pub fn screen(
         .collect();
     let total = probe.total_rows();
     let mut samples = 0usize;
-    while let Some(chunk) = probe.next_chunk(opts.chunk_rows)? {
+    while let Some(chunk) = probe.next_chunk(opts.chunk_rows())? {
         if progress.cancelled() {
             return Err(Error::Cancelled);
         }
@@ -414,6 +436,24 @@ pub(crate) mod tests {
     }
 
     /// The 11 x 11 grid over the whole box [0, 1]^2.
+    fn nz(n: usize) -> NonZeroUsize {
+        NonZeroUsize::new(n).expect("a count of at least 1")
+    }
+
+    #[test]
+    fn options_refuse_a_rare_fraction_outside_0_to_1() {
+        for bad in [-0.1, 1.5, f64::NAN, f64::INFINITY] {
+            let e = ScreenOptions::new(bad, nz(10)).expect_err("refused");
+            assert!(
+                matches!(e, Error::BadOption { option: "rare", .. }),
+                "{e:?}"
+            );
+        }
+        let ok = ScreenOptions::new(1.0, nz(10)).expect("1 is allowed");
+        assert_eq!((ok.rare(), ok.chunk_rows()), (1.0, 10));
+        assert_eq!(ScreenOptions::default().rare(), DEFAULT_RARE_FRACTION);
+    }
+
     fn grid_probe() -> Array2<f32> {
         grid(11)
     }
@@ -438,10 +478,7 @@ pub(crate) mod tests {
         let b = array![-0.5, -0.85, 0.1, -0.5, -1.9];
         let net = hand_net(Activation::Relu, w, b);
         let mut p = MemProbe::new(grid(10), None);
-        let opts = ScreenOptions {
-            rare: 0.2,
-            chunk_rows: 7,
-        };
+        let opts = ScreenOptions::new(0.2, nz(7)).expect("valid options");
         let r = screen(&net, &mut p, &opts, &Silent).expect("screen");
         assert_eq!(r.samples, 100);
         assert_eq!(r.units.len(), 5);
@@ -474,10 +511,7 @@ pub(crate) mod tests {
         let w = array![[1.0, -1.0], [0.3, 0.2]];
         let b = array![0.0, -0.2];
         let net = hand_net(Activation::LeakyRelu { alpha: 0.1 }, w, b);
-        let opts = |c| ScreenOptions {
-            rare: 0.01,
-            chunk_rows: c,
-        };
+        let opts = |c| ScreenOptions::new(0.01, nz(c)).expect("valid options");
         let a = screen_grid(&net, &opts(1));
         let c = screen_grid(&net, &opts(1000));
         for (x, y) in a.units.iter().zip(&c.units) {

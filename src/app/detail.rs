@@ -9,6 +9,7 @@ use super::colour::{self, ColourKey, LegendOrientation};
 use super::maps;
 use super::state::{AppState, MapView, Selection};
 use super::thumbs::{ThumbKey, ThumbKind, Thumbs};
+use crate::analysis::prefer::PreferOptions;
 use crate::model::{Layout, Network};
 use crate::report::picture::{self, Picture};
 use egui::{Color32, Rect, Sense, pos2, vec2};
@@ -725,30 +726,36 @@ fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &
         .default_open(false)
         .show(ui, |ui| {
             let s = &mut state.prefs.search;
+            let (mut steps, mut restarts, mut l2, mut tv) =
+                (s.steps(), s.restarts(), s.l2(), s.tv());
             egui::Grid::new("search-settings")
                 .num_columns(2)
                 .show(ui, |ui| {
                     ui.label("Steps");
-                    ui.add(egui::DragValue::new(&mut s.steps).range(1..=10_000));
+                    ui.add(egui::DragValue::new(&mut steps).range(1..=10_000));
                     ui.end_row();
                     ui.label("Restarts");
-                    ui.add(egui::DragValue::new(&mut s.restarts).range(1..=64));
+                    ui.add(egui::DragValue::new(&mut restarts).range(1..=64));
                     ui.end_row();
                     ui.label("L2 penalty");
                     ui.add(
-                        egui::DragValue::new(&mut s.l2)
+                        egui::DragValue::new(&mut l2)
                             .range(0.0..=100.0)
                             .speed(0.001),
                     );
                     ui.end_row();
                     ui.label("Total variation");
                     ui.add(
-                        egui::DragValue::new(&mut s.tv)
+                        egui::DragValue::new(&mut tv)
                             .range(0.0..=100.0)
                             .speed(0.001),
                     );
                     ui.end_row();
                 });
+            // The controls stay inside the valid ranges; the core's constructor checks anyway.
+            if let Ok(o) = PreferOptions::new(steps, restarts, s.seed(), l2, tv) {
+                *s = o;
+            }
             let used = state.results.preferred.get(&sel.layer).map(|p| &p.settings);
             let differs = used.is_some_and(|u| *u != state.prefs.search);
             let text = if differs {

@@ -249,7 +249,7 @@ pub fn write_screen(
     s: &ScreenResult,
     format: Format,
 ) -> std::io::Result<()> {
-    let rare = crate::analysis::screen::ScreenOptions::default().rare;
+    let rare = crate::analysis::screen::DEFAULT_RARE_FRACTION;
     let extra = tables::screen_extra(s.samples, &s.probe, rare, None);
     tables::write_screen(format, w, &s.rows, &extra)
 }

@@ -4,8 +4,8 @@
 //! that is no longer open is dropped.
 
 use super::state::{
-    ActivityResult, LayerPreferred, MainView, MapView, OpenModel, OpenProbe, Prefs, Results,
-    ScreenResult, Selection, Slot, Tag, Task,
+    ActivityResult, LayerPreferred, MainView, MapView, OpenError, OpenModel, OpenProbe, Prefs,
+    Results, ScreenResult, Selection, Slot, Tag, Task,
 };
 use super::worker::{self, Job, ProbeChoice, Reply};
 use super::{DEMO_PROBE, Pick, ReceptorApp};
@@ -103,8 +103,9 @@ impl ReceptorApp {
         match result {
             Ok((net, origin, path)) => self.install_model(net, origin, path),
             Err(e) => {
-                let text = e.to_string();
-                self.state.open_error = Some(text.clone());
+                let err = OpenError::new(&e);
+                let text = err.text.clone();
+                self.state.open_error = Some(err);
                 let keep = if self.state.model.is_some() {
                     " (the open model stays open)"
                 } else {
@@ -123,8 +124,9 @@ impl ReceptorApp {
         match result {
             Ok(probe) => self.install_probe(tag, probe),
             Err(e) => {
-                let text = e.to_string();
-                self.state.open_error = Some(text.clone());
+                let err = OpenError::new(&e);
+                let text = err.text.clone();
+                self.state.open_error = Some(err);
                 self.state.fail(format!("{text} (the probe in use stays)"));
                 if self.state.probe.is_none() {
                     // The model needs some probe: fall back to the uniform one.

@@ -471,7 +471,7 @@ impl ReceptorApp {
 
     /// The error from opening a file, in the theme's error colour, with Dismiss and (for
     /// side files outside the model's folder) a way to agree and open again.
-    fn open_error_ui(&mut self, ui: &mut egui::Ui, err: &str) {
+    fn open_error_ui(&mut self, ui: &mut egui::Ui, err: &state::OpenError) {
         let colour = ui.visuals().error_fg_color;
         let frame = egui::Frame::group(ui.style()).stroke(egui::Stroke::new(1.0, colour));
         frame.show(ui, |ui| {
@@ -484,11 +484,10 @@ impl ReceptorApp {
                     self.state.open_error = None;
                 }
             });
-            ui.colored_label(colour, err);
+            ui.colored_label(colour, &err.text);
             // The importer refuses side files outside the model's folder unless the
             // user agrees; here the user can agree for this session.
-            let outside = err.contains("--allow-outside-paths");
-            if outside
+            if err.outside
                 && !self.state.allow_outside_paths
                 && let Some(path) = self.state.run.last_open_path.clone()
                 && ui

@@ -91,29 +91,48 @@ pub enum MainView {
     Sparsity,
 }
 
-/// How the preferred-input search options are saved with the preferences. A mirror of
-/// [`PreferOptions`] for serde's remote derive, so the core type carries no persistence
-/// format; missing fields take the core's defaults.
-#[derive(Serialize, Deserialize)]
-#[serde(remote = "PreferOptions", default)]
-struct SavedPreferOptions {
-    steps: usize,
-    restarts: usize,
-    seed: u64,
-    l2: f32,
-    tv: f32,
-}
+/// How the preferred-input search options are saved with the preferences: a plain mirror
+/// of [`PreferOptions`], so the core type carries no persistence format. Missing fields
+/// take the core's defaults; saved values that the core refuses fall back to the defaults.
+mod saved_search {
+    use crate::analysis::prefer::PreferOptions;
+    use serde::{Deserialize, Deserializer, Serialize, Serializer};
 
-impl Default for SavedPreferOptions {
-    fn default() -> Self {
-        let d = PreferOptions::default();
-        SavedPreferOptions {
-            steps: d.steps,
-            restarts: d.restarts,
-            seed: d.seed,
-            l2: d.l2,
-            tv: d.tv,
+    #[derive(Serialize, Deserialize)]
+    #[serde(default)]
+    struct Saved {
+        steps: usize,
+        restarts: usize,
+        seed: u64,
+        l2: f32,
+        tv: f32,
+    }
+
+    impl From<&PreferOptions> for Saved {
+        fn from(o: &PreferOptions) -> Self {
+            Saved {
+                steps: o.steps(),
+                restarts: o.restarts(),
+                seed: o.seed(),
+                l2: o.l2(),
+                tv: o.tv(),
+            }
         }
+    }
+
+    impl Default for Saved {
+        fn default() -> Self {
+            Saved::from(&PreferOptions::default())
+        }
+    }
+
+    pub fn serialize<S: Serializer>(o: &PreferOptions, s: S) -> Result<S::Ok, S::Error> {
+        Saved::from(o).serialize(s)
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<PreferOptions, D::Error> {
+        let v = Saved::deserialize(d)?;
+        Ok(PreferOptions::new(v.steps, v.restarts, v.seed, v.l2, v.tv).unwrap_or_default())
     }
 }
 
@@ -130,7 +149,7 @@ pub struct Prefs {
     pub scale: ScaleMode,
     /// Preferred-input search options (the same defaults as `receptor prefer`, so the app
     /// and the command line agree).
-    #[serde(with = "SavedPreferOptions")]
+    #[serde(with = "saved_search")]
     pub search: PreferOptions,
     /// Tile edge in points.
     pub tile_size: f32,
@@ -466,6 +485,25 @@ impl RunState {
     }
 }
 
+/// An error from opening a model or probe file, as the app shows it.
+#[derive(Debug, Clone)]
+pub struct OpenError {
+    /// The error's message.
+    pub text: String,
+    /// The model names a side file outside its folder: the user may agree and open again.
+    pub outside: bool,
+}
+
+impl OpenError {
+    /// The app's view of `e`.
+    pub fn new(e: &crate::Error) -> Self {
+        OpenError {
+            text: e.to_string(),
+            outside: matches!(e, crate::Error::OutsidePath { .. }),
+        }
+    }
+}
+
 /// A one-line message for the status bar.
 #[derive(Debug, Clone)]
 pub struct Notice {
@@ -497,7 +535,7 @@ pub struct AppState {
     /// The last confirmation or error.
     pub notice: Option<Notice>,
     /// An error from opening a file, shown prominently until dismissed.
-    pub open_error: Option<String>,
+    pub open_error: Option<OpenError>,
     /// Allow side-file paths outside the model's folder.
     pub allow_outside_paths: bool,
     /// The unit order of the grid, recomputed when its inputs change.
@@ -724,12 +762,7 @@ mod tests {
             r#"{"search": {"steps": 50, "restarts": 3, "l2": 0.5, "tv": 0.0}}"#,
         )
         .unwrap();
-        let want = PreferOptions {
-            steps: 50,
-            restarts: 3,
-            l2: 0.5,
-            ..PreferOptions::default()
-        };
+        let want = PreferOptions::new(50, 3, PreferOptions::default().seed(), 0.5, 0.0).unwrap();
         assert_eq!(p.search, want);
         // And what is saved now loads back the same.
         let text = serde_json::to_string(&p).unwrap();

@@ -28,6 +28,11 @@ pub const PREFER_BATCH: usize = 128;
 /// Probe rows per forward pass when tracing activations and screening: small enough that
 /// a cancel is seen within a fraction of a second on a 784-2048-2048-10 network.
 const TRACE_CHUNK: usize = 512;
+/// [`TRACE_CHUNK`] as the screening options take it.
+const TRACE_CHUNK_NONZERO: std::num::NonZeroUsize = match std::num::NonZeroUsize::new(TRACE_CHUNK) {
+    Some(n) => n,
+    None => panic!("TRACE_CHUNK is not zero"),
+};
 
 /// Where a model comes from.
 #[derive(Debug, Clone)]
@@ -315,7 +320,7 @@ impl Worker {
         if let Err(e) = spawned {
             let _ = fallback_tx.send(Reply::ModelOpened {
                 request,
-                result: Err(Error::usage(format!(
+                result: Err(Error::internal(format!(
                     "cannot start a thread to open the file: {e}"
                 ))),
             });
@@ -335,7 +340,9 @@ impl Worker {
             });
         if let Err(e) = spawned {
             let _ = self.reply_tx.send(Reply::Exported {
-                result: Err(Error::usage(format!("cannot start a helper thread: {e}"))),
+                result: Err(Error::internal(format!(
+                    "cannot start a helper thread: {e}"
+                ))),
             });
         }
     }
@@ -493,10 +500,7 @@ fn screen_and_trace(
     progress: &JobProgress<'_>,
 ) -> Option<ProbeResults> {
     let mut src = MemoryProbe::new(data.clone());
-    let opts = ScreenOptions {
-        chunk_rows: TRACE_CHUNK,
-        ..ScreenOptions::default()
-    };
+    let opts = ScreenOptions::default().with_chunk_rows(TRACE_CHUNK_NONZERO);
     let report = screen::screen(net, &mut src, &opts, &progress.sub(0.0, 0.4));
     let screen = not_cancelled(report)?.map(|r| Arc::new(ScreenResult::new(net, r)));
     let opts = ActivityOptions {

@@ -3,12 +3,13 @@
 
 use super::output::{Cell, Format, Stop, TableWriter, emit};
 use super::screen::load_and_screen;
-use super::{CommonArgs, EXIT_CHECK_FAILED, ProbeArgs, check_fraction};
-use crate::analysis::screen::{ScreenReport, Status};
+use super::{CommonArgs, EXIT_CHECK_FAILED, ProbeArgs, parse_count, parse_fraction};
+use crate::analysis::screen::{DEFAULT_RARE_FRACTION, ScreenReport, Status};
 use crate::error::Result;
 use crate::model::Network;
 use crate::probe;
 use clap::{Args, ValueEnum};
+use std::num::NonZeroUsize;
 use std::path::PathBuf;
 use std::process::ExitCode;
 
@@ -38,6 +39,7 @@ pub struct CheckArgs {
         long,
         allow_negative_numbers = true,
         value_name = "FRAC",
+        value_parser = parse_fraction,
         default_value_t = 0.1
     )]
     pub max_dead: f64,
@@ -47,13 +49,14 @@ pub struct CheckArgs {
         long,
         allow_negative_numbers = true,
         value_name = "FRAC",
-        default_value_t = 0.01
+        default_value_t = DEFAULT_RARE_FRACTION
     )]
     pub rare: f64,
 
     /// Probe rows read and screened at a time (memory use grows with it).
-    #[arg(long, value_name = "N", default_value_t = probe::DEFAULT_CHUNK_ROWS)]
-    pub chunk_rows: usize,
+    #[arg(long, value_name = "N", value_parser = parse_count,
+          default_value_t = probe::DEFAULT_CHUNK_ROWS_NONZERO)]
+    pub chunk_rows: NonZeroUsize,
 
     /// Output format.
     #[arg(long, value_enum, default_value_t = CheckFormat::Text)]
@@ -135,7 +138,6 @@ pub fn line(v: &LayerVerdict, max_dead: f64) -> String {
 
 /// Runs `check`: exit 0 when every hidden rectifier layer is within `--max-dead`, else 3.
 pub fn run(args: &CheckArgs) -> Result<ExitCode> {
-    check_fraction("--max-dead", args.max_dead)?;
     let common = CommonArgs {
         format: Format::Csv,
         out: args.out.clone(),

@@ -3,9 +3,10 @@
 use super::CommonArgs;
 use super::output::{Cell, Stop, TableWriter, emit};
 use crate::analysis::forward::{argmax_rows, forward};
-use crate::error::{Error, Result};
+use crate::error::Result;
 use crate::probe;
 use clap::Args;
+use std::num::NonZeroUsize;
 use std::path::PathBuf;
 use std::process::ExitCode;
 
@@ -21,8 +22,9 @@ pub struct ForwardArgs {
     pub probe: PathBuf,
 
     /// Rows read and run through the network at a time (memory use grows with it).
-    #[arg(long, value_name = "N", default_value_t = probe::DEFAULT_CHUNK_ROWS)]
-    pub chunk_rows: usize,
+    #[arg(long, value_name = "N", value_parser = super::parse_count,
+          default_value_t = probe::DEFAULT_CHUNK_ROWS_NONZERO)]
+    pub chunk_rows: NonZeroUsize,
 
     #[command(flatten)]
     pub common: CommonArgs,
@@ -30,9 +32,6 @@ pub struct ForwardArgs {
 
 /// Runs `forward`: streams the probe chunk by chunk, one output row per sample.
 pub fn run(args: &ForwardArgs) -> Result<ExitCode> {
-    if args.chunk_rows == 0 {
-        return Err(Error::usage("--chunk-rows must be at least 1"));
-    }
     let net = args.common.load(&args.model)?;
     let mut source = probe::open(&args.probe, &net)?;
     let names = net.output_names();
@@ -43,7 +42,7 @@ pub fn run(args: &ForwardArgs) -> Result<ExitCode> {
         let mut t = TableWriter::begin(args.common.format, w, columns.clone(), columns)?;
         let mut cells: Vec<Cell> = Vec::with_capacity(names.len() + 2);
         let origin = source.describe();
-        while let Some(chunk) = source.next_chunk(args.chunk_rows)? {
+        while let Some(chunk) = source.next_chunk(args.chunk_rows.get())? {
             chunk.check_width(&net, &origin)?;
             let out = forward(&net, chunk.inputs.view());
             let best = argmax_rows(out.view());

@@ -17,6 +17,7 @@ use crate::model::{LoadOptions, Network};
 use crate::probe::{self, ProbeSource};
 use clap::{Args, Parser, Subcommand};
 use output::{Destination, Format};
+use std::num::NonZeroUsize;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
@@ -193,8 +194,9 @@ pub struct ProbeArgs {
     pub probe: Option<PathBuf>,
 
     /// Number of samples of the default uniform probe (without --probe).
-    #[arg(long, value_name = "N", default_value_t = probe::DEFAULT_UNIFORM_SAMPLES)]
-    pub samples: usize,
+    #[arg(long, value_name = "N", value_parser = parse_count,
+          default_value_t = probe::DEFAULT_UNIFORM_SAMPLES_NONZERO)]
+    pub samples: NonZeroUsize,
 
     /// Seed of the default uniform probe (without --probe).
     #[arg(long = "seed", value_name = "S", default_value_t = probe::DEFAULT_UNIFORM_SEED)]
@@ -208,15 +210,13 @@ impl ProbeArgs {
         match &self.probe {
             Some(p) => Ok((probe::open(p, net)?, None)),
             None => {
-                if self.samples == 0 {
-                    return Err(Error::usage("--samples must be at least 1"));
-                }
+                let samples = self.samples.get();
                 eprintln!(
                     "receptor: no --probe given: using {} samples drawn uniformly from the input box with seed {}",
-                    self.samples, self.probe_seed
+                    samples, self.probe_seed
                 );
                 Ok((
-                    probe::uniform(net, self.samples, self.probe_seed),
+                    probe::uniform(net, samples, self.probe_seed),
                     Some(self.probe_seed),
                 ))
             }
@@ -224,15 +224,47 @@ impl ProbeArgs {
     }
 }
 
-/// Checks that a fraction option lies in [0, 1].
-pub fn check_fraction(name: &str, v: f64) -> Result<()> {
+/// The flag of the core option `option` (`chunk_rows` is `--chunk-rows`).
+pub fn flag(option: &str) -> String {
+    format!("--{}", option.replace('_', "-"))
+}
+
+/// `err` worded for the command line, on one line: a bad option names its flag, and a side
+/// file outside the model's folder names the flag that allows it.
+pub fn message(err: &Error) -> String {
+    let text = match err {
+        Error::BadOption {
+            option,
+            value,
+            allowed,
+        } => format!("{} {allowed} (got {value})", flag(option)),
+        Error::OutsidePath { .. } => {
+            format!("{err} (pass --allow-outside-paths to allow it)")
+        }
+        other => other.to_string(),
+    };
+    text.replace(['\n', '\r'], " ")
+}
+
+/// clap value parser for a fraction of the command line only (`--max-dead`): a number from
+/// 0 to 1.
+pub fn parse_fraction(text: &str) -> std::result::Result<f64, String> {
+    let v: f64 = text
+        .parse()
+        .map_err(|e| format!("'{text}' is not a number: {e}"))?;
     if v.is_finite() && (0.0..=1.0).contains(&v) {
-        Ok(())
+        Ok(v)
     } else {
-        Err(Error::usage(format!(
-            "{name} must be a number from 0 to 1, got {v}"
-        )))
+        Err("must be a number from 0 to 1".to_string())
     }
+}
+
+/// clap value parser for a count that must be at least 1 (`--chunk-rows`, `--samples`).
+pub fn parse_count(text: &str) -> std::result::Result<NonZeroUsize, String> {
+    let n: usize = text
+        .parse()
+        .map_err(|e| format!("'{text}' is not a whole number: {e}"))?;
+    NonZeroUsize::new(n).ok_or_else(|| "must be at least 1".to_string())
 }
 
 /// Runs one analysis command, returning the process exit code on success (0, or 3 for a

@@ -4,8 +4,8 @@
 use super::CommonArgs;
 use crate::analysis::Silent;
 use crate::analysis::prefer::{PreferOptions, Preferred, prefer};
-use crate::error::{Error, Result};
-use crate::model::{Layout, Network};
+use crate::error::Result;
+use crate::model::Network;
 use crate::report::picture;
 use crate::report::table::{Cell, Stop, emit};
 use crate::report::tables;
@@ -34,15 +34,15 @@ pub struct PreferArgs {
     pub all: bool,
 
     /// Gradient-ascent steps per restart.
-    #[arg(long, value_name = "N", default_value_t = PreferOptions::default().steps)]
+    #[arg(long, value_name = "N", default_value_t = PreferOptions::default().steps())]
     pub steps: usize,
 
     /// Starts of the search: one from the centre of the input box, the rest random.
-    #[arg(long, value_name = "R", default_value_t = PreferOptions::default().restarts)]
+    #[arg(long, value_name = "R", default_value_t = PreferOptions::default().restarts())]
     pub restarts: usize,
 
     /// Seed of the random starts.
-    #[arg(long, value_name = "S", default_value_t = PreferOptions::default().seed)]
+    #[arg(long, value_name = "S", default_value_t = PreferOptions::default().seed())]
     pub seed: u64,
 
     /// Maximise z - LAMBDA x ||x||^2 instead of z (keeps the preferred input small).
@@ -50,7 +50,7 @@ pub struct PreferArgs {
         long,
         allow_negative_numbers = true,
         value_name = "LAMBDA",
-        default_value_t = 0.0
+        default_value_t = PreferOptions::default().l2()
     )]
     pub l2: f32,
 
@@ -60,7 +60,7 @@ pub struct PreferArgs {
         long,
         allow_negative_numbers = true,
         value_name = "LAMBDA",
-        default_value_t = 0.0
+        default_value_t = PreferOptions::default().tv()
     )]
     pub tv: f32,
 
@@ -77,41 +77,13 @@ pub struct PreferArgs {
 
 /// Runs `prefer`.
 pub fn run(args: &PreferArgs) -> Result<ExitCode> {
-    if args.restarts == 0 {
-        return Err(Error::usage("--restarts must be at least 1"));
-    }
-    for (name, v) in [("--l2", args.l2), ("--tv", args.tv)] {
-        if !(v.is_finite() && v >= 0.0) {
-            return Err(Error::usage(format!(
-                "{name} must be a finite number >= 0, got {v}"
-            )));
-        }
-    }
+    // The options are checked when they are made, the unit and the layout by the search.
+    let opts = PreferOptions::new(args.steps, args.restarts, args.seed, args.l2, args.tv)?;
     let net = args.common.load(&args.model)?;
-    if args.tv > 0.0 && net.input.layout == Layout::Vector {
-        return Err(Error::usage(
-            "--tv needs an image layout; this model's input is a vector",
-        ));
-    }
     let layer = net.require_layer(&args.layer)?;
-    let count = net.layers[layer].units();
     let units: Vec<usize> = match args.unit {
-        Some(k) if k >= count => {
-            return Err(Error::usage(format!(
-                "layer '{}' has {count} units (0 to {}); there is no unit {k}",
-                args.layer,
-                count.saturating_sub(1)
-            )));
-        }
         Some(k) => vec![k],
-        None => (0..count).collect(),
-    };
-    let opts = PreferOptions {
-        steps: args.steps,
-        restarts: args.restarts,
-        seed: args.seed,
-        l2: args.l2,
-        tv: args.tv,
+        None => (0..net.layers[layer].units()).collect(),
     };
     let found = prefer(&net, layer, &units, &opts, &Silent)?;
     for p in found.iter().filter(|p| !p.finite) {

@@ -1,10 +1,12 @@
 //! `receptor prune-sweep MODEL --probe DATA`: accuracy after magnitude pruning at several
 //! fractions, and `--write-pruned FRAC --out FILE` to save a pruned model.
 
+use super::CommonArgs;
 use super::output::{Stop, emit};
-use super::{CommonArgs, check_fraction};
 use crate::analysis::Silent;
-use crate::analysis::prune::{prune_by_magnitude, prune_sweep};
+use crate::analysis::prune::{
+    DEFAULT_SWEEP_FRACTIONS, check_fractions, prune_by_magnitude, prune_sweep,
+};
 use crate::error::{Error, Result};
 use crate::model::Network;
 use crate::probe;
@@ -29,7 +31,7 @@ pub struct PruneSweepArgs {
         allow_negative_numbers = true,
         value_name = "F,F,...",
         value_delimiter = ',',
-        default_value = "0,0.1,0.2,0.3,0.4,0.5,0.6,0.7,0.8,0.9"
+        default_values_t = DEFAULT_SWEEP_FRACTIONS
     )]
     pub fractions: Vec<f64>,
 
@@ -54,11 +56,9 @@ pub fn zero_count(net: &Network) -> (usize, usize) {
 
 /// Runs `prune-sweep`.
 pub fn run(args: &PruneSweepArgs) -> Result<ExitCode> {
-    for &f in &args.fractions {
-        check_fraction("every --fractions value", f)?;
-    }
+    // The sweep's fractions are checked by the sweep; --write-pruned by the same rule.
     if let Some(f) = args.write_pruned {
-        check_fraction("--write-pruned", f)?;
+        check_fractions(&[f]).map_err(|e| e.for_option("write_pruned"))?;
         let Some(out) = &args.common.out else {
             return Err(Error::usage(
                 "--write-pruned needs --out FILE: the file to write the pruned model to",
@@ -92,9 +92,6 @@ pub fn run(args: &PruneSweepArgs) -> Result<ExitCode> {
             "prune-sweep needs --probe DATA, a CSV probe with a 'label' column (or --write-pruned FRAC --out FILE)",
         ));
     };
-    if args.fractions.is_empty() {
-        return Err(Error::usage("--fractions needs at least one value"));
-    }
     let net = args.common.load(&args.model)?;
     let mut source = probe::open(probe_path, &net)?;
     require_labels(&*source, probe_path)?;

@@ -1,15 +1,16 @@
 //! `receptor screen MODEL [--probe DATA]`: dead, rarely active, always active and saturated
 //! hidden units, on probe data and by interval bound propagation.
 
-use super::{CommonArgs, ProbeArgs, check_fraction};
+use super::{CommonArgs, ProbeArgs, parse_count};
 use crate::analysis::Silent;
-use crate::analysis::screen::{ScreenOptions, ScreenReport, screen};
-use crate::error::{Error, Result};
+use crate::analysis::screen::{DEFAULT_RARE_FRACTION, ScreenOptions, ScreenReport, screen};
+use crate::error::Result;
 use crate::model::Network;
 use crate::probe;
 use crate::report::table::{Stop, emit};
 use crate::report::tables;
 use clap::Args;
+use std::num::NonZeroUsize;
 use std::path::PathBuf;
 use std::process::ExitCode;
 
@@ -29,13 +30,14 @@ pub struct ScreenArgs {
         long,
         allow_negative_numbers = true,
         value_name = "FRAC",
-        default_value_t = 0.01
+        default_value_t = DEFAULT_RARE_FRACTION
     )]
     pub rare: f64,
 
     /// Probe rows read and screened at a time (memory use grows with it).
-    #[arg(long, value_name = "N", default_value_t = probe::DEFAULT_CHUNK_ROWS)]
-    pub chunk_rows: usize,
+    #[arg(long, value_name = "N", value_parser = parse_count,
+          default_value_t = probe::DEFAULT_CHUNK_ROWS_NONZERO)]
+    pub chunk_rows: NonZeroUsize,
 
     #[command(flatten)]
     pub common: CommonArgs,
@@ -48,15 +50,11 @@ pub fn load_and_screen(
     model: &std::path::Path,
     probe_args: &ProbeArgs,
     rare: f64,
-    chunk_rows: usize,
+    chunk_rows: NonZeroUsize,
 ) -> Result<(Network, ScreenReport, Option<u64>)> {
-    check_fraction("--rare", rare)?;
-    if chunk_rows == 0 {
-        return Err(Error::usage("--chunk-rows must be at least 1"));
-    }
+    let opts = ScreenOptions::new(rare, chunk_rows)?;
     let net = common.load(model)?;
     let (mut source, seed) = probe_args.open(&net)?;
-    let opts = ScreenOptions { rare, chunk_rows };
     let report = screen(&net, &mut *source, &opts, &Silent)?;
     Ok((net, report, seed))
 }

@@ -30,9 +30,11 @@ pub fn run(args: &StatsArgs) -> Result<ExitCode> {
     if let Some(t) = args.zero_tol
         && !(t.is_finite() && t >= 0.0)
     {
-        return Err(Error::usage(format!(
-            "--zero-tol must be a finite number >= 0, got {t}"
-        )));
+        return Err(Error::bad_option(
+            "zero_tol",
+            t,
+            "must be a finite number >= 0",
+        ));
     }
     let net = args.common.load(&args.model)?;
     let (units, layers) = all_stats(&net, args.zero_tol);

@@ -332,19 +332,7 @@ pub(crate) fn build(
     opts: &LoadOptions,
 ) -> Result<Network> {
     let err = |msg: String| Error::model(origin, msg);
-    match &raw.schema {
-        None => {
-            return Err(err(format!(
-                "missing \"schema\": a receptor model must say \"schema\": \"{SCHEMA_TAG}\""
-            )));
-        }
-        Some(serde_json::Value::String(s)) if s == SCHEMA_TAG => {}
-        Some(other) => {
-            return Err(err(format!(
-                "unsupported schema {other}: this version of receptor reads \"{SCHEMA_TAG}\""
-            )));
-        }
-    }
+    check_schema(raw.schema.as_ref()).map_err(err)?;
     let input = raw
         .input
         .ok_or_else(|| err("missing \"input\" (size, layout, low, high)".into()))?;
@@ -356,82 +344,15 @@ pub(crate) fn build(
             "\"layers\" is empty: a model needs at least one layer".into()
         ));
     }
-
-    // Declared input size: checked against the first layer's data before anything is
-    // allocated from it.
-    let declared_size = match &input.size {
-        None => return Err(err("input: missing \"size\"".into())),
-        Some(v) => v.as_u64().filter(|&n| n >= 1).ok_or_else(|| {
-            err(format!(
-                "input: \"size\" must be a whole number of at least 1, found {v}"
-            ))
-        })?,
-    };
+    // Checked against the first layer's data before anything is allocated from it.
+    let declared_size = declared_input_size(input.size.as_ref()).map_err(err)?;
 
     let mut side = SideFiles::new(origin, base_dir, opts.allow_outside_paths);
     let mut layers = Vec::with_capacity(layers_raw.len());
     let mut seen = std::collections::HashSet::new();
     let n_layers = layers_raw.len();
     for (i, l) in layers_raw.into_iter().enumerate() {
-        let label = layer_label(i, l.name.as_deref());
-        let name = match l.name {
-            Some(n) if !n.is_empty() => n,
-            _ => return Err(err(format!("{label}: missing or empty \"name\""))),
-        };
-        if !seen.insert(name.clone()) {
-            return Err(err(format!(
-                "layer name '{name}' is used twice; layer names must be unique"
-            )));
-        }
-        match l.kind.as_deref() {
-            Some("dense") => {}
-            None => {
-                return Err(err(format!(
-                    "{label}: missing \"type\" (only \"dense\" is supported)"
-                )));
-            }
-            Some(t) => {
-                return Err(err(format!(
-                    "{label}: unsupported layer type \"{t}\" (only \"dense\" is supported)"
-                )));
-            }
-        }
-        let activation = parse_activation(l.activation.as_deref(), l.alpha)
-            .map_err(|m| err(format!("{label}: {m}")))?;
-        if activation == Activation::Softmax && i + 1 != n_layers {
-            return Err(err(format!(
-                "{label}: softmax is allowed only in the last layer (this is layer {} of {n_layers})",
-                i + 1
-            )));
-        }
-        let weights_src = l
-            .weights
-            .ok_or_else(|| err(format!("{label}: missing \"weights\"")))?;
-        let weights = match weights_src {
-            TensorSrc::Inline(t) => {
-                inline_matrix(t).map_err(|m| err(format!("{label}: weights: {m}")))?
-            }
-            TensorSrc::Side { file, tensor } => {
-                side.matrix(&file, &tensor, &format!("{label} weights"))?
-            }
-        };
-        let units = weights.nrows();
-        let bias = match l.bias {
-            None => Array1::zeros(units),
-            Some(TensorSrc::Inline(t)) => {
-                inline_vector(t).map_err(|m| err(format!("{label}: bias: {m}")))?
-            }
-            Some(TensorSrc::Side { file, tensor }) => {
-                side.vector(&file, &tensor, &format!("{label} bias"))?
-            }
-        };
-        layers.push(Layer {
-            name,
-            activation,
-            weights,
-            bias,
-            labels: l.labels,
-        });
+        layers.push(build_layer(i, n_layers, l, origin, &mut side, &mut seen)?);
     }
 
     let first_fan_in = layers[0].fan_in();
@@ -442,44 +363,7 @@ pub(crate) fn build(
         )));
     }
     let size = first_fan_in;
-    let layout = match input.layout {
-        None => Layout::Vector,
-        Some(l) => match l.kind.as_str() {
-            "vector" => Layout::Vector,
-            "image" => {
-                let (h, w, c) = match (l.height, l.width, l.channels) {
-                    (Some(h), Some(w), c) => (h, w, c.unwrap_or(1)),
-                    _ => {
-                        return Err(err(
-                            "input: an image layout needs \"height\" and \"width\" (and \"channels\", 1 or 3)"
-                                .into(),
-                        ));
-                    }
-                };
-                if c != 1 && c != 3 {
-                    return Err(err(format!(
-                        "input: image \"channels\" must be 1 or 3, found {c}"
-                    )));
-                }
-                let prod = h.checked_mul(w).and_then(|x| x.checked_mul(c));
-                if prod != Some(size as u64) || h == 0 || w == 0 {
-                    return Err(err(format!(
-                        "input: image layout {h} x {w} x {c} does not match \"size\" {size}"
-                    )));
-                }
-                Layout::Image {
-                    height: h as usize,
-                    width: w as usize,
-                    channels: c as usize,
-                }
-            }
-            k => {
-                return Err(err(format!(
-                    "input: unknown layout kind \"{k}\" (expected \"image\" or \"vector\")"
-                )));
-            }
-        },
-    };
+    let layout = parse_layout(input.layout, size).map_err(err)?;
     let low = expand_bound(input.low, -1.0, size, "low").map_err(|m| err(format!("input: {m}")))?;
     let high =
         expand_bound(input.high, 1.0, size, "high").map_err(|m| err(format!("input: {m}")))?;
@@ -496,6 +380,142 @@ pub(crate) fn build(
         layers,
         extra: raw.extra,
     })
+}
+
+/// The `"schema"` tag must be [`SCHEMA_TAG`].
+fn check_schema(schema: Option<&serde_json::Value>) -> std::result::Result<(), String> {
+    match schema {
+        None => Err(format!(
+            "missing \"schema\": a receptor model must say \"schema\": \"{SCHEMA_TAG}\""
+        )),
+        Some(serde_json::Value::String(s)) if s == SCHEMA_TAG => Ok(()),
+        Some(other) => Err(format!(
+            "unsupported schema {other}: this version of receptor reads \"{SCHEMA_TAG}\""
+        )),
+    }
+}
+
+/// The input's declared `"size"`: a whole number of at least 1.
+fn declared_input_size(size: Option<&serde_json::Value>) -> std::result::Result<u64, String> {
+    match size {
+        None => Err("input: missing \"size\"".into()),
+        Some(v) => v.as_u64().filter(|&n| n >= 1).ok_or_else(|| {
+            format!("input: \"size\" must be a whole number of at least 1, found {v}")
+        }),
+    }
+}
+
+/// Layer `i` of `n_layers`: its name (not one of `seen`, which it joins), kind and
+/// activation, then its weights `[units, inputs]` and bias `[units]` read inline or from a
+/// side file.
+fn build_layer(
+    i: usize,
+    n_layers: usize,
+    l: RawLayer,
+    origin: &str,
+    side: &mut SideFiles<'_>,
+    seen: &mut std::collections::HashSet<String>,
+) -> Result<Layer> {
+    let err = |msg: String| Error::model(origin, msg);
+    let label = layer_label(i, l.name.as_deref());
+    let name = match l.name {
+        Some(n) if !n.is_empty() => n,
+        _ => return Err(err(format!("{label}: missing or empty \"name\""))),
+    };
+    if !seen.insert(name.clone()) {
+        return Err(err(format!(
+            "layer name '{name}' is used twice; layer names must be unique"
+        )));
+    }
+    match l.kind.as_deref() {
+        Some("dense") => {}
+        None => {
+            return Err(err(format!(
+                "{label}: missing \"type\" (only \"dense\" is supported)"
+            )));
+        }
+        Some(t) => {
+            return Err(err(format!(
+                "{label}: unsupported layer type \"{t}\" (only \"dense\" is supported)"
+            )));
+        }
+    }
+    let activation = parse_activation(l.activation.as_deref(), l.alpha)
+        .map_err(|m| err(format!("{label}: {m}")))?;
+    if activation == Activation::Softmax && i + 1 != n_layers {
+        return Err(err(format!(
+            "{label}: softmax is allowed only in the last layer (this is layer {} of {n_layers})",
+            i + 1
+        )));
+    }
+    let weights = match l
+        .weights
+        .ok_or_else(|| err(format!("{label}: missing \"weights\"")))?
+    {
+        TensorSrc::Inline(t) => {
+            inline_matrix(t).map_err(|m| err(format!("{label}: weights: {m}")))?
+        }
+        TensorSrc::Side { file, tensor } => {
+            side.matrix(&file, &tensor, &format!("{label} weights"))?
+        }
+    };
+    let bias = match l.bias {
+        None => Array1::zeros(weights.nrows()),
+        Some(TensorSrc::Inline(t)) => {
+            inline_vector(t).map_err(|m| err(format!("{label}: bias: {m}")))?
+        }
+        Some(TensorSrc::Side { file, tensor }) => {
+            side.vector(&file, &tensor, &format!("{label} bias"))?
+        }
+    };
+    Ok(Layer {
+        name,
+        activation,
+        weights,
+        bias,
+        labels: l.labels,
+    })
+}
+
+/// The input layout (vector when absent); an image's height x width x channels must be
+/// `size`.
+fn parse_layout(layout: Option<RawLayout>, size: usize) -> std::result::Result<Layout, String> {
+    let Some(l) = layout else {
+        return Ok(Layout::Vector);
+    };
+    match l.kind.as_str() {
+        "vector" => Ok(Layout::Vector),
+        "image" => {
+            let (h, w, c) = match (l.height, l.width, l.channels) {
+                (Some(h), Some(w), c) => (h, w, c.unwrap_or(1)),
+                _ => {
+                    return Err(
+                        "input: an image layout needs \"height\" and \"width\" (and \"channels\", 1 or 3)"
+                            .into(),
+                    );
+                }
+            };
+            if c != 1 && c != 3 {
+                return Err(format!(
+                    "input: image \"channels\" must be 1 or 3, found {c}"
+                ));
+            }
+            let prod = h.checked_mul(w).and_then(|x| x.checked_mul(c));
+            if prod != Some(size as u64) || h == 0 || w == 0 {
+                return Err(format!(
+                    "input: image layout {h} x {w} x {c} does not match \"size\" {size}"
+                ));
+            }
+            Ok(Layout::Image {
+                height: h as usize,
+                width: w as usize,
+                channels: c as usize,
+            })
+        }
+        k => Err(format!(
+            "input: unknown layout kind \"{k}\" (expected \"image\" or \"vector\")"
+        )),
+    }
 }
 
 fn parse_activation(

@@ -247,15 +247,13 @@ impl Network {
         self.layers.iter().position(|l| l.name == name)
     }
 
-    /// Finds a layer by name, or gives a usage error listing the layer names.
+    /// Finds a layer by name, or gives [`crate::Error::UnknownLayer`] listing the layer names.
     pub fn require_layer(&self, name: &str) -> crate::Result<usize> {
-        self.layer_index(name).ok_or_else(|| {
-            let names: Vec<&str> = self.layers.iter().map(|l| l.name.as_str()).collect();
-            crate::Error::usage(format!(
-                "there is no layer '{name}'; the layers are: {}",
-                names.join(", ")
-            ))
-        })
+        self.layer_index(name)
+            .ok_or_else(|| crate::Error::UnknownLayer {
+                name: name.to_string(),
+                layers: self.layers.iter().map(|l| l.name.clone()).collect(),
+            })
     }
 
     /// The last layer.

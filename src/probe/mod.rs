@@ -6,6 +6,7 @@
 use crate::error::Result;
 use crate::model::Network;
 use ndarray::Array2;
+use std::num::NonZeroUsize;
 use std::path::Path;
 
 /// Rows per chunk used by the analysis commands unless told otherwise.
@@ -14,6 +15,18 @@ pub const DEFAULT_CHUNK_ROWS: usize = 4096;
 pub const DEFAULT_UNIFORM_SAMPLES: usize = 4096;
 /// Seed of the default uniform probe.
 pub const DEFAULT_UNIFORM_SEED: u64 = 0;
+/// [`DEFAULT_CHUNK_ROWS`] as a count that is known not to be zero.
+pub const DEFAULT_CHUNK_ROWS_NONZERO: NonZeroUsize = non_zero(DEFAULT_CHUNK_ROWS);
+/// [`DEFAULT_UNIFORM_SAMPLES`] as a count that is known not to be zero.
+pub const DEFAULT_UNIFORM_SAMPLES_NONZERO: NonZeroUsize = non_zero(DEFAULT_UNIFORM_SAMPLES);
+
+/// `n` as a [`NonZeroUsize`], for the constants above (a zero fails to compile).
+const fn non_zero(n: usize) -> NonZeroUsize {
+    match NonZeroUsize::new(n) {
+        Some(v) => v,
+        None => panic!("a default count must not be zero"),
+    }
+}
 
 /// A chunk of consecutive probe rows.
 #[derive(Debug, Clone)]

@@ -111,85 +111,97 @@ impl Lit<'_> {
         };
         match c {
             b'\'' | b'"' => self.string(c).map(Py::Str),
-            b'{' => {
-                self.i += 1;
-                let mut items = Vec::new();
-                loop {
-                    if self.eat(b'}') {
-                        break;
-                    }
-                    let key = match self.value(depth + 1)? {
-                        Py::Str(k) => k,
-                        _ => return Err("a header dict key is not a string".into()),
-                    };
-                    if !self.eat(b':') {
-                        return Err(format!("expected ':' after the key '{key}'"));
-                    }
-                    let v = self.value(depth + 1)?;
-                    items.push((key, v));
-                    if self.eat(b',') {
-                        continue;
-                    }
-                    if self.eat(b'}') {
-                        break;
-                    }
-                    return Err("expected ',' or '}' in the header dict".into());
-                }
-                Ok(Py::Dict(items))
+            b'{' => self.dict(depth),
+            b'(' => self.sequence(depth, b')'),
+            b'[' => self.sequence(depth, b']'),
+            b'0'..=b'9' => self.int(),
+            _ => self.word(c),
+        }
+    }
+
+    /// A dict `{'key': value, ...}` (string keys), at its opening brace.
+    fn dict(&mut self, depth: usize) -> std::result::Result<Py, String> {
+        self.i += 1;
+        let mut items = Vec::new();
+        loop {
+            if self.eat(b'}') {
+                break;
             }
-            b'(' | b'[' => {
-                let close = if c == b'(' { b')' } else { b']' };
-                self.i += 1;
-                let mut items = Vec::new();
-                loop {
-                    if self.eat(close) {
-                        break;
-                    }
-                    items.push(self.value(depth + 1)?);
-                    if self.eat(b',') {
-                        continue;
-                    }
-                    if self.eat(close) {
-                        break;
-                    }
-                    return Err("expected ',' or a closing bracket in the shape".into());
-                }
-                Ok(Py::Tuple(items))
+            let key = match self.value(depth + 1)? {
+                Py::Str(k) => k,
+                _ => return Err("a header dict key is not a string".into()),
+            };
+            if !self.eat(b':') {
+                return Err(format!("expected ':' after the key '{key}'"));
             }
-            b'0'..=b'9' => {
-                let start = self.i;
-                while self.i < self.s.len() && self.s[self.i].is_ascii_digit() {
-                    self.i += 1;
-                }
-                // Python 2 wrote long integers with an L suffix.
-                if self.s.get(self.i) == Some(&b'L') {
-                    self.i += 1;
-                }
-                let digits = std::str::from_utf8(&self.s[start..self.i])
-                    .unwrap_or("")
-                    .trim_end_matches('L');
-                digits
-                    .parse::<u128>()
-                    .map(Py::Int)
-                    .map_err(|_| format!("the number {digits} in the header is too large"))
+            let v = self.value(depth + 1)?;
+            items.push((key, v));
+            if self.eat(b',') {
+                continue;
             }
-            _ => {
-                for (word, v) in [
-                    ("True", Py::Bool(true)),
-                    ("False", Py::Bool(false)),
-                    ("None", Py::None),
-                ] {
-                    if self.s[self.i..].starts_with(word.as_bytes()) {
-                        self.i += word.len();
-                        return Ok(v);
-                    }
-                }
-                Err(format!(
-                    "unexpected character '{}' in the header",
-                    char::from(c).escape_default()
-                ))
+            if self.eat(b'}') {
+                break;
+            }
+            return Err("expected ',' or '}' in the header dict".into());
+        }
+        Ok(Py::Dict(items))
+    }
+
+    /// A tuple or list up to `close`, at its opening bracket.
+    fn sequence(&mut self, depth: usize, close: u8) -> std::result::Result<Py, String> {
+        self.i += 1;
+        let mut items = Vec::new();
+        loop {
+            if self.eat(close) {
+                break;
+            }
+            items.push(self.value(depth + 1)?);
+            if self.eat(b',') {
+                continue;
+            }
+            if self.eat(close) {
+                break;
+            }
+            return Err("expected ',' or a closing bracket in the shape".into());
+        }
+        Ok(Py::Tuple(items))
+    }
+
+    /// A non-negative integer, at its first digit.
+    fn int(&mut self) -> std::result::Result<Py, String> {
+        let start = self.i;
+        while self.i < self.s.len() && self.s[self.i].is_ascii_digit() {
+            self.i += 1;
+        }
+        // Python 2 wrote long integers with an L suffix.
+        if self.s.get(self.i) == Some(&b'L') {
+            self.i += 1;
+        }
+        let digits = std::str::from_utf8(&self.s[start..self.i])
+            .unwrap_or("")
+            .trim_end_matches('L');
+        digits
+            .parse::<u128>()
+            .map(Py::Int)
+            .map_err(|_| format!("the number {digits} in the header is too large"))
+    }
+
+    /// `True`, `False` or `None`, at the character `c`.
+    fn word(&mut self, c: u8) -> std::result::Result<Py, String> {
+        for (word, v) in [
+            ("True", Py::Bool(true)),
+            ("False", Py::Bool(false)),
+            ("None", Py::None),
+        ] {
+            if self.s[self.i..].starts_with(word.as_bytes()) {
+                self.i += word.len();
+                return Ok(v);
             }
         }
+        Err(format!(
+            "unexpected character '{}' in the header",
+            char::from(c).escape_default()
+        ))
     }
 
     fn string(&mut self, quote: u8) -> std::result::Result<String, String> {

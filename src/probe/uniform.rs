@@ -54,9 +54,7 @@ impl ProbeSource for UniformProbe {
 
     fn next_chunk(&mut self, max_rows: usize) -> Result<Option<ProbeChunk>> {
         if self.samples == 0 {
-            return Err(Error::usage(
-                "the uniform probe needs at least one sample (0 requested)",
-            ));
+            return Err(Error::bad_option("samples", 0, "must be at least 1"));
         }
         let rows = max_rows.max(1).min(self.samples - self.produced);
         if rows == 0 {

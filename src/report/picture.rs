@@ -127,7 +127,8 @@ impl Picture {
     /// 8-bit RGBA otherwise.
     pub fn png_bytes(&self) -> Result<Vec<u8>> {
         let (w, h) = (self.width as u32, self.height as u32);
-        let fail = |e: image::ImageError| Error::usage(format!("cannot encode the PNG image: {e}"));
+        let fail =
+            |e: image::ImageError| Error::internal(format!("cannot encode the PNG image: {e}"));
         let too_big = || {
             Error::usage(format!(
                 "the image is {} x {} pixels, too large to encode",

@@ -13,17 +13,40 @@
 //! Determinism: for a fixed seed the result is the same bit for bit on every run. Shuffling
 //! uses ChaCha8 seeded from [`TrainOptions::seed`], and every matrix product here runs in a
 //! fixed summation order on one thread ([`matmul_fixed`]). The shared forward pass in
-//! [`crate::analysis::forward`] uses a parallel, run-time dispatched GEMM (FMA where the CPU
+//! [`receptor::analysis::forward`] uses a parallel, run-time dispatched GEMM (FMA where the CPU
 //! has it), whose rounding can depend on the machine; training with it would tie the bundled
 //! demo files to the CPU that made them, so training keeps its own plain product and the
 //! tests check that both passes agree within a tolerance.
 
-use crate::analysis::Progress;
-use crate::error::{Error, Result};
-use crate::model::{Activation, InputSpec, Layer, Network};
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
+use receptor::analysis::Progress;
+use receptor::model::{Activation, InputSpec, Layer, Network};
+
+/// Why training (or building the demo files) failed.
+#[derive(Debug, thiserror::Error)]
+pub enum TrainError {
+    /// The training problem is malformed or the run diverged; the message says how.
+    #[error("{0}")]
+    Problem(String),
+    /// The run was cancelled through its [`Progress`].
+    #[error("cancelled")]
+    Cancelled,
+    /// An error of the receptor core (building a network, writing a file).
+    #[error(transparent)]
+    Core(#[from] receptor::Error),
+}
+
+impl TrainError {
+    /// A [`TrainError::Problem`] with `msg`.
+    pub fn problem(msg: impl Into<String>) -> Self {
+        TrainError::Problem(msg.into())
+    }
+}
+
+/// Result of the trainer and the demo generator.
+pub type Result<T, E = TrainError> = std::result::Result<T, E>;
 
 /// The update rule.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -190,7 +213,9 @@ pub fn init_network(
     seed: u64,
 ) -> Result<Network> {
     if sizes.is_empty() {
-        return Err(Error::usage("a network needs at least an output layer"));
+        return Err(TrainError::problem(
+            "a network needs at least an output layer",
+        ));
     }
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let mut layers = Vec::with_capacity(sizes.len());
@@ -209,7 +234,7 @@ pub fn init_network(
         layers.push(layer);
         inputs = units;
     }
-    Network::new(name, name, input, layers)
+    Ok(Network::new(name, name, input, layers)?)
 }
 
 /// `a · b` for `a: [m, k]`, `b: [k, n]`, in a fixed summation order (k ascending for every
@@ -287,37 +312,37 @@ fn forward_cache(net: &Network, x: ArrayView2<f32>) -> Cache {
 fn check_problem(net: &Network, x: ArrayView2<f32>, labels: &[usize]) -> Result<()> {
     let out = net.output_layer();
     if !matches!(out.activation, Activation::Softmax | Activation::Identity) {
-        return Err(Error::usage(format!(
+        return Err(TrainError::problem(format!(
             "training needs a softmax or identity output layer; layer '{}' is {}",
             out.name,
             out.activation.name()
         )));
     }
     if x.ncols() != net.input.size {
-        return Err(Error::usage(format!(
+        return Err(TrainError::problem(format!(
             "training data has {} columns but the network takes {} inputs",
             x.ncols(),
             net.input.size
         )));
     }
     if x.nrows() != labels.len() {
-        return Err(Error::usage(format!(
+        return Err(TrainError::problem(format!(
             "training data has {} rows but {} labels",
             x.nrows(),
             labels.len()
         )));
     }
     if x.nrows() == 0 {
-        return Err(Error::usage("training data has no rows"));
+        return Err(TrainError::problem("training data has no rows"));
     }
     if let Some((row, &c)) = labels.iter().enumerate().find(|(_, c)| **c >= out.units()) {
-        return Err(Error::usage(format!(
+        return Err(TrainError::problem(format!(
             "training label {c} in row {row} is not an output unit (the network has {})",
             out.units()
         )));
     }
     if let Some(i) = x.iter().position(|v| !v.is_finite()) {
-        return Err(Error::usage(format!(
+        return Err(TrainError::problem(format!(
             "training data row {} column {} is not a finite number",
             i / x.ncols(),
             i % x.ncols()
@@ -391,6 +416,8 @@ fn backward(net: &Network, x: ArrayView2<f32>, labels: &[usize], cache: &Cache) 
 /// `labels: [samples]`, and its gradient with respect to every weight and bias.
 ///
 /// The L2 penalty of [`TrainOptions::weight_decay`] is not included.
+// The generator itself only trains; the tests check the gradients through this.
+#[cfg_attr(not(test), allow(dead_code))]
 pub fn loss_and_gradients(
     net: &Network,
     x: ArrayView2<f32>,
@@ -403,6 +430,7 @@ pub fn loss_and_gradients(
 }
 
 /// Mean softmax cross-entropy (nats) of `net` on `x: [samples, inputs]` with `labels`.
+#[cfg_attr(not(test), allow(dead_code))]
 pub fn cross_entropy(net: &Network, x: ArrayView2<f32>, labels: &[usize]) -> Result<f64> {
     check_problem(net, x, labels)?;
     let cache = forward_cache(net, x);
@@ -491,7 +519,9 @@ pub fn train(
 ) -> Result<TrainReport> {
     check_problem(net, x, labels)?;
     if opts.batch_size == 0 {
-        return Err(Error::usage("training batch size must be at least 1"));
+        return Err(TrainError::problem(
+            "training batch size must be at least 1",
+        ));
     }
     let samples = x.nrows();
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
@@ -519,14 +549,14 @@ pub fn train(
         let mut correct = 0usize;
         for batch in order.chunks(opts.batch_size) {
             if progress.cancelled() {
-                return Err(Error::Cancelled);
+                return Err(TrainError::Cancelled);
             }
             let xb = x.select(Axis(0), batch);
             let yb: Vec<usize> = batch.iter().map(|&i| labels[i]).collect();
             let cache = forward_cache(net, xb.view());
             let (loss, ok) = loss_from_logits(cache.pre[net.layers.len() - 1].view(), &yb);
             if !loss.is_finite() {
-                return Err(Error::usage(format!(
+                return Err(TrainError::problem(format!(
                     "training diverged in epoch {epoch}: the loss is {loss} (learning rate {} too high?)",
                     opt.learning_rate()
                 )));
@@ -550,7 +580,7 @@ pub fn train(
                 .all(|l| l.weights.iter().chain(l.bias.iter()).all(|v| v.is_finite()));
             if !finite {
                 net.layers = before;
-                return Err(Error::usage(format!(
+                return Err(TrainError::problem(format!(
                     "training diverged in epoch {epoch}: a parameter is no longer finite (learning rate {} too high?)",
                     opt.learning_rate()
                 )));
@@ -576,7 +606,7 @@ mod tests {
     fn tiny_input(size: usize) -> InputSpec {
         InputSpec {
             size,
-            layout: crate::model::Layout::Vector,
+            layout: receptor::model::Layout::Vector,
             low: vec![-1.0; size],
             high: vec![1.0; size],
             names: None,
@@ -703,14 +733,14 @@ mod tests {
         for out in [Activation::Softmax, Activation::Identity] {
             let net = tiny_net(Activation::Relu, Activation::Tanh, out);
             let cache = forward_cache(&net, x.view());
-            let shared = crate::analysis::forward::forward_trace(&net, x.view(), 2);
+            let shared = receptor::analysis::forward::forward_trace(&net, x.view(), 2);
             for l in 0..3 {
                 for (p, q) in cache.pre[l].iter().zip(&shared.pre[l]) {
                     assert_abs_diff_eq!(*p, *q, epsilon = 1e-5);
                 }
             }
             if out == Activation::Softmax {
-                let probs = crate::analysis::forward::forward(&net, x.view());
+                let probs = receptor::analysis::forward::forward(&net, x.view());
                 for (p, q) in cache.post[2].iter().zip(&probs) {
                     assert_abs_diff_eq!(*p, *q, epsilon = 1e-6);
                 }
@@ -765,7 +795,7 @@ mod tests {
                 optimizer,
                 ..TrainOptions::default()
             };
-            let report = train(&mut net, x.view(), &y, &opts, &crate::analysis::Silent).unwrap();
+            let report = train(&mut net, x.view(), &y, &opts, &receptor::analysis::Silent).unwrap();
             assert_eq!(report.epochs.len(), 60);
             let after = cross_entropy(&net, x.view(), &y).unwrap();
             assert!(after < 0.2 * before, "{optimizer:?}: {before} -> {after}");
@@ -784,7 +814,7 @@ mod tests {
         };
         let run = |opts: &TrainOptions| {
             let mut net = blob_net(2);
-            train(&mut net, x.view(), &y, opts, &crate::analysis::Silent).unwrap();
+            train(&mut net, x.view(), &y, opts, &receptor::analysis::Silent).unwrap();
             net
         };
         let a = run(&opts);
@@ -818,7 +848,7 @@ mod tests {
                 optimizer,
                 ..TrainOptions::default()
             };
-            train(&mut net, x.view(), &y, &opts, &crate::analysis::Silent).unwrap();
+            train(&mut net, x.view(), &y, &opts, &receptor::analysis::Silent).unwrap();
             for l in 0..net.layers.len() {
                 for ((w1, w0), gw) in net.layers[l]
                     .weights
@@ -865,7 +895,7 @@ mod tests {
             batch_size: 0,
             ..TrainOptions::default()
         };
-        assert!(train(&mut n, x.view(), &y, &opts, &crate::analysis::Silent).is_err());
+        assert!(train(&mut n, x.view(), &y, &opts, &receptor::analysis::Silent).is_err());
     }
 
     /// A step size far too large overflows the parameters; the run must stop with an error
@@ -883,7 +913,7 @@ mod tests {
             },
             ..TrainOptions::default()
         };
-        let e = train(&mut net, x.view(), &y, &opts, &crate::analysis::Silent).unwrap_err();
+        let e = train(&mut net, x.view(), &y, &opts, &receptor::analysis::Silent).unwrap_err();
         assert!(e.to_string().contains("diverged"), "{e}");
         assert!(
             net.layers

@@ -18,20 +18,22 @@
 //!    defrost fault. A tanh classifier whose input standardisation is folded into the
 //!    first-layer weights, so the model takes raw units; and a labelled probe CSV.
 //!
-//! Training uses `receptor::analysis::train`, whose fixed-order matrix products make the
+//! Training uses the `train` module beside this file, whose fixed-order matrix products make the
 //! output independent of thread scheduling.
 
 use ndarray::{Array1, Array2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
+use receptor::Error;
 use receptor::analysis::Silent;
-use receptor::analysis::train::{self, Optimizer, TrainOptions};
 use receptor::atomic::{write_atomic, write_bytes_atomic};
 use receptor::model::{self, Activation, InputSpec, Layout, Network};
-use receptor::{Error, Result};
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
+use train::{Optimizer, Result, TrainError, TrainOptions};
+
+mod train;
 
 /// Class names of the solder-joint classifier, in output order.
 const SOLDER_CLASSES: [&str; 5] = [
@@ -341,7 +343,7 @@ fn solder_models(out: &Path) -> Result<()> {
         "Invented data, for demos only. Solder-joint inspection after reflow: a 12 x 12 grey \
          patch of one joint (brightness scaled to [-1, 1]) sorted into five classes. Trained \
          with Adam (learning rate 0.002, L2 weight decay 1e-2) on {} synthetic patches \
-         (examples/make_demos.rs).",
+         (examples/make_demos/).",
         x.nrows()
     ));
     model::write_json(&good, &out.join("solder-joints.json"))?;
@@ -378,7 +380,7 @@ fn solder_models(out: &Path) -> Result<()> {
     confusion(&over, &px, &py);
     // The demo must show both kinds of dead unit; fail loudly if a change breaks that.
     if proven < 5 || on_probe[0] < proven + 5 || over_acc > acc - 0.05 {
-        return Err(Error::usage(format!(
+        return Err(TrainError::problem(format!(
             "the over-driven run no longer shows what the demo needs: {proven} proven dead, \
              {} dead on the probe in h1, accuracy {over_acc:.3} vs {acc:.3}",
             on_probe[0]
@@ -567,7 +569,7 @@ fn cold_storage_model(out: &Path) -> Result<()> {
          2..4 °C): eight hourly sensor readings in physical units flag normal operation, a \
          door left open, compressor wear or a defrost fault. Tanh units; the input \
          standardisation is folded into the first-layer weights, so the inputs are raw \
-         units. Trained with Adam on {} synthetic hours (examples/make_demos.rs).",
+         units. Trained with Adam on {} synthetic hours (examples/make_demos/).",
         x.nrows()
     ));
     model::validate::validate(&net, "cold-storage (folded)")?;
@@ -613,7 +615,8 @@ fn write_probe(
             writeln!(w, "{}", classes[c])?;
         }
         Ok(())
-    })
+    })?;
+    Ok(())
 }
 
 /// Prints the confusion matrix (rows: true class, columns: predicted) to standard error.
@@ -680,7 +683,7 @@ fn write_safetensors_model(net: &Network, out: &Path, stem: &str) -> Result<()> 
         channels,
     } = net.input.layout
     else {
-        return Err(Error::usage(
+        return Err(TrainError::problem(
             "write_safetensors_model: only image models are written this way",
         ));
     };
@@ -715,5 +718,6 @@ fn write_safetensors_model(net: &Network, out: &Path, stem: &str) -> Result<()> 
         ));
     }
     text.push_str("  ]\n}\n");
-    write_bytes_atomic(&out.join(format!("{stem}.json")), text.as_bytes())
+    write_bytes_atomic(&out.join(format!("{stem}.json")), text.as_bytes())?;
+    Ok(())
 }
