@@ -3,12 +3,14 @@
 //! arrays, never paths; nothing here depends on the GUI.
 
 pub mod bounds;
+pub mod compact;
 pub mod forward;
 pub mod gradient;
 pub mod prefer;
 pub mod prune;
 pub mod screen;
 pub mod sparsity;
+pub mod structured;
 #[cfg(test)]
 mod test_nets;
 pub mod train;
