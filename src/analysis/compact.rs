@@ -295,10 +295,7 @@ pub fn apply(net: &Network, plan: &Plan, origin: &str) -> Result<Network> {
     for (l, layer) in net.layers.iter().enumerate() {
         let gone: Vec<usize> = plan.units[l].iter().map(|u| u.0).collect();
         let rows = kept(layer.units(), &gone);
-        let weights = layer
-            .weights
-            .select(Axis(0), &rows)
-            .select(Axis(1), &cols);
+        let weights = layer.weights.select(Axis(0), &rows).select(Axis(1), &cols);
         // Constants folded from the layer below: bias_j += sum_k w[j, k] * c_k, in f64.
         let mut bias64: Vec<f64> = rows.iter().map(|&j| f64::from(layer.bias[j])).collect();
         if l > 0 {
@@ -350,7 +347,11 @@ pub fn compact(net: &Network, opts: &CompactOptions, origin: &str) -> Result<Com
     }
     let mut current = net.clone();
     // Original index of every remaining unit, per layer, and of every remaining input.
-    let mut unit_ids: Vec<Vec<usize>> = net.layers.iter().map(|l| (0..l.units()).collect()).collect();
+    let mut unit_ids: Vec<Vec<usize>> = net
+        .layers
+        .iter()
+        .map(|l| (0..l.units()).collect())
+        .collect();
     let mut input_ids: Vec<usize> = (0..net.input.size).collect();
     let mut never_active = opts.never_active.clone();
     let mut removed = Vec::new();
@@ -494,8 +495,16 @@ pub fn compare(
                     ),
                 ));
             }
-            *ca += pa.iter().zip(labels).filter(|(p, l)| **p == Some(**l)).count();
-            *cb += pb.iter().zip(labels).filter(|(p, l)| **p == Some(**l)).count();
+            *ca += pa
+                .iter()
+                .zip(labels)
+                .filter(|(p, l)| **p == Some(**l))
+                .count();
+            *cb += pb
+                .iter()
+                .zip(labels)
+                .filter(|(p, l)| **p == Some(**l))
+                .count();
         }
         c.samples += x.nrows();
     }

@@ -177,7 +177,7 @@ pub fn check_fraction(net: &Network, fraction: f64, only: Option<usize>) -> Resu
         }
         if units_removed(fraction, layer.units()) >= layer.units() {
             return Err(Error::usage(format!(
-                "fraction {fraction} would remove all {} units of layer '{}'; a layer must keep at least one unit",
+                "removing a fraction {fraction} of the units would remove all {} units of layer '{}'; a layer must keep at least one unit",
                 layer.units(),
                 layer.name
             )));
@@ -270,16 +270,18 @@ pub fn unit_sweep(
         .into_iter()
         .zip(&nets)
         .zip(correct)
-        .map(|(((layer, fraction, removed, units), p), c)| UnitSweepPoint {
-            layer,
-            fraction,
-            removed,
-            units,
-            parameters: p.parameter_count(),
-            correct: c,
-            samples,
-            accuracy: c as f64 / samples as f64,
-        })
+        .map(
+            |(((layer, fraction, removed, units), p), c)| UnitSweepPoint {
+                layer,
+                fraction,
+                removed,
+                units,
+                parameters: p.parameter_count(),
+                correct: c,
+                samples,
+                accuracy: c as f64 / samples as f64,
+            },
+        )
         .collect())
 }
 

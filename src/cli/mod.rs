@@ -145,7 +145,20 @@ Columns: fraction, zeroed (weights that are zero after pruning, over all layers)
 label).
 
 With --write-pruned F --out FILE, writes the model pruned at fraction F to FILE in the \
-receptor-model/1 schema instead (with --probe, its accuracy is printed on standard error)."
+receptor-model/1 schema instead (with --probe, its accuracy is printed on standard error).
+
+With --by unit, whole hidden units are removed instead of single weights (structured \
+pruning; the output layer is never pruned): in each hidden layer of n units, the \
+floor(F x n + 1e-9) units with the lowest score go, with their bias and the next layer's \
+weights from them. Scores (--criterion): l1, the L1 norm of the unit's incoming weights \
+(H. Li et al., \"Pruning filters for efficient ConvNets\", ICLR 2017), or activation, the \
+mean |activation| on the --probe data; ties go to the lower unit index. Columns: \
+criterion, layer (`all` when every hidden layer is pruned at once), fraction, removed \
+(units), units (before pruning), parameters (weights and biases left), accuracy. \
+--per-layer prunes one hidden layer at a time and gives one curve per layer (the \
+sensitivity analysis of S. Han et al., \"Learning both weights and connections for \
+efficient neural networks\", 2015). --write-pruned F writes the physically smaller model; \
+a fraction that would remove every unit of a layer (F = 1) is refused."
     )]
     PruneSweep(prune_sweep::PruneSweepArgs),
 

@@ -108,7 +108,10 @@ fn planted_dead_unit_and_zero_input_column() {
     );
     assert_eq!(s.layers[0].bias, array![0.0, -0.5, 0.1]);
     // Column 1 of the output layer (the dead unit's outgoing weights) is gone.
-    assert_eq!(s.layers[1].weights, array![[1.0, -1.0, 0.5], [-1.0, 2.0, 0.25]]);
+    assert_eq!(
+        s.layers[1].weights,
+        array![[1.0, -1.0, 0.5], [-1.0, 2.0, 0.25]]
+    );
     assert_eq!(s.layers[1].bias, array![0.0, 0.1]);
     assert_eq!(s.layers[1].labels, net.layers[1].labels);
     assert_eq!(c.counts(Some(0)), vec![("dead_proven", 1)]);
@@ -142,8 +145,18 @@ fn zero_outgoing_cascades_down_to_the_inputs() {
     // out (identity): y = c.
     // d dead -> b's only non-zero outgoing weight went to d -> b is zero_outgoing ->
     // x1's only non-zero weight went to b -> x1 is zero_outgoing. Found in one round.
-    let h1 = layer("h1", Activation::Relu, array![[1.0, 0.0], [0.0, 1.0]], array![0.0, 0.0]);
-    let h2 = layer("h2", Activation::Relu, array![[1.0, 0.0], [0.0, 1.0]], array![0.5, -3.0]);
+    let h1 = layer(
+        "h1",
+        Activation::Relu,
+        array![[1.0, 0.0], [0.0, 1.0]],
+        array![0.0, 0.0],
+    );
+    let h2 = layer(
+        "h2",
+        Activation::Relu,
+        array![[1.0, 0.0], [0.0, 1.0]],
+        array![0.5, -3.0],
+    );
     let o = layer("out", Activation::Identity, array![[1.0, 1.0]], array![0.0]);
     let net = Network::new("test", "c", input(2), vec![h1, h2, o]).unwrap();
     let c = compact(&net, &CompactOptions::default(), "t").unwrap();
@@ -176,7 +189,12 @@ fn leaky_sigmoid_and_tanh_units_are_never_removed_as_dead() {
         Activation::Tanh,
         Activation::Identity,
     ] {
-        let h = layer("h", act, array![[-1.0, 0.0], [1.0, 1.0]], array![-10.0, 0.0]);
+        let h = layer(
+            "h",
+            act,
+            array![[-1.0, 0.0], [1.0, 1.0]],
+            array![-10.0, 0.0],
+        );
         let o = layer("out", Activation::Identity, array![[1.0, 1.0]], array![0.0]);
         let net = Network::new("test", "n", input(2), vec![h, o]).unwrap();
         let c = compact(&net, &CompactOptions::default(), "t").unwrap();
@@ -191,7 +209,12 @@ fn tanh_bounded_to_a_constant_is_folded_only_when_asked() {
     // midpoint is 1 to within 1e-17. u1 = tanh(x1) varies over [0, tanh(1)].
     // out (identity): y0 = 3 u0 + u1 + 0.25, y1 = -2 u0.
     // Folding u0 = 1: bias becomes (0.25 + 3, 0 - 2) = (3.25, -2).
-    let h = layer("h", Activation::Tanh, array![[0.5, 0.0], [0.0, 1.0]], array![20.0, 0.0]);
+    let h = layer(
+        "h",
+        Activation::Tanh,
+        array![[0.5, 0.0], [0.0, 1.0]],
+        array![20.0, 0.0],
+    );
     let o = layer(
         "out",
         Activation::Identity,
@@ -230,7 +253,12 @@ fn tanh_bounded_to_a_constant_is_folded_only_when_asked() {
 #[test]
 fn dead_relu_is_dead_proven_even_when_folding() {
     // u0 = relu(-x0 - 1): dead_proven (value 0, no bias change), not "constant".
-    let h = layer("h", Activation::Relu, array![[-1.0, 0.0], [0.0, 1.0]], array![-1.0, 0.0]);
+    let h = layer(
+        "h",
+        Activation::Relu,
+        array![[-1.0, 0.0], [0.0, 1.0]],
+        array![-1.0, 0.0],
+    );
     let o = layer("out", Activation::Identity, array![[4.0, 1.0]], array![0.5]);
     let net = Network::new("test", "n", input(2), vec![h, o]).unwrap();
     let opts = CompactOptions {
@@ -246,11 +274,20 @@ fn dead_relu_is_dead_proven_even_when_folding() {
 fn dead_on_probe_needs_the_option_and_screening_finds_it() {
     // Box [0, 1]^2. u0 = relu(x0 - 0.5): upper 0.5, not provably dead, but never active on
     // a probe whose x0 <= 0.4. u1 = relu(x1): active. out = u0 + u1 (identity).
-    let h = layer("h", Activation::Relu, array![[1.0, 0.0], [0.0, 1.0]], array![-0.5, 0.0]);
+    let h = layer(
+        "h",
+        Activation::Relu,
+        array![[1.0, 0.0], [0.0, 1.0]],
+        array![-0.5, 0.0],
+    );
     let o = layer("out", Activation::Identity, array![[1.0, 1.0]], array![0.0]);
     let net = Network::new("test", "n", input(2), vec![h, o]).unwrap();
     let probe = Array2::from_shape_fn((25, 2), |(r, c)| {
-        if c == 0 { (r / 5) as f32 / 10.0 } else { (r % 5) as f32 / 4.0 }
+        if c == 0 {
+            (r / 5) as f32 / 10.0
+        } else {
+            (r % 5) as f32 / 4.0
+        }
     });
     let report = screen(
         &net,
@@ -260,12 +297,19 @@ fn dead_on_probe_needs_the_option_and_screening_finds_it() {
     )
     .unwrap();
     assert_eq!(report.units[0].status, Status::DeadOnProbe);
-    let never: Vec<Vec<bool>> = vec![report
-        .units
-        .iter()
-        .map(|u| matches!(u.status, Status::DeadOnProbe | Status::DeadProven))
-        .collect()];
-    assert!(compact(&net, &CompactOptions::default(), "t").unwrap().removed.is_empty());
+    let never: Vec<Vec<bool>> = vec![
+        report
+            .units
+            .iter()
+            .map(|u| matches!(u.status, Status::DeadOnProbe | Status::DeadProven))
+            .collect(),
+    ];
+    assert!(
+        compact(&net, &CompactOptions::default(), "t")
+            .unwrap()
+            .removed
+            .is_empty()
+    );
     let opts = CompactOptions {
         fold_tolerance: None,
         never_active: Some(never),
@@ -294,8 +338,18 @@ fn dead_on_probe_needs_the_option_and_screening_finds_it() {
 fn output_units_stay_and_every_layer_keeps_a_unit() {
     // Every hidden unit is dead and the output unit 1 has only zero weights: the output
     // layer keeps both units and the hidden layer keeps its first unit.
-    let h = layer("h", Activation::Relu, array![[-1.0, 0.0], [0.0, -1.0]], array![-1.0, -1.0]);
-    let o = layer("out", Activation::Identity, array![[1.0, 1.0], [0.0, 0.0]], array![0.0, 2.0]);
+    let h = layer(
+        "h",
+        Activation::Relu,
+        array![[-1.0, 0.0], [0.0, -1.0]],
+        array![-1.0, -1.0],
+    );
+    let o = layer(
+        "out",
+        Activation::Identity,
+        array![[1.0, 1.0], [0.0, 0.0]],
+        array![0.0, 2.0],
+    );
     let net = Network::new("test", "n", input(2), vec![h, o]).unwrap();
     let c = compact(&net, &CompactOptions::default(), "t").unwrap();
     assert_eq!(c.network.layers[1].units(), 2);
@@ -314,7 +368,12 @@ fn image_inputs_are_kept_and_counted() {
         width: 2,
         channels: 1,
     };
-    let h = layer("h", Activation::Relu, array![[1.0, 1.0, 1.0, 0.0]], array![0.0]);
+    let h = layer(
+        "h",
+        Activation::Relu,
+        array![[1.0, 1.0, 1.0, 0.0]],
+        array![0.0],
+    );
     let o = layer("out", Activation::Identity, array![[1.0]], array![0.0]);
     let net = Network::new("test", "img", inp, vec![h, o]).unwrap();
     let c = compact(&net, &CompactOptions::default(), "t").unwrap();
@@ -347,7 +406,10 @@ fn screen_finds_no_proven_dead_unit_after_compaction() {
         };
         let net = Network::new("test", "r", inp, layers).unwrap();
         let c = compact(&net, &CompactOptions::default(), "t").unwrap();
-        assert!(c.removed.iter().any(|r| r.reason == Reason::DeadProven), "seed {seed}");
+        assert!(
+            c.removed.iter().any(|r| r.reason == Reason::DeadProven),
+            "seed {seed}"
+        );
         let r = screen(
             &c.network,
             crate::probe::uniform(&c.network, 200, 0).as_mut(),
@@ -355,9 +417,15 @@ fn screen_finds_no_proven_dead_unit_after_compaction() {
             &Silent,
         )
         .unwrap();
-        assert!(r.units.iter().all(|u| u.status != Status::DeadProven), "seed {seed}");
+        assert!(
+            r.units.iter().all(|u| u.status != Status::DeadProven),
+            "seed {seed}"
+        );
         let x = box_samples(&net, 1000, seed);
-        assert!(max_diff(&net, &c.network, &c.kept_inputs, &x) <= 1e-6, "seed {seed}");
+        assert!(
+            max_diff(&net, &c.network, &c.kept_inputs, &x) <= 1e-6,
+            "seed {seed}"
+        );
     }
 }
 
@@ -367,7 +435,13 @@ fn compare_counts_rows_outside_the_box() {
     let c = compact(&net, &CompactOptions::default(), "t").unwrap();
     // Row 1 has x0 = -5 < 0: outside the box.
     let x = array![[0.5f32, 0.5, 0.5], [-5.0, 0.0, 0.0]];
-    let cmp = compare(&net, &c.network, &c.kept_inputs, &mut MemProbe::new(x, None)).unwrap();
+    let cmp = compare(
+        &net,
+        &c.network,
+        &c.kept_inputs,
+        &mut MemProbe::new(x, None),
+    )
+    .unwrap();
     assert_eq!(cmp.outside_box, 1);
     assert_eq!(cmp.samples, 2);
     // There the dead unit u1 = relu(5 - 1) = 4 is active: the original's logits are
