@@ -56,12 +56,12 @@ pub struct CompactArgs {
 
     /// Widest activation interval (over the box) that --fold-constant treats as constant;
     /// the unit is replaced by the interval's midpoint.
-    #[arg(long, value_name = "T", default_value_t = DEFAULT_FOLD_TOLERANCE)]
+    #[arg(long, value_name = "T", allow_negative_numbers = true, default_value_t = DEFAULT_FOLD_TOLERANCE)]
     pub fold_tolerance: f64,
 
     /// Largest |difference| of any output between the original and the smaller model
     /// allowed on the reference data; above it nothing is written.
-    #[arg(long, value_name = "T", default_value_t = DEFAULT_CHECK_TOLERANCE)]
+    #[arg(long, value_name = "T", allow_negative_numbers = true, default_value_t = DEFAULT_CHECK_TOLERANCE)]
     pub check_tolerance: f64,
 
     /// Allow the model's side files (safetensors) to be absolute paths or to lie outside the
@@ -135,12 +135,7 @@ pub fn run(args: &CompactArgs) -> Result<ExitCode> {
     refuse_overwriting_input(&args.model, &args.out, "--out")?;
     if let Some(t) = &args.tensors {
         refuse_overwriting_input(&args.model, t, "--tensors")?;
-        if same_file(t, &args.out) {
-            return Err(Error::usage(format!(
-                "{}: --tensors and --out cannot be the same file",
-                t.display()
-            )));
-        }
+        crate::model::check_side_file_location(&args.out, t)?;
     }
     check_tolerance_arg("--fold-tolerance", args.fold_tolerance)?;
     check_tolerance_arg("--check-tolerance", args.check_tolerance)?;

@@ -46,15 +46,11 @@ pub fn tensors_bytes(net: &Network, origin: &str) -> Result<Vec<u8>> {
         .map_err(|e| Error::model(origin, format!("cannot build a safetensors file: {e}")))
 }
 
-/// Writes `net` to `json_path` with its tensors in the side file `tensors_path`, which must
-/// lie in the same folder (the JSON refers to it by file name, which the importer resolves
-/// against the model's folder). The side file is written first, each file atomically
-/// (temporary file, then rename); if the JSON cannot be written, a side file that did not
-/// exist before is removed again.
+/// Checks that `tensors_path` can serve as the side file of a model written to `json_path`:
+/// same folder, a different file, a file name in plain text. Returns that file name.
 ///
-/// Errors: a usage error when the two paths are in different folders or are the same file;
-/// an I/O error naming the file that could not be written.
-pub fn write_json_with_tensors(net: &Network, json_path: &Path, tensors_path: &Path) -> Result<()> {
+/// Errors: a usage error naming `tensors_path` and the problem.
+pub fn check_side_file_location<'a>(json_path: &Path, tensors_path: &'a Path) -> Result<&'a str> {
     let folder = |p: &Path| -> std::path::PathBuf {
         let parent = match p.parent() {
             Some(d) if !d.as_os_str().is_empty() => d.to_path_buf(),
@@ -81,6 +77,19 @@ pub fn write_json_with_tensors(net: &Network, json_path: &Path, tensors_path: &P
             tensors_path.display()
         )));
     }
+    Ok(file)
+}
+
+/// Writes `net` to `json_path` with its tensors in the side file `tensors_path`, which must
+/// lie in the same folder (the JSON refers to it by file name, which the importer resolves
+/// against the model's folder). The side file is written first, each file atomically
+/// (temporary file, then rename); if the JSON cannot be written, a side file that did not
+/// exist before is removed again.
+///
+/// Errors: a usage error when the two paths are in different folders or are the same file;
+/// an I/O error naming the file that could not be written.
+pub fn write_json_with_tensors(net: &Network, json_path: &Path, tensors_path: &Path) -> Result<()> {
+    let file = check_side_file_location(json_path, tensors_path)?;
     let data = tensors_bytes(net, &json_path.display().to_string())?;
     let existed = tensors_path.exists();
     crate::atomic::write_bytes_atomic(tensors_path, &data)?;
