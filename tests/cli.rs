@@ -1243,3 +1243,43 @@ fn prune_sweep_by_unit_refusals_exit_2_and_write_nothing() {
     assert_eq!(std::fs::read(d.path().join("net.json")).unwrap(), before);
     assert_eq!(entries(d.path()), ["net.json", "p.csv"]);
 }
+
+#[test]
+fn compact_folds_a_saturated_tanh_only_when_asked() {
+    // Box [0, 1]^2. u0 = tanh(0.5 x0 + 20) lies in [tanh(20), tanh(20.5)], within 1e-17 of
+    // 1; u1 = tanh(x1) spans [0, 0.76]. out = (3 u0 + u1 + 0.25, -2 u0), identity.
+    // Folding u0 = 1 gives the bias (3.25, -2) and leaves x0 without outgoing weights.
+    let d = tempfile::tempdir().unwrap();
+    write(
+        d.path(),
+        "tanh.json",
+        r#"{"schema": "receptor-model/1", "name": "tanh",
+  "input": {"size": 2, "low": 0, "high": 1},
+  "layers": [
+    {"name": "h", "type": "dense", "activation": "tanh", "weights": [[0.5, 0], [0, 1]], "bias": [20, 0]},
+    {"name": "out", "type": "dense", "activation": "identity", "weights": [[3, 1], [-2, 0]], "bias": [0.25, 0]}]}"#,
+    );
+    let r = receptor(&["compact", "tanh.json", "--out", "a.json"], d.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("layer 'h' (tanh): 2 -> 2 units"),
+        "{}",
+        r.stderr
+    );
+    let r = receptor(
+        &["compact", "tanh.json", "--out", "b.json", "--fold-constant"],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stderr
+            .contains("folded into the next layer's bias: h[0] = 1.0"),
+        "{}",
+        r.stderr
+    );
+    let v = json(&std::fs::read_to_string(d.path().join("b.json")).unwrap());
+    assert_eq!(v["input"]["size"], 1);
+    assert_eq!(v["layers"][0]["weights"], serde_json::json!([[1.0]]));
+    assert_eq!(v["layers"][1]["weights"], serde_json::json!([[1.0], [0.0]]));
+    assert_eq!(v["layers"][1]["bias"], serde_json::json!([3.25, -2.0]));
+}

@@ -173,7 +173,7 @@ leaky_relu, sigmoid and tanh units are never removed as dead (their output is no
 
 Before anything is written, the original and the smaller model are run on the reference \
 data (--probe DATA, else uniform samples from the box; with --probe, uniform box samples \
-too) and the largest |difference| of any output is checked against --check-tolerance. A \
+too, --samples N of them with --seed S) and the largest |difference| of any output is checked against --check-tolerance. A \
 summary of what was removed per layer, and the check, go to standard error.
 
 Weaker arguments only when asked: --fold-constant folds units constant over the box (within \
