@@ -131,4 +131,39 @@ fn compact_command_writes_a_smaller_model_with_a_side_file() {
     assert!(max_diff(&net, &small, &c.kept_inputs, &x) <= 1e-5);
     // Exactly two files were written, no temporary left behind.
     assert_eq!(std::fs::read_dir(d.path()).unwrap().count(), 2);
+    assert_valid_in_schema(&out);
+    // Inline tensors: also valid, and the same network.
+    let inline = d.path().join("inline.json");
+    let r = Command::new(env!("CARGO_BIN_EXE_receptor"))
+        .arg("compact")
+        .arg(demo("solder-joints-overdriven.json"))
+        .arg("--out")
+        .arg(&inline)
+        .output()
+        .expect("receptor runs");
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    assert_valid_in_schema(&inline);
+    let again = model::load(&inline, &LoadOptions::default()).expect("loads");
+    assert_eq!(again, small);
+}
+
+/// The written file validates against `assets/model-schema.json` (JSON Schema draft
+/// 2020-12, checked with the `jsonschema` crate).
+fn assert_valid_in_schema(file: &Path) {
+    let schema: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(
+            Path::new(env!("CARGO_MANIFEST_DIR")).join("assets/model-schema.json"),
+        )
+        .expect("schema readable"),
+    )
+    .expect("schema is JSON");
+    let v = jsonschema::draft202012::new(&schema).expect("schema compiles");
+    let inst: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(file).expect("readable")).expect("JSON");
+    let errors: Vec<String> = v
+        .iter_errors(&inst)
+        .map(|e| e.to_string())
+        .take(3)
+        .collect();
+    assert!(errors.is_empty(), "{}: {errors:?}", file.display());
 }
