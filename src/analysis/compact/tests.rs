@@ -240,7 +240,8 @@ fn tanh_bounded_to_a_constant_is_folded_only_when_asked() {
     };
     assert_abs_diff_eq!(value, 1.0, epsilon = 1e-15);
     let s = &c.network;
-    assert_eq!(s.layers[0].weights, array![[0.0, 1.0]]);
+    // Only u1 = tanh(x1) is left, reading the one input left, x1.
+    assert_eq!(s.layers[0].weights, array![[1.0]]);
     assert_eq!(s.layers[1].weights, array![[1.0], [0.0]]);
     assert_eq!(s.layers[1].bias, array![3.25, -2.0]);
     assert_eq!(c.kept_inputs, vec![1]);
