@@ -908,3 +908,378 @@ fn streaming_in_small_chunks_changes_nothing() {
     assert_eq!(v["rows"][3]["status"], "always_active");
     assert_abs_diff_eq!(v["rows"][3]["mean"].as_f64().unwrap(), 0.6, epsilon = 1e-6);
 }
+
+#[test]
+fn compact_net_worked_by_hand() {
+    // NET (above): u1 is dead_proven (z = -1 everywhere); u3 and u4 have only zero
+    // outgoing weights (the output reads h0 and h2 only), so they go as zero_outgoing; then
+    // x2 (feeding only u4) and x3 (feeding only u3) have no outgoing weight left. What
+    // remains: inputs x0, x1; h = [u0, u2]; out = [[1, 0], [0, 2]] with bias (0, 0.1).
+    let d = tempfile::tempdir().unwrap();
+    write(d.path(), "net.json", NET);
+    write(d.path(), "p.csv", NET_PROBE);
+    let r = receptor(
+        &[
+            "compact",
+            "net.json",
+            "--out",
+            "small.json",
+            "--probe",
+            "p.csv",
+        ],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stderr
+            .contains("input: 4 -> 2 features (removed 2: zero_outgoing 2)"),
+        "{}",
+        r.stderr
+    );
+    assert!(
+        r.stderr
+            .contains("layer 'h' (relu): 5 -> 2 units (removed 3: dead_proven 1, zero_outgoing 2)"),
+        "{}",
+        r.stderr
+    );
+    assert!(
+        r.stderr
+            .contains("accuracy on p.csv: 1.0 before, 1.0 after"),
+        "{}",
+        r.stderr
+    );
+    let v = json(&std::fs::read_to_string(d.path().join("small.json")).unwrap());
+    assert_eq!(v["input"]["size"], 2);
+    assert_eq!(
+        v["layers"][0]["weights"],
+        serde_json::json!([[1.0, 0.0], [-1.0, -1.0]])
+    );
+    assert_eq!(v["layers"][0]["bias"], serde_json::json!([0.0, 0.5]));
+    assert_eq!(
+        v["layers"][1]["weights"],
+        serde_json::json!([[1.0, 0.0], [0.0, 2.0]])
+    );
+    assert_eq!(v["layers"][1]["bias"], serde_json::json!([0.0, 0.1]));
+    assert_eq!(v["layers"][1]["labels"], serde_json::json!(["no", "yes"]));
+}
+
+/// Every name in `dir`, sorted.
+fn entries(dir: &Path) -> Vec<String> {
+    let mut v: Vec<String> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    v.sort();
+    v
+}
+
+/// Box [0, 1]; h: u0 = relu(x0 - 2) (upper bound -1: dead_proven), u1 = relu(x0);
+/// out = 3 u0 + u1 (identity).
+const DEAD_IN_BOX: &str = r#"{"schema": "receptor-model/1", "name": "box",
+  "input": {"size": 1, "low": 0, "high": 1},
+  "layers": [
+    {"name": "h", "type": "dense", "activation": "relu", "weights": [[1], [1]], "bias": [-2, 0]},
+    {"name": "out", "type": "dense", "activation": "identity", "weights": [[3, 1]], "bias": [0]}]}"#;
+
+#[test]
+fn compact_refusals_exit_2_and_write_nothing() {
+    let d = tempfile::tempdir().unwrap();
+    write(d.path(), "net.json", NET);
+    write(d.path(), "box.json", DEAD_IN_BOX);
+    let before = std::fs::read(d.path().join("net.json")).unwrap();
+    // --out is the input itself, by the same or another spelling.
+    for out in ["net.json", "./net.json"] {
+        let r = receptor(&["compact", "net.json", "--out", out], d.path());
+        assert_bad_input(&r, &[out, "input model itself"]);
+    }
+    assert_eq!(std::fs::read(d.path().join("net.json")).unwrap(), before);
+    // --tensors in another folder than --out.
+    std::fs::create_dir(d.path().join("sub")).unwrap();
+    let r = receptor(
+        &[
+            "compact",
+            "net.json",
+            "--out",
+            "small.json",
+            "--tensors",
+            "sub/small.safetensors",
+        ],
+        d.path(),
+    );
+    assert_bad_input(&r, &["sub/small.safetensors", "same folder"]);
+    // The weaker argument needs its data.
+    let r = receptor(
+        &[
+            "compact",
+            "net.json",
+            "--out",
+            "small.json",
+            "--also",
+            "dead-on-probe",
+        ],
+        d.path(),
+    );
+    assert_bad_input(&r, &["--probe"]);
+    let r = receptor(
+        &[
+            "compact",
+            "net.json",
+            "--out",
+            "small.json",
+            "--fold-constant",
+            "--fold-tolerance",
+            "-1",
+        ],
+        d.path(),
+    );
+    assert_bad_input(&r, &["--fold-tolerance"]);
+    // A probe outside the box: at x0 = 5, u0 = relu(3) = 3 and the output drops by 9, so
+    // the check fails and nothing is written.
+    write(d.path(), "far.csv", "x0\n0.5\n5\n");
+    let r = receptor(
+        &[
+            "compact",
+            "box.json",
+            "--out",
+            "small.json",
+            "--probe",
+            "far.csv",
+        ],
+        d.path(),
+    );
+    assert_bad_input(
+        &r,
+        &[
+            "box.json",
+            "row 1 of far.csv",
+            "outside the input box",
+            "nothing was written",
+        ],
+    );
+    assert!(r.stderr.contains("by 9.0"), "{}", r.stderr);
+    assert_eq!(
+        entries(d.path()),
+        ["box.json", "far.csv", "net.json", "sub"]
+    );
+    // Inside the box the same model compacts (u0 goes).
+    let r = receptor(&["compact", "box.json", "--out", "small.json"], d.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(r.stderr.contains("2 -> 1 units"), "{}", r.stderr);
+}
+
+#[test]
+fn prune_sweep_by_unit_worked_by_hand() {
+    // NET's hidden units' L1 norms (incoming weights): u0 1, u1 0, u2 2, u3 1, u4 1; order
+    // of removal u1, u0, u3, u4, u2 (ties to the lower index). Fraction f removes
+    // floor(5 f + 1e-9) units: 0.2 -> u1 (outputs unchanged: accuracy 1); 0.4 -> u1, u0: the
+    // "no" logit is 0, so rows 0 and 2 (label "no", h2 = 0, logits (0, 0.1)) turn "yes":
+    // accuracy 2/4; 0.6 and 0.8 remove u3, u4 too, which the output never reads: 2/4.
+    // Parameters: 5x4 + 5 + 2x5 + 2 = 37 whole; with 3 units 3x4 + 3 + 2x3 + 2 = 23.
+    let d = tempfile::tempdir().unwrap();
+    write(d.path(), "net.json", NET);
+    write(d.path(), "p.csv", NET_PROBE);
+    let r = receptor(
+        &[
+            "prune-sweep",
+            "net.json",
+            "--probe",
+            "p.csv",
+            "--by",
+            "unit",
+            "--fractions",
+            "0,0.2,0.4,0.6,0.8",
+        ],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let (h, rows) = csv(&r.stdout);
+    assert_eq!(
+        h,
+        [
+            "criterion",
+            "layer",
+            "fraction",
+            "removed",
+            "units",
+            "parameters",
+            "accuracy"
+        ]
+    );
+    let removed: Vec<&str> = rows.iter().map(|r| r[3].as_str()).collect();
+    assert_eq!(removed, ["0", "1", "2", "3", "4"]);
+    let acc: Vec<f64> = rows.iter().map(|r| num(&r[6])).collect();
+    assert_eq!(acc, [1.0, 1.0, 0.5, 0.5, 0.5]);
+    assert_eq!(rows[0][5], "37");
+    assert_eq!(rows[2][5], "23");
+    assert!(
+        rows.iter()
+            .all(|r| r[0] == "l1" && r[1] == "all" && r[4] == "5")
+    );
+    // --per-layer on a one-hidden-layer net: the same curve, named by the layer.
+    let r = receptor(
+        &[
+            "prune-sweep",
+            "net.json",
+            "--probe",
+            "p.csv",
+            "--by",
+            "unit",
+            "--per-layer",
+            "--fractions",
+            "0.4",
+            "--format",
+            "json",
+        ],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v = json(&r.stdout);
+    assert_eq!(v["rows"][0]["layer"], "h");
+    assert_eq!(v["rows"][0]["accuracy"], 0.5);
+    // --write-pruned 0.4 writes the model without u0 and u1: 3 hidden units.
+    let r = receptor(
+        &[
+            "prune-sweep",
+            "net.json",
+            "--by",
+            "unit",
+            "--write-pruned",
+            "0.4",
+            "--out",
+            "pruned.json",
+        ],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v = json(&std::fs::read_to_string(d.path().join("pruned.json")).unwrap());
+    assert_eq!(
+        v["layers"][0]["weights"],
+        serde_json::json!([
+            [-1.0, -1.0, 0.0, 0.0],
+            [0.0, 0.0, 0.0, 1.0],
+            [0.0, 0.0, 1.0, 0.0]
+        ])
+    );
+    assert_eq!(
+        v["layers"][1]["weights"],
+        serde_json::json!([[0.0, 0.0, 0.0], [2.0, 0.0, 0.0]])
+    );
+}
+
+#[test]
+fn prune_sweep_by_unit_refusals_exit_2_and_write_nothing() {
+    let d = tempfile::tempdir().unwrap();
+    write(d.path(), "net.json", NET);
+    write(d.path(), "p.csv", NET_PROBE);
+    let before = std::fs::read(d.path().join("net.json")).unwrap();
+    for f in ["1", "1.0"] {
+        let r = receptor(
+            &[
+                "prune-sweep",
+                "net.json",
+                "--by",
+                "unit",
+                "--write-pruned",
+                f,
+                "--out",
+                "p.json",
+            ],
+            d.path(),
+        );
+        assert_bad_input(&r, &["net.json", "all 5 units of layer 'h'"]);
+    }
+    let r = receptor(
+        &[
+            "prune-sweep",
+            "net.json",
+            "--probe",
+            "p.csv",
+            "--by",
+            "unit",
+            "--fractions",
+            "0,1",
+        ],
+        d.path(),
+    );
+    assert_bad_input(&r, &["net.json", "all 5 units of layer 'h'"]);
+    // --out equal to the input, for the unit and the weight mode alike.
+    for by in ["unit", "weight"] {
+        let r = receptor(
+            &[
+                "prune-sweep",
+                "net.json",
+                "--by",
+                by,
+                "--write-pruned",
+                "0.5",
+                "--out",
+                "net.json",
+            ],
+            d.path(),
+        );
+        assert_bad_input(&r, &["net.json", "input model itself"]);
+    }
+    let r = receptor(
+        &["prune-sweep", "net.json", "--probe", "p.csv", "--per-layer"],
+        d.path(),
+    );
+    assert_bad_input(&r, &["--by unit"]);
+    let r = receptor(
+        &[
+            "prune-sweep",
+            "net.json",
+            "--by",
+            "unit",
+            "--criterion",
+            "activation",
+            "--write-pruned",
+            "0.5",
+            "--out",
+            "q.json",
+        ],
+        d.path(),
+    );
+    assert_bad_input(&r, &["--probe"]);
+    assert_eq!(std::fs::read(d.path().join("net.json")).unwrap(), before);
+    assert_eq!(entries(d.path()), ["net.json", "p.csv"]);
+}
+
+#[test]
+fn compact_folds_a_saturated_tanh_only_when_asked() {
+    // Box [0, 1]^2. u0 = tanh(0.5 x0 + 20) lies in [tanh(20), tanh(20.5)], within 1e-17 of
+    // 1; u1 = tanh(x1) spans [0, 0.76]. out = (3 u0 + u1 + 0.25, -2 u0), identity.
+    // Folding u0 = 1 gives the bias (3.25, -2) and leaves x0 without outgoing weights.
+    let d = tempfile::tempdir().unwrap();
+    write(
+        d.path(),
+        "tanh.json",
+        r#"{"schema": "receptor-model/1", "name": "tanh",
+  "input": {"size": 2, "low": 0, "high": 1},
+  "layers": [
+    {"name": "h", "type": "dense", "activation": "tanh", "weights": [[0.5, 0], [0, 1]], "bias": [20, 0]},
+    {"name": "out", "type": "dense", "activation": "identity", "weights": [[3, 1], [-2, 0]], "bias": [0.25, 0]}]}"#,
+    );
+    let r = receptor(&["compact", "tanh.json", "--out", "a.json"], d.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("layer 'h' (tanh): 2 -> 2 units"),
+        "{}",
+        r.stderr
+    );
+    let r = receptor(
+        &["compact", "tanh.json", "--out", "b.json", "--fold-constant"],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stderr
+            .contains("folded into the next layer's bias: h[0] = 1.0"),
+        "{}",
+        r.stderr
+    );
+    let v = json(&std::fs::read_to_string(d.path().join("b.json")).unwrap());
+    assert_eq!(v["input"]["size"], 1);
+    assert_eq!(v["layers"][0]["weights"], serde_json::json!([[1.0]]));
+    assert_eq!(v["layers"][1]["weights"], serde_json::json!([[1.0], [0.0]]));
+    assert_eq!(v["layers"][1]["bias"], serde_json::json!([3.25, -2.0]));
+}

@@ -39,6 +39,7 @@ fn every_bundled_model_validates_against_the_schema() {
     let mut files = Vec::new();
     model_files(&root.join("demo-models"), &mut files);
     model_files(&root.join("tests/fixtures/reference"), &mut files);
+    model_files(&root.join("tests/fixtures/structured"), &mut files);
     assert!(!files.is_empty(), "no bundled models found");
     let v = schema();
     for f in &files {

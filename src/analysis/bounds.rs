@@ -60,7 +60,7 @@ pub(crate) fn affine_range(w: ArrayView1<f32>, b: f32, lo: &[f64], hi: &[f64]) -
 
 /// The image of `[lo, hi]` under a non-decreasing activation, computed in f64 with the
 /// same formulas as [`Activation::apply_scalar`].
-fn activate_f64(act: Activation, z: f64) -> f64 {
+pub(crate) fn activate_f64(act: Activation, z: f64) -> f64 {
     match act {
         Activation::Identity | Activation::Softmax => z,
         Activation::Relu => z.max(0.0),

@@ -5,12 +5,14 @@
 
 pub mod activity;
 pub mod bounds;
+pub mod compact;
 pub mod forward;
 pub mod gradient;
 pub mod prefer;
 pub mod prune;
 pub mod screen;
 pub mod sparsity;
+pub mod structured;
 #[cfg(test)]
 mod test_nets;
 

@@ -113,12 +113,48 @@ pub fn prune_sweep(
             "has no labels: a pruning sweep needs a labelled probe (add a 'label' column)",
         ));
     }
-    let outputs = net.output_layer().units();
     let pruned: Vec<Network> = fractions
         .iter()
         .map(|&f| prune_by_magnitude(net, f))
         .collect();
-    let mut correct = vec![0usize; fractions.len()];
+    let (correct, samples) = count_correct(&pruned, probe, progress)?;
+    let total: usize = net.layers.iter().map(|l| l.weights.len()).sum();
+    progress.set(1.0);
+    Ok(fractions
+        .iter()
+        .zip(&pruned)
+        .zip(&correct)
+        .map(|((&fraction, p), &c)| SweepPoint {
+            fraction,
+            accuracy: c as f64 / samples as f64,
+            zeroed: p
+                .layers
+                .iter()
+                .map(|l| l.weights.iter().filter(|w| **w == 0.0).count())
+                .sum(),
+            total,
+        })
+        .collect())
+}
+
+/// Runs every network of `nets` (all with the same inputs and outputs) on each chunk of a
+/// labelled probe, streamed once, and counts the rows whose predicted class (argmax of the
+/// outputs) equals the label. Returns the counts, one per network, and the number of rows.
+///
+/// Errors: a probe error when a chunk lacks labels or has the wrong width, a label is not
+/// an output unit, or the probe has no samples; [`Error::Cancelled`] when `progress` asks to
+/// stop (checked per chunk).
+pub(crate) fn count_correct(
+    nets: &[Network],
+    probe: &mut dyn ProbeSource,
+    progress: &dyn Progress,
+) -> Result<(Vec<usize>, usize)> {
+    let describe = probe.describe();
+    let Some(first) = nets.first() else {
+        return Ok((Vec::new(), 0));
+    };
+    let outputs = first.output_layer().units();
+    let mut correct = vec![0usize; nets.len()];
     let mut samples = 0usize;
     let total_rows = probe.total_rows();
     while let Some(chunk) = probe.next_chunk(DEFAULT_CHUNK_ROWS)? {
@@ -131,7 +167,7 @@ pub fn prune_sweep(
                 format!("rows from {} have no labels", chunk.first_row),
             ));
         };
-        chunk.check_width(net, &describe)?;
+        chunk.check_width(first, &describe)?;
         if labels.len() != chunk.inputs.nrows() {
             return Err(Error::probe(
                 &describe,
@@ -152,7 +188,7 @@ pub fn prune_sweep(
                 ),
             ));
         }
-        for (p, c) in pruned.iter().zip(correct.iter_mut()) {
+        for (p, c) in nets.iter().zip(correct.iter_mut()) {
             let out = forward(p, chunk.inputs.view());
             *c += argmax_rows(out.view())
                 .iter()
@@ -168,23 +204,7 @@ pub fn prune_sweep(
     if samples == 0 {
         return Err(Error::probe(&describe, "the probe has no samples"));
     }
-    let total: usize = net.layers.iter().map(|l| l.weights.len()).sum();
-    progress.set(1.0);
-    Ok(fractions
-        .iter()
-        .zip(&pruned)
-        .zip(&correct)
-        .map(|((&fraction, p), &c)| SweepPoint {
-            fraction,
-            accuracy: c as f64 / samples as f64,
-            zeroed: p
-                .layers
-                .iter()
-                .map(|l| l.weights.iter().filter(|w| **w == 0.0).count())
-                .sum(),
-            total,
-        })
-        .collect())
+    Ok((correct, samples))
 }
 
 #[cfg(test)]

@@ -5,6 +5,7 @@
 //! usage, 3 only for a failed `check`.
 
 pub mod check;
+pub mod compact;
 pub mod forward;
 pub mod output;
 pub mod prefer;
@@ -145,9 +146,42 @@ Columns: fraction, zeroed (weights that are zero after pruning, over all layers)
 label).
 
 With --write-pruned F --out FILE, writes the model pruned at fraction F to FILE in the \
-receptor-model/1 schema instead (with --probe, its accuracy is printed on standard error)."
+receptor-model/1 schema instead (with --probe, its accuracy is printed on standard error).
+
+With --by unit, whole hidden units are removed instead of single weights (structured \
+pruning; the output layer is never pruned): in each hidden layer of n units, the \
+floor(F x n + 1e-9) units with the lowest score go, with their bias and the next layer's \
+weights from them. Scores (--criterion): l1, the L1 norm of the unit's incoming weights \
+(H. Li et al., \"Pruning filters for efficient ConvNets\", ICLR 2017), or activation, the \
+mean |activation| on the --probe data; ties go to the lower unit index. Columns: \
+criterion, layer (`all` when every hidden layer is pruned at once), fraction, removed \
+(units), units (before pruning), parameters (weights and biases left), accuracy. \
+--per-layer prunes one hidden layer at a time and gives one curve per layer (the \
+sensitivity analysis of S. Han et al., \"Learning both weights and connections for \
+efficient neural networks\", 2015). --write-pruned F writes the physically smaller model; \
+a fraction that would remove every unit of a layer (F = 1) is refused."
     )]
     PruneSweep(prune_sweep::PruneSweepArgs),
+
+    /// Write a smaller model without its provably dead units and unused inputs.
+    #[command(long_about = "\
+Write a smaller model with the same outputs on the whole input box: removes every relu unit \
+that is dead_proven (its sound upper bound of z over the box is <= 0, so it outputs 0 \
+everywhere there), every hidden unit and input feature whose outgoing weights (to units \
+that stay) are all 0, and the matching weights of the layer above. The output layer is never \
+pruned; each layer keeps at least one unit; input features of an image layout are kept. \
+leaky_relu, sigmoid and tanh units are never removed as dead (their output is not 0).
+
+Before anything is written, the original and the smaller model are run on the reference \
+data (--probe DATA, else uniform samples from the box; with --probe, uniform box samples \
+too, --samples N of them with --seed S) and the largest |difference| of any output is checked against --check-tolerance. A \
+summary of what was removed per layer, and the check, go to standard error.
+
+Weaker arguments only when asked: --fold-constant folds units constant over the box (within \
+--fold-tolerance) into the next layer's bias; --also dead-on-probe removes relu units never \
+active on the --probe data (lossy elsewhere; the accuracy before and after on a labelled \
+probe and the number of changed predictions are reported).")]
+    Compact(compact::CompactArgs),
 }
 
 /// Options shared by the analysis commands.
@@ -277,6 +311,7 @@ pub fn run(command: Command) -> Result<ExitCode> {
         Command::Prefer(a) => prefer::run(&a),
         Command::Check(a) => check::run(&a),
         Command::PruneSweep(a) => prune_sweep::run(&a),
+        Command::Compact(a) => compact::run(&a),
     }
 }
 

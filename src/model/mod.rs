@@ -8,6 +8,7 @@ mod json;
 mod network;
 mod paths;
 mod tensors;
+mod tensors_write;
 pub mod validate;
 mod write;
 
@@ -15,6 +16,7 @@ pub use network::{
     Activation, InputSpec, Layer, Layout, Network, SIGMOID_SATURATION_Z, TANH_SATURATION_Z,
 };
 pub use paths::resolve_side_path;
+pub use tensors_write::{check_side_file_location, tensors_bytes, write_json_with_tensors};
 pub use write::{to_json_string, write_json, write_json_to};
 
 use crate::error::{Error, Result};

@@ -50,6 +50,17 @@ fn bound(w: &mut dyn Write, v: &[f32]) -> io::Result<()> {
 
 /// Writes `net` as JSON into `w`.
 pub fn write_json_to(net: &Network, w: &mut dyn Write) -> io::Result<()> {
+    write_json_inner(net, w, None)
+}
+
+/// Writes `net` as JSON into `w`; with `side = Some(file)` every layer's weights and bias
+/// are references `{"safetensors": file, "tensor": "NAME.weight" / "NAME.bias"}` instead of
+/// inline numbers.
+pub(crate) fn write_json_inner(
+    net: &Network,
+    w: &mut dyn Write,
+    side: Option<&str>,
+) -> io::Result<()> {
     w.write_all(b"{\n  \"schema\": ")?;
     json(w, &SCHEMA_TAG)?;
     w.write_all(b",\n  \"name\": ")?;
@@ -93,6 +104,21 @@ pub fn write_json_to(net: &Network, w: &mut dyn Write) -> io::Result<()> {
         if let Some(labels) = &l.labels {
             w.write_all(b", \"labels\": ")?;
             json(w, labels)?;
+        }
+        if let Some(file) = side {
+            let reference = |w: &mut dyn Write, tensor: String| -> io::Result<()> {
+                w.write_all(b"{\"safetensors\": ")?;
+                json(w, &file)?;
+                w.write_all(b", \"tensor\": ")?;
+                json(w, &tensor)?;
+                w.write_all(b"}")
+            };
+            w.write_all(b",\n     \"weights\": ")?;
+            reference(w, super::tensors_write::weight_name(&l.name))?;
+            w.write_all(b",\n     \"bias\": ")?;
+            reference(w, super::tensors_write::bias_name(&l.name))?;
+            w.write_all(b"}")?;
+            continue;
         }
         w.write_all(b",\n     \"weights\": [")?;
         for (r, row) in l.weights.rows().into_iter().enumerate() {

@@ -8,7 +8,10 @@ use crate::analysis::prefer::Preferred;
 use crate::analysis::prune::SweepPoint;
 use crate::analysis::screen::UnitScreen;
 use crate::analysis::sparsity::{LayerSummary, UnitStats};
+use crate::analysis::structured::{Criterion, UnitSweepPoint};
+use crate::model::Network;
 use std::io::Write;
+use std::path::Path;
 
 /// The CSV/JSON columns of the statistics table (`receptor stats`), in order.
 pub const STATS_COLUMNS: [&str; 10] = [
@@ -38,6 +41,17 @@ pub const SCREEN_COLUMNS: [&str; 8] = [
 
 /// The CSV/JSON columns of the pruning sweep (`receptor prune-sweep`), in order.
 pub const PRUNE_SWEEP_COLUMNS: [&str; 4] = ["fraction", "zeroed", "total", "accuracy"];
+
+/// The columns of the unit-pruning sweep (`receptor prune-sweep --by unit`), in order.
+pub const UNIT_SWEEP_COLUMNS: [&str; 7] = [
+    "criterion",
+    "layer",
+    "fraction",
+    "removed",
+    "units",
+    "parameters",
+    "accuracy",
+];
 
 /// The JSON columns of the preferred-input table (`receptor prefer`), in order. In CSV the
 /// vector `input` becomes one column per input element, `x0`, `x1`, ….
@@ -159,6 +173,39 @@ pub fn write_prune_sweep(
         ])?;
     }
     t.finish(&[("probe", Cell::from(probe))])
+}
+
+/// Writes the unit-pruning sweep ([`UNIT_SWEEP_COLUMNS`]; layer `all` when every hidden
+/// layer was pruned at once); JSON adds the probe's name and sample count.
+pub fn write_unit_sweep(
+    format: Format,
+    w: &mut dyn Write,
+    net: &Network,
+    criterion: Criterion,
+    points: &[UnitSweepPoint],
+    probe_path: &Path,
+) -> std::io::Result<()> {
+    let columns = owned(&UNIT_SWEEP_COLUMNS);
+    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
+    for p in points {
+        let layer = p
+            .layer
+            .map_or_else(|| "all".to_string(), |l| net.layers[l].name.clone());
+        t.row(&[
+            Cell::from(criterion.as_str()),
+            Cell::from(layer),
+            Cell::F64(p.fraction),
+            Cell::from(p.removed),
+            Cell::from(p.units),
+            Cell::from(p.parameters),
+            Cell::F64(p.accuracy),
+        ])?;
+    }
+    let samples = points.first().map_or(0, |p| p.samples);
+    t.finish(&[
+        ("probe", Cell::from(probe_path.display().to_string())),
+        ("samples", Cell::from(samples)),
+    ])
 }
 
 /// Writes the preferred inputs of units of layer `layer` ([`PREFER_COLUMNS`]; `input_size`
