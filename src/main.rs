@@ -16,7 +16,11 @@ fn main() -> ExitCode {
         }
     };
     match cli.command {
-        None => open_app(cli.model, cli.allow_outside_paths),
+        None => open_app(
+            cli.model,
+            cli.allow_outside_paths,
+            cli.input_box.to_input_box(),
+        ),
         Some(command) => match cli::run(command) {
             Ok(code) => code,
             Err(e) => {
@@ -30,14 +34,22 @@ fn main() -> ExitCode {
 
 /// Opens the desktop app (built with the default `gui` feature).
 #[cfg(feature = "gui")]
-fn open_app(model: Option<std::path::PathBuf>, allow_outside_paths: bool) -> ExitCode {
-    receptor::app::run(model, allow_outside_paths)
+fn open_app(
+    model: Option<std::path::PathBuf>,
+    allow_outside_paths: bool,
+    input_box: receptor::model::InputBox,
+) -> ExitCode {
+    receptor::app::run(model, allow_outside_paths, input_box)
 }
 
 /// Without the `gui` feature there is no window; say so.
 #[cfg(not(feature = "gui"))]
-fn open_app(model: Option<std::path::PathBuf>, allow_outside_paths: bool) -> ExitCode {
-    let _ = (model, allow_outside_paths);
+fn open_app(
+    model: Option<std::path::PathBuf>,
+    allow_outside_paths: bool,
+    input_box: receptor::model::InputBox,
+) -> ExitCode {
+    let _ = (model, allow_outside_paths, input_box);
     eprintln!(
         "receptor: the desktop app is not available in this build; see `receptor --help` for the commands"
     );

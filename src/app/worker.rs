@@ -14,7 +14,7 @@ use crate::analysis::prune::{DEFAULT_SWEEP_FRACTIONS, SweepPoint};
 use crate::analysis::screen::ScreenOptions;
 use crate::analysis::{Progress, bounds, gradient, prefer, prune, screen, sparsity};
 use crate::error::{Error, Result};
-use crate::model::{LoadOptions, Network};
+use crate::model::{BoxOrigin, BoxSource, LoadOptions, Network};
 use crate::probe::ProbeData;
 use crate::probe::memory::{MemoryProbe, read_probe};
 use std::path::PathBuf;
@@ -148,7 +148,7 @@ pub enum Reply {
         /// The request number given by [`Worker::open_model`].
         request: u64,
         /// The model, its name for messages and its path.
-        result: Result<(Network, String, Option<PathBuf>)>,
+        result: Result<(Network, String, Option<PathBuf>, BoxOrigin)>,
     },
     /// Statistics, histograms and bounds.
     Model {
@@ -306,12 +306,17 @@ impl Worker {
             .name("receptor-open".into())
             .spawn(move || {
                 let result = match source {
-                    ModelSource::File(path) => crate::model::load(&path, &opts)
-                        .map(|n| (n, path.display().to_string(), Some(path.clone()))),
+                    ModelSource::File(path) => crate::model::load_with_origin(&path, &opts)
+                        .map(|(n, b)| (n, path.display().to_string(), Some(path.clone()), b)),
                     ModelSource::Text { text, origin } => {
                         let base = std::path::Path::new(".");
-                        crate::model::from_json_str(&text, &origin, base, &opts)
-                            .map(|n| (n, origin.clone(), None))
+                        crate::model::from_json_str(&text, &origin, base, &opts).map(|n| {
+                            let b = BoxOrigin {
+                                low: BoxSource::ModelFile,
+                                high: BoxSource::ModelFile,
+                            };
+                            (n, origin.clone(), None, b)
+                        })
                     }
                 };
                 let _ = tx.send(Reply::ModelOpened { request, result });
