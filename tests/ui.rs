@@ -284,6 +284,7 @@ fn opening_a_second_model_cancels_the_first_and_never_mixes_results() {
     let mut h = app_with(Start {
         model: Some(large.clone()),
         allow_outside_paths: false,
+        ..Start::default()
     });
     // Wait until the large model is open and its analysis is running.
     let t0 = Instant::now();
@@ -364,6 +365,7 @@ fn cancel_stops_the_running_analysis() {
     let mut h = app_with(Start {
         model: Some(large),
         allow_outside_paths: false,
+        ..Start::default()
     });
     let t0 = Instant::now();
     while h.state().state().model.is_none() || h.query_by_label("Cancel").is_none() {
