@@ -1,7 +1,8 @@
 //! The graph as a chain: from the one graph input, each value must feed exactly one node
 //! and each node must read exactly one value that is not a constant, up to the one graph
 //! output. Anything else (a branch, a merge, a node off the chain, several inputs or
-//! outputs) is refused with the node and its position named.
+//! outputs) is refused with the node and its position named. `Constant` nodes, and
+//! `Identity` nodes of a constant, only name constants and are not part of the chain.
 
 use super::Context;
 use super::proto::{GraphProto, NodeProto, TensorProto, ValueInfoProto};
@@ -54,6 +55,14 @@ pub fn chain<'a>(graph: &'a GraphProto, ctx: &Context) -> Result<Chain<'a>> {
                     ));
                 }
             }
+        } else if node.op_type == "Identity"
+            && is_default_domain(node)
+            && let ([from], [out]) = (node.input.as_slice(), node.output.as_slice())
+            && let Some(&t) = constants.get(from.as_str())
+        {
+            // An Identity of a constant is the same constant under another name (the
+            // TorchScript-based exporter writes these for shared parameters).
+            constants.insert(out.as_str(), t);
         } else {
             nodes.push(Step { node, pos });
         }
