@@ -91,7 +91,7 @@ fn onnx_models_match_onnxruntime() {
         let (net, origin) = model::load_with_origin(&path, &LoadOptions::default())
             .unwrap_or_else(|e| panic!("{name}: does not load: {e}"));
         let want = expected(name);
-        let names: Vec<&str> = net.layers.iter().map(|l| l.name.as_str()).collect();
+        let names: Vec<&str> = net.layers().iter().map(|l| l.name.as_str()).collect();
         let want_names: Vec<&str> = want["layers"]
             .as_array()
             .expect("layers")
@@ -100,7 +100,7 @@ fn onnx_models_match_onnxruntime() {
             .collect();
         assert_eq!(names, want_names, "{name}: layer names");
         assert_eq!(
-            layout_text(net.input.layout),
+            layout_text(net.input().layout),
             want["layout"].as_str().expect("layout"),
             "{name}: layout"
         );
@@ -140,7 +140,8 @@ fn converted_models_match_onnxruntime() {
                 .unwrap_or_else(|e| panic!("{name}: converted model does not load: {e}"));
             let direct = model::load(&path, &LoadOptions::default()).expect("loads");
             assert_eq!(
-                net.input, direct.input,
+                net.input(),
+                direct.input(),
                 "{name}: input spec survives convert"
             );
             let worst = worst_difference(name, &net);

@@ -53,8 +53,8 @@ pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
         .auto_shrink([false, false])
         .show(ui, |ui| {
             ui.add_space(4.0);
-            ui.heading(&net.name);
-            if let Some(d) = &net.description {
+            ui.heading(net.name());
+            if let Some(d) = net.description() {
                 ui.label(egui::RichText::new(d).small()).on_hover_text(d);
             }
             ui.add_space(4.0);
@@ -71,7 +71,7 @@ pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
 /// another box (the model file is opened again with it).
 fn input_ui(ui: &mut egui::Ui, state: &mut AppState, model: &OpenModel, actions: &mut Vec<Action>) {
     let net = &model.net;
-    let layout = match net.input.layout {
+    let layout = match net.input().layout {
         Layout::Image {
             height,
             width,
@@ -86,11 +86,11 @@ fn input_ui(ui: &mut egui::Ui, state: &mut AppState, model: &OpenModel, actions:
         ),
         Layout::Vector => "feature vector".to_string(),
     };
-    ui.label(format!("Input: {} values, {layout}", net.input.size));
+    ui.label(format!("Input: {} values, {layout}", net.input().size));
     ui.horizontal_wrapped(|ui| {
         ui.label(format!(
             "Input box: {} ({})",
-            box_range(&net.input.low, &net.input.high),
+            box_range(&net.input().low, &net.input().high),
             model.box_origin.describe()
         ))
         .on_hover_text("The box [low, high] used by the preferred-input search and the bounds.");
@@ -98,7 +98,7 @@ fn input_ui(ui: &mut egui::Ui, state: &mut AppState, model: &OpenModel, actions:
             && state.run.box_edit.is_none()
             && ui.small_button("Change box…").clicked()
         {
-            state.run.box_edit = Some((box_text(&net.input.low), box_text(&net.input.high)));
+            state.run.box_edit = Some((box_text(&net.input().low), box_text(&net.input().high)));
         }
     });
     if model.box_origin.uses_default() {
@@ -207,8 +207,8 @@ fn probe_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) {
 /// One selectable entry per layer, each with its health summary.
 fn layer_list_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network) {
     let current = state.current_layer();
-    let last = net.layers.len().saturating_sub(1);
-    for (i, l) in net.layers.iter().enumerate() {
+    let last = net.layers().len().saturating_sub(1);
+    for (i, l) in net.layers().iter().enumerate() {
         let selected = i == current;
         let title = format!(
             "{}  ·  {} units  ·  {}",

@@ -22,7 +22,7 @@ impl SparsityPanel {
             .show(ui, |ui| {
                 ui.horizontal(|ui| {
                     ui.label("Layer:");
-                    for (i, l) in net.layers.iter().enumerate() {
+                    for (i, l) in net.layers().iter().enumerate() {
                         if ui.selectable_label(i == layer, &l.name).clicked() {
                             state.select(Selection { layer: i, unit: 0 }, false);
                         }
@@ -31,7 +31,7 @@ impl SparsityPanel {
                 ui.add_space(4.0);
                 ui.heading(format!(
                     "Weight magnitudes of layer {}",
-                    net.layers[layer].name
+                    net.layers()[layer].name
                 ));
                 match state.results.stats.as_ref() {
                     None => {
@@ -61,7 +61,7 @@ impl SparsityPanel {
 fn magnitude_ui(ui: &mut egui::Ui, stats: &StatsResult, net: &Network, layer: usize) {
     let h = &stats.magnitude[layer];
     let s = &stats.layers[layer];
-    let total = net.layers[layer].weights.len();
+    let total = net.layers()[layer].weights.len();
     ui.label(format!(
         "{total} weights · {:.1}% near zero (|w| ≤ {:.3e}, 1% of the largest |w| {:.3e}) · {} exactly zero",
         100.0 * s.near_zero_frac,

@@ -222,13 +222,13 @@ pub fn run(args: &CompactArgs) -> Result<ExitCode> {
 fn never_active_on(net: &Network, path: &Path) -> Result<Vec<Vec<bool>>> {
     let mut source = probe::open(path, net)?;
     let report = screen(net, &mut *source, &ScreenOptions::default(), &Silent)?;
-    let hidden = net.layers.len() - 1;
-    let mut out: Vec<Vec<bool>> = net.layers[..hidden]
+    let hidden = net.layers().len() - 1;
+    let mut out: Vec<Vec<bool>> = net.layers()[..hidden]
         .iter()
         .map(|l| vec![false; l.units()])
         .collect();
     for u in &report.units {
-        let relu = net.layers[u.layer_index].activation == Activation::Relu;
+        let relu = net.layers()[u.layer_index].activation == Activation::Relu;
         out[u.layer_index][u.unit] =
             relu && matches!(u.status, Status::DeadOnProbe | Status::DeadProven);
     }
@@ -291,7 +291,8 @@ pub fn summary_lines(original: &Network, c: &Compaction) -> Vec<String> {
     let gone: usize = counts.iter().map(|x| x.1).sum();
     let mut line = format!(
         "input: {} -> {} features",
-        original.input.size, c.network.input.size
+        original.input().size,
+        c.network.input().size
     );
     if gone > 0 {
         line.push_str(&format!(" (removed {gone}: {})", reasons_text(&counts)));
@@ -303,7 +304,7 @@ pub fn summary_lines(original: &Network, c: &Compaction) -> Vec<String> {
         ));
     }
     lines.push(line);
-    for (l, (a, b)) in original.layers.iter().zip(&c.network.layers).enumerate() {
+    for (l, (a, b)) in original.layers().iter().zip(c.network.layers()).enumerate() {
         let counts = c.counts(Some(l));
         let gone: usize = counts.iter().map(|x| x.1).sum();
         let mut line = format!(
@@ -316,7 +317,7 @@ pub fn summary_lines(original: &Network, c: &Compaction) -> Vec<String> {
         if gone > 0 {
             line.push_str(&format!(" (removed {gone}: {})", reasons_text(&counts)));
         }
-        if l + 1 == original.layers.len() {
+        if l + 1 == original.layers().len() {
             line.push_str(" (output layer: never pruned)");
         }
         lines.push(line);
@@ -327,7 +328,7 @@ pub fn summary_lines(original: &Network, c: &Compaction) -> Vec<String> {
         .filter_map(|r| match (r.layer, r.reason) {
             (Some(l), crate::analysis::compact::Reason::Constant { value }) => Some(format!(
                 "{}[{}] = {}",
-                original.layers[l].name,
+                original.layers()[l].name,
                 r.index,
                 f32_text(value as f32)
             )),

@@ -56,7 +56,7 @@ pub fn run(args: &ConvertArgs) -> Result<ExitCode> {
     eprintln!(
         "receptor: wrote {} ({} layers, {} parameters)",
         args.out.display(),
-        net.layers.len(),
+        net.layers().len(),
         net.parameter_count()
     );
     Ok(ExitCode::SUCCESS)

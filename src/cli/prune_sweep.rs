@@ -95,7 +95,7 @@ impl From<CriterionArg> for Criterion {
 
 /// Weights that are exactly zero, and all weights, over every layer.
 pub fn zero_count(net: &Network) -> (usize, usize) {
-    net.layers.iter().fold((0, 0), |(z, t), l| {
+    net.layers().iter().fold((0, 0), |(z, t), l| {
         (
             z + l.weights.iter().filter(|&&w| w == 0.0).count(),
             t + l.weights.len(),
@@ -125,7 +125,7 @@ pub fn run(args: &PruneSweepArgs) -> Result<ExitCode> {
             ));
         };
         let net = args.common.load(&args.model)?;
-        let pruned = prune_by_magnitude(&net, f);
+        let pruned = prune_by_magnitude(&net, f)?;
         if let Some(p) = &args.probe {
             let mut source = probe::open(p, &net)?;
             require_labels(&*source, p)?;
@@ -206,9 +206,9 @@ fn run_units(args: &PruneSweepArgs) -> Result<ExitCode> {
         }
         crate::model::write_json(&pruned, out)?;
         let sizes: Vec<String> = net
-            .layers
+            .layers()
             .iter()
-            .zip(&pruned.layers)
+            .zip(pruned.layers())
             .map(|(a, b)| format!("'{}' {} -> {}", a.name, a.units(), b.units()))
             .collect();
         eprintln!(

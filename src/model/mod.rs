@@ -12,14 +12,16 @@ pub mod onnx;
 mod paths;
 mod tensors;
 mod tensors_write;
-pub mod validate;
+mod types;
+mod validate;
 mod write;
 
-pub use network::{
-    Activation, InputSpec, Layer, Layout, Network, SIGMOID_SATURATION_Z, TANH_SATURATION_Z,
-};
+pub use network::Network;
 pub use paths::resolve_side_path;
 pub use tensors_write::{check_side_file_location, tensors_bytes, write_json_with_tensors};
+pub use types::{
+    Activation, InputSpec, Layer, Layout, NetworkParts, SIGMOID_SATURATION_Z, TANH_SATURATION_Z,
+};
 pub use write::{to_json_string, write_json, write_json_to};
 
 use crate::error::{Error, Result};
@@ -218,19 +220,18 @@ pub fn from_json_bytes(
     opts: &LoadOptions,
 ) -> Result<Network> {
     let raw = json::parse(bytes, origin)?;
-    let mut net = json::build(raw, origin, base_dir, opts)?;
-    // A box given by the user replaces the file's (checked again below with the rest).
+    let mut parts = json::build(raw, origin, base_dir, opts)?;
+    // A box given by the user replaces the file's (checked with the rest by from_parts).
     for (given, end) in [
-        (&opts.input_box.low, &mut net.input.low),
-        (&opts.input_box.high, &mut net.input.high),
+        (&opts.input_box.low, &mut parts.input.low),
+        (&opts.input_box.high, &mut parts.input.high),
     ] {
         if let Some(v) = given {
-            *end = spread_box(v, net.input.size, net.input.layout)
+            *end = spread_box(v, parts.input.size, parts.input.layout)
                 .map_err(|p| Error::model(origin, format!("input box: {p}")))?;
         }
     }
-    validate::validate(&net, origin)?;
-    Ok(net)
+    Network::from_parts(parts, origin)
 }
 
 #[cfg(test)]
