@@ -18,6 +18,22 @@ use ndarray::{Array1, Array2};
 
 /// What receptor reads instead of an unsupported operator.
 const SUPPORTED: &str = "receptor reads Gemm, MatMul (+ Add of a bias), Relu, LeakyRelu, Sigmoid, Tanh, Softmax (last), Flatten (axis 1), Reshape to [N, -1], Identity, Dropout, and BatchNormalization right after Gemm or MatMul";
+/// The operators this reader maps to layers (every other one is refused).
+const OPERATORS: &[&str] = &[
+    "Gemm",
+    "MatMul",
+    "Add",
+    "BatchNormalization",
+    "Relu",
+    "LeakyRelu",
+    "Sigmoid",
+    "Tanh",
+    "Softmax",
+    "Flatten",
+    "Reshape",
+    "Identity",
+    "Dropout",
+];
 /// What receptor reads instead of a misplaced activation.
 const ACTIVATION_PLACE: &str = "receptor reads one activation right after each Gemm or MatMul (with its bias and BatchNormalization)";
 
@@ -75,6 +91,9 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
             ));
         }
         let op = node.op_type.as_str();
+        if !OPERATORS.contains(&op) {
+            return Err(ctx.node_error(step, "is an operator receptor does not read", SUPPORTED));
+        }
         check_attributes(step, ctx)?;
         if matches!(op, "Gemm" | "MatMul")
             && let Some(s) = softmax
