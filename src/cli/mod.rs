@@ -32,7 +32,8 @@ const ABOUT: &str =
     "Inspect a trained feed-forward network: preferred inputs, weight sparsity, dead ReLU units";
 
 const LONG_ABOUT: &str = "\
-Inspect a trained feed-forward network saved in the receptor-model/1 JSON schema.
+Inspect a trained feed-forward network saved in the receptor-model/1 JSON schema or as an \
+ONNX file (.onnx: a chain of dense layers; see `receptor convert --help`).
 
 Without a command, receptor opens the desktop app (on MODEL, or on the bundled demo model). \
 The commands below do the same analysis from the command line, for scripts and training \
