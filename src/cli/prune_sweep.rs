@@ -62,6 +62,7 @@ pub struct PruneSweepArgs {
     #[arg(long)]
     pub per_layer: bool,
 
+    /// Output and loading options shared by every command.
     #[command(flatten)]
     pub common: CommonArgs,
 }
