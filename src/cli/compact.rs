@@ -41,6 +41,7 @@ pub struct CompactArgs {
     #[arg(long, value_name = "FILE")]
     pub tensors: Option<PathBuf>,
 
+    /// Where the reference data comes from.
     #[command(flatten)]
     pub probe: ProbeArgs,
 
