@@ -109,9 +109,11 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
                 if op == "Dropout"
                     && let Some(mode) = node.input.get(2).filter(|m| !m.is_empty())
                 {
-                    let on = constant_ints(chain, mode, step, ctx)
-                        .map(|(_, v)| v.iter().any(|&b| b != 0))
-                        .unwrap_or(true);
+                    // training_mode is a bool tensor (one byte per value in raw_data, or
+                    // int32_data; onnx.proto): any non-zero value, or no constant, is "on".
+                    let on = chain.constants.get(mode.as_str()).is_none_or(|t| {
+                        t.raw_data.iter().any(|&b| b != 0) || t.int32_data.iter().any(|&b| b != 0)
+                    });
                     if on {
                         return Err(ctx.node_error(
                             step,
@@ -393,7 +395,7 @@ fn constant_floats(
     tensor::floats(t, &format!("tensor '{name}'"), ctx)
 }
 
-/// The constant called `name` as int64 values.
+/// The constant called `name` as int64 values (a `Reshape` target).
 fn constant_ints(
     chain: &Chain<'_>,
     name: &str,

@@ -305,3 +305,31 @@ fn box_values_spread_by_count() {
     );
     assert!(spread_box(&[1.0, 2.0], 3, Layout::Vector).is_err());
 }
+
+#[test]
+fn dropout_is_read_only_in_inference_mode() {
+    let flag = |on: bool| TensorProto {
+        dims: vec![],
+        data_type: 9, // BOOL (onnx.proto): one byte per value in raw_data
+        name: "mode".into(),
+        raw_data: vec![u8::from(on)],
+        ..Default::default()
+    };
+    for on in [false, true] {
+        let m = bytes(
+            vec![
+                node("Gemm", &["x", "W"], "h", vec![attr_i("transB", 1)]),
+                node("Dropout", &["h", "", "mode"], "y", vec![]),
+            ],
+            vec![t("W", &[1, 2], &[1.0, 2.0]), flag(on)],
+            &[0, 2],
+            &[],
+        );
+        let r = read(&m, &LoadOptions::default());
+        match (on, r) {
+            (false, Ok(_)) => {}
+            (true, Err(e)) => assert!(e.to_string().contains("training mode"), "{e}"),
+            (_, r) => panic!("training_mode {on}: {:?}", r.map(|_| ())),
+        }
+    }
+}
