@@ -263,16 +263,14 @@ fn unit_scores(
     criterion: Criterion,
     probe_path: Option<&Path>,
 ) -> Result<Vec<Vec<f64>>> {
-    match (criterion, probe_path) {
-        (Criterion::L1, _) => Ok(structured::l1_scores(net)),
-        (Criterion::Activation, Some(p)) => {
-            let mut source = probe::open(p, net)?;
-            structured::mean_abs_activation(net, &mut *source, &Silent)
-        }
-        (Criterion::Activation, None) => {
-            Err(Error::usage("--criterion activation needs --probe DATA"))
-        }
-    }
+    let mut source = match probe_path {
+        Some(p) if criterion.needs_probe() => Some(probe::open(p, net)?),
+        _ => None,
+    };
+    let source = source
+        .as_deref_mut()
+        .map(|s| s as &mut dyn probe::ProbeSource);
+    structured::unit_scores(net, criterion, source, &Silent)
 }
 
 fn require_labels(source: &dyn probe::ProbeSource, path: &std::path::Path) -> Result<()> {
