@@ -6,6 +6,7 @@
 //! files are opened and exports written on helper threads.
 
 pub mod colour;
+pub mod compact;
 pub mod detail;
 pub mod export;
 mod jobs;
@@ -88,6 +89,8 @@ pub enum Pick {
     Probe,
     /// Where to save an export.
     Export(ExportKind),
+    /// Where to save the compacted model.
+    CompactedModel,
 }
 
 /// Requests the panels make; the app carries them out after drawing.
@@ -113,6 +116,10 @@ pub enum Action {
     Cancel,
     /// Queue again whatever a cancel left unfinished.
     RunAgain,
+    /// Show the Compact model window.
+    CompactWindow,
+    /// Show the save dialog for the compacted model.
+    SaveCompactedDialog,
     /// Show the keyboard and marks help.
     Help,
     /// Leave the app.
@@ -271,6 +278,8 @@ impl ReceptorApp {
             }
             Action::Cancel => self.cancel(),
             Action::RunAgain => self.run_again(),
+            Action::CompactWindow => self.state.compact.open = true,
+            Action::SaveCompactedDialog => self.pick(Pick::CompactedModel),
             Action::Help => self.show_help = true,
             Action::Quit => ctx.send_viewport_cmd(egui::ViewportCommand::Close),
         }
@@ -303,9 +312,16 @@ impl ReceptorApp {
                         .and_then(|p| p.parent().map(Path::to_path_buf))
                 }),
             Pick::Export(_) => None,
+            Pick::CompactedModel => self
+                .state
+                .model
+                .as_ref()
+                .and_then(|m| m.path.as_ref())
+                .and_then(|p| p.parent().map(Path::to_path_buf)),
         };
         let file_name = match purpose {
             Pick::Export(kind) => Some(export::default_file_name(kind, &self.state)),
+            Pick::CompactedModel => Some(compact::default_file_name(&self.state)),
             _ => None,
         };
         self.worker.spawn_helper("receptor-dialog", move || {
@@ -329,6 +345,11 @@ impl ReceptorApp {
                         .add_filter(name, exts)
                         .save_file()
                 }
+                Pick::CompactedModel => d
+                    .set_title("Save the compacted model")
+                    .set_file_name(file_name.unwrap_or_default())
+                    .add_filter("receptor model (JSON)", &["json"])
+                    .save_file(),
             };
             Reply::Picked { purpose, path }
         });
@@ -340,6 +361,7 @@ impl ReceptorApp {
         let probe = KeyboardShortcut::new(Modifiers::COMMAND, Key::P);
         let stats = KeyboardShortcut::new(Modifiers::COMMAND, Key::E);
         let quit = KeyboardShortcut::new(Modifiers::COMMAND, Key::Q);
+        let compact = KeyboardShortcut::new(Modifiers::COMMAND, menu::COMPACT_KEY);
         ctx.input_mut(|i| {
             if i.consume_shortcut(&open) {
                 self.actions.push(Action::OpenModelDialog);
@@ -350,6 +372,9 @@ impl ReceptorApp {
             if i.consume_shortcut(&stats) {
                 self.actions
                     .push(Action::ExportDialog(ExportKind::StatsCsv));
+            }
+            if i.consume_shortcut(&compact) {
+                self.actions.push(Action::CompactWindow);
             }
             if i.consume_shortcut(&quit) {
                 self.actions.push(Action::Quit);
@@ -567,6 +592,9 @@ impl eframe::App for ReceptorApp {
                 });
         }
         egui::CentralPanel::default().show(ui, |ui| self.central_ui(ui));
+        if self.state.compact.open {
+            compact::window_ui(&ctx, &mut self.state, &mut self.actions);
+        }
         if self.show_help {
             menu::help_ui(&ctx, &mut self.show_help, self.state.run.longest_busy_frame);
         }

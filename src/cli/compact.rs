@@ -69,56 +69,6 @@ pub struct CompactArgs {
     pub allow_outside_paths: bool,
 }
 
-/// True when `a` and `b` name the same existing file (or the same path).
-pub(crate) fn same_file(a: &Path, b: &Path) -> bool {
-    match (std::fs::canonicalize(a), std::fs::canonicalize(b)) {
-        (Ok(x), Ok(y)) => x == y,
-        _ => a == b,
-    }
-}
-
-/// The safetensors side files the model file at `model` refers to, resolved against its
-/// folder (best effort: an unreadable or malformed file gives none; loading reports it).
-fn side_files(model: &Path) -> Vec<PathBuf> {
-    let Ok(text) = std::fs::read(model) else {
-        return Vec::new();
-    };
-    let Ok(v) = serde_json::from_slice::<serde_json::Value>(&text) else {
-        return Vec::new();
-    };
-    let base = match model.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-        _ => PathBuf::from("."),
-    };
-    let mut out = Vec::new();
-    for layer in v["layers"].as_array().map(Vec::as_slice).unwrap_or(&[]) {
-        for key in ["weights", "bias"] {
-            if let Some(rel) = layer[key]["safetensors"].as_str() {
-                out.push(base.join(rel));
-            }
-        }
-    }
-    out
-}
-
-/// Refuses an output path that is the input model itself or one of its side files.
-pub(crate) fn refuse_overwriting_input(model: &Path, out: &Path, flag: &str) -> Result<()> {
-    if same_file(model, out) {
-        return Err(Error::usage(format!(
-            "{}: {flag} is the input model itself; choose another file (the input is never overwritten)",
-            out.display()
-        )));
-    }
-    if side_files(model).iter().any(|s| same_file(s, out)) {
-        return Err(Error::usage(format!(
-            "{}: {flag} is a side file of the input model {}; choose another file (the input is never overwritten)",
-            out.display(),
-            model.display()
-        )));
-    }
-    Ok(())
-}
-
 fn check_tolerance_arg(name: &str, v: f64) -> Result<()> {
     if v.is_finite() && v >= 0.0 {
         Ok(())
@@ -131,9 +81,9 @@ fn check_tolerance_arg(name: &str, v: f64) -> Result<()> {
 
 /// Runs `compact`.
 pub fn run(args: &CompactArgs) -> Result<ExitCode> {
-    refuse_overwriting_input(&args.model, &args.out, "--out")?;
+    crate::model::refuse_overwriting_model(&args.model, &args.out, "--out")?;
     if let Some(t) = &args.tensors {
-        refuse_overwriting_input(&args.model, t, "--tensors")?;
+        crate::model::refuse_overwriting_model(&args.model, t, "--tensors")?;
         crate::model::check_side_file_location(&args.out, t)?;
     }
     check_tolerance_arg("--fold-tolerance", args.fold_tolerance)?;

@@ -107,7 +107,7 @@ pub fn zero_count(net: &Network) -> (usize, usize) {
 pub fn run(args: &PruneSweepArgs) -> Result<ExitCode> {
     // The sweep's fractions are checked by the sweep; --write-pruned by the same rule.
     if let Some(out) = &args.common.out {
-        super::compact::refuse_overwriting_input(&args.model, out, "--out")?;
+        crate::model::refuse_overwriting_model(&args.model, out, "--out")?;
     }
     if args.by == By::Unit {
         return run_units(args);

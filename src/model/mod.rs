@@ -15,7 +15,7 @@ mod write;
 pub use network::{
     Activation, InputSpec, Layer, Layout, Network, SIGMOID_SATURATION_Z, TANH_SATURATION_Z,
 };
-pub use paths::resolve_side_path;
+pub use paths::{refuse_overwriting_model, resolve_side_path};
 pub use tensors_write::{check_side_file_location, tensors_bytes, write_json_with_tensors};
 pub use write::{to_json_string, write_json, write_json_to};
 
