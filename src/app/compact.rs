@@ -166,7 +166,7 @@ fn result_ui(
         headline.push_str(&format!(" and {features} input features"));
     }
     headline.push_str(&format!(
-        " ({} → {} parameters)",
+        " ({} -> {} parameters)",
         net.parameter_count(),
         c.compaction.network.parameter_count()
     ));
@@ -258,12 +258,12 @@ fn removals_grid_ui(ui: &mut egui::Ui, summaries: &[LayerSummary]) {
                     Some(a) => ui.label(format!("{} ({})", s.name, a.name())),
                     None => ui.label("input features"),
                 };
-                ui.monospace(format!("{} → {}", s.before, s.after));
+                ui.monospace(format!("{} -> {}", s.before, s.after));
                 ui.monospace(s.removed_count().to_string());
                 let why = if i == last && s.layer.is_some() {
                     "output layer: never pruned".to_string()
                 } else if s.removed.is_empty() {
-                    "—".to_string()
+                    "none".to_string()
                 } else {
                     why_text(s)
                 };
@@ -308,7 +308,7 @@ fn check_ui(ui: &mut egui::Ui, state: &AppState, c: &CheckedCompaction) {
     check_line_ui(ui, &probe_name, &c.reference, false);
     if let Some(b) = &c.on_box {
         let name = format!(
-            "uniform samples of the input box (seed {})",
+            "the input box (uniform, seed {})",
             crate::probe::DEFAULT_UNIFORM_SEED
         );
         check_line_ui(ui, &name, b, c.request.dead_on_probe);

@@ -41,9 +41,10 @@ const DEMO_PROBE: &str = concat!(
     "/demo-models/solder-joints-probe.csv"
 );
 
-/// Opens the window and runs until it is closed. `model` is opened at start (the bundled
-/// demo when `None`). Returns 0 on a normal close, 2 when no window could be opened.
-pub fn run(model: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
+/// Opens the window and runs until it is closed. `start` says what to open first (the
+/// bundled demo when it names no model). Returns 0 on a normal close, 2 when no window
+/// could be opened.
+pub fn run(start: Start) -> ExitCode {
     let options = eframe::NativeOptions {
         viewport: egui::ViewportBuilder::default()
             .with_title("receptor")
@@ -52,10 +53,6 @@ pub fn run(model: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
             .with_drag_and_drop(true),
         persist_window: true,
         ..Default::default()
-    };
-    let start = Start {
-        model,
-        allow_outside_paths,
     };
     let result = eframe::run_native(
         "receptor",
@@ -76,6 +73,9 @@ pub fn run(model: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
 pub struct Start {
     /// A model file, or `None` for the bundled demo.
     pub model: Option<PathBuf>,
+    /// Probe data to open once the model is in (`None`: the uniform probe, or the demo's
+    /// own probe for the demo).
+    pub probe: Option<PathBuf>,
     /// Allow side-file paths outside the model's folder.
     pub allow_outside_paths: bool,
 }
@@ -140,6 +140,8 @@ pub struct ReceptorApp {
     show_help: bool,
     /// What the panels asked for this frame.
     actions: Vec<Action>,
+    /// Probe data given at start, opened once the start model is in.
+    start_probe: Option<PathBuf>,
 }
 
 impl ReceptorApp {
@@ -160,6 +162,7 @@ impl ReceptorApp {
             dialog_open: false,
             show_help: false,
             actions: Vec::new(),
+            start_probe: start.probe,
         };
         if let Some(e) = app.worker.spawn_error() {
             let e = e.to_string();
@@ -556,6 +559,15 @@ impl eframe::App for ReceptorApp {
         self.dropped_files(ctx);
         for a in std::mem::take(&mut self.actions) {
             self.perform(a, ctx);
+        }
+        if self.state.model.is_some()
+            && let Some(p) = self.start_probe.take()
+        {
+            self.open_probe(&p);
+        }
+        if self.state.model.is_none() && self.state.open_error.is_some() {
+            // The start model did not open: its probe belongs to no model.
+            self.start_probe = None;
         }
         self.request_needed();
     }
