@@ -596,10 +596,7 @@ fn compacts_the_overdriven_demo_and_opens_the_smaller_model() {
     h.get_by_label("32 -> 23");
     h.get_by_label("16 -> 4");
     h.get_by_label("5 -> 5");
-    assert_eq!(
-        h.get_all_by_label_contains("dead_proven: ").count() >= 2,
-        true
-    );
+    assert_eq!(h.get_all_by_label_contains("dead_proven: ").count(), 2);
     // The output check on the probe and on uniform box samples, as `receptor compact`
     // reports it (README: largest |difference| 0.0 on both, 0 predictions changed).
     h.get_by_label_contains("On 500 samples of");
