@@ -510,7 +510,7 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     wait_idle(&mut h, Duration::from_secs(120));
     // Each series is labelled in a legend beside its plot.
     h.get_by_label("weights zeroed, smallest |w| first");
-    h.get_by_label("units removed, lowest L1 norm of incoming weights first");
+    h.get_by_label("units removed, smallest L1 norm first");
     h.get_by_label("h1 (32 units)");
     h.get_by_label("h2 (16 units)");
 
@@ -557,7 +557,7 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     h.get_by_label("mean |activation| on the probe").click();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(120));
-    h.get_by_label("units removed, lowest mean |activation| first");
+    h.get_by_label("units removed, smallest mean |activation| first");
 }
 
 #[test]

@@ -77,6 +77,8 @@ pub fn window_ui(ctx: &egui::Context, state: &mut AppState, actions: &mut Vec<Ac
     let mut open = state.compact.open;
     egui::Window::new("Compact model")
         .open(&mut open)
+        .pivot(egui::Align2::CENTER_CENTER)
+        .default_pos(ctx.content_rect().center())
         .collapsible(false)
         .resizable(true)
         .default_width(640.0)

@@ -195,7 +195,10 @@ fn pruning_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, actions: &
     let mut per_layer = Vec::new();
     if let Some(c) = units.as_ref() {
         whole.push(Series {
-            name: format!("units removed, lowest {} first", criterion_words(criterion)),
+            name: format!(
+                "units removed, smallest {} first",
+                criterion_words(criterion)
+            ),
             colour: 1,
             points: c
                 .all_layers
@@ -228,7 +231,7 @@ fn pruning_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, actions: &
         slot_note_ui(ui, &units, "per-layer sweep");
         if units.is_ready() {
             ui.weak(format!(
-                "Sensitivity analysis as in Han et al. 2015; units ranked by {}, lowest removed first.",
+                "Sensitivity analysis as in Han et al. 2015; each layer's units ranked by {}, smallest removed first.",
                 criterion_words(criterion)
             ));
         }
@@ -241,7 +244,7 @@ fn pruning_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, actions: &
 /// How a criterion ranks, in words.
 fn criterion_words(c: Criterion) -> &'static str {
     match c {
-        Criterion::L1 => "L1 norm of incoming weights",
+        Criterion::L1 => "L1 norm",
         Criterion::Activation => "mean |activation|",
     }
 }
@@ -277,8 +280,15 @@ fn curves_plot_ui(ui: &mut egui::Ui, id: &str, x_label: &str, series: &[Series])
         .include_y(100.0)
         .x_axis_label(x_label)
         .y_axis_label("accuracy on the probe (%)")
+        // Grid lines every 10, 20 and 100 points on x and 5, 25 and 100 on y, so the fractions
+        // and accuracies are labelled (the default decimal spacer labels only 0 and 100).
+        .x_grid_spacer(egui_plot::uniform_grid_spacer(|_| [10.0, 20.0, 100.0]))
+        .y_grid_spacer(egui_plot::uniform_grid_spacer(|_| [5.0, 25.0, 100.0]))
         .show(ui, |p| {
-            for s in series {
+            // The first series is drawn widest, so a later one lying exactly on it (curves
+            // that agree, as on the over-driven demo) leaves it visible as a border.
+            for (i, s) in series.iter().enumerate() {
+                let (width, radius) = if i == 0 { (4.0, 4.5) } else { (2.0, 3.0) };
                 let style = if s.dashed() {
                     egui_plot::LineStyle::dashed_loose()
                 } else {
@@ -288,12 +298,12 @@ fn curves_plot_ui(ui: &mut egui::Ui, id: &str, x_label: &str, series: &[Series])
                     egui_plot::Line::new(s.name.clone(), s.points.clone())
                         .color(s.colour32())
                         .style(style)
-                        .width(2.0),
+                        .width(width),
                 );
                 p.points(
                     egui_plot::Points::new(s.name.clone(), s.points.clone())
                         .color(s.colour32())
-                        .radius(3.0),
+                        .radius(radius),
                 );
             }
         });
