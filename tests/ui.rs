@@ -106,7 +106,15 @@ fn a_bad_file_shows_the_error_and_keeps_the_model() {
 
     let mut h = demo_app();
     wait_idle(&mut h, Duration::from_secs(60));
-    let before = h.state().state().model.as_ref().unwrap().net.name.clone();
+    let before = h
+        .state()
+        .state()
+        .model
+        .as_ref()
+        .unwrap()
+        .net
+        .name()
+        .to_string();
 
     h.state_mut().open_model(&bad);
     wait_idle(&mut h, Duration::from_secs(30));
@@ -126,7 +134,7 @@ fn a_bad_file_shows_the_error_and_keeps_the_model() {
     );
     h.get_by_label(&msg);
     // ... and the model that was open stays open, with its layers.
-    assert_eq!(h.state().state().model.as_ref().unwrap().net.name, before);
+    assert_eq!(h.state().state().model.as_ref().unwrap().net.name(), before);
     h.get_by_label_contains("out  ·  5 units  ·  softmax");
     h.get_by_label("The model that was open stays open.");
 }
@@ -154,7 +162,7 @@ fn exports_write_files_with_the_expected_header() {
         .as_ref()
         .unwrap()
         .net
-        .layers
+        .layers()
         .iter()
         .map(|l| l.units())
         .sum();
@@ -198,7 +206,7 @@ fn exports_write_files_with_the_expected_header() {
         .export_to(ExportKind::PrunedModel, pruned.clone());
     wait_for_file(&mut h, &pruned);
     let net = receptor::model::load(&pruned, &Default::default()).expect("the pruned model loads");
-    for l in &net.layers {
+    for l in net.layers() {
         let zeros = l.weights.iter().filter(|w| **w == 0.0).count();
         assert!(
             2 * zeros >= l.weights.len(),
@@ -296,7 +304,7 @@ fn opening_a_second_model_cancels_the_first_and_never_mixes_results() {
         std::thread::sleep(Duration::from_millis(10));
     }
     assert_eq!(
-        h.state().state().model.as_ref().unwrap().net.layers[0].units(),
+        h.state().state().model.as_ref().unwrap().net.layers()[0].units(),
         2048
     );
     // Browse the 2048-unit second layer: its preferred inputs take minutes to compute, so
@@ -331,13 +339,13 @@ fn opening_a_second_model_cancels_the_first_and_never_mixes_results() {
 
     let st = h.state().state();
     let net = &st.model.as_ref().unwrap().net;
-    assert_eq!(net.name, "solder-joints");
+    assert_eq!(net.name(), "solder-joints");
     // Every result belongs to the demo, not to the large model.
     let stats = st.results.stats.as_ref().expect("statistics of the demo");
-    assert_eq!(stats.units.len(), net.layers.len());
+    assert_eq!(stats.units.len(), net.layers().len());
     for (l, units) in stats.units.iter().enumerate() {
-        assert_eq!(units.len(), net.layers[l].units());
-        assert!(units.iter().all(|u| u.layer == net.layers[l].name));
+        assert_eq!(units.len(), net.layers()[l].units());
+        assert!(units.iter().all(|u| u.layer == net.layers()[l].name));
     }
     let screen = st.results.screen.as_ref().expect("screening of the demo");
     assert!(
@@ -347,12 +355,12 @@ fn opening_a_second_model_cancels_the_first_and_never_mixes_results() {
             .all(|u| net.layer_index(&u.layer).is_some())
     );
     for (l, p) in &st.results.preferred {
-        assert_eq!(p.maps.len(), net.layers[*l].units());
+        assert_eq!(p.maps.len(), net.layers()[*l].units());
         assert!(
             p.maps
                 .iter()
                 .flatten()
-                .all(|m| m.input.len() == net.input.size)
+                .all(|m| m.input.len() == net.input().size)
         );
     }
 }
@@ -435,7 +443,7 @@ fn side_files_outside_the_folder_need_the_users_consent() {
         "{msg}"
     );
     assert_eq!(
-        h.state().state().model.as_ref().unwrap().net.name,
+        h.state().state().model.as_ref().unwrap().net.name(),
         "solder-joints"
     );
 
@@ -445,7 +453,7 @@ fn side_files_outside_the_folder_need_the_users_consent() {
     wait_idle(&mut h, Duration::from_secs(30));
     assert!(h.state().state().open_error.is_none());
     assert_eq!(
-        h.state().state().model.as_ref().unwrap().net.name,
+        h.state().state().model.as_ref().unwrap().net.name(),
         "outside"
     );
 }
@@ -637,7 +645,7 @@ fn compacts_the_overdriven_demo_and_opens_the_smaller_model() {
     wait_for_notice(&mut h, &out);
     h.run_steps(2);
     let written = receptor::model::load(&out, &Default::default()).expect("the output loads");
-    let sizes: Vec<usize> = written.layers.iter().map(|l| l.units()).collect();
+    let sizes: Vec<usize> = written.layers().iter().map(|l| l.units()).collect();
     assert_eq!(sizes, vec![23, 4, 5]);
 
     // Byte for byte what the command line writes for the same model and probe.
@@ -665,7 +673,7 @@ fn compacts_the_overdriven_demo_and_opens_the_smaller_model() {
     let st = h.state().state();
     let open = st.model.as_ref().expect("a model is open");
     assert_eq!(open.path.as_deref(), Some(out.as_path()));
-    let sizes: Vec<usize> = open.net.layers.iter().map(|l| l.units()).collect();
+    let sizes: Vec<usize> = open.net.layers().iter().map(|l| l.units()).collect();
     assert_eq!(sizes, vec![23, 4, 5]);
     assert!(
         !st.compact.open,

@@ -118,7 +118,7 @@ impl Plan {
     /// An empty plan for `net`.
     pub fn empty(net: &Network) -> Self {
         Plan {
-            units: vec![Vec::new(); net.layers.len()],
+            units: vec![Vec::new(); net.layers().len()],
             inputs: Vec::new(),
         }
     }
@@ -182,7 +182,7 @@ impl Compaction {
             LayerSummary {
                 layer,
                 name: name.to_string(),
-                activation: layer.map(|l| original.layers[l].activation),
+                activation: layer.map(|l| original.layers()[l].activation),
                 before,
                 after,
                 counts: self.counts(layer),
@@ -192,10 +192,15 @@ impl Compaction {
         let mut out = vec![entry(
             None,
             "input",
-            original.input.size,
-            self.network.input.size,
+            original.input().size,
+            self.network.input().size,
         )];
-        for (l, (a, b)) in original.layers.iter().zip(&self.network.layers).enumerate() {
+        for (l, (a, b)) in original
+            .layers()
+            .iter()
+            .zip(self.network.layers())
+            .enumerate()
+        {
             out.push(entry(Some(l), &a.name, a.units(), b.units()));
         }
         out
@@ -231,7 +236,7 @@ impl LayerSummary {
 /// The activation interval of every unit of layer `l` over the box, from pre-activation
 /// bounds (activations are non-decreasing, see [`super::bounds`]).
 fn activation_range(net: &Network, bounds: &Bounds, l: usize, k: usize) -> (f64, f64) {
-    let act = net.layers[l].activation;
+    let act = net.layers()[l].activation;
     (
         activate_f64(act, bounds.lower[l][k]),
         activate_f64(act, bounds.upper[l][k]),
@@ -246,11 +251,11 @@ pub fn plan(
     never_active: Option<&[Vec<bool>]>,
     fold_tolerance: Option<f64>,
 ) -> Plan {
-    let n_layers = net.layers.len();
+    let n_layers = net.layers().len();
     let mut plan = Plan::empty(net);
     let hidden = n_layers - 1;
     for l in 0..hidden {
-        let layer = &net.layers[l];
+        let layer = &net.layers()[l];
         for k in 0..layer.units() {
             let relu = layer.activation == Activation::Relu;
             let reason = if relu && bounds.upper[l][k] <= 0.0 {
@@ -285,32 +290,32 @@ pub fn plan(
             continue;
         }
         let removed_above: Vec<usize> = plan.units[above].iter().map(|u| u.0).collect();
-        let w = &net.layers[above].weights;
+        let w = &net.layers()[above].weights;
         let zero_column = |k: usize| {
             (0..w.nrows())
                 .filter(|j| removed_above.binary_search(j).is_err())
                 .all(|j| w[[j, k]] == 0.0)
         };
         let taken: Vec<usize> = plan.units[l].iter().map(|u| u.0).collect();
-        let mut extra: Vec<(usize, Reason)> = (0..net.layers[l].units())
+        let mut extra: Vec<(usize, Reason)> = (0..net.layers()[l].units())
             .filter(|k| taken.binary_search(k).is_err() && zero_column(*k))
             .map(|k| (k, Reason::ZeroOutgoing))
             .collect();
         plan.units[l].append(&mut extra);
         plan.units[l].sort_by_key(|u| u.0);
-        keep_one(&mut plan.units[l], net.layers[l].units());
+        keep_one(&mut plan.units[l], net.layers()[l].units());
     }
-    if net.input.layout == Layout::Vector {
+    if net.input().layout == Layout::Vector {
         let removed0: Vec<usize> = plan.units[0].iter().map(|u| u.0).collect();
-        let w = &net.layers[0].weights;
-        plan.inputs = (0..net.input.size)
+        let w = &net.layers()[0].weights;
+        plan.inputs = (0..net.input().size)
             .filter(|&i| {
                 (0..w.nrows())
                     .filter(|j| removed0.binary_search(j).is_err())
                     .all(|j| w[[j, i]] == 0.0)
             })
             .collect();
-        if plan.inputs.len() == net.input.size {
+        if plan.inputs.len() == net.input().size {
             plan.inputs.remove(0);
         }
     }
@@ -338,29 +343,29 @@ fn kept(n: usize, gone: &[usize]) -> Vec<usize> {
 /// Errors: a model error when the result does not validate (an empty layer; the planners
 /// never produce one).
 pub fn apply(net: &Network, plan: &Plan, origin: &str) -> Result<Network> {
-    let n_layers = net.layers.len();
+    let n_layers = net.layers().len();
     if plan.units.len() != n_layers {
         return Err(Error::usage(format!(
             "a compaction plan for {} layers cannot apply to a network of {n_layers}",
             plan.units.len()
         )));
     }
-    let keep_in = kept(net.input.size, &plan.inputs);
+    let keep_in = kept(net.input().size, &plan.inputs);
     let pick = |v: &[f32]| keep_in.iter().map(|&i| v[i]).collect::<Vec<f32>>();
     let input = InputSpec {
         size: keep_in.len(),
-        layout: net.input.layout,
-        low: pick(&net.input.low),
-        high: pick(&net.input.high),
+        layout: net.input().layout,
+        low: pick(&net.input().low),
+        high: pick(&net.input().high),
         names: net
-            .input
+            .input()
             .names
             .as_ref()
             .map(|n| keep_in.iter().map(|&i| n[i].clone()).collect()),
     };
     let mut layers = Vec::with_capacity(n_layers);
     let mut cols = keep_in;
-    for (l, layer) in net.layers.iter().enumerate() {
+    for (l, layer) in net.layers().iter().enumerate() {
         let gone: Vec<usize> = plan.units[l].iter().map(|u| u.0).collect();
         let rows = kept(layer.units(), &gone);
         let weights = layer.weights.select(Axis(0), &rows).select(Axis(1), &cols);
@@ -387,10 +392,10 @@ pub fn apply(net: &Network, plan: &Plan, origin: &str) -> Result<Network> {
         });
         cols = rows;
     }
-    let mut out = Network::new(origin, net.name.clone(), input, layers)?;
-    out.description = net.description.clone();
-    out.extra = net.extra.clone();
-    Ok(out)
+    let mut parts = net.to_parts();
+    parts.input = input;
+    parts.layers = layers;
+    Network::from_parts(parts, origin)
 }
 
 /// Removes every unit and input feature that qualifies under the module's rules, round
@@ -401,11 +406,11 @@ pub fn apply(net: &Network, plan: &Plan, origin: &str) -> Result<Network> {
 /// layers; a model error when the result does not validate.
 pub fn compact(net: &Network, opts: &CompactOptions, origin: &str) -> Result<Compaction> {
     if let Some(na) = &opts.never_active {
-        let hidden = net.layers.len() - 1;
+        let hidden = net.layers().len() - 1;
         let ok = na.len() == hidden
             && na
                 .iter()
-                .zip(&net.layers)
+                .zip(net.layers())
                 .all(|(v, layer)| v.len() == layer.units());
         if !ok {
             return Err(Error::usage(
@@ -416,11 +421,11 @@ pub fn compact(net: &Network, opts: &CompactOptions, origin: &str) -> Result<Com
     let mut current = net.clone();
     // Original index of every remaining unit, per layer, and of every remaining input.
     let mut unit_ids: Vec<Vec<usize>> = net
-        .layers
+        .layers()
         .iter()
         .map(|l| (0..l.units()).collect())
         .collect();
-    let mut input_ids: Vec<usize> = (0..net.input.size).collect();
+    let mut input_ids: Vec<usize> = (0..net.input().size).collect();
     let mut never_active = opts.never_active.clone();
     let mut removed = Vec::new();
     // Each productive round removes at least one unit or input, so the loop ends.
@@ -464,8 +469,8 @@ pub fn compact(net: &Network, opts: &CompactOptions, origin: &str) -> Result<Com
         }
     }
     let zero_inputs_kept = {
-        let w = &current.layers[0].weights;
-        (0..current.input.size)
+        let w = &current.layers()[0].weights;
+        (0..current.input().size)
             .filter(|&i| w.column(i).iter().all(|&x| x == 0.0))
             .count()
     };
@@ -544,7 +549,7 @@ pub fn compare_with_progress(
             .into_iter()
             .filter(|r| {
                 r.iter()
-                    .zip(original.input.low.iter().zip(&original.input.high))
+                    .zip(original.input().low.iter().zip(&original.input().high))
                     .any(|(v, (lo, hi))| v < lo || v > hi)
             })
             .count();
@@ -621,14 +626,14 @@ impl Comparison {
 /// screening report of `net`; units it does not list count as active. This is what
 /// [`CompactRequest::dead_on_probe`] removes.
 pub fn never_active(net: &Network, units: &[UnitScreen]) -> Vec<Vec<bool>> {
-    let hidden = net.layers.len() - 1;
-    let mut out: Vec<Vec<bool>> = net.layers[..hidden]
+    let hidden = net.layers().len() - 1;
+    let mut out: Vec<Vec<bool>> = net.layers()[..hidden]
         .iter()
         .map(|l| vec![false; l.units()])
         .collect();
     for u in units {
         let relu = net
-            .layers
+            .layers()
             .get(u.layer_index)
             .is_some_and(|l| l.activation == Activation::Relu);
         if let Some(slot) = out.get_mut(u.layer_index).and_then(|v| v.get_mut(u.unit)) {

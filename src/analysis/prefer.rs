@@ -182,11 +182,11 @@ struct Row {
 /// # Panics
 /// When `unit` is not a unit of the first layer.
 pub fn closed_form_first_layer(net: &Network, unit: usize) -> (f64, Vec<f32>) {
-    let l = &net.layers[0];
+    let l = &net.layers()[0];
     let w = l.weights.row(unit);
     let mut value = f64::from(l.bias[unit]);
     let mut x = Vec::with_capacity(w.len());
-    for ((wi, lo), hi) in w.iter().zip(&net.input.low).zip(&net.input.high) {
+    for ((wi, lo), hi) in w.iter().zip(&net.input().low).zip(&net.input().high) {
         let wf = f64::from(*wi);
         value += (wf * f64::from(*lo)).max(wf * f64::from(*hi));
         x.push(if *wi > 0.0 {
@@ -203,13 +203,13 @@ pub fn closed_form_first_layer(net: &Network, unit: usize) -> (f64, Vec<f32>) {
 /// Checks what depends on the model (the options themselves are valid by construction):
 /// the layer and units exist, and a total-variation penalty has an image to smooth.
 fn check_request(net: &Network, layer: usize, units: &[usize], opts: &PreferOptions) -> Result<()> {
-    let Some(l) = net.layers.get(layer) else {
+    let Some(l) = net.layers().get(layer) else {
         return Err(Error::bad_option(
             "layer",
             layer,
             format!(
                 "must be a layer index below {}, the number of layers",
-                net.layers.len()
+                net.layers().len()
             ),
         ));
     };
@@ -225,7 +225,7 @@ fn check_request(net: &Network, layer: usize, units: &[usize], opts: &PreferOpti
             ),
         ));
     }
-    if opts.tv > 0.0 && !matches!(net.input.layout, Layout::Image { .. }) {
+    if opts.tv > 0.0 && !matches!(net.input().layout, Layout::Image { .. }) {
         return Err(Error::bad_option(
             "tv",
             opts.tv,
@@ -323,7 +323,7 @@ pub fn prefer(
 ) -> Result<Vec<Preferred>> {
     check_request(net, layer, units, opts)?;
     if layer == 0 && opts.unpenalised() {
-        let mut inputs = Array2::<f32>::zeros((units.len(), net.input.size));
+        let mut inputs = Array2::<f32>::zeros((units.len(), net.input().size));
         for (mut row, &u) in inputs.rows_mut().into_iter().zip(units) {
             let (_, x) = closed_form_first_layer(net, u);
             row.iter_mut().zip(&x).for_each(|(d, s)| *d = *s);
@@ -387,9 +387,9 @@ fn ascend(
 /// The starts of every unit, `restarts` per unit in unit order: start 0 is the box centre,
 /// the others uniform in the box from a `ChaCha8Rng` seeded with the options' seed.
 fn start_rows(net: &Network, units: usize, opts: &PreferOptions) -> Vec<Row> {
-    let n = net.input.size;
-    let (low, high) = (&net.input.low, &net.input.high);
-    let centre = net.input.centre();
+    let n = net.input().size;
+    let (low, high) = (&net.input().low, &net.input().high);
+    let centre = net.input().centre();
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
     (0..units * opts.restarts)
         .map(|row| {
@@ -439,9 +439,9 @@ fn run_ascent(
     opts: &PreferOptions,
     progress: &dyn Progress,
 ) -> Result<()> {
-    let n = net.input.size;
-    let low = &net.input.low;
-    let high = &net.input.high;
+    let n = net.input().size;
+    let low = &net.input().low;
+    let high = &net.input().high;
     let width: Vec<f32> = low.iter().zip(high).map(|(l, h)| h - l).collect();
     let mut batch = Batch::default();
     let steps = opts.steps;
@@ -468,7 +468,7 @@ fn run_ascent(
             bc2: 1.0 - BETA2.powi(t as i32 + 1),
             l2: opts.l2,
             tv: opts.tv,
-            layout: net.input.layout,
+            layout: net.input().layout,
             last: t == steps,
         };
         step_moving_rows(rows, &mut batch, n, params);
@@ -486,7 +486,7 @@ fn gradients_of_moving_rows(
     batch: &mut Batch,
     progress: &dyn Progress,
 ) -> Result<()> {
-    let n = net.input.size;
+    let n = net.input().size;
     let na = batch.rows.len();
     batch.x.resize(na * n, 0.0);
     batch.z.resize(na, 0.0);
@@ -545,8 +545,8 @@ fn best_starts(
     units: usize,
     restarts: usize,
 ) -> (Array2<f32>, Vec<Outcome>) {
-    let centre = net.input.centre();
-    let mut inputs = Array2::<f32>::zeros((units, net.input.size));
+    let centre = net.input().centre();
+    let mut inputs = Array2::<f32>::zeros((units, net.input().size));
     let mut outcome = Vec::with_capacity(units);
     for (ui, mut dst) in inputs.rows_mut().into_iter().enumerate() {
         let range = ui * restarts..(ui + 1) * restarts;
@@ -776,9 +776,9 @@ mod tests {
         };
         let res = prefer(&net, 0, &[0, 3], &opts, &Silent).expect("prefer");
         for r in &res {
-            let w = net.layers[0].weights.row(r.unit);
+            let w = net.layers()[0].weights.row(r.unit);
             for i in 0..20 {
-                let want = (w[i] / (2.0 * l2)).clamp(net.input.low[i], net.input.high[i]);
+                let want = (w[i] / (2.0 * l2)).clamp(net.input().low[i], net.input().high[i]);
                 assert_abs_diff_eq!(r.input[i], want, epsilon = 5e-3);
             }
             assert_abs_diff_eq!(r.activation, r.preactivation.tanh(), epsilon = 1e-6);
@@ -793,13 +793,13 @@ mod tests {
         let net = random_net(3, &[10, 16, 8, 3], &acts, Layout::Vector);
         let b = interval_bounds(&net);
         for layer in 1..3 {
-            let units: Vec<usize> = (0..net.layers[layer].units()).collect();
+            let units: Vec<usize> = (0..net.layers()[layer].units()).collect();
             let res =
                 prefer(&net, layer, &units, &PreferOptions::default(), &Silent).expect("prefer");
             for r in &res {
                 assert!(r.finite);
                 for (i, &x) in r.input.iter().enumerate() {
-                    assert!(x >= net.input.low[i] && x <= net.input.high[i]);
+                    assert!(x >= net.input().low[i] && x <= net.input().high[i]);
                 }
                 assert!(f64::from(r.preactivation) <= b.upper[layer][r.unit] + 1e-4);
             }
@@ -992,6 +992,6 @@ mod tests {
         };
         let r = prefer_by_ascent(&net, 0, &[1], &o, &Silent).expect("prefer");
         assert_eq!(r[0].steps, 0);
-        assert_eq!(r[0].input, net.input.centre());
+        assert_eq!(r[0].input, net.input().centre());
     }
 }

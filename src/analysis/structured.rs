@@ -71,8 +71,8 @@ pub fn units_removed(fraction: f64, units: usize) -> usize {
 /// The L1 norm of each hidden unit's incoming weights, one `[units]` vector per hidden
 /// layer (all layers but the last), in f64.
 pub fn l1_scores(net: &Network) -> Vec<Vec<f64>> {
-    let hidden = net.layers.len() - 1;
-    net.layers[..hidden]
+    let hidden = net.layers().len() - 1;
+    net.layers()[..hidden]
         .iter()
         .map(|l| {
             l.weights
@@ -95,8 +95,8 @@ pub fn mean_abs_activation(
     progress: &dyn Progress,
 ) -> Result<Vec<Vec<f64>>> {
     let describe = probe.describe();
-    let hidden = net.layers.len() - 1;
-    let mut sums: Vec<Vec<f64>> = net.layers[..hidden]
+    let hidden = net.layers().len() - 1;
+    let mut sums: Vec<Vec<f64>> = net.layers()[..hidden]
         .iter()
         .map(|l| vec![0.0; l.units()])
         .collect();
@@ -167,7 +167,7 @@ pub fn plan_units(
     only: Option<usize>,
 ) -> Result<Plan> {
     check_fraction(net, fraction, only)?;
-    let hidden = net.layers.len() - 1;
+    let hidden = net.layers().len() - 1;
     let mut plan = Plan::empty(net);
     for (l, s) in scores.iter().enumerate().take(hidden) {
         if only.is_some_and(|o| o != l) {
@@ -188,7 +188,7 @@ pub fn check_fraction(net: &Network, fraction: f64, only: Option<usize>) -> Resu
             "a unit-pruning fraction must be a number from 0 to 1, got {fraction}"
         )));
     }
-    let hidden = net.layers.len() - 1;
+    let hidden = net.layers().len() - 1;
     if hidden == 0 {
         return Err(Error::usage(
             "the model has no hidden layer, so it has no units to prune (the output layer is never pruned)",
@@ -201,7 +201,7 @@ pub fn check_fraction(net: &Network, fraction: f64, only: Option<usize>) -> Resu
             "layer {o} is not a hidden layer (the model has {hidden})"
         )));
     }
-    for (l, layer) in net.layers[..hidden].iter().enumerate() {
+    for (l, layer) in net.layers()[..hidden].iter().enumerate() {
         if only.is_some_and(|o| o != l) {
             continue;
         }
@@ -271,7 +271,7 @@ pub fn unit_sweep(
             "has no labels: a pruning sweep needs a probe whose header names a 'label' column",
         ));
     }
-    let hidden = net.layers.len() - 1;
+    let hidden = net.layers().len() - 1;
     let targets: Vec<Option<usize>> = if per_layer {
         (0..hidden).map(Some).collect()
     } else {
@@ -284,7 +284,7 @@ pub fn unit_sweep(
             check_fraction(net, f, only)?;
             let plan = plan_units(net, scores, f, only)?;
             let removed = plan.units.iter().map(Vec::len).sum();
-            let units = net.layers[..hidden]
+            let units = net.layers()[..hidden]
                 .iter()
                 .enumerate()
                 .filter(|(l, _)| only.is_none_or(|o| o == *l))
@@ -425,14 +425,14 @@ mod tests {
         assert_eq!(removal_order(&s[0]), vec![1, 2, 0, 3]);
         // floor(0.5 * 4) = 2: u1 and u2 go; the output's columns 1 and 2 with them.
         let p = prune_units(&net, &s, 0.5, None, "t").unwrap();
-        assert_eq!(p.layers[0].weights, array![[1.0, -2.0], [0.0, 4.0]]);
-        assert_eq!(p.layers[1].weights, array![[1.0, 1.0], [0.0, 0.0]]);
-        assert_eq!(p.layers[1].bias, array![0.0, 0.5]);
+        assert_eq!(p.layers()[0].weights, array![[1.0, -2.0], [0.0, 4.0]]);
+        assert_eq!(p.layers()[1].weights, array![[1.0, 1.0], [0.0, 0.0]]);
+        assert_eq!(p.layers()[1].bias, array![0.0, 0.5]);
         // floor(0.25 * 4) = 1: only u1 (the tie goes to the lower index).
         let p = prune_units(&net, &s, 0.25, None, "t").unwrap();
-        assert_eq!(p.layers[0].units(), 3);
-        assert_eq!(p.layers[0].weights.row(0).to_vec(), vec![1.0, -2.0]);
-        assert_eq!(p.layers[0].weights.row(1).to_vec(), vec![-0.25, 0.25]);
+        assert_eq!(p.layers()[0].units(), 3);
+        assert_eq!(p.layers()[0].weights.row(0).to_vec(), vec![1.0, -2.0]);
+        assert_eq!(p.layers()[0].weights.row(1).to_vec(), vec![-0.25, 0.25]);
     }
 
     #[test]

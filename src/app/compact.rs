@@ -21,7 +21,7 @@ const LISTED_UNITS: usize = 40;
 pub fn default_file_name(state: &AppState) -> String {
     let base = state
         .net()
-        .map_or_else(|| "model".to_string(), |n| n.name.clone());
+        .map_or_else(|| "model".to_string(), |n| n.name().to_string());
     format!("{base}-compacted.json")
 }
 

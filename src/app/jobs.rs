@@ -249,7 +249,7 @@ impl ReceptorApp {
         if let Some(p) = &path {
             Prefs::remember(&mut self.state.prefs.recent_models, p);
         }
-        let first = net.layers.iter().position(|l| l.units() > 0).unwrap_or(0);
+        let first = net.layers().iter().position(|l| l.units() > 0).unwrap_or(0);
         self.state.selection = Some(Selection {
             layer: first,
             unit: 0,
@@ -257,7 +257,7 @@ impl ReceptorApp {
         self.state.history.clear();
         self.state.confirm(format!(
             "Opened {origin}: {} layers, {} parameters",
-            net.layers.len(),
+            net.layers().len(),
             net.parameter_count()
         ));
         self.state.model = Some(OpenModel {
@@ -315,7 +315,7 @@ impl ReceptorApp {
         };
         let tag = self.state.tag();
         let layer = self.state.current_layer();
-        if layer < net.layers.len() && !self.state.results.preferred.contains_key(&layer) {
+        if layer < net.layers().len() && !self.state.results.preferred.contains_key(&layer) {
             self.queue_prefer(&net, layer, None);
         }
         let results = &mut self.state.results;
@@ -347,7 +347,7 @@ impl ReceptorApp {
         layer: usize,
         missing: Option<Vec<usize>>,
     ) {
-        let n = net.layers[layer].units();
+        let n = net.layers()[layer].units();
         let settings = self.state.prefs.search.clone();
         let units = missing.unwrap_or_else(|| (0..n).collect());
         let tag = self.state.tag();

@@ -32,7 +32,7 @@ pub fn menu_ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action
         });
         ui.separator();
         if let Some(m) = &state.model {
-            ui.label(egui::RichText::new(&m.net.name).strong());
+            ui.label(egui::RichText::new(m.net.name()).strong());
             ui.weak(&m.origin);
         }
     });

@@ -390,7 +390,7 @@ impl ReceptorApp {
         if ctx.memory(|m| m.focused().is_some()) {
             return;
         }
-        let n_layers = self.state.net().map_or(0, |n| n.layers.len());
+        let n_layers = self.state.net().map_or(0, |n| n.layers().len());
         ctx.input_mut(|i| {
             if i.consume_key(Modifiers::NONE, Key::Escape) && self.worker.pending() > 0 {
                 self.actions.push(Action::Cancel);

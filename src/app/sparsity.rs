@@ -26,7 +26,7 @@ impl SparsityPanel {
             .show(ui, |ui| {
                 ui.horizontal(|ui| {
                     ui.label("Layer:");
-                    for (i, l) in net.layers.iter().enumerate() {
+                    for (i, l) in net.layers().iter().enumerate() {
                         if ui.selectable_label(i == layer, &l.name).clicked() {
                             state.select(Selection { layer: i, unit: 0 }, false);
                         }
@@ -35,7 +35,7 @@ impl SparsityPanel {
                 ui.add_space(4.0);
                 ui.heading(format!(
                     "Weight magnitudes of layer {}",
-                    net.layers[layer].name
+                    net.layers()[layer].name
                 ));
                 match state.results.stats.as_ref() {
                     None => {
@@ -75,7 +75,7 @@ impl SparsityPanel {
 fn magnitude_ui(ui: &mut egui::Ui, stats: &StatsResult, net: &Network, layer: usize) {
     let h = &stats.magnitude[layer];
     let s = &stats.layers[layer];
-    let total = net.layers[layer].weights.len();
+    let total = net.layers()[layer].weights.len();
     ui.label(format!(
         "{total} weights · {:.1}% near zero (|w| ≤ {:.3e}, 1% of the largest |w| {:.3e}) · {} exactly zero",
         100.0 * s.near_zero_frac,
@@ -180,7 +180,7 @@ fn pruning_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, actions: &
         .unit_curves_of(criterion)
         .cloned()
         .unwrap_or_default();
-    let hidden = net.layers.len().saturating_sub(1);
+    let hidden = net.layers().len().saturating_sub(1);
     let mut whole = Vec::new();
     if let Some(points) = magnitude.as_ref() {
         whole.push(Series {
@@ -208,7 +208,11 @@ fn pruning_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, actions: &
         });
         for l in 0..hidden {
             per_layer.push(Series {
-                name: format!("{} ({} units)", net.layers[l].name, net.layers[l].units()),
+                name: format!(
+                    "{} ({} units)",
+                    net.layers()[l].name,
+                    net.layers()[l].units()
+                ),
                 colour: 2 + l,
                 points: c
                     .per_layer
@@ -355,9 +359,9 @@ fn table_ui(
             ui.monospace(format!("{:.1}%", 100.0 * p.accuracy));
         }
         ui.end_row();
-        let hidden = net.layers.len().saturating_sub(1);
+        let hidden = net.layers().len().saturating_sub(1);
         for l in 0..hidden {
-            ui.strong(format!("units of {} only", net.layers[l].name));
+            ui.strong(format!("units of {} only", net.layers()[l].name));
             for p in units.per_layer.iter().filter(|p| p.layer == Some(l)) {
                 ui.monospace(format!("{:.1}%", 100.0 * p.accuracy));
             }

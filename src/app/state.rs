@@ -246,7 +246,8 @@ pub struct ScreenResult {
 impl ScreenResult {
     /// Groups the core's report by layer for `net`.
     pub fn new(net: &Network, report: ScreenReport) -> Self {
-        let mut layers: Vec<Vec<UnitScreen>> = vec![Vec::new(); net.layers.len().saturating_sub(1)];
+        let mut layers: Vec<Vec<UnitScreen>> =
+            vec![Vec::new(); net.layers().len().saturating_sub(1)];
         for u in &report.units {
             if let Some(v) = layers.get_mut(u.layer_index) {
                 v.push(u.clone());
@@ -721,7 +722,7 @@ impl AppState {
         let Some(net) = self.net() else {
             return Arc::new(Vec::new());
         };
-        let n = net.layers.get(layer).map_or(0, |l| l.units());
+        let n = net.layers().get(layer).map_or(0, |l| l.units());
         let pref_count = self
             .results
             .preferred

@@ -112,7 +112,7 @@ pub enum Job {
 impl Job {
     fn title(&self, net: &Network) -> String {
         let lname = |l: usize| {
-            net.layers
+            net.layers()
                 .get(l)
                 .map_or("?", |x| x.name.as_str())
                 .to_string()

@@ -40,6 +40,7 @@ pub struct CompactArgs {
     #[arg(long, value_name = "FILE")]
     pub tensors: Option<PathBuf>,
 
+    /// Where the reference data comes from.
     #[command(flatten)]
     pub probe: ProbeArgs,
 
@@ -228,7 +229,7 @@ pub fn summary_lines(original: &Network, c: &Compaction) -> Vec<String> {
         .filter_map(|r| match (r.layer, r.reason) {
             (Some(l), Reason::Constant { value }) => Some(format!(
                 "{}[{}] = {}",
-                original.layers[l].name,
+                original.layers()[l].name,
                 r.index,
                 f32_text(value as f32)
             )),

@@ -71,6 +71,7 @@ pub struct PreferArgs {
     #[arg(long, value_name = "FILE")]
     pub png: Option<PathBuf>,
 
+    /// Output and loading options shared by every command.
     #[command(flatten)]
     pub common: CommonArgs,
 }
@@ -83,7 +84,7 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
     let layer = net.require_layer(&args.layer)?;
     let units: Vec<usize> = match args.unit {
         Some(k) => vec![k],
-        None => (0..net.layers[layer].units()).collect(),
+        None => (0..net.layers()[layer].units()).collect(),
     };
     let found = prefer(&net, layer, &units, &opts, &Silent)?;
     for p in found.iter().filter(|p| !p.finite) {
@@ -104,7 +105,7 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
             ("l2", Cell::F32(args.l2)),
             ("tv", Cell::F32(args.tv)),
         ];
-        let size = net.input.size;
+        let size = net.input().size;
         tables::write_prefer(args.common.format, w, &args.layer, size, &found, &extra)?;
         Ok::<(), Stop>(())
     })?;
@@ -122,5 +123,5 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
 /// horizontal strip per unit, strips stacked top to bottom.
 pub fn render_png(net: &Network, found: &[Preferred]) -> Result<Vec<u8>> {
     let inputs: Vec<Option<&[f32]>> = found.iter().map(|p| Some(p.input.as_slice())).collect();
-    picture::preferred_grid(&net.input, &inputs)?.png_bytes()
+    picture::preferred_grid(net.input(), &inputs)?.png_bytes()
 }

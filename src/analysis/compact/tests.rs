@@ -35,8 +35,8 @@ fn layer(name: &str, act: Activation, w: Array2<f32>, b: Array1<f32>) -> Layer {
 /// Uniform samples of the box of `net`, seeded.
 fn box_samples(net: &Network, n: usize, seed: u64) -> Array2<f32> {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
-    Array2::from_shape_fn((n, net.input.size), |(_, i)| {
-        rng.random_range(net.input.low[i]..=net.input.high[i])
+    Array2::from_shape_fn((n, net.input().size), |(_, i)| {
+        rng.random_range(net.input().low[i]..=net.input().high[i])
     })
 }
 
@@ -99,21 +99,21 @@ fn planted_dead_unit_and_zero_input_column() {
         ]
     );
     assert_eq!(c.kept_inputs, vec![0, 1]);
-    assert_eq!(s.input.size, 2);
-    assert_eq!(s.input.names, Some(vec!["f0".into(), "f1".into()]));
-    assert_eq!(s.input.low, vec![0.0, 0.0]);
+    assert_eq!(s.input().size, 2);
+    assert_eq!(s.input().names, Some(vec!["f0".into(), "f1".into()]));
+    assert_eq!(s.input().low, vec![0.0, 0.0]);
     assert_eq!(
-        s.layers[0].weights,
+        s.layers()[0].weights,
         array![[1.0, 1.0], [0.0, 1.0], [2.0, -1.0]]
     );
-    assert_eq!(s.layers[0].bias, array![0.0, -0.5, 0.1]);
+    assert_eq!(s.layers()[0].bias, array![0.0, -0.5, 0.1]);
     // Column 1 of the output layer (the dead unit's outgoing weights) is gone.
     assert_eq!(
-        s.layers[1].weights,
+        s.layers()[1].weights,
         array![[1.0, -1.0, 0.5], [-1.0, 2.0, 0.25]]
     );
-    assert_eq!(s.layers[1].bias, array![0.0, 0.1]);
-    assert_eq!(s.layers[1].labels, net.layers[1].labels);
+    assert_eq!(s.layers()[1].bias, array![0.0, 0.1]);
+    assert_eq!(s.layers()[1].labels, net.layers()[1].labels);
     assert_eq!(c.counts(Some(0)), vec![("dead_proven", 1)]);
     assert_eq!(c.counts(None), vec![("zero_outgoing", 1)]);
     // Same outputs on the box (a dead relu outputs exactly 0 there).
@@ -241,9 +241,9 @@ fn tanh_bounded_to_a_constant_is_folded_only_when_asked() {
     assert_abs_diff_eq!(value, 1.0, epsilon = 1e-15);
     let s = &c.network;
     // Only u1 = tanh(x1) is left, reading the one input left, x1.
-    assert_eq!(s.layers[0].weights, array![[1.0]]);
-    assert_eq!(s.layers[1].weights, array![[1.0], [0.0]]);
-    assert_eq!(s.layers[1].bias, array![3.25, -2.0]);
+    assert_eq!(s.layers()[0].weights, array![[1.0]]);
+    assert_eq!(s.layers()[1].weights, array![[1.0], [0.0]]);
+    assert_eq!(s.layers()[1].bias, array![3.25, -2.0]);
     assert_eq!(c.kept_inputs, vec![1]);
     let x = box_samples(&net, 1000, 3);
     assert!(max_diff(&net, s, &c.kept_inputs, &x) <= 1e-6);
@@ -268,7 +268,7 @@ fn dead_relu_is_dead_proven_even_when_folding() {
     };
     let c = compact(&net, &opts, "t").unwrap();
     assert_eq!(c.removed[1].reason, Reason::DeadProven);
-    assert_eq!(c.network.layers[1].bias, array![0.5]);
+    assert_eq!(c.network.layers()[1].bias, array![0.5]);
 }
 
 #[test]
@@ -353,9 +353,9 @@ fn output_units_stay_and_every_layer_keeps_a_unit() {
     );
     let net = Network::new("test", "n", input(2), vec![h, o]).unwrap();
     let c = compact(&net, &CompactOptions::default(), "t").unwrap();
-    assert_eq!(c.network.layers[1].units(), 2);
-    assert_eq!(c.network.layers[0].units(), 1);
-    assert!(c.network.input.size >= 1);
+    assert_eq!(c.network.layers()[1].units(), 2);
+    assert_eq!(c.network.layers()[0].units(), 1);
+    assert!(c.network.input().size >= 1);
     let x = box_samples(&net, 100, 4);
     assert_eq!(max_diff(&net, &c.network, &c.kept_inputs, &x), 0.0);
 }
@@ -380,7 +380,7 @@ fn image_inputs_are_kept_and_counted() {
     let c = compact(&net, &CompactOptions::default(), "t").unwrap();
     assert!(c.removed.is_empty());
     assert_eq!(c.zero_inputs_kept, 1);
-    assert_eq!(c.network.input.layout, net.input.layout);
+    assert_eq!(c.network.input().layout, net.input().layout);
 }
 
 #[test]
@@ -556,8 +556,9 @@ fn never_active_takes_relu_units_screening_found_dead() {
     .unwrap();
     assert_eq!(never_active(&net, &report.units), vec![vec![true, false]]);
     // A tanh unit is never taken, whatever its status.
-    let mut t = net.clone();
-    t.layers[0].activation = Activation::Tanh;
+    let mut parts = net.to_parts();
+    parts.layers[0].activation = Activation::Tanh;
+    let t = Network::from_parts(parts, "t").unwrap();
     let mut units = report.units.clone();
     units[0].status = Status::DeadOnProbe;
     assert_eq!(never_active(&t, &units), vec![vec![false, false]]);
