@@ -18,6 +18,7 @@ fn main() -> ExitCode {
     match cli.command {
         None => open_app(
             cli.model,
+            cli.probe,
             cli.allow_outside_paths,
             cli.input_box.to_input_box(),
         ),
@@ -36,20 +37,27 @@ fn main() -> ExitCode {
 #[cfg(feature = "gui")]
 fn open_app(
     model: Option<std::path::PathBuf>,
+    probe: Option<std::path::PathBuf>,
     allow_outside_paths: bool,
     input_box: receptor::model::InputBox,
 ) -> ExitCode {
-    receptor::app::run(model, allow_outside_paths, input_box)
+    receptor::app::run(receptor::app::Start {
+        model,
+        probe,
+        allow_outside_paths,
+        input_box,
+    })
 }
 
 /// Without the `gui` feature there is no window; say so.
 #[cfg(not(feature = "gui"))]
 fn open_app(
     model: Option<std::path::PathBuf>,
+    probe: Option<std::path::PathBuf>,
     allow_outside_paths: bool,
     input_box: receptor::model::InputBox,
 ) -> ExitCode {
-    let _ = (model, allow_outside_paths, input_box);
+    let _ = (model, probe, allow_outside_paths, input_box);
     eprintln!(
         "receptor: the desktop app is not available in this build; see `receptor --help` for the commands"
     );

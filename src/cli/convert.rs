@@ -42,11 +42,9 @@ pub fn run(args: &ConvertArgs) -> Result<ExitCode> {
             args.out.display()
         )));
     }
-    if super::compact::same_file(&args.model, &args.out) {
-        return Err(Error::usage(format!(
-            "--out {} is the model file itself; write the converted model to another file",
-            args.out.display()
-        )));
+    crate::model::refuse_overwriting_model(&args.model, &args.out, "--out")?;
+    if let Some(t) = &args.tensors {
+        crate::model::refuse_overwriting_model(&args.model, t, "--tensors")?;
     }
     let net = load_model(&args.model, args.allow_outside_paths, &args.input_box)?;
     match &args.tensors {

@@ -108,7 +108,7 @@ pub fn zero_count(net: &Network) -> (usize, usize) {
 pub fn run(args: &PruneSweepArgs) -> Result<ExitCode> {
     // The sweep's fractions are checked by the sweep; --write-pruned by the same rule.
     if let Some(out) = &args.common.out {
-        super::compact::refuse_overwriting_input(&args.model, out, "--out")?;
+        crate::model::refuse_overwriting_model(&args.model, out, "--out")?;
     }
     if args.by == By::Unit {
         return run_units(args);
@@ -270,16 +270,14 @@ fn unit_scores(
     criterion: Criterion,
     probe_path: Option<&Path>,
 ) -> Result<Vec<Vec<f64>>> {
-    match (criterion, probe_path) {
-        (Criterion::L1, _) => Ok(structured::l1_scores(net)),
-        (Criterion::Activation, Some(p)) => {
-            let mut source = probe::open(p, net)?;
-            structured::mean_abs_activation(net, &mut *source, &Silent)
-        }
-        (Criterion::Activation, None) => {
-            Err(Error::usage("--criterion activation needs --probe DATA"))
-        }
-    }
+    let mut source = match probe_path {
+        Some(p) if criterion.needs_probe() => Some(probe::open(p, net)?),
+        _ => None,
+    };
+    let source = source
+        .as_deref_mut()
+        .map(|s| s as &mut dyn probe::ProbeSource);
+    structured::unit_scores(net, criterion, source, &Silent)
 }
 
 fn require_labels(source: &dyn probe::ProbeSource, path: &std::path::Path) -> Result<()> {

@@ -17,7 +17,7 @@ mod validate;
 mod write;
 
 pub use network::Network;
-pub use paths::resolve_side_path;
+pub use paths::{refuse_overwriting_model, resolve_side_path};
 pub use tensors_write::{check_side_file_location, tensors_bytes, write_json_with_tensors};
 pub use types::{
     Activation, InputSpec, Layer, Layout, NetworkParts, SIGMOID_SATURATION_Z, TANH_SATURATION_Z,
