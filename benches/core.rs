@@ -59,6 +59,7 @@ fn build_network(rng: &mut ChaCha8Rng) -> BenchResult<Network> {
         let bias = Array1::from_shape_simple_fn(units, || rng.random_range(-0.05f32..0.05));
         let last = i == SIZES.len() - 2;
         layers.push(Layer {
+            kind: receptor::model::LayerKind::Dense,
             name: if last {
                 "out".into()
             } else {

@@ -257,6 +257,7 @@ fn write_large_model(dir: &Path) -> PathBuf {
         let weights =
             ndarray::Array2::from_shape_fn((w[1], w[0]), |_| s * (rng.random::<f32>() * 2.0 - 1.0));
         layers.push(Layer {
+            kind: receptor::model::LayerKind::Dense,
             name: format!("fc{}", i + 1),
             activation: if i == 2 {
                 Activation::Softmax

@@ -192,6 +192,7 @@ pub fn init_layer(
     } as f32;
     let weights = Array2::from_shape_fn((units, inputs), |_| rng.random_range(-limit..limit));
     Layer {
+        kind: receptor::model::LayerKind::Dense,
         name: name.into(),
         activation,
         weights,

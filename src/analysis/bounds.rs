@@ -396,6 +396,7 @@ mod tests {
             names: None,
         };
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Identity,
             weights: array![[1.0, 1.0], [1.0, -1.0]],
@@ -403,6 +404,7 @@ mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Identity,
             weights: array![[1.0, 1.0]],
@@ -454,6 +456,7 @@ mod tests {
             names: None,
         };
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Relu,
             weights: array![[1.0, -1.0]],
@@ -461,6 +464,7 @@ mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Identity,
             weights: array![[2.0]],

@@ -308,6 +308,7 @@ pub fn apply(net: &Network, plan: &Plan, origin: &str) -> Result<Network> {
             }
         }
         layers.push(Layer {
+            kind: crate::model::LayerKind::Dense,
             name: layer.name.clone(),
             activation: layer.activation,
             weights,

@@ -959,6 +959,7 @@ mod tests {
         };
         let big = f32::MAX / 2.0;
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Relu,
             weights: array![[big, big], [big, big]],
@@ -966,6 +967,7 @@ mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Identity,
             weights: array![[big, big]],

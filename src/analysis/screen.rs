@@ -408,6 +408,7 @@ pub(crate) mod tests {
         };
         let units = w.nrows();
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: act,
             weights: w,
@@ -415,6 +416,7 @@ pub(crate) mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "out".into(),
             activation: Activation::Softmax,
             weights: Array2::from_elem((2, units), 0.1),

@@ -311,6 +311,7 @@ mod tests {
             names: None,
         };
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Relu,
             weights: array![[1.0, -2.0], [0.5, 0.0], [-0.25, 0.25], [0.0, 4.0]],
@@ -318,6 +319,7 @@ mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Identity,
             weights: array![[1.0, 1.0, 1.0, 1.0], [0.0, 0.0, 0.0, 0.0]],
