@@ -9,8 +9,8 @@
 //! `receptor-model/2` with its tensors in a safetensors side file.
 
 use super::{SOLDER_CLASSES, normal, rect, uniform, write_probe};
-use crate::conv_train::{self, Cnn, CnnTrainOptions};
-use crate::train::{Optimizer, Result, TrainError};
+use super::conv_train::{self, Cnn, CnnTrainOptions};
+use super::train::{Optimizer, Result, TrainError};
 use ndarray::{Array1, Array2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;

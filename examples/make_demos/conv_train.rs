@@ -18,7 +18,7 @@
 //! - Loss, optimisers and determinism as in `train.rs`: softmax cross-entropy, Adam or SGD
 //!   ([`Slot`]), every product through [`matmul_fixed`] on one thread, shuffling by ChaCha8.
 
-use crate::train::{Optimizer, Result, Slot, TrainError, loss_from_logits, matmul_fixed};
+use super::train::{Optimizer, Result, Slot, TrainError, loss_from_logits, matmul_fixed};
 use ndarray::{Array1, Array2, ArrayView2, Axis};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;

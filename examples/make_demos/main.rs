@@ -38,7 +38,7 @@ use std::process::ExitCode;
 use train::{Optimizer, Result, TrainError, TrainOptions};
 
 mod cnn_demo;
-mod conv_train;
+pub mod conv_train;
 mod train;
 
 /// Class names of the solder-joint classifier, in output order.
