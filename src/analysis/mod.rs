@@ -7,6 +7,7 @@ pub mod activity;
 pub mod bounds;
 pub mod compact;
 pub(crate) mod conv;
+pub mod fields;
 pub mod forward;
 pub mod gradient;
 pub mod prefer;

@@ -84,8 +84,9 @@ struct InlineTensor {
     data: Vec<f32>,
     /// Length of each row (the lists inside the outer list), or empty for a 1-D list.
     row_lens: Vec<usize>,
-    /// `deeper[d]`: the length of every list at nesting level `d + 2` (inside a row).
-    deeper: Vec<Vec<usize>>,
+    /// `counts[d]`: the number of entries of every list at nesting level `d + 1` (level 1
+    /// is a row of the outer list).
+    counts: Vec<Vec<usize>>,
     /// True when the outer list held numbers (1-D).
     flat: bool,
     /// The nesting level of the lists that hold numbers (0 = the outer list), once seen.
@@ -218,12 +219,11 @@ impl<'de> Visitor<'de> for CellSeed<'_> {
         }
         if level == 1 {
             t.row_lens.push(t.data.len() - start);
-        } else {
-            if t.deeper.len() < level - 1 {
-                t.deeper.resize_with(level - 1, Vec::new);
-            }
-            t.deeper[level - 2].push(i);
         }
+        if t.counts.len() < level {
+            t.counts.resize_with(level, Vec::new);
+        }
+        t.counts[level - 1].push(i);
         Ok(Cell::Row)
     }
 }
@@ -798,7 +798,7 @@ fn inline_matrix(t: InlineTensor) -> std::result::Result<Array2<f32>, String> {
             "a flat list of numbers; weights must be a list of rows, one per unit".into()
         });
     }
-    if !t.deeper.is_empty() {
+    if t.counts.len() > 1 {
         return Err(
             "a nested list where a number belongs: a dense layer's weights are 2-D, a list of rows"
                 .into(),
@@ -823,23 +823,19 @@ fn inline_4d(t: InlineTensor) -> std::result::Result<ndarray::Array4<f32>, Strin
     if let Some(p) = &t.problem {
         return Err(problem_text(p));
     }
-    let dims = if t.flat { 1 } else { 2 + t.deeper.len() };
+    let dims = if t.flat { 1 } else { 1 + t.counts.len() };
     if dims != 4 || t.leaf_level != Some(3) {
         return Err(format!(
             "a {dims}-D list; conv2d weights are 4-D [out_channels, in_channels, kernel_h, kernel_w]"
         ));
     }
-    let outer = t.row_lens.len();
-    let mut shape = vec![outer, t.row_lens[0]];
-    if t.row_lens.iter().any(|&l| l != shape[1]) {
-        return Err("ragged: the lists of the second level have different lengths".into());
-    }
-    for (d, lens) in t.deeper.iter().enumerate() {
+    let mut shape = vec![t.row_lens.len()];
+    for (d, lens) in t.counts.iter().enumerate() {
         let first = lens.first().copied().unwrap_or(0);
         if lens.iter().any(|&l| l != first) {
             return Err(format!(
-                "ragged: the lists of level {} have different lengths",
-                d + 3
+                "ragged: the lists at depth {} have different lengths",
+                d + 2
             ));
         }
         shape.push(first);

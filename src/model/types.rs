@@ -223,6 +223,25 @@ impl Shape {
         }
     }
 
+    /// The centre position `(row, column)` of a map (`(h / 2, w / 2)`, rounded down);
+    /// `(0, 0)` for a vector.
+    pub fn centre(&self) -> (usize, usize) {
+        match *self {
+            Shape::Vector(_) => (0, 0),
+            Shape::Map { height, width, .. } => (height / 2, width / 2),
+        }
+    }
+
+    /// The flat index of unit / channel `channel` at position `(row, col)`:
+    /// `(channel x height + row) x width + col` for a map (channel first), `channel` for a
+    /// vector (the position is ignored).
+    pub fn index(&self, channel: usize, (row, col): (usize, usize)) -> usize {
+        match *self {
+            Shape::Vector(_) => channel,
+            Shape::Map { height, width, .. } => (channel * height + row) * width + col,
+        }
+    }
+
     /// The shape in words: `"64 values"` or `"16 x 30 x 30 map (channels x height x width)"`.
     pub fn describe(&self) -> String {
         match *self {
