@@ -8,9 +8,9 @@
 //! -> max pool 2 -> flatten -> dense 5 softmax`), trained by `conv_train.rs` and written as
 //! `receptor-model/2` with its tensors in a safetensors side file.
 
-use super::{SOLDER_CLASSES, normal, rect, uniform, write_probe};
 use super::conv_train::{self, Cnn, CnnTrainOptions};
 use super::train::{Optimizer, Result, TrainError};
+use super::{SOLDER_CLASSES, normal, rect, uniform, write_probe};
 use ndarray::{Array1, Array2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;

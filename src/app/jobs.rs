@@ -55,6 +55,7 @@ impl ReceptorApp {
                     self.notify_failure(failed);
                 }
             }
+            Reply::Conv { tag, reply } => self.on_conv_reply(tag, reply),
             Reply::Exported { result } => match result {
                 Ok(p) => self.state.confirm(format!("Saved {}", p.display())),
                 Err(e) => self.state.fail(e.to_string()),
@@ -302,6 +303,7 @@ impl ReceptorApp {
         };
         let tag = self.state.tag();
         let layer = self.state.current_layer();
+        self.request_conv(&net, tag);
         if layer < net.layers().len() && !self.state.results.preferred.contains_key(&layer) {
             self.queue_prefer(&net, layer, None);
         }

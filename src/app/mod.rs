@@ -6,6 +6,8 @@
 //! files are opened and exports written on helper threads.
 
 pub mod colour;
+pub mod conv;
+pub mod conv_jobs;
 pub mod detail;
 pub mod export;
 mod jobs;

@@ -356,6 +356,8 @@ pub struct Results {
     pub sensitivity: HashMap<usize, Slot<Arc<Sensitivity>>>,
     /// The pruning curve (model and a labelled probe).
     pub sweep: Slot<Arc<Vec<SweepPoint>>>,
+    /// The convolution views' results (model and probe).
+    pub conv: super::conv_jobs::ConvResults,
 }
 
 impl Results {
@@ -390,6 +392,7 @@ impl Results {
         self.activity = Slot::Empty;
         self.sensitivity.clear();
         self.sweep = Slot::Empty;
+        self.conv = super::conv_jobs::ConvResults::default();
     }
 
     /// The sensitivity slot of `layer` (empty when never asked for).
@@ -404,12 +407,14 @@ impl Results {
             lp.pending = 0;
         }
         self.each_slot(|s| s.forget_pending());
+        self.conv.forget_unfinished();
     }
 
     /// Before "Run again": every result that is not there (pending or failed) becomes
     /// not-asked-for, so it is asked for again.
     pub fn forget_unfinished(&mut self) {
         self.each_slot(|s| s.forget_unfinished());
+        self.conv.forget_unfinished();
     }
 
     /// Runs `f` on the state of every slot.
@@ -543,6 +548,8 @@ pub struct AppState {
     pub order_cache: Option<(OrderKey, Arc<Vec<usize>>)>,
     /// Pruning fraction chosen for "Save pruned model".
     pub prune_fraction: f64,
+    /// The probe row whose feature maps the convolution detail shows.
+    pub conv_sample: usize,
 }
 
 /// Everything the grid order depends on.
@@ -578,6 +585,7 @@ impl AppState {
             allow_outside_paths,
             order_cache: None,
             prune_fraction: 0.5,
+            conv_sample: 0,
         }
     }
 

@@ -84,6 +84,8 @@ pub enum Job {
     },
     /// The pruning curve on a labelled probe.
     Sweep(Arc<ProbeData>),
+    /// Work of the convolution views.
+    Conv(super::conv_jobs::ConvJob),
 }
 
 impl Job {
@@ -109,6 +111,7 @@ impl Job {
                 format!("Computing sensitivity of layer {}", lname(*layer))
             }
             Job::Sweep(_) => "Pruning sweep".into(),
+            Job::Conv(job) => job.title(net),
         }
     }
 }
@@ -201,6 +204,13 @@ pub enum Reply {
         tag: Tag,
         /// Points or error.
         result: Result<Arc<Vec<SweepPoint>>>,
+    },
+    /// A result of the convolution views.
+    Conv {
+        /// Model and probe tag.
+        tag: Tag,
+        /// The result.
+        reply: super::conv_jobs::ConvReply,
     },
     /// A file export finished.
     Exported {
@@ -479,6 +489,13 @@ fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
                 tag,
                 result: not_cancelled(result)?.map(Arc::new),
             }
+        }
+        Job::Conv(job) => {
+            let reply = job.run(net, progress);
+            if super::conv_jobs::ConvJob::was_cancelled(&reply) {
+                return None;
+            }
+            Reply::Conv { tag, reply }
         }
     };
     Some(reply)
