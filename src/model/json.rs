@@ -89,8 +89,8 @@ struct InlineTensor {
     counts: Vec<Vec<usize>>,
     /// True when the outer list held numbers (1-D).
     flat: bool,
-    /// The nesting level of the lists that hold numbers (0 = the outer list), once seen.
-    leaf_level: Option<usize>,
+    /// Bit `l` set when a list at nesting level `l` (0 = the outer list) holds numbers.
+    leaf_levels: u8,
     /// Index path of the value being read.
     path: Vec<usize>,
     /// First problem: (index path, description).
@@ -104,16 +104,18 @@ impl InlineTensor {
         }
     }
 
-    /// Records that a list at nesting `level` holds numbers; numbers at two depths are a
-    /// ragged tensor.
+    /// Records that a list at nesting `level` holds numbers.
     fn leaf_at(&mut self, level: usize) {
-        match self.leaf_level {
-            None => self.leaf_level = Some(level),
-            Some(l) if l != level => {
-                self.note("numbers at different depths of nesting (a ragged tensor)".into());
-            }
-            Some(_) => {}
+        self.leaf_levels |= 1 << level;
+    }
+
+    /// The first problem, including numbers at two depths of nesting (a ragged tensor).
+    fn first_problem(&self) -> Option<String> {
+        if let Some(p) = &self.problem {
+            return Some(problem_text(p));
         }
+        (self.leaf_levels.count_ones() > 1)
+            .then(|| "numbers at different depths of nesting (a ragged tensor)".to_string())
     }
 }
 
@@ -788,8 +790,8 @@ fn problem_text(p: &(Vec<usize>, String)) -> String {
 }
 
 fn inline_matrix(t: InlineTensor) -> std::result::Result<Array2<f32>, String> {
-    if let Some(p) = &t.problem {
-        return Err(problem_text(p));
+    if let Some(p) = t.first_problem() {
+        return Err(p);
     }
     if t.flat {
         return Err(if t.data.is_empty() {
@@ -820,11 +822,11 @@ fn inline_matrix(t: InlineTensor) -> std::result::Result<Array2<f32>, String> {
 /// A 4-D inline tensor `[a, b, c, d]` (a conv2d's weights), every list of one level the
 /// same length.
 fn inline_4d(t: InlineTensor) -> std::result::Result<ndarray::Array4<f32>, String> {
-    if let Some(p) = &t.problem {
-        return Err(problem_text(p));
+    if let Some(p) = t.first_problem() {
+        return Err(p);
     }
     let dims = if t.flat { 1 } else { 1 + t.counts.len() };
-    if dims != 4 || t.leaf_level != Some(3) {
+    if dims != 4 || t.leaf_levels != 1 << 3 {
         return Err(format!(
             "a {dims}-D list; conv2d weights are 4-D [out_channels, in_channels, kernel_h, kernel_w]"
         ));
@@ -848,8 +850,8 @@ fn inline_4d(t: InlineTensor) -> std::result::Result<ndarray::Array4<f32>, Strin
 }
 
 fn inline_vector(t: InlineTensor) -> std::result::Result<Array1<f32>, String> {
-    if let Some(p) = &t.problem {
-        return Err(problem_text(p));
+    if let Some(p) = t.first_problem() {
+        return Err(p);
     }
     if !t.flat {
         return Err("a list of rows; a bias must be a flat list of numbers".into());

@@ -56,6 +56,7 @@ fn check_network(net: &NetworkParts) -> std::result::Result<Shapes, String> {
     };
     let mut below = input_shape;
     let mut below_name = "the input".to_string();
+    let mut below_label = "the input".to_string();
     let mut seen = std::collections::HashSet::new();
     let mut outputs = Vec::with_capacity(net.layers.len());
     for (i, l) in net.layers.iter().enumerate() {
@@ -73,7 +74,7 @@ fn check_network(net: &NetworkParts) -> std::result::Result<Shapes, String> {
             let n = below.len();
             if !matches!(below, Shape::Map { .. }) {
                 let what = if i == 0 { "inputs" } else { "units" };
-                check_shapes(l, &label, n, &format!("{below_name} has {n} {what}"))?;
+                check_shapes(l, &label, n, &format!("{below_label} has {n} {what}"))?;
             }
             types::output_shape(l, below, &below_name)
         } else {
@@ -95,6 +96,7 @@ fn check_network(net: &NetworkParts) -> std::result::Result<Shapes, String> {
         outputs.push(out);
         below = out;
         below_name = format!("'{}'", l.name);
+        below_label = label;
     }
     Ok(Shapes {
         input: input_shape,
