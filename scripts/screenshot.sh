@@ -83,3 +83,29 @@ shot deeper-unit-weights.png
 # 4. Sparsity and pruning view.
 xdotool key Tab
 shot sparsity-and-pruning.png
+
+# 5. The convolutional demo with its labelled probe: first-layer filters in colour, channel
+#    2 in detail; then a second-layer channel with its preferred input and receptive field.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+"$BIN" demo-models/solder-joints-cnn.json --probe demo-models/solder-joints-cnn-probe.csv > "$WORK/app.log" 2>&1 &
+APP_PID=$!
+WID=""
+for _ in $(seq 1 60); do
+    kill -0 "$APP_PID" 2> /dev/null || { echo "screenshot.sh: the app exited:" >&2; cat "$WORK/app.log" >&2; exit 2; }
+    WID="$(xdotool search --name '^receptor$' 2> /dev/null | head -1 || true)"
+    [ -n "$WID" ] && break
+    sleep 0.5
+done
+[ -n "$WID" ] || { echo "screenshot.sh: no receptor window appeared" >&2; exit 2; }
+sleep 8
+xdotool windowfocus --sync "$WID"
+xdotool mousemove 1000 792
+xdotool key --delay 200 Right Right
+sleep 4
+shot cnn-first-layer.png
+xdotool key Next
+sleep 6
+xdotool key --delay 200 Right Right Right Right Right
+sleep 4
+shot cnn-deeper-channel.png

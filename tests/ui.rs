@@ -292,7 +292,7 @@ fn opening_a_second_model_cancels_the_first_and_never_mixes_results() {
     let large = write_large_model(dir.path());
     let mut h = app_with(Start {
         model: Some(large.clone()),
-        allow_outside_paths: false,
+        ..Start::default()
     });
     // Wait until the large model is open and its analysis is running.
     let t0 = Instant::now();
@@ -372,7 +372,7 @@ fn cancel_stops_the_running_analysis() {
     let large = write_large_model(dir.path());
     let mut h = app_with(Start {
         model: Some(large),
-        allow_outside_paths: false,
+        ..Start::default()
     });
     let t0 = Instant::now();
     while h.state().state().model.is_none() || h.query_by_label("Cancel").is_none() {
@@ -465,15 +465,21 @@ fn side_files_outside_the_folder_need_the_users_consent() {
 #[test]
 fn convolutional_demo_shows_filters_fields_and_feature_maps() {
     let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models");
+    // As `receptor demo-models/solder-joints-cnn.json --probe ...-probe.csv` starts it.
     let mut h = app_with(Start {
         model: Some(demo.join("solder-joints-cnn.json")),
+        probe: Some(demo.join("solder-joints-cnn-probe.csv")),
         allow_outside_paths: false,
     });
-    wait_idle(&mut h, Duration::from_secs(60));
-    h.state_mut()
-        .open_probe(&demo.join("solder-joints-cnn-probe.csv"));
-    h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(120));
+    assert!(
+        h.state()
+            .state()
+            .probe
+            .as_ref()
+            .is_some_and(|p| p.labelled()),
+        "the probe given at start is open"
+    );
 
     // Layer list: the receptive fields by the Araujo et al. recurrences, worked by hand:
     // conv1 3x3 -> 3; pool1 2x2 stride 2 -> 3 + 1 = 4, jump 2; conv2 3x3 -> 4 + 2*2 = 8;
@@ -511,7 +517,8 @@ fn convolutional_demo_shows_filters_fields_and_feature_maps() {
     h.get_by_label("feature map of conv1 channel 2 on sample 7");
 
     // A deeper channel: its preferred input with the receptive-field box.
-    h.get_by_label_contains("conv2  ·  conv 3×3  ·  16 channels").click();
+    h.get_by_label_contains("conv2  ·  conv 3×3  ·  16 channels")
+        .click();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(180));
     h.get_by_label_contains("Tiles: preferred inputs, cropped to the receptive field");

@@ -172,7 +172,10 @@ pub fn tile_texture(
             filter_picture(net, layer, unit, true).map(|p| maps::to_color_image(&p))
         }));
     }
-    let Some(pref) = state.preferred_of(layer, unit) else {
+    let Some(pref) = state
+        .preferred_of(layer, unit)
+        .filter(|p| p.input.len() == net.input().size)
+    else {
         return Some(None);
     };
     let input = pref.input.clone();
@@ -291,6 +294,9 @@ pub fn detail_ui(
         centre.0, centre.1
     ));
     match (state.preferred_of(sel.layer, sel.unit), image_side(net)) {
+        (Some(p), _) if p.input.len() != net.input().size => {
+            ui.weak("Not available: the search gave no input of the model's size.");
+        }
         (Some(p), Some(_)) => {
             let input = p.input.clone();
             let value = p.preactivation;

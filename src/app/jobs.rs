@@ -257,6 +257,8 @@ impl ReceptorApp {
         self.submit_model_job(net.clone());
         let choice = if std::mem::take(&mut self.state.run.demo_probe_pending) {
             ProbeChoice::File(PathBuf::from(DEMO_PROBE))
+        } else if let Some(p) = self.state.run.start_probe.take() {
+            ProbeChoice::File(p)
         } else {
             ProbeChoice::Uniform
         };

@@ -43,8 +43,9 @@ const DEMO_PROBE: &str = concat!(
 );
 
 /// Opens the window and runs until it is closed. `model` is opened at start (the bundled
-/// demo when `None`). Returns 0 on a normal close, 2 when no window could be opened.
-pub fn run(model: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
+/// demo when `None`), with the probe data `probe` when given. Returns 0 on a normal close,
+/// 2 when no window could be opened.
+pub fn run(model: Option<PathBuf>, probe: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
     let options = eframe::NativeOptions {
         viewport: egui::ViewportBuilder::default()
             .with_title("receptor")
@@ -56,6 +57,7 @@ pub fn run(model: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
     };
     let start = Start {
         model,
+        probe,
         allow_outside_paths,
     };
     let result = eframe::run_native(
@@ -77,6 +79,8 @@ pub fn run(model: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
 pub struct Start {
     /// A model file, or `None` for the bundled demo.
     pub model: Option<PathBuf>,
+    /// Probe data to open with `model` (`None`: the uniform probe).
+    pub probe: Option<PathBuf>,
     /// Allow side-file paths outside the model's folder.
     pub allow_outside_paths: bool,
 }
@@ -161,7 +165,10 @@ impl ReceptorApp {
             app.state.fail(e);
         }
         match start.model {
-            Some(p) => app.open_model(&p),
+            Some(p) => {
+                app.open_model(&p);
+                app.state.run.start_probe = start.probe;
+            }
             None => app.open_demo(),
         }
         app
@@ -365,6 +372,7 @@ impl ReceptorApp {
             return;
         }
         let n_layers = self.state.net().map_or(0, |n| n.layers().len());
+        let net = self.state.net().cloned();
         ctx.input_mut(|i| {
             if i.consume_key(Modifiers::NONE, Key::Escape) && self.worker.pending() > 0 {
                 self.actions.push(Action::Cancel);
@@ -386,23 +394,17 @@ impl ReceptorApp {
             }
             let sel = self.state.selection;
             if let Some(s) = sel {
-                if i.consume_key(Modifiers::NONE, Key::PageDown) && s.layer + 1 < n_layers {
-                    self.state.select(
-                        Selection {
-                            layer: s.layer + 1,
-                            unit: 0,
-                        },
-                        false,
-                    );
+                // Pooling and flatten layers have no units to show: skip them.
+                let has_units = |l: &usize| net.as_ref().is_some_and(|n| n.layer(*l).units() > 0);
+                if i.consume_key(Modifiers::NONE, Key::PageDown)
+                    && let Some(layer) = (s.layer + 1..n_layers).find(has_units)
+                {
+                    self.state.select(Selection { layer, unit: 0 }, false);
                 }
-                if i.consume_key(Modifiers::NONE, Key::PageUp) && s.layer > 0 {
-                    self.state.select(
-                        Selection {
-                            layer: s.layer - 1,
-                            unit: 0,
-                        },
-                        false,
-                    );
+                if i.consume_key(Modifiers::NONE, Key::PageUp)
+                    && let Some(layer) = (0..s.layer).rev().find(has_units)
+                {
+                    self.state.select(Selection { layer, unit: 0 }, false);
                 }
                 if i.consume_key(Modifiers::NONE, Key::Backspace)
                     && let Some(prev) = self.state.history.pop()

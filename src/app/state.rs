@@ -477,6 +477,8 @@ pub struct RunState {
     pub last_probe: u64,
     /// Open the demo's probe file once the demo model is in.
     pub demo_probe_pending: bool,
+    /// Probe data given at start, opened once the start model is in.
+    pub start_probe: Option<PathBuf>,
     /// Work was cancelled and is not complete.
     pub stopped: bool,
     /// Longest frame (time spent in `ui`) while work was running.

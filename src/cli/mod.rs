@@ -55,6 +55,11 @@ pub struct Cli {
     #[arg(value_name = "MODEL")]
     pub model: Option<PathBuf>,
 
+    /// Probe data (CSV or .npy) the desktop app opens with MODEL (default: samples drawn
+    /// uniformly from the input box; the bundled demo opens its own labelled probe).
+    #[arg(long, value_name = "DATA", requires = "model")]
+    pub probe: Option<PathBuf>,
+
     /// Allow the model's side files (safetensors) to be absolute paths or to lie outside the
     /// model's folder.
     #[arg(long)]

@@ -13,14 +13,14 @@ use std::ops::Range;
 /// Pixels between the channel panels of a filter.
 const PANEL_GAP: usize = 1;
 /// Panels per row of a filter picture before it wraps.
-const PANELS_PER_ROW: usize = 8;
+const PANELS_PER_ROW: usize = 4;
 
 /// Colour of a receptive-field box: a saturated yellow, outside the colour key and never
 /// a grey.
 pub const BOX: Rgba = [255, 210, 0, 255];
 
 /// A filter's signed weights `weights: [in_channels x kernel_h x kernel_w]`, one `kernel_w
-/// x kernel_h` panel per input channel, left to right in channel order (at most eight per
+/// x kernel_h` panel per input channel, left to right in channel order (at most four per
 /// row, then the next row), transparent gaps between panels. `scale` is the |w| at the
 /// colour key's ends.
 pub fn filter_panels(
@@ -178,9 +178,9 @@ mod tests {
         assert_eq!(p.pixel(4 + 2, 1), Some(signed(5.0, 6.0)));
         assert_eq!(p.pixel(0, 0), Some(signed(-6.0, 6.0)));
         assert_eq!(p.pixel(3, 0), Some(TRANSPARENT), "the gap between panels");
-        // Nine channels wrap after eight.
+        // Nine channels wrap after four: three rows.
         let p = filter_panels(&[0.0; 9], 9, [1, 1], 1.0);
-        assert_eq!(p.size(), [8 + 7, 1 + 1 + 1]);
+        assert_eq!(p.size(), [4 + 3, 3 + 2]);
     }
 
     #[test]
