@@ -35,7 +35,11 @@ fn open_app(
     probe: Option<std::path::PathBuf>,
     allow_outside_paths: bool,
 ) -> ExitCode {
-    receptor::app::run(model, probe, allow_outside_paths)
+    receptor::app::run(receptor::app::Start {
+        model,
+        probe,
+        allow_outside_paths,
+    })
 }
 
 /// Without the `gui` feature there is no window; say so.

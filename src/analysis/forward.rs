@@ -32,6 +32,10 @@ const PAR_MIN_ELEMS: usize = 1 << 15;
 /// # Panics
 /// When the shapes do not agree (a programming error, never caused by user data: every
 /// network is validated before analysis).
+#[allow(
+    unsafe_code,
+    reason = "gemm's raw-pointer API, called after every shape and stride is checked (SAFETY below)"
+)]
 pub(crate) fn gemm_into(
     dst: &mut ArrayViewMut2<f32>,
     a: ArrayView2<f32>,

@@ -6,6 +6,7 @@
 //! files are opened and exports written on helper threads.
 
 pub mod colour;
+pub mod compact;
 pub mod conv;
 pub mod conv_jobs;
 pub mod detail;
@@ -42,10 +43,10 @@ const DEMO_PROBE: &str = concat!(
     "/demo-models/solder-joints-probe.csv"
 );
 
-/// Opens the window and runs until it is closed. `model` is opened at start (the bundled
-/// demo when `None`), with the probe data `probe` when given. Returns 0 on a normal close,
-/// 2 when no window could be opened.
-pub fn run(model: Option<PathBuf>, probe: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
+/// Opens the window and runs until it is closed. `start` says what to open first (the
+/// bundled demo when it names no model). Returns 0 on a normal close, 2 when no window
+/// could be opened.
+pub fn run(start: Start) -> ExitCode {
     let options = eframe::NativeOptions {
         viewport: egui::ViewportBuilder::default()
             .with_title("receptor")
@@ -54,11 +55,6 @@ pub fn run(model: Option<PathBuf>, probe: Option<PathBuf>, allow_outside_paths: 
             .with_drag_and_drop(true),
         persist_window: true,
         ..Default::default()
-    };
-    let start = Start {
-        model,
-        probe,
-        allow_outside_paths,
     };
     let result = eframe::run_native(
         "receptor",
@@ -79,7 +75,8 @@ pub fn run(model: Option<PathBuf>, probe: Option<PathBuf>, allow_outside_paths: 
 pub struct Start {
     /// A model file, or `None` for the bundled demo.
     pub model: Option<PathBuf>,
-    /// Probe data to open with `model` (`None`: the uniform probe).
+    /// Probe data to open once the model is in (`None`: the uniform probe, or the demo's
+    /// own probe for the demo).
     pub probe: Option<PathBuf>,
     /// Allow side-file paths outside the model's folder.
     pub allow_outside_paths: bool,
@@ -94,6 +91,8 @@ pub enum Pick {
     Probe,
     /// Where to save an export.
     Export(ExportKind),
+    /// Where to save the compacted model.
+    CompactedModel,
 }
 
 /// Requests the panels make; the app carries them out after drawing.
@@ -119,6 +118,10 @@ pub enum Action {
     Cancel,
     /// Queue again whatever a cancel left unfinished.
     RunAgain,
+    /// Show the Compact model window.
+    CompactWindow,
+    /// Show the save dialog for the compacted model.
+    SaveCompactedDialog,
     /// Show the keyboard and marks help.
     Help,
     /// Leave the app.
@@ -139,6 +142,8 @@ pub struct ReceptorApp {
     show_help: bool,
     /// What the panels asked for this frame.
     actions: Vec<Action>,
+    /// Probe data given at start, opened once the start model is in.
+    start_probe: Option<PathBuf>,
 }
 
 impl ReceptorApp {
@@ -159,16 +164,14 @@ impl ReceptorApp {
             dialog_open: false,
             show_help: false,
             actions: Vec::new(),
+            start_probe: start.probe,
         };
         if let Some(e) = app.worker.spawn_error() {
             let e = e.to_string();
             app.state.fail(e);
         }
         match start.model {
-            Some(p) => {
-                app.open_model(&p);
-                app.state.run.start_probe = start.probe;
-            }
+            Some(p) => app.open_model(&p),
             None => app.open_demo(),
         }
         app
@@ -280,6 +283,8 @@ impl ReceptorApp {
             }
             Action::Cancel => self.cancel(),
             Action::RunAgain => self.run_again(),
+            Action::CompactWindow => self.state.compact.open = true,
+            Action::SaveCompactedDialog => self.pick(Pick::CompactedModel),
             Action::Help => self.show_help = true,
             Action::Quit => ctx.send_viewport_cmd(egui::ViewportCommand::Close),
         }
@@ -312,9 +317,16 @@ impl ReceptorApp {
                         .and_then(|p| p.parent().map(Path::to_path_buf))
                 }),
             Pick::Export(_) => None,
+            Pick::CompactedModel => self
+                .state
+                .model
+                .as_ref()
+                .and_then(|m| m.path.as_ref())
+                .and_then(|p| p.parent().map(Path::to_path_buf)),
         };
         let file_name = match purpose {
             Pick::Export(kind) => Some(export::default_file_name(kind, &self.state)),
+            Pick::CompactedModel => Some(compact::default_file_name(&self.state)),
             _ => None,
         };
         self.worker.spawn_helper("receptor-dialog", move || {
@@ -338,6 +350,11 @@ impl ReceptorApp {
                         .add_filter(name, exts)
                         .save_file()
                 }
+                Pick::CompactedModel => d
+                    .set_title("Save the compacted model")
+                    .set_file_name(file_name.unwrap_or_default())
+                    .add_filter("receptor model (JSON)", &["json"])
+                    .save_file(),
             };
             Reply::Picked { purpose, path }
         });
@@ -349,6 +366,7 @@ impl ReceptorApp {
         let probe = KeyboardShortcut::new(Modifiers::COMMAND, Key::P);
         let stats = KeyboardShortcut::new(Modifiers::COMMAND, Key::E);
         let quit = KeyboardShortcut::new(Modifiers::COMMAND, Key::Q);
+        let compact = KeyboardShortcut::new(Modifiers::COMMAND, menu::COMPACT_KEY);
         ctx.input_mut(|i| {
             if i.consume_shortcut(&open) {
                 self.actions.push(Action::OpenModelDialog);
@@ -359,6 +377,9 @@ impl ReceptorApp {
             if i.consume_shortcut(&stats) {
                 self.actions
                     .push(Action::ExportDialog(ExportKind::StatsCsv));
+            }
+            if i.consume_shortcut(&compact) {
+                self.actions.push(Action::CompactWindow);
             }
             if i.consume_shortcut(&quit) {
                 self.actions.push(Action::Quit);
@@ -536,6 +557,15 @@ impl eframe::App for ReceptorApp {
         for a in std::mem::take(&mut self.actions) {
             self.perform(a, ctx);
         }
+        if self.state.model.is_some()
+            && let Some(p) = self.start_probe.take()
+        {
+            self.open_probe(&p);
+        }
+        if self.state.model.is_none() && self.state.open_error.is_some() {
+            // The start model did not open: its probe belongs to no model.
+            self.start_probe = None;
+        }
         self.request_needed();
     }
 
@@ -571,6 +601,9 @@ impl eframe::App for ReceptorApp {
                 });
         }
         egui::CentralPanel::default().show(ui, |ui| self.central_ui(ui));
+        if self.state.compact.open {
+            compact::window_ui(&ctx, &mut self.state, &mut self.actions);
+        }
         if self.show_help {
             menu::help_ui(&ctx, &mut self.show_help, self.state.run.longest_busy_frame);
         }

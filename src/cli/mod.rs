@@ -55,9 +55,9 @@ pub struct Cli {
     #[arg(value_name = "MODEL")]
     pub model: Option<PathBuf>,
 
-    /// Probe data (CSV or .npy) the desktop app opens with MODEL (default: samples drawn
-    /// uniformly from the input box; the bundled demo opens its own labelled probe).
-    #[arg(long, value_name = "DATA", requires = "model")]
+    /// Probe data (.csv or .npy) to open in the desktop app with MODEL (default: uniform
+    /// samples of the input box; the demo's own labelled probe for the demo).
+    #[arg(long, value_name = "DATA")]
     pub probe: Option<PathBuf>,
 
     /// Allow the model's side files (safetensors) to be absolute paths or to lie outside the
