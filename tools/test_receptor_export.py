@@ -413,7 +413,13 @@ def test_exported_files_validate_against_the_schema():
                              labels=["x", "y", "z"], names=[f"n{i}" for i in range(8)]),
             rx.export_arrays(layers, 8, np.zeros(8), np.arange(1, 9), path=Path(d) / "b.json",
                              safetensors_threshold=1, description="side file"),
+            # receptor-model/2: every convolutional layer type, inline and in a side file.
+            rx.export_arrays(conv_layers(rng), 126, layout=(7, 6, 3), path=Path(d) / "c.json",
+                             labels=["a", "b", "c"], safetensors_threshold=None),
+            rx.export_arrays(conv_layers(rng), 126, layout=(7, 6, 3), path=Path(d) / "d.json",
+                             safetensors_threshold=20),
         ]
+        assert json.loads(paths[2].read_text())["schema"] == "receptor-model/2"
         for p in paths:
             errors = sorted(validator.iter_errors(json.loads(p.read_text())), key=str)
             assert not errors, f"{p.name}: {[e.message for e in errors]}"
