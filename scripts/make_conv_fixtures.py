@@ -26,6 +26,7 @@ PyTorch's order, which is receptor's too.
 
 Per model NAME:
   NAME.json            the model in our schema "receptor-model/2" (inline weights)
+  NAME_probe.csv       the same inputs as a probe file (one row per sample, H W C columns)
   NAME_expected.json   inputs [samples, H W C], every layer's pre-activations
                        [samples, C H W], the output, gradients of chosen values, and the
                        first layer's exact bounds
@@ -245,6 +246,10 @@ def main():
         }
         (OUT / f"{name}.json").write_text(json.dumps(model_json(name, spec, layers)) + "\n")
         (OUT / f"{name}_expected.json").write_text(json.dumps(expected) + "\n")
+        rows = to_hwc(x).numpy().astype(np.float32)
+        lines = [",".join(f"x{i}" for i in range(rows.shape[1]))]
+        lines += [",".join(str(v) for v in r) for r in rows]
+        (OUT / f"{name}_probe.csv").write_text("\n".join(lines) + "\n")
     (OUT / "VERSIONS.txt").write_text(
         "Made by scripts/make_conv_fixtures.py with PyTorch (CPU, float64 on float32-rounded values)\n"
         f"python {platform.python_version()}\ntorch {torch.__version__}\nnumpy {np.__version__}\n")

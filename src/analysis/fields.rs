@@ -26,7 +26,7 @@
 use super::Progress;
 use super::gradient::input_gradient_into;
 use crate::error::{Error, Result};
-use crate::model::{LayerKind, Layout, Network, Shape};
+use crate::model::{InputSpec, LayerKind, Layout, Network, Shape};
 use ndarray::{Array2, ArrayView2, s};
 
 /// The theoretical receptive field of one layer's units on the input, per axis `[h, w]`.
@@ -75,6 +75,44 @@ impl Field {
         };
         (axis(position.0, 0, height), axis(position.1, 1, width))
     }
+}
+
+/// The part `rows x cols` of an image input `x: [input size]` (row-major, channel last) as
+/// an input of its own: the input spec of the crop (its box cropped the same way) and the
+/// cropped values. A vector layout is returned whole.
+pub fn crop(
+    spec: &InputSpec,
+    x: &[f32],
+    rows: std::ops::Range<usize>,
+    cols: std::ops::Range<usize>,
+) -> (InputSpec, Vec<f32>) {
+    let Layout::Image {
+        width, channels, ..
+    } = spec.layout
+    else {
+        return (spec.clone(), x.to_vec());
+    };
+    let pick = |v: &[f32]| -> Vec<f32> {
+        let mut out = Vec::with_capacity(rows.len() * cols.len() * channels);
+        for y in rows.clone() {
+            let start = (y * width + cols.start) * channels;
+            out.extend_from_slice(&v[start..start + cols.len() * channels]);
+        }
+        out
+    };
+    let size = rows.len() * cols.len() * channels;
+    let cropped = InputSpec {
+        size,
+        layout: Layout::Image {
+            height: rows.len(),
+            width: cols.len(),
+            channels,
+        },
+        low: pick(&spec.low),
+        high: pick(&spec.high),
+        names: None,
+    };
+    (cropped, pick(x))
 }
 
 /// The input's height and width: of the image layout, or `(1, size)` for a vector.
@@ -272,7 +310,7 @@ pub fn effective_receptive_field(
 mod tests {
     use super::*;
     use crate::analysis::gradient::input_gradient;
-    use crate::model::{Activation, InputSpec, Layer};
+    use crate::model::{Activation, Layer};
     use ndarray::{Array1, Array4};
     use rand::{Rng, SeedableRng};
     use rand_chacha::ChaCha8Rng;

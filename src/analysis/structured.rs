@@ -188,6 +188,7 @@ pub fn check_fraction(net: &Network, fraction: f64, only: Option<usize>) -> Resu
             "a unit-pruning fraction must be a number from 0 to 1, got {fraction}"
         )));
     }
+    super::compact::require_dense(net, "unit pruning")?;
     let hidden = net.layers().len() - 1;
     if hidden == 0 {
         return Err(Error::usage(
