@@ -112,7 +112,8 @@ pub fn tiles_caption(net: &Network, layer: usize) -> Option<&'static str> {
     })
 }
 
-/// The input pixels of the receptive field of `layer`'s centre position.
+/// The input pixels of the receptive field of `layer`'s unit at `position` (default: the
+/// centre of its map, where the preferred-input search looks).
 fn centre_region(
     net: &Network,
     layer: usize,
@@ -179,8 +180,9 @@ pub fn tile_texture(
         return Some(None);
     };
     let input = pref.input.clone();
+    let position = pref.position;
     Some(thumbs.get(ctx, key(ConvPic::PreferredCrop), true, || {
-        let (rows, cols) = centre_region(net, layer, None)?;
+        let (rows, cols) = centre_region(net, layer, position)?;
         let p = filters::input_crop(net.input(), &input, rows, cols);
         Some(maps::to_color_image(&p))
     }))
@@ -300,8 +302,9 @@ pub fn detail_ui(
         (Some(p), Some(_)) => {
             let input = p.input.clone();
             let value = p.preactivation;
+            let position = p.position;
             let tex = thumbs.get(&ctx, key(ConvPic::PreferredBox), false, || {
-                let (rows, cols) = centre_region(net, sel.layer, None)?;
+                let (rows, cols) = centre_region(net, sel.layer, position)?;
                 let pic = filters::input_with_box(net.input(), &input, rows, cols, 4);
                 Some(maps::to_color_image(&pic))
             });
