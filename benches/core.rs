@@ -1,7 +1,10 @@
 //! Wall-time benchmarks of receptor's core on a 784-2048-2048-10 ReLU network: screening
 //! 10 000 probe rows, `prefer --all` on the second hidden layer, loading the model from
 //! inline JSON and from JSON + safetensors, and (for comparison) reading the safetensors
-//! file's bytes.
+//! file's bytes. `screen_cnn` screens 10 000 rows on a convolutional network (32 x 32 x 3
+//! input; conv 3x3 32, relu, max pool 2, conv 3x3 64, relu, max pool 2, flatten, dense 128,
+//! relu, dense 10); `benches/torch_cnn_bench.py` does the same work in PyTorch (CPU) on the
+//! same files (`cnn.json`, `cnn_probe.npy` in `RECEPTOR_BENCH_DIR`).
 //!
 //! Run with `cargo bench --bench core`. `benches/numpy_bench.py` does the same work in numpy
 //! on the very same files; for a side-by-side run:
@@ -59,6 +62,7 @@ fn build_network(rng: &mut ChaCha8Rng) -> BenchResult<Network> {
         let bias = Array1::from_shape_simple_fn(units, || rng.random_range(-0.05f32..0.05));
         let last = i == SIZES.len() - 2;
         layers.push(Layer {
+            kind: receptor::model::LayerKind::Dense,
             name: if last {
                 "out".into()
             } else {
@@ -88,6 +92,75 @@ fn build_network(rng: &mut ChaCha8Rng) -> BenchResult<Network> {
     Ok(Network::new(
         "benchmark network",
         "bench-784-2048-2048-10",
+        input,
+        layers,
+    )?)
+}
+
+/// Input of the benchmark CNN: height, width, channels.
+const CNN_INPUT: [usize; 3] = [32, 32, 3];
+
+/// The benchmark CNN on a 32 x 32 x 3 input in [0, 1]: conv 3x3 32 relu, max pool
+/// 2, conv 3x3 64 relu, max pool 2, flatten, dense 128 relu, dense 10 softmax; He-scaled
+/// uniform weights as in [`build_network`].
+fn build_cnn(rng: &mut ChaCha8Rng) -> BenchResult<Network> {
+    let mut uniform = |shape: &[usize], fan_in: usize| -> Vec<f32> {
+        let limit = (6.0 / fan_in as f64).sqrt() as f32;
+        (0..shape.iter().product::<usize>())
+            .map(|_| rng.random_range(-limit..limit))
+            .collect()
+    };
+    let conv = |name: &str, out: usize, inp: usize, w: Vec<f32>| -> BenchResult<Layer> {
+        Ok(Layer::conv2d(
+            name,
+            Activation::Relu,
+            ndarray::Array4::from_shape_vec((out, inp, 3, 3), w)?,
+            Array1::zeros(out),
+            [1, 1],
+            [0, 0],
+            [1, 1],
+        ))
+    };
+    let c1 = conv("c1", 32, 3, uniform(&[32, 3, 3, 3], 27))?;
+    let c2 = conv("c2", 64, 32, uniform(&[64, 32, 3, 3], 288))?;
+    // 32 -> conv 30 -> pool 15 -> conv 13 -> pool 6: 64 x 6 x 6 = 2304 values.
+    let d1 = Layer::dense(
+        "d1",
+        Activation::Relu,
+        Array2::from_shape_vec((128, 2304), uniform(&[128, 2304], 2304))?,
+        Array1::zeros(128),
+    );
+    let mut out = Layer::dense(
+        "out",
+        Activation::Softmax,
+        Array2::from_shape_vec((10, 128), uniform(&[10, 128], 128))?,
+        Array1::zeros(10),
+    );
+    out.labels = None;
+    let [h, w, c] = CNN_INPUT;
+    let input = InputSpec {
+        size: h * w * c,
+        layout: Layout::Image {
+            height: h,
+            width: w,
+            channels: c,
+        },
+        low: vec![0.0; h * w * c],
+        high: vec![1.0; h * w * c],
+        names: None,
+    };
+    let layers = vec![
+        c1,
+        Layer::max_pool2d("p1", [2, 2], [2, 2], [0, 0]),
+        c2,
+        Layer::max_pool2d("p2", [2, 2], [2, 2], [0, 0]),
+        Layer::flatten("flat"),
+        d1,
+        out,
+    ];
+    Ok(Network::new(
+        "benchmark cnn",
+        "bench-cnn-32x32x3",
         input,
         layers,
     )?)
@@ -354,6 +427,35 @@ fn main() -> BenchResult<()> {
             Ok(sum)
         },
     )?);
+
+    // The convolutional network of the benchmark in its own files (cnn.json, cnn_probe.npy),
+    // built only when asked for (the dense measurements do not pay for it).
+    if wanted("screen_cnn") {
+        let cnn = build_cnn(&mut ChaCha8Rng::seed_from_u64(SEED + 1))?;
+        let mut crng = ChaCha8Rng::seed_from_u64(SEED + 2);
+        let cnn_probe =
+            Array2::from_shape_simple_fn((PROBE_ROWS, CNN_INPUT.iter().product()), || {
+                crng.random_range(0.0f32..1.0)
+            });
+        let cnn_json = dir.join("cnn.json");
+        let cnn_probe_path = dir.join("cnn_probe.npy");
+        model::write_json(&cnn, &cnn_json)?;
+        write_npy(&cnn_probe_path, &cnn_probe)?;
+        drop(cnn_probe);
+        let _ = std::fs::read(&cnn_probe_path)?;
+        timings.push(measure(
+            "screen_cnn",
+            format!(
+                "32x32x3 CNN (conv 3x3 32, pool 2, conv 3x3 64, pool 2, dense 128, 10), {PROBE_ROWS} rows from .npy, chunks of {}",
+                screen_opts.chunk_rows()
+            ),
+            runs,
+            || {
+                let mut src = probe::open(&cnn_probe_path, &cnn)?;
+                Ok(screen::screen(&cnn, src.as_mut(), &screen_opts, &Silent)?)
+            },
+        )?);
+    }
 
     let units: Vec<usize> = (0..SIZES[2]).collect();
     let popts = prefer::PreferOptions::new(PREFER_STEPS, restarts, 0, 0.0, 0.0)?;

@@ -32,6 +32,29 @@ GOOD = {
     ],
 }
 
+# A small convolutional model (schema version 2): 6 x 6 grey input, conv 3x3 -> 2 x 4 x 4,
+# conv 2x2 -> 3 x 3 x 3, max pool 2 (stride 1) -> 3 x 2 x 2, flatten -> 12, dense -> 2.
+GOOD_CONV = {
+    "schema": "receptor-model/2",
+    "name": "corpus conv model",
+    "input": {"size": 36, "layout": {"kind": "image", "height": 6, "width": 6, "channels": 1},
+              "low": 0, "high": 1},
+    "layers": [
+        {"name": "c1", "type": "conv2d", "activation": "relu",
+         "weights": [[[[0.5, -0.25, 0.125], [1.0, 0.5, -0.5], [0.25, 0.0, -1.0]]],
+                     [[[-0.5, 0.25, 0.5], [0.0, 1.0, 0.5], [-0.25, 0.125, 0.75]]]],
+         "bias": [0.1, -0.1]},
+        {"name": "c2", "type": "conv2d", "activation": "relu",
+         "weights": [[[[0.5, -0.5], [0.25, 0.125]], [[1.0, 0.5], [-0.25, 0.5]]]] * 3,
+         "bias": [0.0, 0.1, -0.1]},
+        {"name": "p1", "type": "max_pool2d", "kernel": 2, "stride": 1},
+        {"name": "flat", "type": "flatten"},
+        {"name": "out", "type": "dense", "activation": "softmax",
+         "weights": [[0.1 * (i % 5) - 0.2 for i in range(12)], [0.2 - 0.05 * (i % 7) for i in range(12)]],
+         "bias": [0.0, 0.1], "labels": ["ok", "bad"]},
+    ],
+}
+
 cases = []
 
 
@@ -41,6 +64,16 @@ def dump(obj):
 
 def good():
     return json.loads(json.dumps(GOOD))
+
+
+def conv_model(name, mutate, expect, reason):
+    m = json.loads(json.dumps(GOOD_CONV))
+    mutate(m)
+    put(name, dump(m), "model", expect, reason)
+
+
+def layer(m, name):
+    return next(l for l in m["layers"] if l["name"] == name)
 
 
 def replaced(text, old, new):
@@ -127,7 +160,7 @@ def main():
 
     # --- schema tag and top level
     model("no-schema.json", lambda m: m.pop("schema"), 'missing "schema"', "no schema tag")
-    model("wrong-schema.json", lambda m: m.update(schema="receptor-model/2"), "unsupported schema", "a schema tag of another version")
+    model("wrong-schema.json", lambda m: m.update(schema="receptor-model/3"), "unsupported schema", "a schema tag of another version")
     model("schema-number.json", lambda m: m.update(schema=1), "unsupported schema", "a schema tag that is a number")
     model("no-input.json", lambda m: m.pop("input"), 'missing "input"', "no input section")
     model("no-layers.json", lambda m: m.pop("layers"), 'missing "layers"', "no layers")
@@ -176,7 +209,41 @@ def main():
     model("softmax-hidden.json", lambda m: m["layers"][0].update(activation="softmax"), "softmax is allowed only in the last layer", "softmax in a hidden layer")
     model("unknown-activation.json", lambda m: m["layers"][0].update(activation="swish"), 'unknown activation "swish"', "an activation receptor does not know")
     model("leaky-alpha.json", lambda m: m["layers"][0].update(activation="leaky_relu", alpha=5), "alpha", "leaky_relu slope above 1")
-    model("layer-type.json", lambda m: m["layers"][0].update(type="conv2d"), 'unsupported layer type "conv2d"', "a convolution layer")
+    model("layer-type.json", lambda m: m["layers"][0].update(type="lstm"), 'unsupported layer type "lstm"', "a layer type receptor does not know")
+
+    # --- convolutional layers (schema version 2); every message names the layer
+    with open(os.path.join(HERE, "good-conv-model.json"), "w") as f:
+        f.write(dump(GOOD_CONV))
+    conv_model("conv-in-v1.json", lambda m: m.update(schema="receptor-model/1"),
+               "layer 'c1': layer type \"conv2d\" needs \"schema\": \"receptor-model/2\"", "a conv2d layer in a version 1 file")
+    conv_model("conv-weights-rank.json", lambda m: layer(m, "c1").update(weights=[[0.5, 1.0], [1.0, 0.5]]),
+               "layer 'c1': weights: a 2-D list; conv2d weights are 4-D", "2-D weights on a conv2d layer (wrong rank)")
+    conv_model("conv-channels.json", lambda m: layer(m, "c2").update(weights=[[[[0.5, 0.5], [0.5, 0.5]]] * 4] * 3),
+               "layer 'c2': weights expect 4 input channels but 'c1' gives 2", "a filter for 4 channels after 2")
+    conv_model("conv-kernel-too-large.json", lambda m: layer(m, "c1").update(weights=[[[[0.1] * 7] * 7]] * 2),
+               "layer 'c1': the kernel 7 x 7 (dilation 1 x 1) is larger than the padded input 6 x 6", "a kernel larger than the padded input")
+    conv_model("conv-stride-zero.json", lambda m: layer(m, "c1").update(stride=0),
+               "layer 'c1': \"stride\" must be a whole number from 1", "stride 0")
+    conv_model("conv-stride-negative.json", lambda m: layer(m, "c2").update(stride=[1, -2]),
+               "layer 'c2': \"stride\" must be a whole number from 1", "a negative stride")
+    conv_model("conv-bias-length.json", lambda m: layer(m, "c1").update(bias=[0, 0, 0]),
+               "layer 'c1': bias has 3 values but the weights have 2 filters", "three biases for two filters")
+    conv_model("conv-ragged.json", lambda m: layer(m, "c1").update(weights=[[[[0.5, 1.0, 0.5], [1.0, 0.5]]]] * 2),
+               "layer 'c1': weights: ragged", "kernel rows of unequal length")
+    conv_model("conv-groups.json", lambda m: layer(m, "c2").update(groups=2),
+               "layer 'c2': \"groups\" 2 is not supported", "a grouped convolution")
+    conv_model("conv-vector-input.json", lambda m: m["input"].update(layout={"kind": "vector"}),
+               "layer 'c1': a conv2d layer needs an image input layout", "a convolution on a vector input")
+    conv_model("pool-empty-map.json", lambda m: layer(m, "p1").update(kernel=4),
+               "layer 'p1': the window 4 x 4 (dilation 1 x 1) is larger than the padded input 3 x 3", "a pooling window that leaves an empty map")
+    conv_model("pool-padding.json", lambda m: layer(m, "p1").update(padding=2),
+               "layer 'p1': padding [2, 2] must be at most half the kernel", "pool padding larger than half the window")
+    conv_model("pool-weights.json", lambda m: layer(m, "p1").update(weights=[[1.0]]),
+               "layer 'p1': a max_pool2d layer has no \"weights\"", "weights on a pooling layer")
+    conv_model("flatten-wrong-place.json", lambda m: m["layers"].insert(4, {"name": "flat2", "type": "flatten"}),
+               "layer 'flat2': flatten is in the wrong place", "a flatten after a vector")
+    conv_model("dense-after-map.json", lambda m: m["layers"].pop(3),
+               "layer 'out': a dense layer after a spatial map needs a flatten first: 'p1' gives a 3 x 2 x 2 map", "a dense layer straight after a pooling")
     model("layer-no-name.json", lambda m: m["layers"][0].pop("name"), 'missing or empty "name"', "a layer without a name")
 
     # --- safetensors side files

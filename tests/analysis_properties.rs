@@ -48,6 +48,7 @@ fn random_net(seed: u64, sizes: &[usize]) -> Network {
                 hidden[rng.random_range(0..hidden.len())]
             };
             Layer {
+                kind: receptor::model::LayerKind::Dense,
                 name: format!("l{i}"),
                 activation,
                 weights: Array2::from_shape_fn((sizes[i + 1], sizes[i]), |_| {

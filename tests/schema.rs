@@ -26,7 +26,9 @@ fn model_files(dir: &Path, out: &mut Vec<PathBuf>) {
         if p.is_dir() {
             model_files(&p, out);
         } else if p.extension().is_some_and(|x| x == "json")
-            && std::fs::read_to_string(&p).is_ok_and(|t| t.contains("\"receptor-model/1\""))
+            && std::fs::read_to_string(&p).is_ok_and(|t| {
+                t.contains("\"receptor-model/1\"") || t.contains("\"receptor-model/2\"")
+            })
         {
             out.push(p);
         }
@@ -40,6 +42,8 @@ fn every_bundled_model_validates_against_the_schema() {
     model_files(&root.join("demo-models"), &mut files);
     model_files(&root.join("tests/fixtures/reference"), &mut files);
     model_files(&root.join("tests/fixtures/structured"), &mut files);
+    model_files(&root.join("tests/fixtures/conv"), &mut files);
+    files.push(root.join("tests/bad-inputs/good-conv-model.json"));
     assert!(!files.is_empty(), "no bundled models found");
     let v = schema();
     for f in &files {
@@ -81,7 +85,7 @@ fn written_models_validate_and_structural_errors_are_refused() {
     assert!(v.is_valid(&base));
     type Mutation = fn(&mut serde_json::Value);
     let bad_cases: [(&str, Mutation); 6] = [
-        ("wrong tag", |m| m["schema"] = "receptor-model/2".into()),
+        ("wrong tag", |m| m["schema"] = "receptor-model/3".into()),
         ("no layers", |m| m["layers"] = serde_json::json!([])),
         ("string weight", |m| {
             m["layers"][0]["weights"][0][0] = "x".into()
@@ -99,6 +103,54 @@ fn written_models_validate_and_structural_errors_are_refused() {
         ("tensor ref without name", |m| {
             m["layers"][0]["weights"] = serde_json::json!({"safetensors": "w.safetensors"})
         }),
+    ];
+    for (what, mutate) in bad_cases {
+        let mut m = base.clone();
+        mutate(&mut m);
+        assert!(!v.is_valid(&m), "the schema should refuse: {what}");
+    }
+}
+
+/// Version 2: a written convolutional model validates; conv layers in a version 1 file, a
+/// pooling layer with weights, 3-D conv weights, a zero stride and a grouped convolution
+/// are refused.
+#[test]
+fn version_2_models_validate_and_structural_errors_are_refused() {
+    let v = schema();
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let net = receptor::model::load(
+        &root.join("tests/fixtures/conv/cnn_rgb.json"),
+        &receptor::model::LoadOptions::default(),
+    )
+    .unwrap();
+    let written: serde_json::Value =
+        serde_json::from_str(&receptor::model::to_json_string(&net)).unwrap();
+    assert_eq!(written["schema"], "receptor-model/2");
+    assert!(
+        v.is_valid(&written),
+        "{:?}",
+        v.iter_errors(&written)
+            .map(|e| e.to_string())
+            .collect::<Vec<_>>()
+    );
+    let base: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(root.join("tests/bad-inputs/good-conv-model.json")).unwrap(),
+    )
+    .unwrap();
+    assert!(v.is_valid(&base));
+    type Mutation = fn(&mut serde_json::Value);
+    let bad_cases: [(&str, Mutation); 5] = [
+        ("conv in version 1", |m| {
+            m["schema"] = "receptor-model/1".into()
+        }),
+        ("pool with weights", |m| {
+            m["layers"][2]["weights"] = serde_json::json!([[1.0]])
+        }),
+        ("3-D conv weights", |m| {
+            m["layers"][0]["weights"] = serde_json::json!([[[1.0]]])
+        }),
+        ("zero stride", |m| m["layers"][1]["stride"] = 0.into()),
+        ("groups", |m| m["layers"][1]["groups"] = 2.into()),
     ];
     for (what, mutate) in bad_cases {
         let mut m = base.clone();

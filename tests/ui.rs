@@ -257,6 +257,7 @@ fn write_large_model(dir: &Path) -> PathBuf {
         let weights =
             ndarray::Array2::from_shape_fn((w[1], w[0]), |_| s * (rng.random::<f32>() * 2.0 - 1.0));
         layers.push(Layer {
+            kind: receptor::model::LayerKind::Dense,
             name: format!("fc{}", i + 1),
             activation: if i == 2 {
                 Activation::Softmax
@@ -494,6 +495,78 @@ fn an_onnx_model_opens_and_its_box_can_be_changed() {
     assert_eq!(open.net.input().high, vec![0.5, 1.0, 2.0, 3.0, 4.0]);
     assert!(!open.box_origin.uses_default());
     assert_eq!(open.box_origin.describe(), "given");
+}
+
+/// The convolutional demo: the layer list shows map sizes and receptive fields, the first
+/// layer's tiles are its filters, and a channel's detail shows its filter, preferred input,
+/// effective receptive field, feature map on a chosen sample and strongest samples.
+#[test]
+fn convolutional_demo_shows_filters_fields_and_feature_maps() {
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models");
+    // As `receptor demo-models/solder-joints-cnn.json --probe ...-probe.csv` starts it.
+    let mut h = app_with(Start {
+        model: Some(demo.join("solder-joints-cnn.json")),
+        probe: Some(demo.join("solder-joints-cnn-probe.csv")),
+        allow_outside_paths: false,
+        input_box: Default::default(),
+    });
+    wait_idle(&mut h, Duration::from_secs(120));
+    assert!(
+        h.state()
+            .state()
+            .probe
+            .as_ref()
+            .is_some_and(|p| p.labelled()),
+        "the probe given at start is open"
+    );
+
+    // Layer list: the receptive fields by the Araujo et al. recurrences, worked by hand:
+    // conv1 3x3 -> 3; pool1 2x2 stride 2 -> 3 + 1 = 4, jump 2; conv2 3x3 -> 4 + 2*2 = 8;
+    // pool2 -> 8 + 1*2 = 10.
+    h.get_by_label_contains("conv1  ·  conv 3×3  ·  8 channels  ·  relu");
+    h.get_by_label_contains("16 × 16 maps · receptive field 3 × 3");
+    h.get_by_label_contains("pool1  ·  max pool 2×2");
+    h.get_by_label_contains("8 × 8 maps · receptive field 8 × 8");
+    h.get_by_label_contains("4 × 4 maps · receptive field 10 × 10");
+    h.get_by_label_contains("Tiles: filters in colour");
+
+    // A first-layer channel: its filter (colour and signed panels) and the views that need
+    // the probe.
+    h.get_by_label("conv1 unit 2").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("Channel 2 of layer conv1");
+    h.get_by_label("filter of conv1 channel 2 in colour");
+    h.get_by_label("filter of conv1 channel 2");
+    h.get_by_label("effective receptive field of conv1 channel 2");
+    h.get_by_label("feature map of conv1 channel 2 on sample 0");
+    assert!(
+        h.get_all_by_label_contains("patch of sample ").count() >= 4,
+        "the strongest samples are shown as patches"
+    );
+
+    // Choose another sample for the feature map.
+    h.get_by_label("Sample").click();
+    h.run();
+    h.get_by_label("Sample").type_text("7");
+    h.key_press(egui::Key::Enter);
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    assert_eq!(h.state().state().conv_sample, 7);
+    h.get_by_label("feature map of conv1 channel 2 on sample 7");
+
+    // A deeper channel: its preferred input with the receptive-field box.
+    h.get_by_label_contains("conv2  ·  conv 3×3  ·  16 channels")
+        .click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(180));
+    h.get_by_label_contains("Tiles: preferred inputs, cropped to the receptive field");
+    h.get_by_label("conv2 unit 5").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("Channel 5 of layer conv2");
+    h.get_by_label("preferred input of conv2 channel 5");
+    h.get_by_label("filter of conv2 channel 5");
 }
 
 /// Steps frames until the status bar says `Saved {path}` (or shows an error).

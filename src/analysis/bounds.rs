@@ -31,17 +31,42 @@
 //! sigmoid and tanh are non-decreasing; softmax only occurs in the last layer, whose
 //! pre-activation bounds are reported and nothing is propagated past it.
 
-use crate::model::{Activation, Network};
+use crate::model::{Activation, LayerKind, Network};
 use ndarray::{Array1, Array2, ArrayView1};
 use rayon::prelude::*;
 
 /// Pre-activation bounds of every layer over the input box.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Bounds {
-    /// Lower bound of each layer's pre-activations, one `[units]` array per layer.
+    /// Lower bound of each layer's pre-activations, one array per layer, `[output values]`:
+    /// `[units]` for a dense layer, `[channels x height x width]` (channel first) for a map.
     pub lower: Vec<Array1<f64>>,
-    /// Upper bound of each layer's pre-activations, one `[units]` array per layer.
+    /// Upper bound of each layer's pre-activations, shaped as `lower`.
     pub upper: Vec<Array1<f64>>,
+}
+
+impl Bounds {
+    /// The upper bound of unit `k` of layer `l` over every position: the largest upper
+    /// bound of channel `k`'s values on a map, the unit's own bound on a vector.
+    pub fn unit_upper(&self, net: &Network, l: usize, k: usize) -> f64 {
+        let p = net.output_shape(l).positions();
+        self.upper[l]
+            .iter()
+            .skip(k * p)
+            .take(p)
+            .fold(f64::NEG_INFINITY, |m, &v| m.max(v))
+    }
+
+    /// The lower bound of unit `k` of layer `l` over every position (see
+    /// [`Bounds::unit_upper`]).
+    pub fn unit_lower(&self, net: &Network, l: usize, k: usize) -> f64 {
+        let p = net.output_shape(l).positions();
+        self.lower[l]
+            .iter()
+            .skip(k * p)
+            .take(p)
+            .fold(f64::INFINITY, |m, &v| m.min(v))
+    }
 }
 
 /// The maximum and minimum of `b + w · a` over `a` in `[lo, hi]` (f64, exact per term).
@@ -88,13 +113,20 @@ pub fn plain_interval_bounds(net: &Network) -> Bounds {
     let mut hi: Vec<f64> = net.input().high.iter().map(|&v| f64::from(v)).collect();
     let mut lower = Vec::with_capacity(net.layers().len());
     let mut upper = Vec::with_capacity(net.layers().len());
-    for layer in net.layers() {
-        let ranges: Vec<(f64, f64)> = (0..layer.units())
-            .into_par_iter()
-            .map(|k| affine_range(layer.weights.row(k), layer.bias[k], &lo, &hi))
-            .collect();
-        let zl: Array1<f64> = ranges.iter().map(|r| r.0).collect();
-        let zu: Array1<f64> = ranges.iter().map(|r| r.1).collect();
+    for (l, layer) in net.layers().iter().enumerate() {
+        let (zl, zu): (Array1<f64>, Array1<f64>) = if layer.kind == LayerKind::Dense {
+            let ranges: Vec<(f64, f64)> = (0..layer.units())
+                .into_par_iter()
+                .map(|k| affine_range(layer.weights.row(k), layer.bias[k], &lo, &hi))
+                .collect();
+            (
+                ranges.iter().map(|r| r.0).collect(),
+                ranges.iter().map(|r| r.1).collect(),
+            )
+        } else {
+            let (a, b) = super::conv::interval(net, l, &lo, &hi);
+            (Array1::from_vec(a), Array1::from_vec(b))
+        };
         // Softmax is the last layer; nothing after it needs the next interval.
         lo = zl
             .iter()
@@ -126,7 +158,14 @@ pub(crate) fn interval_bounds_upto(net: &Network, tighten_below: usize) -> Bound
     let mut lower = plain.lower;
     let mut upper = plain.upper;
     let input = net.input().size as f64;
-    for target in 1..net.layers().len().min(tighten_below) {
+    // Back-substitution runs through dense layers only: it stops at the first layer that
+    // is not dense, and every target above it keeps its plain bounds.
+    let dense_prefix = net
+        .layers()
+        .iter()
+        .position(|l| l.kind != LayerKind::Dense)
+        .unwrap_or(net.layers().len());
+    for target in 1..net.layers().len().min(tighten_below).min(dense_prefix) {
         let n_t = net.layers()[target].units() as f64;
         let cost: f64 = 2.0
             * n_t
@@ -396,6 +435,7 @@ mod tests {
             names: None,
         };
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Identity,
             weights: array![[1.0, 1.0], [1.0, -1.0]],
@@ -403,6 +443,7 @@ mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Identity,
             weights: array![[1.0, 1.0]],
@@ -454,6 +495,7 @@ mod tests {
             names: None,
         };
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Relu,
             weights: array![[1.0, -1.0]],
@@ -461,6 +503,7 @@ mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Identity,
             weights: array![[2.0]],

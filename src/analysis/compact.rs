@@ -43,6 +43,24 @@ use crate::model::{Activation, InputSpec, Layer, Layout, Network};
 use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeSource};
 use ndarray::{Array1, Array2, Axis};
 
+/// Refuses a network with any layer that is not dense: removing whole channels of
+/// convolutional layers (with the next layer's matching input channels) is not implemented
+/// yet. `what` names the operation in the message.
+pub(crate) fn require_dense(net: &Network, what: &str) -> Result<()> {
+    match net
+        .layers()
+        .iter()
+        .find(|l| l.kind != crate::model::LayerKind::Dense)
+    {
+        None => Ok(()),
+        Some(l) => Err(Error::usage(format!(
+            "{what} works on networks of dense layers only for now: layer '{}' is a {} layer (removing whole channels of convolutional layers is not implemented yet; magnitude pruning with prune-sweep works on every layer)",
+            l.name,
+            l.kind.name()
+        ))),
+    }
+}
+
 /// Largest |difference| of any output allowed by default between a model and its exact
 /// compaction on the reference data: removing terms that are exactly zero only changes the
 /// order of float32 summation inside the matrix products, which moves an output by a few
@@ -381,6 +399,7 @@ pub fn apply(net: &Network, plan: &Plan, origin: &str) -> Result<Network> {
             }
         }
         layers.push(Layer {
+            kind: crate::model::LayerKind::Dense,
             name: layer.name.clone(),
             activation: layer.activation,
             weights,
@@ -405,6 +424,7 @@ pub fn apply(net: &Network, plan: &Plan, origin: &str) -> Result<Network> {
 /// Errors: a usage error when `opts.never_active` does not match the network's hidden
 /// layers; a model error when the result does not validate.
 pub fn compact(net: &Network, opts: &CompactOptions, origin: &str) -> Result<Compaction> {
+    require_dense(net, "compact")?;
     if let Some(na) = &opts.never_active {
         let hidden = net.layers().len() - 1;
         let ok = na.len() == hidden

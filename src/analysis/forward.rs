@@ -1,20 +1,23 @@
-//! Batched forward pass: one matrix product per layer for the whole batch.
+//! Batched forward pass: one matrix product per layer for the whole batch (convolutions:
+//! one per sample, see [`super::conv`]).
 //!
 //! Matrix products go through the `gemm` crate (a pure-Rust, rayon-parallel GEMM) on the
 //! arrays' raw strides, so a `[10000, 784] · [784, 2048]` product runs at BLAS-like speed
 //! without copying. Element-wise passes over large arrays (bias, activations) are split
 //! over rayon's thread pool.
 
-use crate::model::{Activation, Network};
+use crate::model::{Activation, LayerKind, Network};
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2, ArrayViewMut2, Axis};
 use rayon::prelude::*;
 
 /// Pre-activations and activations of the layers `0..=upto` for one batch.
 #[derive(Debug, Clone)]
 pub struct Trace {
-    /// Pre-activations `z = W a + b` per layer, each `[samples, units]`.
+    /// Pre-activations `z = W a + b` per layer, each `[samples, output values]`: one
+    /// column per unit of a dense layer, `channels x height x width` columns (channel
+    /// first) for a map.
     pub pre: Vec<Array2<f32>>,
-    /// Activations `a = f(z)` per layer, each `[samples, units]`.
+    /// Activations `a = f(z)` per layer, shaped as `pre`.
     pub post: Vec<Array2<f32>>,
 }
 
@@ -38,6 +41,29 @@ pub(crate) fn gemm_into(
     a: ArrayView2<f32>,
     b: ArrayView2<f32>,
     accumulate: bool,
+) {
+    gemm_with(dst, a, b, accumulate, gemm::Parallelism::Rayon(0));
+}
+
+/// [`gemm_into`] on the calling thread only, for many small products run in parallel by
+/// the caller (one per sample of a convolution).
+pub(crate) fn gemm_serial_into(
+    dst: &mut ArrayViewMut2<f32>,
+    a: ArrayView2<f32>,
+    b: ArrayView2<f32>,
+    accumulate: bool,
+) {
+    gemm_with(dst, a, b, accumulate, gemm::Parallelism::None);
+}
+
+/// [`gemm_into`] with a chosen parallelism.
+#[allow(unsafe_code)]
+fn gemm_with(
+    dst: &mut ArrayViewMut2<f32>,
+    a: ArrayView2<f32>,
+    b: ArrayView2<f32>,
+    accumulate: bool,
+    par: gemm::Parallelism,
 ) {
     let (m, k) = a.dim();
     let (k2, n) = b.dim();
@@ -63,15 +89,15 @@ pub(crate) fn gemm_into(
     let neg = |s: &[isize]| s.iter().any(|&v| v < 0);
     if neg(a.strides()) {
         let a = a.as_standard_layout().into_owned();
-        return gemm_into(dst, a.view(), b, accumulate);
+        return gemm_with(dst, a.view(), b, accumulate, par);
     }
     if neg(b.strides()) {
         let b = b.as_standard_layout().into_owned();
-        return gemm_into(dst, a, b.view(), accumulate);
+        return gemm_with(dst, a, b.view(), accumulate, par);
     }
     if neg(dst.strides()) {
         let mut tmp = dst.as_standard_layout().into_owned();
-        gemm_into(&mut tmp.view_mut(), a, b, accumulate);
+        gemm_with(&mut tmp.view_mut(), a, b, accumulate, par);
         dst.assign(&tmp);
         return;
     }
@@ -105,7 +131,7 @@ pub(crate) fn gemm_into(
             false,
             false,
             false,
-            gemm::Parallelism::Rayon(0),
+            par,
         );
     }
 }
@@ -231,13 +257,28 @@ pub fn forward(net: &Network, x: ArrayView2<f32>) -> Array2<f32> {
         net.input().size
     );
     let mut a: Option<Array2<f32>> = None;
-    for layer in net.layers() {
+    for (l, layer) in net.layers().iter().enumerate() {
         let input = a.as_ref().map_or(x, |v| v.view());
-        let mut z = linear(input, layer.weights.view(), layer.bias.view());
+        let mut z = layer_pre(net, l, input);
         activate_in_place(layer.activation, &mut z);
         a = Some(z);
     }
     a.unwrap_or_else(|| x.to_owned())
+}
+
+/// The pre-activations of layer `l` for a batch of its inputs `x: [samples, input values
+/// of l]`: `[samples, output values of l]` (for a dense layer `x · Wᵀ + b`, for the other
+/// kinds see [`super::conv`]; maps in channel-first order).
+///
+/// # Panics
+/// When `x` does not have the layer's input width.
+pub fn layer_pre(net: &Network, l: usize, x: ArrayView2<f32>) -> Array2<f32> {
+    let layer = net.layer(l);
+    if layer.kind == LayerKind::Dense {
+        linear(x, layer.weights.view(), layer.bias.view())
+    } else {
+        super::conv::forward(net, l, x)
+    }
 }
 
 /// Pre-activations and activations of layers `0..=upto` for a batch `x: [samples, inputs]`.
@@ -259,9 +300,9 @@ pub fn forward_trace(net: &Network, x: ArrayView2<f32>, upto: usize) -> Trace {
     );
     let mut pre: Vec<Array2<f32>> = Vec::with_capacity(upto + 1);
     let mut post: Vec<Array2<f32>> = Vec::with_capacity(upto + 1);
-    for layer in &net.layers()[..=upto] {
+    for (l, layer) in net.layers()[..=upto].iter().enumerate() {
         let input = post.last().map_or(x, |v| v.view());
-        let z = linear(input, layer.weights.view(), layer.bias.view());
+        let z = layer_pre(net, l, input);
         let a = activated(layer.activation, &z);
         pre.push(z);
         post.push(a);
@@ -387,6 +428,7 @@ mod tests {
             names: None,
         };
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: act,
             weights: array![[1.0, -2.0], [0.5, 0.25], [-1.0, 0.0]],
@@ -394,6 +436,7 @@ mod tests {
             labels: None,
         };
         let out = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "out".into(),
             activation: Activation::Softmax,
             weights: array![[1.0, 0.0, -1.0], [0.0, 2.0, 1.0]],
@@ -450,6 +493,7 @@ mod tests {
             names: None,
         };
         let l1 = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::LeakyRelu { alpha: 0.1 },
             weights: random_matrix(&mut rng, 300, 40),
@@ -457,6 +501,7 @@ mod tests {
             labels: None,
         };
         let l2 = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Softmax,
             weights: random_matrix(&mut rng, 7, 300),

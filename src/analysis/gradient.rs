@@ -16,9 +16,11 @@
 //! backward rule. At the kink of a rectifier the derivative from the left is used (see
 //! [`crate::model::Activation::derivative_scalar`]).
 
-use super::forward::{gathered_preactivation, gemm_into, par_rows_mut};
+use super::forward::{
+    activate_in_place, gathered_preactivation, gemm_into, layer_pre, par_rows_mut,
+};
 use crate::error::{Error, Result};
-use crate::model::{Activation, Network};
+use crate::model::{Activation, LayerKind, Network};
 use ndarray::{Array1, Array2, ArrayView2, ArrayViewMut2, s};
 use rayon::prelude::*;
 
@@ -49,7 +51,9 @@ fn ensure(v: &mut Vec<f32>, n: usize) -> &mut [f32] {
 
 /// The pre-activation `z` of unit `units[b]` of `layer` for each row `b` of
 /// `x: [samples, inputs]` (or of `units[0]` for every row when `units.len() == 1`), and
-/// `dz/dx: [samples, inputs]`.
+/// `dz/dx: [samples, inputs]`. On a layer with a map output a "unit" here is one output
+/// value, `channel x height x width + row x width + column` (see
+/// [`crate::model::Network::output_shape`]).
 ///
 /// An empty batch gives empty results.
 ///
@@ -119,35 +123,122 @@ pub(crate) fn input_gradient_into(
         (rows, net.input().size),
         "input_gradient: grad shape"
     );
-    let n_units = net.layers()[layer].units();
+    let n_units = net.output_shape(layer).len();
     assert!(
         units.iter().all(|&u| u < n_units),
-        "input_gradient: unit out of range for layer '{}' with {n_units} units",
+        "input_gradient: unit out of range for layer '{}' with {n_units} output values",
         net.layers()[layer].name
     );
+    let dense = net.is_dense_only();
+    let block = if dense {
+        GRAD_BLOCK_ROWS
+    } else {
+        GENERIC_BLOCK_ROWS
+    };
     let mut start = 0;
     while start < rows {
         if cancelled() {
             return Err(Error::Cancelled);
         }
-        let end = (start + GRAD_BLOCK_ROWS).min(rows);
+        let end = (start + block).min(rows);
         let block_units: &[usize] = if units.len() == 1 {
             units
         } else {
             &units[start..end]
         };
-        gradient_block(
-            net,
-            layer,
-            block_units,
-            x.slice(s![start..end, ..]),
-            &mut z[start..end],
-            grad.slice_mut(s![start..end, ..]),
-            ws,
-        );
+        if dense {
+            gradient_block(
+                net,
+                layer,
+                block_units,
+                x.slice(s![start..end, ..]),
+                &mut z[start..end],
+                grad.slice_mut(s![start..end, ..]),
+                ws,
+            );
+        } else {
+            generic_gradient_block(
+                net,
+                layer,
+                block_units,
+                x.slice(s![start..end, ..]),
+                &mut z[start..end],
+                grad.slice_mut(s![start..end, ..]),
+            );
+        }
         start = end;
     }
     Ok(())
+}
+
+/// Rows per block on networks with convolutional layers, whose per-layer arrays are
+/// `channels x height x width` wide (a 32 x 30 x 30 map is 115 KiB per row).
+const GENERIC_BLOCK_ROWS: usize = 128;
+
+/// The gradient of layer `l`'s input given its input values `x: [rows, input values]` and
+/// the gradient with respect to its pre-activations `delta: [rows, output values]`:
+/// `delta · W` for a dense layer, the adjoint of the map operation otherwise
+/// ([`super::conv`]).
+pub(crate) fn layer_backward(
+    net: &Network,
+    l: usize,
+    x: ArrayView2<f32>,
+    delta: ArrayView2<f32>,
+) -> Array2<f32> {
+    let layer = net.layer(l);
+    if layer.kind == LayerKind::Dense {
+        super::forward::matmul(delta, layer.weights.view())
+    } else {
+        super::conv::backward(net, l, x, delta)
+    }
+}
+
+/// One block of [`input_gradient_into`] on a network with non-dense layers: a forward
+/// trace up to the target (every layer's input and pre-activation kept), a one-hot error
+/// signal on the target value `units[b]` of each row, then [`layer_backward`] and the
+/// activation derivatives down to the input.
+fn generic_gradient_block(
+    net: &Network,
+    layer: usize,
+    units: &[usize],
+    x: ArrayView2<f32>,
+    z_out: &mut [f32],
+    mut grad: ArrayViewMut2<f32>,
+) {
+    let rows = x.nrows();
+    let unit_of = |b: usize| if units.len() == 1 { units[0] } else { units[b] };
+    let mut inputs: Vec<Array2<f32>> = Vec::with_capacity(layer + 1);
+    let mut pres: Vec<Array2<f32>> = Vec::with_capacity(layer + 1);
+    let mut cur = x.to_owned();
+    for l in 0..=layer {
+        let z = layer_pre(net, l, cur.view());
+        if l < layer {
+            let mut a = z.clone();
+            activate_in_place(net.layer(l).activation, &mut a);
+            inputs.push(std::mem::replace(&mut cur, a));
+        } else {
+            inputs.push(std::mem::take(&mut cur));
+        }
+        pres.push(z);
+    }
+    let target = &pres[layer];
+    let mut delta = Array2::<f32>::zeros(target.dim());
+    for b in 0..rows {
+        let u = unit_of(b);
+        z_out[b] = target[[b, u]];
+        delta[[b, u]] = 1.0;
+    }
+    for l in (0..=layer).rev() {
+        let mut dx = layer_backward(net, l, inputs[l].view(), delta.view());
+        if l > 0 {
+            let act = net.layer(l - 1).activation;
+            if act != Activation::Identity {
+                dx.zip_mut_with(&pres[l - 1], |d, &z| *d *= act.derivative_scalar(z));
+            }
+        }
+        delta = dx;
+    }
+    grad.assign(&delta);
 }
 
 /// Writes `bias` into every row of `out: [rows, units]` (flattened), in parallel.
@@ -324,7 +415,8 @@ pub struct Sensitivity {
 }
 
 /// Gradients of every unit of `layer` at the input `at: [input size]` (the app evaluates
-/// them at the mean probe input).
+/// them at the mean probe input). On a convolutional layer a unit is a channel, taken at
+/// the centre of its map ([`crate::model::Shape::centre`]).
 ///
 /// # Errors
 /// [`Error::BadOption`] when `layer` is not a layer index or `at` does not have one value
@@ -349,7 +441,9 @@ pub fn sensitivity(net: &Network, layer: usize, at: &[f32]) -> Result<Sensitivit
         ));
     }
     let x = Array2::from_shape_fn((units, at.len()), |(_, i)| at[i]);
-    let ids: Vec<usize> = (0..units).collect();
+    // On a map: each channel at the centre of its map.
+    let shape = net.output_shape(layer);
+    let ids: Vec<usize> = (0..units).map(|c| shape.index(c, shape.centre())).collect();
     let (_, maps) = input_gradient(net, layer, &ids, x.view());
     let max_abs = maps
         .iter()

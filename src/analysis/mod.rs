@@ -5,7 +5,10 @@
 
 pub mod activity;
 pub mod bounds;
+pub mod channels;
 pub mod compact;
+pub(crate) mod conv;
+pub mod fields;
 pub mod forward;
 pub mod gradient;
 pub mod prefer;

@@ -30,10 +30,11 @@
 //! product per layer for the batch, see [`super::gradient`]).
 
 use super::Progress;
+use super::fields::check_position;
 use super::forward::forward_trace;
 use super::gradient::{GradWorkspace, input_gradient_into};
 use crate::error::{Error, Result};
-use crate::model::{Layout, Network};
+use crate::model::{LayerKind, Layout, Network, Shape};
 use ndarray::{Array2, ArrayView2, ArrayViewMut2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -49,6 +50,7 @@ pub struct PreferOptions {
     seed: u64,
     l2: f32,
     tv: f32,
+    position: Option<(usize, usize)>,
 }
 
 impl Default for PreferOptions {
@@ -59,6 +61,7 @@ impl Default for PreferOptions {
             seed: 0,
             l2: 0.0,
             tv: 0.0,
+            position: None,
         }
     }
 }
@@ -89,7 +92,21 @@ impl PreferOptions {
             seed,
             l2,
             tv,
+            position: None,
         })
+    }
+
+    /// The same options maximising a convolutional channel at map position `(row,
+    /// column)` (default: the centre of the map, [`crate::model::Shape::centre`]). Checked
+    /// against the layer by [`prefer`]; refused on a layer with a vector output.
+    #[must_use]
+    pub fn with_position(self, position: Option<(usize, usize)>) -> Self {
+        PreferOptions { position, ..self }
+    }
+
+    /// The map position asked for, if any (see [`PreferOptions::with_position`]).
+    pub fn position(&self) -> Option<(usize, usize)> {
+        self.position
     }
 
     /// Gradient steps per start (default 200).
@@ -129,8 +146,11 @@ impl PreferOptions {
 pub struct Preferred {
     /// Layer index.
     pub layer: usize,
-    /// Unit index within the layer.
+    /// Unit index within the layer (the channel of a convolutional layer).
     pub unit: usize,
+    /// The map position `(row, column)` maximised on a layer with a map output; `None` on
+    /// a layer with a vector output.
+    pub position: Option<(usize, usize)>,
     /// The preferred input, `[input size]`, inside the box.
     pub input: Vec<f32>,
     /// The raw pre-activation z at `input` (not the penalised objective).
@@ -322,10 +342,15 @@ pub fn prefer(
     progress: &dyn Progress,
 ) -> Result<Vec<Preferred>> {
     check_request(net, layer, units, opts)?;
-    if layer == 0 && opts.unpenalised() {
+    let (targets, position) = targets(net, layer, units, opts)?;
+    let found = if layer == 0 && opts.unpenalised() {
         let mut inputs = Array2::<f32>::zeros((units.len(), net.input().size));
-        for (mut row, &u) in inputs.rows_mut().into_iter().zip(units) {
-            let (_, x) = closed_form_first_layer(net, u);
+        for (mut row, &t) in inputs.rows_mut().into_iter().zip(&targets) {
+            let x = if net.layer(0).kind == LayerKind::Dense {
+                closed_form_first_layer(net, t).1
+            } else {
+                closed_form_first_layer_value(net, t)
+            };
             row.iter_mut().zip(&x).for_each(|(d, s)| *d = *s);
         }
         let outcome = vec![
@@ -336,9 +361,11 @@ pub fn prefer(
             units.len()
         ];
         progress.set(1.0);
-        return Ok(evaluate(net, layer, units, &inputs, &outcome));
-    }
-    ascend(net, layer, units, opts, progress)
+        evaluate(net, layer, &targets, &inputs, &outcome)
+    } else {
+        ascend(net, layer, &targets, opts, progress)?
+    };
+    Ok(relabel(found, units, position))
 }
 
 /// Preferred inputs of `units` of `layer` by projected gradient ascent, all optimised
@@ -352,7 +379,71 @@ pub fn prefer_by_ascent(
     progress: &dyn Progress,
 ) -> Result<Vec<Preferred>> {
     check_request(net, layer, units, opts)?;
-    ascend(net, layer, units, opts, progress)
+    let (targets, position) = targets(net, layer, units, opts)?;
+    let found = ascend(net, layer, &targets, opts, progress)?;
+    Ok(relabel(found, units, position))
+}
+
+/// Output-value indices to maximise, with the map position they sit at (`None` on a vector).
+type Targets = (Vec<usize>, Option<(usize, usize)>);
+
+/// The output values the search maximises: unit `u` itself on a layer with a vector output;
+/// channel `u` at the chosen position (default the centre) on a map, with that position.
+fn targets(net: &Network, layer: usize, units: &[usize], opts: &PreferOptions) -> Result<Targets> {
+    let shape = net.output_shape(layer);
+    let position = match shape {
+        Shape::Map { .. } => Some(check_position(net, layer, opts.position)?),
+        Shape::Vector(_) => {
+            if opts.position.is_some() {
+                check_position(net, layer, opts.position)?;
+            }
+            None
+        }
+    };
+    let at = position.unwrap_or((0, 0));
+    Ok((
+        units.iter().map(|&u| shape.index(u, at)).collect(),
+        position,
+    ))
+}
+
+/// Gives each result its unit (channel) and position back.
+fn relabel(
+    mut found: Vec<Preferred>,
+    units: &[usize],
+    position: Option<(usize, usize)>,
+) -> Vec<Preferred> {
+    for (p, &u) in found.iter_mut().zip(units) {
+        p.unit = u;
+        p.position = position;
+    }
+    found
+}
+
+/// The closed-form maximiser of first-layer output value `target` of a non-dense first
+/// layer: a linear function of the input whose gradient (the same at every point) is read
+/// at the box centre; `high` where it is positive, `low` where negative, the centre where 0.
+fn closed_form_first_layer_value(net: &Network, target: usize) -> Vec<f32> {
+    let centre = net.input().centre();
+    let Ok(x) = Array2::from_shape_vec((1, centre.len()), centre.clone()) else {
+        return centre;
+    };
+    let (_, g) = super::gradient::input_gradient(net, 0, &[target], x.view());
+    g.row(0)
+        .iter()
+        .zip(&net.input().low)
+        .zip(&net.input().high)
+        .zip(&centre)
+        .map(|(((gi, lo), hi), c)| {
+            if *gi > 0.0 {
+                *hi
+            } else if *gi < 0.0 {
+                *lo
+            } else {
+                *c
+            }
+        })
+        .collect()
 }
 
 /// How the search of one unit went.
@@ -588,6 +679,7 @@ fn evaluate(
             Preferred {
                 layer,
                 unit: u,
+                position: None,
                 input: inputs.row(ui).to_vec(),
                 preactivation,
                 activation,
@@ -959,6 +1051,7 @@ mod tests {
         };
         let big = f32::MAX / 2.0;
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Relu,
             weights: array![[big, big], [big, big]],
@@ -966,6 +1059,7 @@ mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Identity,
             weights: array![[big, big]],

@@ -229,6 +229,7 @@ mod tests {
             names: None,
         };
         let l1 = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Relu,
             weights: Array2::from_shape_fn((7, 9), |_| rng.random_range(-1.0f32..1.0)),
@@ -236,6 +237,7 @@ mod tests {
             labels: None,
         };
         let l2 = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Softmax,
             weights: Array2::from_shape_fn((3, 7), |_| rng.random_range(-1.0f32..1.0)),
@@ -285,6 +287,7 @@ mod tests {
             names: None,
         };
         let l = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Identity,
             weights: array![[1.0, -1.0], [1.0, 1.0]],

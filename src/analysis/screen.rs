@@ -16,10 +16,17 @@
 //! "Active" means z > 0 for rectifiers and identity units; for sigmoid and tanh it means
 //! not saturated, i.e. |z| below [`SIGMOID_SATURATION_Z`] / [`TANH_SATURATION_Z`] (the
 //! slope is at least 5% of its peak).
+//!
+//! Convolutional layers: a unit is a channel. It is active on a sample when it is active at
+//! one position of its map or more, so `active_frac` counts samples and `dead_on_probe`
+//! means never active anywhere; `mean` and `max` run over every sample and position;
+//! `always_active` means z > 0 at every position of every sample; `upper_bound` is the
+//! largest bound over the positions ([`super::bounds::Bounds::unit_upper`]). Pooling and
+//! flatten layers have no units and are not listed.
 
 use super::Progress;
 use super::bounds::interval_bounds_upto;
-use super::forward::{activate_in_place, linear};
+use super::forward::{activate_in_place, layer_pre};
 use crate::error::{Error, Result};
 use crate::model::{Activation, Network, SIGMOID_SATURATION_Z, TANH_SATURATION_Z};
 use crate::probe::{DEFAULT_CHUNK_ROWS_NONZERO, ProbeSource};
@@ -157,8 +164,12 @@ pub struct ScreenReport {
 /// Running totals of one unit over the probe.
 #[derive(Debug, Clone, Copy)]
 struct Acc {
+    /// Samples on which the unit was active (at one position or more).
     active: u64,
+    /// Values (samples x positions) with z > 0.
     positive: u64,
+    /// Values seen (samples x positions).
+    count: u64,
     sum: f64,
     max: f32,
     nonfinite: bool,
@@ -168,6 +179,7 @@ impl Acc {
     const EMPTY: Acc = Acc {
         active: 0,
         positive: 0,
+        count: 0,
         sum: 0.0,
         max: f32::NEG_INFINITY,
         nonfinite: false,
@@ -176,6 +188,7 @@ impl Acc {
     fn merge(&mut self, o: &Acc) {
         self.active += o.active;
         self.positive += o.positive;
+        self.count += o.count;
         self.sum += o.sum;
         self.max = self.max.max(o.max);
         self.nonfinite |= o.nonfinite;
@@ -213,8 +226,52 @@ fn accumulate(act: Activation, pre: ArrayView2<f32>, accs: &mut [Acc]) {
                 }
                 acc.active += u64::from(is_active(act, z));
                 acc.positive += u64::from(z > 0.0);
+                acc.count += 1;
                 acc.sum += f64::from(a);
                 acc.max = acc.max.max(a);
+            }
+        }
+        local
+    };
+    let starts: Vec<usize> = (0..rows).step_by(ACC_ROWS).collect();
+    let parts: Vec<Vec<Acc>> = starts
+        .par_iter()
+        .map(|&r0| part(r0, (r0 + ACC_ROWS).min(rows)))
+        .collect();
+    for p in parts {
+        for (a, b) in accs.iter_mut().zip(&p) {
+            a.merge(b);
+        }
+    }
+}
+
+/// [`accumulate`] for a layer of maps: `pre: [rows, channels x positions]` (channel first),
+/// one accumulator per channel. A channel is active on a sample when it is active at one
+/// position or more; the sum, the maximum and the count of positive values run over every
+/// sample and position.
+fn accumulate_maps(act: Activation, pre: ArrayView2<f32>, positions: usize, accs: &mut [Acc]) {
+    let channels = accs.len();
+    let rows = pre.nrows();
+    let part = |r0: usize, r1: usize| {
+        let mut local = vec![Acc::EMPTY; channels];
+        for r in r0..r1 {
+            let zr = pre.row(r);
+            for (c, acc) in local.iter_mut().enumerate() {
+                let mut any = false;
+                for p in 0..positions {
+                    let z = zr[c * positions + p];
+                    let a = act.apply_scalar(z);
+                    if !(z.is_finite() && a.is_finite()) {
+                        acc.nonfinite = true;
+                        continue;
+                    }
+                    any |= is_active(act, z);
+                    acc.positive += u64::from(z > 0.0);
+                    acc.count += 1;
+                    acc.sum += f64::from(a);
+                    acc.max = acc.max.max(a);
+                }
+                acc.active += u64::from(any);
             }
         }
         local
@@ -245,7 +302,7 @@ fn status_of(act: Activation, acc: &Acc, samples: usize, upper: f64, rare: f64) 
                 Status::DeadOnProbe
             } else if frac < rare {
                 Status::RarelyActive
-            } else if acc.positive as usize == samples {
+            } else if acc.positive == acc.count {
                 Status::AlwaysActive
             } else {
                 Status::Ok
@@ -299,8 +356,13 @@ pub fn screen(
         for (l, acc) in accs.iter_mut().enumerate() {
             let layer = &net.layers()[l];
             let x = input.as_ref().map_or(chunk.inputs.view(), |a| a.view());
-            let mut z = linear(x, layer.weights.view(), layer.bias.view());
-            accumulate(layer.activation, z.view(), acc);
+            let mut z = layer_pre(net, l, x);
+            let positions = net.output_shape(l).positions();
+            if positions == 1 {
+                accumulate(layer.activation, z.view(), acc);
+            } else {
+                accumulate_maps(layer.activation, z.view(), positions, acc);
+            }
             if l + 1 < hidden {
                 activate_in_place(layer.activation, &mut z);
                 input = Some(z);
@@ -318,11 +380,11 @@ pub fn screen(
     for (l, acc) in accs.iter().enumerate() {
         let layer = &net.layers()[l];
         for (k, a) in acc.iter().enumerate() {
-            let upper = bounds.upper[l][k];
+            let upper = bounds.unit_upper(net, l, k);
             let (mean, max) = if a.nonfinite {
                 (f64::NAN, f64::NAN)
             } else {
-                (a.sum / samples as f64, f64::from(a.max))
+                (a.sum / a.count.max(1) as f64, f64::from(a.max))
             };
             units.push(UnitScreen {
                 layer: layer.name.clone(),
@@ -408,6 +470,7 @@ pub(crate) mod tests {
         };
         let units = w.nrows();
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: act,
             weights: w,
@@ -415,6 +478,7 @@ pub(crate) mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "out".into(),
             activation: Activation::Softmax,
             weights: Array2::from_elem((2, units), 0.1),

@@ -368,6 +368,7 @@ mod tests {
             names: None,
         };
         let layer = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Relu,
             weights,
@@ -375,6 +376,7 @@ mod tests {
             labels: None,
         };
         let out = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "out".into(),
             activation: Activation::Identity,
             weights: ndarray::Array2::zeros((1, units)),

@@ -188,6 +188,7 @@ pub fn check_fraction(net: &Network, fraction: f64, only: Option<usize>) -> Resu
             "a unit-pruning fraction must be a number from 0 to 1, got {fraction}"
         )));
     }
+    super::compact::require_dense(net, "unit pruning")?;
     let hidden = net.layers().len() - 1;
     if hidden == 0 {
         return Err(Error::usage(
@@ -401,6 +402,7 @@ mod tests {
             names: None,
         };
         let h = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "h".into(),
             activation: Activation::Relu,
             weights: array![[1.0, -2.0], [0.5, 0.0], [-0.25, 0.25], [0.0, 4.0]],
@@ -408,6 +410,7 @@ mod tests {
             labels: None,
         };
         let o = Layer {
+            kind: crate::model::LayerKind::Dense,
             name: "o".into(),
             activation: Activation::Identity,
             weights: array![[1.0, 1.0, 1.0, 1.0], [0.0, 0.0, 0.0, 0.0]],

@@ -17,6 +17,7 @@ pub(crate) fn random_layers(
     acts.iter()
         .enumerate()
         .map(|(i, &act)| Layer {
+            kind: crate::model::LayerKind::Dense,
             name: format!("l{i}"),
             activation: act,
             weights: Array2::from_shape_fn((sizes[i + 1], sizes[i]), |_| {

@@ -56,6 +56,7 @@ impl ReceptorApp {
                     self.notify_failure(failed);
                 }
             }
+            Reply::Conv { tag, reply } => self.on_conv_reply(tag, reply),
             Reply::UnitCurves {
                 tag,
                 criterion,
@@ -331,6 +332,7 @@ impl ReceptorApp {
         };
         let tag = self.state.tag();
         let layer = self.state.current_layer();
+        self.request_conv(&net, tag);
         if layer < net.layers().len() && !self.state.results.preferred.contains_key(&layer) {
             self.queue_prefer(&net, layer, None);
         }

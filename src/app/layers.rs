@@ -208,13 +208,30 @@ fn probe_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) {
 fn layer_list_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network) {
     let current = state.current_layer();
     let last = net.layers().len().saturating_sub(1);
+    let fields = super::conv::fields_of(net);
     for (i, l) in net.layers().iter().enumerate() {
         let selected = i == current;
-        let title = format!(
-            "{}  ·  {} units  ·  {}",
-            l.name,
-            l.units(),
-            l.activation.name()
+        let entry = super::conv::layer_entry(net, &fields, i);
+        if let Some(e) = entry.as_ref().filter(|e| !e.selectable) {
+            ui.label(&e.title);
+            ui.indent(("layer-health", i), |ui| {
+                for line in &e.lines {
+                    ui.label(egui::RichText::new(line).small());
+                }
+            });
+            ui.add_space(4.0);
+            continue;
+        }
+        let title = entry.as_ref().map_or_else(
+            || {
+                format!(
+                    "{}  ·  {} units  ·  {}",
+                    l.name,
+                    l.units(),
+                    l.activation.name()
+                )
+            },
+            |e| e.title.clone(),
         );
         let resp = ui.add(egui::Button::selectable(
             selected,
@@ -223,7 +240,8 @@ fn layer_list_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network) {
         if resp.clicked() && !selected {
             state.select(Selection { layer: i, unit: 0 }, false);
         }
-        let summary = summary_line(state, i, i == last);
+        let mut summary = entry.map(|e| e.lines).unwrap_or_default();
+        summary.extend(summary_line(state, i, i == last));
         ui.indent(("layer-health", i), |ui| {
             for line in summary {
                 ui.label(egui::RichText::new(line).small());

@@ -7,6 +7,8 @@
 
 pub mod colour;
 pub mod compact;
+pub mod conv;
+pub mod conv_jobs;
 pub mod detail;
 pub mod export;
 mod jobs;
@@ -410,6 +412,7 @@ impl ReceptorApp {
             return;
         }
         let n_layers = self.state.net().map_or(0, |n| n.layers().len());
+        let net = self.state.net().cloned();
         ctx.input_mut(|i| {
             if i.consume_key(Modifiers::NONE, Key::Escape) && self.worker.pending() > 0 {
                 self.actions.push(Action::Cancel);
@@ -431,23 +434,17 @@ impl ReceptorApp {
             }
             let sel = self.state.selection;
             if let Some(s) = sel {
-                if i.consume_key(Modifiers::NONE, Key::PageDown) && s.layer + 1 < n_layers {
-                    self.state.select(
-                        Selection {
-                            layer: s.layer + 1,
-                            unit: 0,
-                        },
-                        false,
-                    );
+                // Pooling and flatten layers have no units to show: skip them.
+                let has_units = |l: &usize| net.as_ref().is_some_and(|n| n.layer(*l).units() > 0);
+                if i.consume_key(Modifiers::NONE, Key::PageDown)
+                    && let Some(layer) = (s.layer + 1..n_layers).find(has_units)
+                {
+                    self.state.select(Selection { layer, unit: 0 }, false);
                 }
-                if i.consume_key(Modifiers::NONE, Key::PageUp) && s.layer > 0 {
-                    self.state.select(
-                        Selection {
-                            layer: s.layer - 1,
-                            unit: 0,
-                        },
-                        false,
-                    );
+                if i.consume_key(Modifiers::NONE, Key::PageUp)
+                    && let Some(layer) = (0..s.layer).rev().find(has_units)
+                {
+                    self.state.select(Selection { layer, unit: 0 }, false);
                 }
                 if i.consume_key(Modifiers::NONE, Key::Backspace)
                     && let Some(prev) = self.state.history.pop()

@@ -90,6 +90,8 @@ pub enum Job {
     },
     /// The pruning curve on a labelled probe.
     Sweep(Arc<ProbeData>),
+    /// Work of the convolution views.
+    Conv(super::conv_jobs::ConvJob),
     /// The unit-removal curves (whole model and per layer) on a labelled probe.
     UnitCurves {
         /// The labelled probe.
@@ -132,6 +134,7 @@ impl Job {
                 format!("Computing sensitivity of layer {}", lname(*layer))
             }
             Job::Sweep(_) => "Pruning sweep".into(),
+            Job::Conv(job) => job.title(net),
             Job::UnitCurves { criterion, .. } => {
                 format!(
                     "Unit-removal sweeps (units ranked by {})",
@@ -231,6 +234,13 @@ pub enum Reply {
         tag: Tag,
         /// Points or error.
         result: Result<Arc<Vec<SweepPoint>>>,
+    },
+    /// A result of the convolution views.
+    Conv {
+        /// Model and probe tag.
+        tag: Tag,
+        /// The result.
+        reply: super::conv_jobs::ConvReply,
     },
     /// The unit-removal curves of one criterion.
     UnitCurves {
@@ -537,6 +547,13 @@ fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
                 tag,
                 result: not_cancelled(result)?.map(Arc::new),
             }
+        }
+        Job::Conv(job) => {
+            let reply = job.run(net, progress);
+            if super::conv_jobs::ConvJob::was_cancelled(&reply) {
+                return None;
+            }
+            Reply::Conv { tag, reply }
         }
         Job::UnitCurves { data, criterion } => {
             let result = structured::unit_curves(

@@ -7,6 +7,7 @@
 pub mod check;
 pub mod compact;
 pub mod convert;
+pub mod fields;
 pub mod forward;
 pub mod output;
 pub mod prefer;
@@ -100,6 +101,19 @@ sparseness, (sqrt(n) - L1/L2) / (sqrt(n) - 1)), gini (Gini index of |w|, Hurley 
 2009), bias. A unit whose weights are all zero, or that has one input, gets 1 for both. \
 JSON output adds \"layers\": one summary per layer.")]
     Stats(stats::StatsArgs),
+
+    /// Theoretical receptive fields: one row per layer with its size on the input.
+    #[command(long_about = "\
+The theoretical receptive field of one unit of every layer on the input image, by the \
+recurrences of A. Araujo, W. Norris, J. Sim, \"Computing receptive fields of convolutional \
+neural networks\" (Distill 2019).
+
+Columns: layer, type, out_channels, out_height, out_width (the layer's output map; 1 x 1 for \
+a vector), rf_height, rf_width (the field's size in input pixels; it may reach into the \
+padding), jump_h, jump_w (input pixels between neighbouring units; empty for a vector layer, \
+which sees the whole input), start_h, start_w (the input-pixel centre of unit (0, 0)'s field, \
+negative when it lies in the padding; the image centre for a vector layer).")]
+    Fields(fields::FieldsArgs),
 
     /// Screen hidden units for dead, rarely active, always active and saturated units.
     #[command(long_about = "\
@@ -386,6 +400,7 @@ pub fn run(command: Command) -> Result<ExitCode> {
         Command::PruneSweep(a) => prune_sweep::run(&a),
         Command::Compact(a) => compact::run(&a),
         Command::Convert(a) => convert::run(&a),
+        Command::Fields(a) => fields::run(&a),
     }
 }
 

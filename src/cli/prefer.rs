@@ -3,6 +3,7 @@
 
 use super::CommonArgs;
 use crate::analysis::Silent;
+use crate::analysis::fields::{crop, effective_receptive_field, receptive_fields};
 use crate::analysis::prefer::{PreferOptions, Preferred, prefer};
 use crate::error::Result;
 use crate::model::Network;
@@ -17,7 +18,7 @@ use std::process::ExitCode;
 #[derive(Debug, Clone, Args)]
 #[command(group = clap::ArgGroup::new("which").required(true).args(["unit", "all"]))]
 pub struct PreferArgs {
-    /// The model file (receptor-model/1 JSON).
+    /// The model file (receptor-model/1 or /2 JSON).
     #[arg(value_name = "MODEL")]
     pub model: PathBuf,
 
@@ -64,7 +65,19 @@ pub struct PreferArgs {
     )]
     pub tv: f32,
 
-    /// Also draw the preferred input(s) as a PNG image: black is the low end of the input
+    /// Convolutional layers: maximise the channel at this map position (row, column, from
+    /// 0) instead of at the centre of its map.
+    #[arg(long, value_name = "ROW,COL", value_parser = parse_position)]
+    pub position: Option<(usize, usize)>,
+
+    /// Also compute each unit's effective receptive field over this probe (.csv or .npy):
+    /// the mean |gradient| of the unit's pre-activation (a channel's at the centre of its
+    /// map) with respect to the input (Luo et al. 2016). JSON output only: key "erf".
+    #[arg(long, value_name = "DATA")]
+    pub erf_probe: Option<PathBuf>,
+
+    /// Also draw the preferred input(s) as a PNG image (on a convolutional layer cropped to
+    /// the receptive field of the chosen position): black is the low end of the input
     /// box, white the high end (mid grey is its centre); a grid of tiles for --all; a
     /// vector layout is drawn as one strip per unit; magenta marks a non-finite value. The
     /// app's export of a layer's grid draws the same picture.
@@ -79,7 +92,8 @@ pub struct PreferArgs {
 /// Runs `prefer`.
 pub fn run(args: &PreferArgs) -> Result<ExitCode> {
     // The options are checked when they are made, the unit and the layout by the search.
-    let opts = PreferOptions::new(args.steps, args.restarts, args.seed, args.l2, args.tv)?;
+    let opts = PreferOptions::new(args.steps, args.restarts, args.seed, args.l2, args.tv)?
+        .with_position(args.position);
     let net = args.common.load(&args.model)?;
     let layer = net.require_layer(&args.layer)?;
     let units: Vec<usize> = match args.unit {
@@ -95,16 +109,57 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
     }
     // The image is made before anything is written, so a failure leaves no partial output.
     let png = match &args.png {
-        Some(_) => Some(render_png(&net, &found)?),
+        Some(_) => Some(render_png(&net, layer, &found)?),
         None => None,
     };
+    let erf = match &args.erf_probe {
+        Some(path) => {
+            let mut source = crate::probe::open(path, &net)?;
+            let data = crate::probe::read_all(source.as_mut())?;
+            let mut maps = Vec::with_capacity(units.len());
+            for &u in &units {
+                let map = effective_receptive_field(&net, layer, u, data.inputs.view(), &Silent)?;
+                maps.push(vec![
+                    ("unit".to_string(), Cell::from(u)),
+                    ("map".to_string(), Cell::F32s(map)),
+                ]);
+            }
+            Some(maps)
+        }
+        None => None,
+    };
+    let field = found
+        .first()
+        .and_then(|p| p.position)
+        .map(|pos| receptive_fields(&net)[layer].region(pos, input_hw(&net)));
     emit(&args.common.destination(), |w| {
-        let extra = [
+        let mut extra = vec![
             ("seed", Cell::UInt(args.seed)),
             ("restarts", Cell::from(args.restarts)),
             ("l2", Cell::F32(args.l2)),
             ("tv", Cell::F32(args.tv)),
         ];
+        if let (Some(pos), Some((rows, cols))) = (found.first().and_then(|p| p.position), &field) {
+            extra.push((
+                "position",
+                Cell::Objects(vec![vec![
+                    ("row".to_string(), Cell::from(pos.0)),
+                    ("col".to_string(), Cell::from(pos.1)),
+                ]]),
+            ));
+            extra.push((
+                "receptive_field",
+                Cell::Objects(vec![vec![
+                    ("row_start".to_string(), Cell::from(rows.start)),
+                    ("row_end".to_string(), Cell::from(rows.end)),
+                    ("col_start".to_string(), Cell::from(cols.start)),
+                    ("col_end".to_string(), Cell::from(cols.end)),
+                ]]),
+            ));
+        }
+        if let Some(maps) = &erf {
+            extra.push(("erf", Cell::Objects(maps.clone())));
+        }
         let size = net.input().size;
         tables::write_prefer(args.common.format, w, &args.layer, size, &found, &extra)?;
         Ok::<(), Stop>(())
@@ -121,7 +176,39 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
 /// Image layouts: one tile per unit (height x width, grey for one channel, colour for
 /// three), tiles in a near-square grid in unit order, row by row. Vector layouts: one
 /// horizontal strip per unit, strips stacked top to bottom.
-pub fn render_png(net: &Network, found: &[Preferred]) -> Result<Vec<u8>> {
+/// On a convolutional layer each tile is cropped to the receptive field of the maximised
+/// position ([`crate::analysis::fields::Field::region`]).
+pub fn render_png(net: &Network, layer: usize, found: &[Preferred]) -> Result<Vec<u8>> {
+    if let Some(pos) = found.first().and_then(|p| p.position) {
+        let (rows, cols) = receptive_fields(net)[layer].region(pos, input_hw(net));
+        let crops: Vec<(crate::model::InputSpec, Vec<f32>)> = found
+            .iter()
+            .map(|p| crop(net.input(), &p.input, rows.clone(), cols.clone()))
+            .collect();
+        let Some(spec) = crops.first().map(|c| c.0.clone()) else {
+            return picture::preferred_grid(net.input(), &[])?.png_bytes();
+        };
+        let inputs: Vec<Option<&[f32]>> = crops.iter().map(|c| Some(c.1.as_slice())).collect();
+        return picture::preferred_grid(&spec, &inputs)?.png_bytes();
+    }
     let inputs: Vec<Option<&[f32]>> = found.iter().map(|p| Some(p.input.as_slice())).collect();
     picture::preferred_grid(net.input(), &inputs)?.png_bytes()
+}
+
+/// The input image's `(height, width)`, `(1, size)` for a vector layout.
+fn input_hw(net: &Network) -> (usize, usize) {
+    match net.input().layout {
+        crate::model::Layout::Image { height, width, .. } => (height, width),
+        crate::model::Layout::Vector => (1, net.input().size),
+    }
+}
+
+/// Parses `ROW,COL` (two whole numbers).
+fn parse_position(s: &str) -> std::result::Result<(usize, usize), String> {
+    let bad = || format!("expected ROW,COL (two whole numbers, e.g. 3,4), found \"{s}\"");
+    let (r, c) = s.split_once(',').ok_or_else(bad)?;
+    Ok((
+        r.trim().parse().map_err(|_| bad())?,
+        c.trim().parse().map_err(|_| bad())?,
+    ))
 }

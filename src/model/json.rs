@@ -7,8 +7,8 @@
 //! message can name the layer.
 
 use super::tensors::SideFiles;
-use super::types::{Activation, InputSpec, Layer, Layout, NetworkParts};
-use super::{LoadOptions, SCHEMA_TAG};
+use super::types::{Activation, Conv2d, InputSpec, Layer, LayerKind, Layout, NetworkParts};
+use super::{LoadOptions, SCHEMA_TAG, SCHEMA_TAG_2};
 use crate::error::{Error, Result};
 use ndarray::{Array1, Array2};
 use serde::Deserialize;
@@ -61,6 +61,11 @@ struct RawLayer {
     weights: Option<TensorSrc>,
     bias: Option<TensorSrc>,
     labels: Option<Vec<String>>,
+    kernel: Option<serde_json::Value>,
+    stride: Option<serde_json::Value>,
+    padding: Option<serde_json::Value>,
+    dilation: Option<serde_json::Value>,
+    groups: Option<serde_json::Value>,
 }
 
 /// Where a tensor's values are: inline in the JSON, or in a safetensors side file.
@@ -70,16 +75,48 @@ enum TensorSrc {
     Side { file: String, tensor: String },
 }
 
+/// Deepest nesting of an inline tensor: 4-D (a conv2d's `[out, in, kh, kw]` weights).
+const MAX_DIMS: usize = 4;
+
 /// An inline tensor parsed into a flat buffer, with the first problem found (if any).
 #[derive(Debug, Default)]
 struct InlineTensor {
     data: Vec<f32>,
-    /// Length of each row (2-D), or empty for a 1-D list.
+    /// Length of each row (the lists inside the outer list), or empty for a 1-D list.
     row_lens: Vec<usize>,
+    /// `counts[d]`: the number of entries of every list at nesting level `d + 1` (level 1
+    /// is a row of the outer list).
+    counts: Vec<Vec<usize>>,
     /// True when the outer list held numbers (1-D).
     flat: bool,
-    /// First problem: (row, column, description). Row is `None` for a 1-D list.
-    problem: Option<(Option<usize>, usize, String)>,
+    /// Bit `l` set when a list at nesting level `l` (0 = the outer list) holds numbers.
+    leaf_levels: u8,
+    /// Index path of the value being read.
+    path: Vec<usize>,
+    /// First problem: (index path, description).
+    problem: Option<(Vec<usize>, String)>,
+}
+
+impl InlineTensor {
+    fn note(&mut self, why: String) {
+        if self.problem.is_none() {
+            self.problem = Some((self.path.clone(), why));
+        }
+    }
+
+    /// Records that a list at nesting `level` holds numbers.
+    fn leaf_at(&mut self, level: usize) {
+        self.leaf_levels |= 1 << level;
+    }
+
+    /// The first problem, including numbers at two depths of nesting (a ragged tensor).
+    fn first_problem(&self) -> Option<String> {
+        if let Some(p) = &self.problem {
+            return Some(problem_text(p));
+        }
+        (self.leaf_levels.count_ones() > 1)
+            .then(|| "numbers at different depths of nesting (a ragged tensor)".to_string())
+    }
 }
 
 /// One JSON value inside a tensor list.
@@ -89,10 +126,11 @@ enum Cell {
     Bad(String),
 }
 
-/// Deserialises one cell of a 1-D list, or one row of a 2-D list (recording into `t`).
+/// Deserialises one cell of a list at nesting `level` (0 = the outer list): a number or a
+/// list one level deeper (recording into `t`).
 struct CellSeed<'a> {
     t: &'a mut InlineTensor,
-    depth: usize,
+    level: usize,
 }
 
 impl<'de> DeserializeSeed<'de> for CellSeed<'_> {
@@ -136,43 +174,66 @@ impl<'de> Visitor<'de> for CellSeed<'_> {
         Ok(Cell::Bad("an object where a number belongs".into()))
     }
     fn visit_seq<A: SeqAccess<'de>>(self, mut s: A) -> Result<Cell, A::Error> {
-        if self.depth > 0 {
+        // This list sits at nesting level `self.level + 1`.
+        let level = self.level + 1;
+        if level >= MAX_DIMS {
             while s.next_element::<IgnoredAny>()?.is_some() {}
-            return Ok(Cell::Bad("a nested list where a number belongs".into()));
+            return Ok(Cell::Bad(format!(
+                "a nested list where a number belongs (tensors have at most {MAX_DIMS} dimensions)"
+            )));
         }
-        // A row of a 2-D tensor.
-        let row = self.t.row_lens.len();
-        let start = self.t.data.len();
-        let mut col = 0usize;
-        while let Some(cell) = s.next_element_seed(CellSeed {
-            t: &mut *self.t,
-            depth: 1,
-        })? {
+        let t = self.t;
+        let start = t.data.len();
+        let mut i = 0usize;
+        let (mut saw_num, mut saw_list) = (false, false);
+        loop {
+            t.path.truncate(level);
+            t.path.push(i);
+            let Some(cell) = s.next_element_seed(CellSeed { t: &mut *t, level })? else {
+                break;
+            };
+            t.path.truncate(level);
+            t.path.push(i);
             match cell {
-                Cell::Num(v) => push_number(self.t, Some(row), col, v),
-                Cell::Bad(why) => {
-                    if self.t.problem.is_none() {
-                        self.t.problem = Some((Some(row), col, why));
+                Cell::Num(v) => {
+                    if saw_list {
+                        t.note("a number where a list belongs (a ragged tensor)".into());
                     }
-                    self.t.data.push(0.0);
+                    saw_num = true;
+                    push_number(t, v);
                 }
-                Cell::Row => {}
+                Cell::Row => {
+                    if saw_num {
+                        t.note("a nested list where a number belongs".into());
+                    }
+                    saw_list = true;
+                }
+                Cell::Bad(why) => {
+                    t.note(why);
+                    t.data.push(0.0);
+                }
             }
-            col += 1;
+            i += 1;
         }
-        self.t.row_lens.push(self.t.data.len() - start);
+        t.path.truncate(level);
+        if saw_num {
+            t.leaf_at(level);
+        }
+        if level == 1 {
+            t.row_lens.push(t.data.len() - start);
+        }
+        if t.counts.len() < level {
+            t.counts.resize_with(level, Vec::new);
+        }
+        t.counts[level - 1].push(i);
         Ok(Cell::Row)
     }
 }
 
-fn push_number(t: &mut InlineTensor, row: Option<usize>, col: usize, v: f64) {
+fn push_number(t: &mut InlineTensor, v: f64) {
     let x = v as f32;
-    if !x.is_finite() && t.problem.is_none() {
-        t.problem = Some((
-            row,
-            col,
-            format!("the value {v} is not a finite 32-bit float"),
-        ));
+    if !x.is_finite() {
+        t.note(format!("the value {v} is not a finite 32-bit float"));
     }
     t.data.push(x);
 }
@@ -191,26 +252,34 @@ impl<'de> Visitor<'de> for TensorVisitor {
         let mut i = 0usize;
         let mut saw_rows = false;
         let mut saw_numbers = false;
-        while let Some(cell) = s.next_element_seed(CellSeed {
-            t: &mut t,
-            depth: 0,
-        })? {
+        loop {
+            t.path.clear();
+            t.path.push(i);
+            let Some(cell) = s.next_element_seed(CellSeed {
+                t: &mut t,
+                level: 0,
+            })?
+            else {
+                break;
+            };
+            t.path.clear();
+            t.path.push(i);
             match cell {
                 Cell::Num(v) => {
                     saw_numbers = true;
-                    push_number(&mut t, None, i, v);
+                    push_number(&mut t, v);
                 }
                 Cell::Row => saw_rows = true,
-                Cell::Bad(why) => {
-                    if t.problem.is_none() {
-                        t.problem = Some((None, i, why));
-                    }
-                }
+                Cell::Bad(why) => t.note(why),
             }
             i += 1;
         }
+        t.path.clear();
         if saw_rows && saw_numbers && t.problem.is_none() {
-            t.problem = Some((None, 0, "a mix of numbers and rows".into()));
+            t.problem = Some((vec![0], "a mix of numbers and rows".into()));
+        }
+        if saw_numbers {
+            t.leaf_at(0);
         }
         t.flat = !saw_rows;
         Ok(TensorSrc::Inline(t))
@@ -304,7 +373,7 @@ fn json_error(origin: &str, e: &serde_json::Error) -> Error {
     let what = match e.classify() {
         Category::Eof => "not valid JSON (the file ends too early; truncated?)",
         Category::Syntax => "not valid JSON",
-        Category::Data => "does not follow the receptor-model/1 schema",
+        Category::Data => "does not follow the receptor-model schema",
         Category::Io => "cannot be read",
     };
     let mut msg = format!("{what}: {e}");
@@ -333,13 +402,13 @@ pub(crate) fn build(
     opts: &LoadOptions,
 ) -> Result<NetworkParts> {
     let err = |msg: String| Error::model(origin, msg);
-    check_schema(raw.schema.as_ref()).map_err(err)?;
+    let version = check_schema(raw.schema.as_ref()).map_err(err)?;
     let input = raw
         .input
         .ok_or_else(|| err("missing \"input\" (size, layout, low, high)".into()))?;
     let layers_raw = raw
         .layers
-        .ok_or_else(|| err("missing \"layers\" (a list of dense layers)".into()))?;
+        .ok_or_else(|| err("missing \"layers\" (a list of layers)".into()))?;
     if layers_raw.is_empty() {
         return Err(err(
             "\"layers\" is empty: a model needs at least one layer".into()
@@ -353,17 +422,48 @@ pub(crate) fn build(
     let mut seen = std::collections::HashSet::new();
     let n_layers = layers_raw.len();
     for (i, l) in layers_raw.into_iter().enumerate() {
-        layers.push(build_layer(i, n_layers, l, origin, &mut side, &mut seen)?);
+        layers.push(build_layer(
+            i, n_layers, l, origin, version, &mut side, &mut seen,
+        )?);
     }
 
-    let first_fan_in = layers[0].fan_in();
-    if declared_size != first_fan_in as u64 {
-        return Err(err(format!(
-            "input: \"size\" is {declared_size} but the first layer '{}' has {first_fan_in} weight columns",
-            layers[0].name
-        )));
-    }
-    let size = first_fan_in;
+    let size = if layers[0].kind == LayerKind::Dense {
+        let first_fan_in = layers[0].fan_in();
+        if declared_size != first_fan_in as u64 {
+            return Err(err(format!(
+                "input: \"size\" is {declared_size} but the first layer '{}' has {first_fan_in} weight columns",
+                layers[0].name
+            )));
+        }
+        first_fan_in
+    } else {
+        // A spatial first layer reads the image layout; its product is checked against
+        // "size" below, before anything is allocated from it.
+        let image = input
+            .layout
+            .as_ref()
+            .filter(|l| l.kind == "image")
+            .and_then(|l| {
+                l.height?
+                    .checked_mul(l.width?)?
+                    .checked_mul(l.channels.unwrap_or(1))
+            });
+        match image {
+            Some(n) if n == declared_size && n <= (1u64 << 32) => n as usize,
+            Some(n) => {
+                return Err(err(format!(
+                    "input: image layout holds {n} values but \"size\" is {declared_size}"
+                )));
+            }
+            None => {
+                return Err(err(format!(
+                    "layer '{}': a {} layer needs an image input layout (\"layout\": {{\"kind\": \"image\", \"height\": H, \"width\": W, \"channels\": C}})",
+                    layers[0].name,
+                    layers[0].kind.name()
+                )));
+            }
+        }
+    };
     let layout = parse_layout(input.layout, size).map_err(err)?;
     let low = expand_bound(input.low, -1.0, size, "low").map_err(|m| err(format!("input: {m}")))?;
     let high =
@@ -383,15 +483,16 @@ pub(crate) fn build(
     })
 }
 
-/// The `"schema"` tag must be [`SCHEMA_TAG`].
-fn check_schema(schema: Option<&serde_json::Value>) -> std::result::Result<(), String> {
+/// The `"schema"` tag must be [`SCHEMA_TAG`] or [`SCHEMA_TAG_2`]; gives the version (1 or 2).
+fn check_schema(schema: Option<&serde_json::Value>) -> std::result::Result<u8, String> {
     match schema {
         None => Err(format!(
-            "missing \"schema\": a receptor model must say \"schema\": \"{SCHEMA_TAG}\""
+            "missing \"schema\": a receptor model must say \"schema\": \"{SCHEMA_TAG}\" (or \"{SCHEMA_TAG_2}\" with convolutional layers)"
         )),
-        Some(serde_json::Value::String(s)) if s == SCHEMA_TAG => Ok(()),
+        Some(serde_json::Value::String(s)) if s == SCHEMA_TAG => Ok(1),
+        Some(serde_json::Value::String(s)) if s == SCHEMA_TAG_2 => Ok(2),
         Some(other) => Err(format!(
-            "unsupported schema {other}: this version of receptor reads \"{SCHEMA_TAG}\""
+            "unsupported schema {other}: this version of receptor reads \"{SCHEMA_TAG}\" and \"{SCHEMA_TAG_2}\""
         )),
     }
 }
@@ -407,20 +508,21 @@ fn declared_input_size(size: Option<&serde_json::Value>) -> std::result::Result<
 }
 
 /// Layer `i` of `n_layers`: its name (not one of `seen`, which it joins), kind and
-/// activation, then its weights `[units, inputs]` and bias `[units]` read inline or from a
-/// side file.
+/// activation, then its weights and bias read inline or from a side file. `version` is the
+/// file's schema version: the layer types other than dense need version 2.
 fn build_layer(
     i: usize,
     n_layers: usize,
     l: RawLayer,
     origin: &str,
+    version: u8,
     side: &mut SideFiles<'_>,
     seen: &mut std::collections::HashSet<String>,
 ) -> Result<Layer> {
     let err = |msg: String| Error::model(origin, msg);
     let label = layer_label(i, l.name.as_deref());
     let name = match l.name {
-        Some(n) if !n.is_empty() => n,
+        Some(ref n) if !n.is_empty() => n.clone(),
         _ => return Err(err(format!("{label}: missing or empty \"name\""))),
     };
     if !seen.insert(name.clone()) {
@@ -428,18 +530,65 @@ fn build_layer(
             "layer name '{name}' is used twice; layer names must be unique"
         )));
     }
-    match l.kind.as_deref() {
-        Some("dense") => {}
+    const TYPES: &str =
+        "dense; with \"schema\": \"receptor-model/2\" also conv2d, max_pool2d, avg_pool2d, flatten";
+    let kind = match l.kind.as_deref() {
+        Some("dense") => "dense",
+        Some(t @ ("conv2d" | "max_pool2d" | "avg_pool2d" | "flatten")) => {
+            if version < 2 {
+                return Err(err(format!(
+                    "{label}: layer type \"{t}\" needs \"schema\": \"{SCHEMA_TAG_2}\" (this file says \"{SCHEMA_TAG}\", which has dense layers only)"
+                )));
+            }
+            t
+        }
         None => {
-            return Err(err(format!(
-                "{label}: missing \"type\" (only \"dense\" is supported)"
-            )));
+            return Err(err(format!("{label}: missing \"type\" (one of: {TYPES})")));
         }
         Some(t) => {
             return Err(err(format!(
-                "{label}: unsupported layer type \"{t}\" (only \"dense\" is supported)"
+                "{label}: unsupported layer type \"{t}\" (supported: {TYPES})"
             )));
         }
+    };
+    let pair = |v: &Option<serde_json::Value>, key: &str, default: usize, min: usize| {
+        parse_pair(v.as_ref(), default, min).map_err(|m| err(format!("{label}: \"{key}\" {m}")))
+    };
+    match kind {
+        "max_pool2d" | "avg_pool2d" | "flatten" => {
+            for (key, present) in [
+                ("weights", l.weights.is_some()),
+                ("bias", l.bias.is_some()),
+                ("labels", l.labels.is_some()),
+            ] {
+                if present {
+                    return Err(err(format!("{label}: a {kind} layer has no \"{key}\"")));
+                }
+            }
+            if let Some(a) = l.activation.as_deref()
+                && a != "identity"
+            {
+                return Err(err(format!(
+                    "{label}: a {kind} layer has no activation (found \"{a}\")"
+                )));
+            }
+            if kind == "flatten" {
+                return Ok(Layer::flatten(name));
+            }
+            let kernel = match &l.kernel {
+                None => return Err(err(format!("{label}: missing \"kernel\""))),
+                k => pair(k, "kernel", 1, 1)?,
+            };
+            let stride = pair(&l.stride, "stride", 0, 1)?;
+            let stride = if l.stride.is_none() { kernel } else { stride };
+            let padding = pair(&l.padding, "padding", 0, 0)?;
+            return Ok(if kind == "max_pool2d" {
+                Layer::max_pool2d(name, kernel, stride, padding)
+            } else {
+                Layer::avg_pool2d(name, kernel, stride, padding)
+            });
+        }
+        _ => {}
     }
     let activation = parse_activation(l.activation.as_deref(), l.alpha)
         .map_err(|m| err(format!("{label}: {m}")))?;
@@ -449,16 +598,70 @@ fn build_layer(
             i + 1
         )));
     }
-    let weights = match l
+    let weights_src = l
         .weights
-        .ok_or_else(|| err(format!("{label}: missing \"weights\"")))?
-    {
-        TensorSrc::Inline(t) => {
-            inline_matrix(t).map_err(|m| err(format!("{label}: weights: {m}")))?
+        .ok_or_else(|| err(format!("{label}: missing \"weights\"")))?;
+    let (weights, kind) = if kind == "conv2d" {
+        if let Some(g) = &l.groups
+            && g.as_u64() != Some(1)
+        {
+            return Err(err(format!(
+                "{label}: \"groups\" {g} is not supported (only 1: grouped and depthwise convolutions are not read yet)"
+            )));
         }
-        TensorSrc::Side { file, tensor } => {
-            side.matrix(&file, &tensor, &format!("{label} weights"))?
+        if l.kernel.is_some() {
+            return Err(err(format!(
+                "{label}: a conv2d layer takes its kernel size from its weights [out_channels, in_channels, kernel_h, kernel_w]; drop \"kernel\""
+            )));
         }
+        let w4 = match weights_src {
+            TensorSrc::Inline(t) => {
+                inline_4d(t).map_err(|m| err(format!("{label}: weights: {m}")))?
+            }
+            TensorSrc::Side { file, tensor } => {
+                let (shape, values) = side.tensor(&file, &tensor, &format!("{label} weights"))?;
+                if shape.len() != 4 || shape.contains(&0) {
+                    return Err(err(format!(
+                        "{label}: weights: tensor \"{tensor}\" has shape {shape:?}; conv2d weights must be 4-D [out_channels, in_channels, kernel_h, kernel_w] with no zero dimension"
+                    )));
+                }
+                ndarray::Array4::from_shape_vec((shape[0], shape[1], shape[2], shape[3]), values)
+                    .map_err(|e| err(format!("{label}: weights: {e}")))?
+            }
+        };
+        let (o, c, kh, kw) = w4.dim();
+        let flat = w4
+            .into_shape_with_order((o, c * kh * kw))
+            .map_err(|e| err(format!("{label}: weights: {e}")))?;
+        let geometry = Conv2d {
+            in_channels: c,
+            kernel: [kh, kw],
+            stride: pair(&l.stride, "stride", 1, 1)?,
+            padding: pair(&l.padding, "padding", 0, 0)?,
+            dilation: pair(&l.dilation, "dilation", 1, 1)?,
+        };
+        (flat, LayerKind::Conv2d(geometry))
+    } else {
+        for (key, present) in [
+            ("kernel", l.kernel.is_some()),
+            ("stride", l.stride.is_some()),
+            ("padding", l.padding.is_some()),
+            ("dilation", l.dilation.is_some()),
+            ("groups", l.groups.is_some()),
+        ] {
+            if present {
+                return Err(err(format!("{label}: a dense layer has no \"{key}\"")));
+            }
+        }
+        let w = match weights_src {
+            TensorSrc::Inline(t) => {
+                inline_matrix(t).map_err(|m| err(format!("{label}: weights: {m}")))?
+            }
+            TensorSrc::Side { file, tensor } => {
+                side.matrix(&file, &tensor, &format!("{label} weights"))?
+            }
+        };
+        (w, LayerKind::Dense)
     };
     let bias = match l.bias {
         None => Array1::zeros(weights.nrows()),
@@ -471,11 +674,42 @@ fn build_layer(
     };
     Ok(Layer {
         name,
+        kind,
         activation,
         weights,
         bias,
         labels: l.labels,
     })
+}
+
+/// A size given as one whole number or `[h, w]`, each at least `min`; `default` for both
+/// when absent.
+fn parse_pair(
+    v: Option<&serde_json::Value>,
+    default: usize,
+    min: usize,
+) -> std::result::Result<[usize; 2], String> {
+    let one = |x: &serde_json::Value| -> std::result::Result<usize, String> {
+        match x.as_u64() {
+            Some(n) if n >= min as u64 && n <= (1 << 20) => Ok(n as usize),
+            _ => Err(format!(
+                "must be a whole number from {min} to {} (or a pair [h, w] of them), found {x}",
+                1 << 20
+            )),
+        }
+    };
+    match v {
+        None => Ok([default, default]),
+        Some(serde_json::Value::Array(a)) if a.len() == 2 => Ok([one(&a[0])?, one(&a[1])?]),
+        Some(serde_json::Value::Array(a)) => Err(format!(
+            "must be one number or a pair [h, w], found a list of {}",
+            a.len()
+        )),
+        Some(x) => {
+            let n = one(x)?;
+            Ok([n, n])
+        }
+    }
 }
 
 /// The input layout (vector when absent); an image's height x width x channels must be
@@ -547,16 +781,17 @@ fn parse_activation(
     })
 }
 
-fn problem_text(p: &(Option<usize>, usize, String)) -> String {
-    match p {
-        (Some(r), c, why) => format!("row {r}, column {c}: {why}"),
-        (None, c, why) => format!("entry {c}: {why}"),
+fn problem_text(p: &(Vec<usize>, String)) -> String {
+    match p.0.as_slice() {
+        [r, c] => format!("row {r}, column {c}: {}", p.1),
+        [c] => format!("entry {c}: {}", p.1),
+        path => format!("at index {path:?}: {}", p.1),
     }
 }
 
 fn inline_matrix(t: InlineTensor) -> std::result::Result<Array2<f32>, String> {
-    if let Some(p) = &t.problem {
-        return Err(problem_text(p));
+    if let Some(p) = t.first_problem() {
+        return Err(p);
     }
     if t.flat {
         return Err(if t.data.is_empty() {
@@ -564,6 +799,12 @@ fn inline_matrix(t: InlineTensor) -> std::result::Result<Array2<f32>, String> {
         } else {
             "a flat list of numbers; weights must be a list of rows, one per unit".into()
         });
+    }
+    if t.counts.len() > 1 {
+        return Err(
+            "a nested list where a number belongs: a dense layer's weights are 2-D, a list of rows"
+                .into(),
+        );
     }
     let rows = t.row_lens.len();
     let cols = t.row_lens[0];
@@ -578,9 +819,39 @@ fn inline_matrix(t: InlineTensor) -> std::result::Result<Array2<f32>, String> {
     Array2::from_shape_vec((rows, cols), t.data).map_err(|e| e.to_string())
 }
 
+/// A 4-D inline tensor `[a, b, c, d]` (a conv2d's weights), every list of one level the
+/// same length.
+fn inline_4d(t: InlineTensor) -> std::result::Result<ndarray::Array4<f32>, String> {
+    if let Some(p) = t.first_problem() {
+        return Err(p);
+    }
+    let dims = if t.flat { 1 } else { 1 + t.counts.len() };
+    if dims != 4 || t.leaf_levels != 1 << 3 {
+        return Err(format!(
+            "a {dims}-D list; conv2d weights are 4-D [out_channels, in_channels, kernel_h, kernel_w]"
+        ));
+    }
+    let mut shape = vec![t.row_lens.len()];
+    for (d, lens) in t.counts.iter().enumerate() {
+        let first = lens.first().copied().unwrap_or(0);
+        if lens.iter().any(|&l| l != first) {
+            return Err(format!(
+                "ragged: the lists at depth {} have different lengths",
+                d + 2
+            ));
+        }
+        shape.push(first);
+    }
+    if shape.contains(&0) {
+        return Err(format!("shape {shape:?} has an empty dimension"));
+    }
+    ndarray::Array4::from_shape_vec((shape[0], shape[1], shape[2], shape[3]), t.data)
+        .map_err(|e| format!("shape {shape:?}: {e}"))
+}
+
 fn inline_vector(t: InlineTensor) -> std::result::Result<Array1<f32>, String> {
-    if let Some(p) = &t.problem {
-        return Err(problem_text(p));
+    if let Some(p) = t.first_problem() {
+        return Err(p);
     }
     if !t.flat {
         return Err("a list of rows; a bias must be a flat list of numbers".into());

@@ -1,7 +1,8 @@
-//! Models: our open JSON schema `receptor-model/1`, optional safetensors side files, ONNX
-//! files (`onnx/`), and validation. Everything here turns bytes into a checked
-//! [`Network`]; nothing computes. [`load`] picks the reader by the file's extension, so
-//! every command and the app accept both formats through one function.
+//! Models: our open JSON schema `receptor-model/1` (dense layers) and `/2` (also
+//! convolutional layers), optional safetensors side files, ONNX files (`onnx/`), and
+//! validation. Everything here turns bytes into a checked [`Network`]; nothing computes.
+//! [`load`] picks the reader by the file's extension, so every command and the app accept
+//! both formats through one function.
 //!
 //! The schema is described for other tools in `assets/model-schema.json` (JSON Schema
 //! draft 2020-12).
@@ -20,15 +21,19 @@ pub use network::Network;
 pub use paths::{refuse_overwriting_model, resolve_side_path};
 pub use tensors_write::{check_side_file_location, tensors_bytes, write_json_with_tensors};
 pub use types::{
-    Activation, InputSpec, Layer, Layout, NetworkParts, SIGMOID_SATURATION_Z, TANH_SATURATION_Z,
+    Activation, Conv2d, InputSpec, Layer, LayerKind, Layout, NetworkParts, Pool2d,
+    SIGMOID_SATURATION_Z, Shape, TANH_SATURATION_Z, window_output,
 };
 pub use write::{to_json_string, write_json, write_json_to};
 
 use crate::error::{Error, Result};
 use std::path::Path;
 
-/// The schema tag every model file must carry.
+/// The schema tag of a model whose layers are all dense (read exactly as before version 2).
 pub const SCHEMA_TAG: &str = "receptor-model/1";
+/// The schema tag of a model with convolutional layers (conv2d, max_pool2d, avg_pool2d,
+/// flatten); a version-2 file may also hold dense layers only.
+pub const SCHEMA_TAG_2: &str = "receptor-model/2";
 
 /// The input box used when neither the caller nor the model gives one: `[-1, 1]` for every
 /// input (ONNX files carry no box).

@@ -4,7 +4,7 @@
 //! [`Network::from_parts`], or the loaders in [`crate::model`]), and its fields are private,
 //! so holding one means every shape and value has been checked.
 
-use super::types::{InputSpec, Layer, NetworkParts};
+use super::types::{InputSpec, Layer, LayerKind, NetworkParts, Shape};
 
 /// A validated feed-forward network. Construct it with [`crate::model::load`],
 /// [`Network::new`] or [`Network::from_parts`], which all check every shape and value.
@@ -15,6 +15,10 @@ pub struct Network {
     input: InputSpec,
     layers: Vec<Layer>,
     extra: serde_json::Map<String, serde_json::Value>,
+    /// The input as the first layer sees it (derived by validation).
+    input_shape: Shape,
+    /// Each layer's output shape (derived by validation).
+    shapes: Vec<Shape>,
 }
 
 impl Network {
@@ -41,7 +45,7 @@ impl Network {
     /// Validates `parts` (the same checks as loading a file; `origin` names the source in
     /// error messages) and makes them a network.
     pub fn from_parts(parts: NetworkParts, origin: &str) -> crate::Result<Self> {
-        super::validate::validate(&parts, origin)?;
+        let shapes = super::validate::validate_shapes(&parts, origin)?;
         let NetworkParts {
             name,
             description,
@@ -55,6 +59,8 @@ impl Network {
             input,
             layers,
             extra,
+            input_shape: shapes.input,
+            shapes: shapes.outputs,
         })
     }
 
@@ -105,6 +111,39 @@ impl Network {
     /// Unknown top-level keys of the model file, kept so a rewritten model keeps them.
     pub fn extra(&self) -> &serde_json::Map<String, serde_json::Value> {
         &self.extra
+    }
+
+    /// The input as the first layer sees it: a vector of `input().size` values before a
+    /// dense layer, else the image as a `[channels, height, width]` map (stored row-major,
+    /// channel last, as the input layout says).
+    pub fn input_shape(&self) -> Shape {
+        self.input_shape
+    }
+
+    /// The shape of layer `i`'s output (its pre-activations and activations).
+    ///
+    /// # Panics
+    /// When `i` is not below the number of layers.
+    pub fn output_shape(&self, i: usize) -> Shape {
+        self.shapes[i]
+    }
+
+    /// The shape layer `i` reads: the output of layer `i - 1`, or [`Network::input_shape`].
+    ///
+    /// # Panics
+    /// When `i` is not below the number of layers.
+    pub fn input_shape_of(&self, i: usize) -> Shape {
+        assert!(i < self.layers.len(), "layer {i} of {}", self.layers.len());
+        if i == 0 {
+            self.input_shape
+        } else {
+            self.shapes[i - 1]
+        }
+    }
+
+    /// True when every layer is dense (the model is a `receptor-model/1` model).
+    pub fn is_dense_only(&self) -> bool {
+        self.layers.iter().all(|l| l.kind == LayerKind::Dense)
     }
 
     /// The index of the layer called `name`.

@@ -54,6 +54,16 @@ impl<'a> SideFiles<'a> {
     }
 
     /// Reads tensor `name` of side file `rel` as f32 values with its shape.
+    pub(crate) fn tensor(
+        &mut self,
+        rel: &str,
+        name: &str,
+        what: &str,
+    ) -> Result<(Vec<usize>, Vec<f32>)> {
+        self.read(rel, name, what)
+    }
+
+    /// Reads tensor `name` of side file `rel` as f32 values with its shape.
     fn read(&mut self, rel: &str, name: &str, what: &str) -> Result<(Vec<usize>, Vec<f32>)> {
         let origin = self.origin;
         let (path, bytes) = self.bytes(rel, what)?;

@@ -1,5 +1,6 @@
 //! Writing a network as a JSON file plus one safetensors side file holding every layer's
-//! weights and bias as little-endian F32 tensors (`NAME.weight` `[units, inputs]`,
+//! weights and bias as little-endian F32 tensors (`NAME.weight` `[units, inputs]`, or
+//! `[out_channels, in_channels, kernel_h, kernel_w]` for conv2d,
 //! `NAME.bias` `[units]`), the layout the importer reads back.
 
 use super::network::Network;
@@ -27,11 +28,19 @@ pub fn tensors_bytes(net: &Network, origin: &str) -> Result<Vec<u8>> {
     let bytes: Vec<(String, Vec<usize>, Vec<u8>)> = net
         .layers()
         .iter()
+        .filter(|l| l.has_weights())
         .flat_map(|l| {
             let w: Vec<u8> = l.weights.iter().flat_map(|v| v.to_le_bytes()).collect();
             let b: Vec<u8> = l.bias.iter().flat_map(|v| v.to_le_bytes()).collect();
+            // conv2d weights keep PyTorch's 4-D shape [out, in, kh, kw].
+            let wshape = match l.kind {
+                super::LayerKind::Conv2d(c) => {
+                    vec![l.units(), c.in_channels, c.kernel[0], c.kernel[1]]
+                }
+                _ => vec![l.units(), l.fan_in()],
+            };
             [
-                (weight_name(&l.name), vec![l.units(), l.fan_in()], w),
+                (weight_name(&l.name), wshape, w),
                 (bias_name(&l.name), vec![l.units()], b),
             ]
         })
@@ -118,6 +127,7 @@ mod tests {
         };
         let layers = vec![
             Layer {
+                kind: crate::model::LayerKind::Dense,
                 name: "h".into(),
                 activation: Activation::LeakyRelu { alpha: 0.125 },
                 weights: array![[0.1, -2.5e-7, 3.0], [1e30, -0.0, 7.25]],
@@ -125,6 +135,7 @@ mod tests {
                 labels: None,
             },
             Layer {
+                kind: crate::model::LayerKind::Dense,
                 name: "out".into(),
                 activation: Activation::Softmax,
                 weights: array![[1.0, 2.0], [-3.0, 0.1]],

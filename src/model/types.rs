@@ -171,31 +171,334 @@ impl Activation {
     }
 }
 
-/// One dense layer: `a = activation(W x + b)`.
+/// The shape of the values a layer gives (or the input, as the first layer sees it).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Shape {
+    /// A plain vector of features.
+    Vector(usize),
+    /// A stack of 2-D maps, `[channels, height, width]`. Between layers a map is stored
+    /// channel first (PyTorch's order: channel, then row, then column); the network's
+    /// input keeps its own layout (row-major, channel last).
+    Map {
+        /// Channels (feature maps).
+        channels: usize,
+        /// Rows of each map.
+        height: usize,
+        /// Columns of each map.
+        width: usize,
+    },
+}
+
+impl Shape {
+    /// Number of values: the vector's length or `channels x height x width`.
+    pub fn len(&self) -> usize {
+        match *self {
+            Shape::Vector(n) => n,
+            Shape::Map {
+                channels,
+                height,
+                width,
+            } => channels * height * width,
+        }
+    }
+
+    /// True when the shape holds no value.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// Positions per channel: `height x width` of a map, 1 for a vector.
+    pub fn positions(&self) -> usize {
+        match *self {
+            Shape::Vector(_) => 1,
+            Shape::Map { height, width, .. } => height * width,
+        }
+    }
+
+    /// Channels of a map; the length of a vector (each entry is its own "channel").
+    pub fn channels(&self) -> usize {
+        match *self {
+            Shape::Vector(n) => n,
+            Shape::Map { channels, .. } => channels,
+        }
+    }
+
+    /// The centre position `(row, column)` of a map (`(h / 2, w / 2)`, rounded down);
+    /// `(0, 0)` for a vector.
+    pub fn centre(&self) -> (usize, usize) {
+        match *self {
+            Shape::Vector(_) => (0, 0),
+            Shape::Map { height, width, .. } => (height / 2, width / 2),
+        }
+    }
+
+    /// The flat index of unit / channel `channel` at position `(row, col)`:
+    /// `(channel x height + row) x width + col` for a map (channel first), `channel` for a
+    /// vector (the position is ignored).
+    pub fn index(&self, channel: usize, (row, col): (usize, usize)) -> usize {
+        match *self {
+            Shape::Vector(_) => channel,
+            Shape::Map { height, width, .. } => (channel * height + row) * width + col,
+        }
+    }
+
+    /// The shape in words: `"64 values"` or `"16 x 30 x 30 map (channels x height x width)"`.
+    pub fn describe(&self) -> String {
+        match *self {
+            Shape::Vector(n) => format!("a vector of {n} values"),
+            Shape::Map {
+                channels,
+                height,
+                width,
+            } => format!("a {channels} x {height} x {width} map (channels x height x width)"),
+        }
+    }
+}
+
+/// The geometry of a 2-D convolution (zero padding, no groups). Sizes are `[rows, columns]`.
+///
+/// Output size per axis (PyTorch's `nn.Conv2d` docs):
+/// `out = floor((in + 2 padding - dilation (kernel - 1) - 1) / stride) + 1`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub struct Conv2d {
+    /// Input channels each filter reads.
+    pub in_channels: usize,
+    /// Kernel size `[kernel_h, kernel_w]`.
+    pub kernel: [usize; 2],
+    /// Step between neighbouring outputs, in input pixels, `[h, w]` (at least 1).
+    pub stride: [usize; 2],
+    /// Zeros added on each side, `[h, w]`.
+    pub padding: [usize; 2],
+    /// Spacing between kernel taps, `[h, w]` (at least 1; 1 is a plain kernel).
+    pub dilation: [usize; 2],
+}
+
+/// The geometry of a 2-D pooling window (max or average). Sizes are `[rows, columns]`.
+///
+/// Average pooling counts padded cells as zeros and always divides by `kernel_h x
+/// kernel_w` (PyTorch's default `count_include_pad=True`); max pooling ignores padded cells.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub struct Pool2d {
+    /// Window size `[h, w]`.
+    pub kernel: [usize; 2],
+    /// Step between windows `[h, w]` (at least 1; the schema's default is the kernel).
+    pub stride: [usize; 2],
+    /// Padding on each side `[h, w]` (at most half the kernel, as in PyTorch).
+    pub padding: [usize; 2],
+}
+
+/// Output length of one axis of a sliding window (PyTorch's formula, `ceil_mode=False`), or
+/// `None` when the window does not fit in the padded input once (or a stride is 0).
+pub fn window_output(
+    input: usize,
+    kernel: usize,
+    stride: usize,
+    padding: usize,
+    dilation: usize,
+) -> Option<usize> {
+    if stride == 0 || kernel == 0 || dilation == 0 {
+        return None;
+    }
+    let span = dilation.checked_mul(kernel - 1)?.checked_add(1)?;
+    let padded = input.checked_add(padding.checked_mul(2)?)?;
+    if span > padded {
+        return None;
+    }
+    Some((padded - span) / stride + 1)
+}
+
+/// What a layer computes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum LayerKind {
+    /// `z = W x + b` on a vector; weights `[units, inputs]`.
+    Dense,
+    /// A 2-D convolution (cross-correlation, as PyTorch computes it) of a
+    /// `[in_channels, height, width]` map; weights `[out_channels, in_channels x kernel_h x
+    /// kernel_w]` (PyTorch's `[out, in, kh, kw]` weight with the last three axes flattened
+    /// in that order); one unit per output channel.
+    Conv2d(Conv2d),
+    /// The largest value in each window, per channel; no weights, no activation.
+    MaxPool2d(Pool2d),
+    /// The mean of each window, per channel; no weights, no activation.
+    AvgPool2d(Pool2d),
+    /// A `[channels, height, width]` map as a vector in PyTorch order (channel, row,
+    /// column); no weights, no activation.
+    Flatten,
+}
+
+impl LayerKind {
+    /// The schema's name of the layer type.
+    pub fn name(&self) -> &'static str {
+        match self {
+            LayerKind::Dense => "dense",
+            LayerKind::Conv2d(_) => "conv2d",
+            LayerKind::MaxPool2d(_) => "max_pool2d",
+            LayerKind::AvgPool2d(_) => "avg_pool2d",
+            LayerKind::Flatten => "flatten",
+        }
+    }
+
+    /// True for the kinds with weights, a bias and an activation (dense, conv2d).
+    pub fn has_weights(&self) -> bool {
+        matches!(self, LayerKind::Dense | LayerKind::Conv2d(_))
+    }
+
+    /// True for the kinds that work on maps (conv2d and the poolings).
+    pub fn is_spatial(&self) -> bool {
+        matches!(
+            self,
+            LayerKind::Conv2d(_) | LayerKind::MaxPool2d(_) | LayerKind::AvgPool2d(_)
+        )
+    }
+}
+
+/// One layer: `a = activation(op(x))`, where `op` is the kind's computation (for dense and
+/// conv2d layers `op(x) = W x + b`).
+///
+/// Make one with [`Layer::dense`], [`Layer::conv2d`], [`Layer::max_pool2d`],
+/// [`Layer::avg_pool2d`] or [`Layer::flatten`]; the network checks it against the layer
+/// below when it is built.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Layer {
     /// Unique name within the network.
     pub name: String,
-    /// The units' activation function.
+    /// What the layer computes, with its geometry.
+    pub kind: LayerKind,
+    /// The units' activation function (identity for pooling and flatten).
     pub activation: Activation,
-    /// Incoming weights, `[units, inputs]` (row = one unit's incoming weights; the
-    /// orientation of PyTorch's `nn.Linear.weight`).
+    /// Incoming weights, one row per unit: dense `[units, inputs]` (the orientation of
+    /// PyTorch's `nn.Linear.weight`); conv2d `[out_channels, in_channels x kernel_h x
+    /// kernel_w]` (one filter per row, in PyTorch's order); pooling and flatten `[0, 0]`.
     pub weights: Array2<f32>,
-    /// Biases, `[units]`.
+    /// Biases, `[units]` (`[0]` for pooling and flatten).
     pub bias: Array1<f32>,
     /// Optional unit names (class labels on the last layer), `[units]`.
     pub labels: Option<Vec<String>>,
 }
 
 impl Layer {
-    /// Number of units in this layer.
+    /// A dense layer: `weights: [units, inputs]`, `bias: [units]`.
+    pub fn dense(
+        name: impl Into<String>,
+        activation: Activation,
+        weights: Array2<f32>,
+        bias: Array1<f32>,
+    ) -> Layer {
+        Layer {
+            name: name.into(),
+            kind: LayerKind::Dense,
+            activation,
+            weights,
+            bias,
+            labels: None,
+        }
+    }
+
+    /// A 2-D convolution from PyTorch-shaped weights `[out_channels, in_channels, kernel_h,
+    /// kernel_w]` (`nn.Conv2d.weight`) and `bias: [out_channels]`; `stride`, `padding` and
+    /// `dilation` are `[h, w]`.
+    pub fn conv2d(
+        name: impl Into<String>,
+        activation: Activation,
+        weights: ndarray::Array4<f32>,
+        bias: Array1<f32>,
+        stride: [usize; 2],
+        padding: [usize; 2],
+        dilation: [usize; 2],
+    ) -> Layer {
+        let (o, i, kh, kw) = weights.dim();
+        let flat: Vec<f32> = weights.iter().copied().collect();
+        let weights = Array2::from_shape_vec((o, i * kh * kw), flat)
+            .unwrap_or_else(|_| Array2::zeros((o, i * kh * kw)));
+        Layer {
+            name: name.into(),
+            kind: LayerKind::Conv2d(Conv2d {
+                in_channels: i,
+                kernel: [kh, kw],
+                stride,
+                padding,
+                dilation,
+            }),
+            activation,
+            weights,
+            bias,
+            labels: None,
+        }
+    }
+
+    fn parameterless(name: impl Into<String>, kind: LayerKind) -> Layer {
+        Layer {
+            name: name.into(),
+            kind,
+            activation: Activation::Identity,
+            weights: Array2::zeros((0, 0)),
+            bias: Array1::zeros(0),
+            labels: None,
+        }
+    }
+
+    /// A max pooling layer (`nn.MaxPool2d(kernel, stride, padding)`), sizes `[h, w]`.
+    pub fn max_pool2d(
+        name: impl Into<String>,
+        kernel: [usize; 2],
+        stride: [usize; 2],
+        padding: [usize; 2],
+    ) -> Layer {
+        Layer::parameterless(
+            name,
+            LayerKind::MaxPool2d(Pool2d {
+                kernel,
+                stride,
+                padding,
+            }),
+        )
+    }
+
+    /// An average pooling layer (`nn.AvgPool2d(kernel, stride, padding)`, padded cells
+    /// counted), sizes `[h, w]`. A kernel as large as the map is a global average pooling.
+    pub fn avg_pool2d(
+        name: impl Into<String>,
+        kernel: [usize; 2],
+        stride: [usize; 2],
+        padding: [usize; 2],
+    ) -> Layer {
+        Layer::parameterless(
+            name,
+            LayerKind::AvgPool2d(Pool2d {
+                kernel,
+                stride,
+                padding,
+            }),
+        )
+    }
+
+    /// A flatten layer (`nn.Flatten()`): a map becomes a vector in channel, row, column
+    /// order.
+    pub fn flatten(name: impl Into<String>) -> Layer {
+        Layer::parameterless(name, LayerKind::Flatten)
+    }
+
+    /// Number of units in this layer: dense units or conv2d output channels (0 for pooling
+    /// and flatten, which have no units of their own).
     pub fn units(&self) -> usize {
         self.weights.nrows()
     }
 
-    /// Number of inputs of each unit (units of the layer below, or the input size).
+    /// Number of inputs of each unit: the layer below's values for dense,
+    /// `in_channels x kernel_h x kernel_w` for conv2d (0 for pooling and flatten).
     pub fn fan_in(&self) -> usize {
         self.weights.ncols()
+    }
+
+    /// True for layers with weights (dense, conv2d).
+    pub fn has_weights(&self) -> bool {
+        self.kind.has_weights()
+    }
+
+    /// The shape this layer gives for an input of shape `input`, or what is wrong (the
+    /// message names neither the layer nor the source; validation adds them).
+    pub fn output_shape(&self, input: Shape) -> std::result::Result<Shape, String> {
+        output_shape(self, input, "the layer below")
     }
 
     /// The name of unit `k`: its label, or `{prefix}{k}`.
@@ -204,6 +507,130 @@ impl Layer {
             Some(l) if k < l.len() => l[k].clone(),
             _ => format!("{prefix}{k}"),
         }
+    }
+}
+
+/// See [`Layer::output_shape`]; `below` names what lies below in messages ("'c1'", "the
+/// input").
+pub(crate) fn output_shape(
+    l: &Layer,
+    input: Shape,
+    below: &str,
+) -> std::result::Result<Shape, String> {
+    let map = |what: &str| match input {
+        Shape::Map {
+            channels,
+            height,
+            width,
+        } => Ok((channels, height, width)),
+        Shape::Vector(n) => Err(format!(
+            "a {what} layer needs a map [channels, height, width] below it, but {below} gives a vector of {n} values (it needs an image input layout, or a convolution or pooling below)"
+        )),
+    };
+    match l.kind {
+        LayerKind::Dense => match input {
+            Shape::Vector(n) => {
+                if l.fan_in() == n {
+                    Ok(Shape::Vector(l.units()))
+                } else {
+                    Err(format!(
+                        "weights have {} columns but {below} gives {n} values",
+                        l.fan_in()
+                    ))
+                }
+            }
+            Shape::Map { .. } => Err(format!(
+                "a dense layer after a spatial map needs a flatten first: {below} gives {}",
+                input.describe()
+            )),
+        },
+        LayerKind::Conv2d(c) => {
+            let (ch, h, w) = map("conv2d")?;
+            if c.in_channels != ch {
+                return Err(format!(
+                    "weights expect {} input channels but {below} gives {ch} ({})",
+                    c.in_channels,
+                    input.describe()
+                ));
+            }
+            if c.in_channels * c.kernel[0] * c.kernel[1] != l.fan_in() {
+                return Err(format!(
+                    "weights have {} values per filter but {} input channels x {} x {} kernel need {}",
+                    l.fan_in(),
+                    c.in_channels,
+                    c.kernel[0],
+                    c.kernel[1],
+                    c.in_channels * c.kernel[0] * c.kernel[1]
+                ));
+            }
+            let (oh, ow) =
+                window_sizes((h, w), c.kernel, c.stride, c.padding, c.dilation, "kernel")?;
+            Ok(Shape::Map {
+                channels: l.units(),
+                height: oh,
+                width: ow,
+            })
+        }
+        LayerKind::MaxPool2d(p) | LayerKind::AvgPool2d(p) => {
+            let (ch, h, w) = map(l.kind.name())?;
+            for a in 0..2 {
+                if p.padding[a] * 2 > p.kernel[a] {
+                    return Err(format!(
+                        "padding {:?} must be at most half the kernel {:?} (as in PyTorch)",
+                        p.padding, p.kernel
+                    ));
+                }
+            }
+            let (oh, ow) = window_sizes((h, w), p.kernel, p.stride, p.padding, [1, 1], "window")?;
+            Ok(Shape::Map {
+                channels: ch,
+                height: oh,
+                width: ow,
+            })
+        }
+        LayerKind::Flatten => match input {
+            Shape::Map { .. } => Ok(Shape::Vector(input.len())),
+            Shape::Vector(n) => Err(format!(
+                "flatten is in the wrong place: it needs a map below it, but {below} gives a vector of {n} values"
+            )),
+        },
+    }
+}
+
+/// The output `(height, width)` of a sliding window, or why there is none.
+fn window_sizes(
+    (h, w): (usize, usize),
+    kernel: [usize; 2],
+    stride: [usize; 2],
+    padding: [usize; 2],
+    dilation: [usize; 2],
+    what: &str,
+) -> std::result::Result<(usize, usize), String> {
+    if stride.contains(&0) {
+        return Err(format!("stride {stride:?} must be at least 1"));
+    }
+    if kernel.contains(&0) {
+        return Err(format!("{what} {kernel:?} must be at least 1"));
+    }
+    if dilation.contains(&0) {
+        return Err(format!("dilation {dilation:?} must be at least 1"));
+    }
+    match (
+        window_output(h, kernel[0], stride[0], padding[0], dilation[0]),
+        window_output(w, kernel[1], stride[1], padding[1], dilation[1]),
+    ) {
+        (Some(oh), Some(ow)) => Ok((oh, ow)),
+        _ => Err(format!(
+            "the {what} {} x {} (dilation {} x {}) is larger than the padded input {} x {} (input {h} x {w}, padding {} x {}), so the output map would be empty",
+            kernel[0],
+            kernel[1],
+            dilation[0],
+            dilation[1],
+            h.saturating_add(padding[0].saturating_mul(2)),
+            w.saturating_add(padding[1].saturating_mul(2)),
+            padding[0],
+            padding[1]
+        )),
     }
 }
 

@@ -1,19 +1,27 @@
 //! The checks every network passes before any analysis: shapes, box, layout, labels,
 //! activations and finite values. Used by [`super::Network::from_parts`], through which every network is made.
 
-use super::types::{Activation, InputSpec, Layer, Layout, NetworkParts};
+use super::types::{self, Activation, InputSpec, Layer, LayerKind, Layout, NetworkParts, Shape};
 use crate::error::{Error, Result};
 
-/// Checks `net` completely; `origin` names the source in the message.
-pub fn validate(net: &NetworkParts, origin: &str) -> Result<()> {
+/// What is wrong with a network, for [`validate_shapes`] to attach the source to.
+type Problem = std::result::Result<(), String>;
+
+/// The shapes a valid network's layers see and give: the input as the first layer sees
+/// it, then each layer's output.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct Shapes {
+    pub(crate) input: Shape,
+    pub(crate) outputs: Vec<Shape>,
+}
+
+/// Checks `net` completely and gives its shapes; `origin` names the source in the message.
+pub(crate) fn validate_shapes(net: &NetworkParts, origin: &str) -> Result<Shapes> {
     check_network(net).map_err(|problem| Error::model(origin, problem))
 }
 
-/// What is wrong with a network, for [`validate`] to attach the source to.
-type Problem = std::result::Result<(), String>;
-
 /// Every check in order: the input, then each layer against the one below it.
-fn check_network(net: &NetworkParts) -> Problem {
+fn check_network(net: &NetworkParts) -> std::result::Result<Shapes, String> {
     let inp = &net.input;
     if inp.size == 0 {
         return Err("input: \"size\" must be at least 1".into());
@@ -22,9 +30,35 @@ fn check_network(net: &NetworkParts) -> Problem {
         return Err("\"layers\" is empty: a model needs at least one layer".into());
     }
     check_input(inp)?;
-    let mut below = inp.size;
+    let first = &net.layers[0];
+    let input_shape = match (first.kind, inp.layout) {
+        (LayerKind::Dense, _) => Shape::Vector(inp.size),
+        (
+            _,
+            Layout::Image {
+                height,
+                width,
+                channels,
+            },
+        ) => Shape::Map {
+            channels,
+            height,
+            width,
+        },
+        (kind, Layout::Vector) => {
+            return Err(format!(
+                "layer '{}': a {} layer needs an image input layout (\"layout\": {{\"kind\": \"image\", ...}}), but the input is a vector of {} values",
+                first.name,
+                kind.name(),
+                inp.size
+            ));
+        }
+    };
+    let mut below = input_shape;
     let mut below_name = "the input".to_string();
+    let mut below_label = "the input".to_string();
     let mut seen = std::collections::HashSet::new();
+    let mut outputs = Vec::with_capacity(net.layers.len());
     for (i, l) in net.layers.iter().enumerate() {
         if l.name.is_empty() {
             return Err(format!("layer {i}: the name is empty"));
@@ -36,25 +70,81 @@ fn check_network(net: &NetworkParts) -> Problem {
             ));
         }
         let label = format!("layer '{}'", l.name);
-        let what = if i == 0 { "inputs" } else { "units" };
-        check_shapes(
-            l,
-            &label,
-            below,
-            &format!("{below_name} has {below} {what}"),
-        )?;
-        if let Activation::Softmax = l.activation
-            && i + 1 != net.layers.len()
-        {
-            return Err(format!(
-                "{label}: softmax is allowed only in the last layer"
-            ));
+        let out = if l.kind == LayerKind::Dense {
+            let n = below.len();
+            if !matches!(below, Shape::Map { .. }) {
+                let what = if i == 0 { "inputs" } else { "units" };
+                check_shapes(l, &label, n, &format!("{below_label} has {n} {what}"))?;
+            }
+            types::output_shape(l, below, &below_name)
+        } else {
+            check_kind_fields(l, &label)?;
+            types::output_shape(l, below, &below_name)
+        }
+        .map_err(|m| format!("{label}: {m}"))?;
+        if let Activation::Softmax = l.activation {
+            if i + 1 != net.layers.len() {
+                return Err(format!(
+                    "{label}: softmax is allowed only in the last layer"
+                ));
+            }
+            if l.kind != LayerKind::Dense {
+                return Err(format!("{label}: softmax is allowed only on a dense layer"));
+            }
         }
         check_values(l, &label)?;
-        below = l.units();
-        below_name = label;
+        outputs.push(out);
+        below = out;
+        below_name = format!("'{}'", l.name);
+        below_label = label;
     }
-    Ok(())
+    Ok(Shapes {
+        input: input_shape,
+        outputs,
+    })
+}
+
+/// The fields a non-dense layer must have: a conv2d's weights and bias agree; pooling and
+/// flatten carry no weights, bias, labels or activation.
+fn check_kind_fields(l: &Layer, label: &str) -> Problem {
+    match l.kind {
+        LayerKind::Dense => Ok(()),
+        LayerKind::Conv2d(_) => {
+            if l.units() == 0 || l.fan_in() == 0 {
+                return Err(format!("{label}: weights are empty"));
+            }
+            if l.bias.len() != l.units() {
+                return Err(format!(
+                    "{label}: bias has {} values but the weights have {} filters (output channels)",
+                    l.bias.len(),
+                    l.units()
+                ));
+            }
+            Ok(())
+        }
+        LayerKind::MaxPool2d(_) | LayerKind::AvgPool2d(_) | LayerKind::Flatten => {
+            if !l.weights.is_empty() || !l.bias.is_empty() {
+                return Err(format!(
+                    "{label}: a {} layer has no weights or bias",
+                    l.kind.name()
+                ));
+            }
+            if l.activation != Activation::Identity {
+                return Err(format!(
+                    "{label}: a {} layer has no activation (found {})",
+                    l.kind.name(),
+                    l.activation.name()
+                ));
+            }
+            if l.labels.is_some() {
+                return Err(format!(
+                    "{label}: a {} layer has no units to label",
+                    l.kind.name()
+                ));
+            }
+            Ok(())
+        }
+    }
 }
 
 /// The input box (one finite `low <= high` per input), the image layout and the names.

@@ -1,11 +1,12 @@
-//! Writing a network back in the `receptor-model/1` schema with inline tensors.
+//! Writing a network back in the `receptor-model/1` schema (dense-only models) or `/2`
+//! (with convolutional layers), with inline tensors.
 //!
 //! Numbers are printed in the shortest form that reads back to the same `f32`. The layout
 //! is compact but readable: one line per weight row.
 
 use super::Network;
-use super::SCHEMA_TAG;
-use super::types::{Activation, Layout};
+use super::types::{Activation, LayerKind, Layout};
+use super::{SCHEMA_TAG, SCHEMA_TAG_2};
 use crate::error::Result;
 use std::io::{self, Write};
 use std::path::Path;
@@ -63,7 +64,13 @@ pub(crate) fn write_json_inner(
     side: Option<&str>,
 ) -> io::Result<()> {
     w.write_all(b"{\n  \"schema\": ")?;
-    json(w, &SCHEMA_TAG)?;
+    // Dense-only models stay version 1, readable by every receptor.
+    let tag = if net.is_dense_only() {
+        SCHEMA_TAG
+    } else {
+        SCHEMA_TAG_2
+    };
+    json(w, &tag)?;
     w.write_all(b",\n  \"name\": ")?;
     json(w, &net.name())?;
     if let Some(d) = net.description() {
@@ -96,7 +103,29 @@ pub(crate) fn write_json_inner(
         w.write_all(if i == 0 { b"\n    {" } else { b",\n    {" })?;
         w.write_all(b"\"name\": ")?;
         json(w, &l.name)?;
-        w.write_all(b", \"type\": \"dense\", \"activation\": ")?;
+        w.write_all(b", \"type\": ")?;
+        json(w, &l.kind.name())?;
+        match l.kind {
+            LayerKind::Flatten => {
+                w.write_all(b"}")?;
+                continue;
+            }
+            LayerKind::MaxPool2d(p) | LayerKind::AvgPool2d(p) => {
+                write!(
+                    w,
+                    ", \"kernel\": [{}, {}], \"stride\": [{}, {}], \"padding\": [{}, {}]}}",
+                    p.kernel[0], p.kernel[1], p.stride[0], p.stride[1], p.padding[0], p.padding[1]
+                )?;
+                continue;
+            }
+            LayerKind::Conv2d(c) => write!(
+                w,
+                ", \"stride\": [{}, {}], \"padding\": [{}, {}], \"dilation\": [{}, {}]",
+                c.stride[0], c.stride[1], c.padding[0], c.padding[1], c.dilation[0], c.dilation[1]
+            )?,
+            LayerKind::Dense => {}
+        }
+        w.write_all(b", \"activation\": ")?;
         json(w, &l.activation.name())?;
         if let Activation::LeakyRelu { alpha } = l.activation {
             w.write_all(b", \"alpha\": ")?;
@@ -124,7 +153,26 @@ pub(crate) fn write_json_inner(
         w.write_all(b",\n     \"weights\": [")?;
         for (r, row) in l.weights.rows().into_iter().enumerate() {
             w.write_all(if r == 0 { b"\n      " } else { b",\n      " })?;
-            list(w, row.iter().copied())?;
+            match l.kind {
+                // One filter [in_channels, kernel_h, kernel_w] as nested lists.
+                LayerKind::Conv2d(c) => {
+                    let (kh, kw) = (c.kernel[0], c.kernel[1]);
+                    w.write_all(b"[")?;
+                    for ch in 0..c.in_channels {
+                        w.write_all(if ch == 0 { b"[" } else { b", [" })?;
+                        for y in 0..kh {
+                            if y > 0 {
+                                w.write_all(b", ")?;
+                            }
+                            let at = (ch * kh + y) * kw;
+                            list(w, row.iter().skip(at).take(kw).copied())?;
+                        }
+                        w.write_all(b"]")?;
+                    }
+                    w.write_all(b"]")?;
+                }
+                _ => list(w, row.iter().copied())?,
+            }
         }
         w.write_all(b"\n     ],\n     \"bias\": ")?;
         list(w, l.bias.iter().copied())?;

@@ -353,6 +353,7 @@ mod tests {
                 names: None,
             },
             vec![Layer {
+                kind: crate::model::LayerKind::Dense,
                 name: "out".into(),
                 activation: Activation::Softmax,
                 weights: Array2::zeros((2, 3)),

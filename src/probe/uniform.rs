@@ -109,6 +109,7 @@ mod tests {
                 names: None,
             },
             vec![Layer {
+                kind: crate::model::LayerKind::Dense,
                 name: "out".into(),
                 activation: Activation::Identity,
                 weights: Array2::zeros((1, n)),

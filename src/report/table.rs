@@ -40,6 +40,8 @@ pub enum Cell {
     Str(String),
     /// Text that may be missing (JSON `null`, empty CSV field).
     OptStr(Option<String>),
+    /// A count that may be missing (JSON `null`, empty CSV field).
+    OptUInt(Option<u64>),
     /// A truth value (`true`/`false` in both formats).
     Bool(bool),
     /// A vector of f32: one CSV column per element (named by the table's CSV header), one
@@ -122,6 +124,7 @@ fn write_json_value(w: &mut dyn Write, cell: &Cell) -> std::io::Result<()> {
         Cell::F64(v) => serde_json::to_writer(&mut *w, v).map_err(to_io),
         Cell::Str(s) => serde_json::to_writer(&mut *w, s).map_err(to_io),
         Cell::OptStr(s) => serde_json::to_writer(&mut *w, s).map_err(to_io),
+        Cell::OptUInt(v) => serde_json::to_writer(&mut *w, v).map_err(to_io),
         Cell::Bool(b) => write!(w, "{b}"),
         Cell::F32s(v) => serde_json::to_writer(&mut *w, v).map_err(to_io),
         Cell::Objects(list) => {
@@ -239,6 +242,9 @@ impl<'w> TableWriter<'w> {
                         Cell::F64(v) => c.write_field(f64_text(*v))?,
                         Cell::Str(s) => c.write_field(s)?,
                         Cell::OptStr(s) => c.write_field(s.as_deref().unwrap_or_default())?,
+                        Cell::OptUInt(v) => {
+                            c.write_field(v.map(|v| v.to_string()).unwrap_or_default())?;
+                        }
                         Cell::Bool(b) => c.write_field(b.to_string())?,
                         Cell::F32s(v) => {
                             for x in v {

@@ -27,6 +27,21 @@ pub const STATS_COLUMNS: [&str; 10] = [
     "bias",
 ];
 
+/// The CSV/JSON columns of the receptive-field table (`receptor fields`), in order.
+pub const FIELDS_COLUMNS: [&str; 11] = [
+    "layer",
+    "type",
+    "out_channels",
+    "out_height",
+    "out_width",
+    "rf_height",
+    "rf_width",
+    "jump_h",
+    "jump_w",
+    "start_h",
+    "start_w",
+];
+
 /// The CSV/JSON columns of the screening table (`receptor screen`), in order.
 pub const SCREEN_COLUMNS: [&str; 8] = [
     "layer",
@@ -233,4 +248,33 @@ pub fn write_prefer(
         ])?;
     }
     t.finish(extra)
+}
+
+/// Writes the theoretical receptive field of every layer ([`FIELDS_COLUMNS`]); `jump_h`
+/// and `jump_w` are empty in CSV and null in JSON for a layer with a vector output (it
+/// sees the whole input).
+pub fn write_fields(
+    format: Format,
+    w: &mut dyn Write,
+    fields: &[crate::analysis::fields::Field],
+) -> std::io::Result<()> {
+    let columns = owned(&FIELDS_COLUMNS);
+    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
+    for f in fields {
+        let jump = |a: usize| Cell::OptUInt(f.jump.map(|j| j[a] as u64));
+        t.row(&[
+            Cell::from(f.layer.as_str()),
+            Cell::from(f.kind),
+            Cell::from(f.out_channels),
+            Cell::from(f.out_height),
+            Cell::from(f.out_width),
+            Cell::from(f.rf[0]),
+            Cell::from(f.rf[1]),
+            jump(0),
+            jump(1),
+            Cell::F64(f.start[0]),
+            Cell::F64(f.start[1]),
+        ])?;
+    }
+    t.finish(&[])
 }

@@ -24,6 +24,7 @@ fn input(n: usize) -> InputSpec {
 
 fn layer(name: &str, act: Activation, w: Array2<f32>, b: Array1<f32>) -> Layer {
     Layer {
+        kind: crate::model::LayerKind::Dense,
         name: name.into(),
         activation: act,
         weights: w,

@@ -703,13 +703,12 @@ fn finish(dense: Vec<Dense<'_>>) -> Vec<Layer> {
             let weights = Array2::from_shape_fn((d.units, d.inputs), |(u, j)| {
                 d.weights[u * d.inputs + col(j)] as f32
             });
-            Layer {
+            Layer::dense(
                 name,
-                activation: d.activation.map_or(Activation::Identity, |(a, _)| a),
+                d.activation.map_or(Activation::Identity, |(a, _)| a),
                 weights,
-                bias: Array1::from_iter(d.bias.iter().map(|&b| b as f32)),
-                labels: None,
-            }
+                Array1::from_iter(d.bias.iter().map(|&b| b as f32)),
+            )
         })
         .collect()
 }
