@@ -357,6 +357,10 @@ def torch_cnn():
         net[1].running_var.copy_(torch.rand(4) + 0.5)
         net[1].weight.copy_(torch.rand(4) + 0.5)
         net[1].bias.copy_(torch.randn(4) * 0.2)
+        # Larger weights than PyTorch's default initialisation, so the outputs vary
+        # clearly from one probe row to the next.
+        for k in (0, 4, 8):
+            net[k].weight.mul_(3.0)
     path = rx.export_onnx(net, torch.zeros(2, 1, 10, 10), path=OUT / "torch_cnn.onnx", low=0.0, high=1.0)
     x = probe_rows((1, 10, 10), 0.0, 1.0)
     out = run_ort(path, x)
