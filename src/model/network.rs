@@ -137,13 +137,17 @@ impl Activation {
                     alpha
                 }
             }
+            // Both written without the cancellation of `1 - t^2` and `s (1 - s)`, which
+            // round to exactly 0 in f32 once |z| passes about 9 (tanh) or 17 (sigmoid):
+            // sech^2 z and e^-|z| / (1 + e^-|z|)^2 stay positive until they underflow, so a
+            // saturated unit still has a (tiny) gradient to follow.
             Activation::Sigmoid => {
-                let s = 1.0 / (1.0 + (-z).exp());
-                s * (1.0 - s)
+                let e = (-z.abs()).exp();
+                e / ((1.0 + e) * (1.0 + e))
             }
             Activation::Tanh => {
-                let t = z.tanh();
-                1.0 - t * t
+                let c = z.cosh();
+                1.0 / (c * c)
             }
         }
     }

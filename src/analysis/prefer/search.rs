@@ -487,9 +487,21 @@ fn step_row(
         row.active = false;
         return;
     }
+    // Adam sees the gradient scaled to a largest step-weighted entry of 1, so gradients
+    // far below f32's range (a saturated unit) neither underflow its second moment nor
+    // weigh less than earlier steps; the direction of each step is unchanged.
+    let scale = g
+        .iter()
+        .zip(p.width)
+        .fold(0.0f32, |s, (gi, w)| s.max((gi * w).abs()));
+    let inv = if scale > 0.0 && scale.is_finite() {
+        1.0 / scale
+    } else {
+        1.0
+    };
     let Row { x, m, v, .. } = row;
     for (i, ((xi, mi), vi)) in x.iter_mut().zip(m.iter_mut()).zip(v.iter_mut()).enumerate() {
-        let gi = g[i];
+        let gi = g[i] * inv;
         *mi = BETA1 * *mi + (1.0 - BETA1) * gi;
         *vi = BETA2 * *vi + (1.0 - BETA2) * gi * gi;
         // A zero or overflowed second moment gives no usable step; the coordinate waits.
@@ -536,5 +548,6 @@ mod tests {
         assert_eq!(halving(200, 16), Some((50, 4)));
         assert_eq!(halving(200, 2), None);
         assert_eq!(halving(4, 8), None);
+
     }
 }

@@ -328,3 +328,83 @@ fn steps_zero_evaluates_the_starts() {
     assert_eq!(r[0].steps, 0);
     assert_eq!(r[0].input, net.input.centre());
 }
+
+#[test]
+fn a_flat_start_is_moved_off_and_never_reported_worse() {
+    // ReLU network with zero biases and the box centred on 0: at the centre every
+    // first-layer pre-activation is 0, the left derivative of ReLU there is 0, so the
+    // gradient of a second-layer unit is exactly zero (a flat start). A unit with a
+    // positive weight on an active first-layer unit can reach z > 0 (e.g. x = +-e_i along
+    // that unit's weights), so a search stuck at the centre (z = 0) would be wrong.
+    let input = InputSpec {
+        size: 3,
+        layout: Layout::Vector,
+        low: vec![-1.0; 3],
+        high: vec![1.0; 3],
+        names: None,
+    };
+    let h1 = Layer {
+        name: "h1".into(),
+        activation: Activation::Relu,
+        weights: array![[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, -1.0]],
+        bias: array![0.0, 0.0, 0.0],
+        labels: None,
+    };
+    let h2 = Layer {
+        name: "h2".into(),
+        activation: Activation::Relu,
+        weights: array![[1.0, 1.0, 1.0], [-1.0, 2.0, 0.0]],
+        bias: array![0.0, 0.0],
+        labels: None,
+    };
+    let net = Network::new("test", "t", input, vec![h1, h2]).expect("valid");
+    let one = PreferOptions::new(200, 1, 0, 0.0, 0.0).expect("valid");
+    let res = prefer(&net, 1, &[0, 1], &one, &Silent).expect("prefer");
+    // Closed forms: unit 0 is relu(x0) + relu(x1) + relu(-x2) <= 3 at (1, 1, -1); unit 1
+    // is -relu(x0) + 2 relu(x1) <= 2 at (x0 <= 0, 1, any).
+    assert!(res[0].steps > 0 && res[1].steps > 0);
+    assert_abs_diff_eq!(res[0].preactivation, 3.0, epsilon = 1e-3);
+    assert_abs_diff_eq!(res[1].preactivation, 2.0, epsilon = 1e-3);
+    // The result is the best point seen: never below the start's z (0 here).
+    for r in &res {
+        assert!(r.preactivation >= 0.0);
+    }
+}
+
+#[test]
+fn facets_differ_and_report_their_spread() {
+    let net = random_net(
+        21,
+        &[16, 12, 4],
+        &[Activation::Tanh, Activation::Identity],
+        Layout::Vector,
+    );
+    let opts = PreferOptions::default().with_facets(3).expect("valid");
+    let res = prefer(&net, 1, &[0, 2], &opts, &Silent).expect("prefer");
+    assert_eq!(res.len(), 6);
+    for (i, r) in res.iter().enumerate() {
+        assert_eq!(r.unit, [0, 2][i / 3]);
+        assert_eq!(r.facet, i % 3);
+    }
+    for u in 0..2 {
+        let f = &res[3 * u..3 * u + 3];
+        // The spread is the mean of the three pairwise distances.
+        let d = |a: usize, b: usize| {
+            facet_distance(&f[a].input, &f[b].input, &net.input.low, &net.input.high)
+        };
+        let mean = (d(0, 1) + d(0, 2) + d(1, 2)) / 3.0;
+        assert_abs_diff_eq!(f[0].spread, mean, epsilon = 1e-6);
+        assert!(mean > 0.05, "facets of unit {} coincide: {mean}", f[0].unit);
+    }
+    // Facet 0 has no repulsion and the same starts as a one-facet search: the same answer.
+    let single = prefer(&net, 1, &[0, 2], &PreferOptions::default(), &Silent).expect("prefer");
+    assert_eq!(res[0].input, single[0].input);
+    assert_eq!(res[3].input, single[1].input);
+    assert!(PreferOptions::default().with_facets(0).is_err());
+    assert!(PreferOptions::default().with_prior_weight(-1.0).is_err());
+    // Distance in box widths: opposite corners are 1 apart.
+    assert_abs_diff_eq!(
+        facet_distance(&[0.0, 0.0], &[2.0, 4.0], &[0.0, 0.0], &[2.0, 4.0]),
+        1.0
+    );
+}
