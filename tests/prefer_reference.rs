@@ -92,7 +92,10 @@ fn defaults_reach_99_percent_of_32_plain_restarts() {
         let (net, expected, _) = load(name);
         let worst = worst_ratio(&net, &expected, &PreferOptions::default(), None);
         println!("{name}: worst z / reference = {worst:.5}");
-        assert!(worst >= 0.99, "{name}: a unit reached only {worst:.4} of the reference");
+        assert!(
+            worst >= 0.99,
+            "{name}: a unit reached only {worst:.4} of the reference"
+        );
     }
 }
 
@@ -105,7 +108,10 @@ fn defaults_reach_99_percent_on_every_reference_network() {
         let (net, expected, _) = load(name);
         let worst = worst_ratio(&net, &expected, &PreferOptions::default(), None);
         println!("{name}: worst z / reference = {worst:.5}");
-        assert!(worst >= 0.99, "{name}: a unit reached only {worst:.4} of the reference");
+        assert!(
+            worst >= 0.99,
+            "{name}: a unit reached only {worst:.4} of the reference"
+        );
     }
 }
 
@@ -159,7 +165,10 @@ fn ledoit_wolf_matches_scikit_learn() {
         .expect("probe");
         let got = ledoit_wolf(probe.inputs.view(), &probe.origin).expect("estimate");
         let shrinkage = want["shrinkage"].as_f64().expect("shrinkage");
-        println!("{data}: shrinkage {} (scikit-learn {shrinkage})", got.shrinkage);
+        println!(
+            "{data}: shrinkage {} (scikit-learn {shrinkage})",
+            got.shrinkage
+        );
         assert!((got.shrinkage - shrinkage).abs() < 1e-9, "{data} shrinkage");
         let cov = want["covariance"].as_array().expect("covariance");
         let scale = got.covariance.iter().fold(0.0f64, |m, v| m.max(v.abs()));

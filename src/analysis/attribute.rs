@@ -72,7 +72,11 @@ pub fn integrated_gradients(
         return Err(Error::bad_option(
             "unit",
             unit,
-            format!("must be below {}, the units of layer '{}'", l.units(), l.name),
+            format!(
+                "must be below {}, the units of layer '{}'",
+                l.units(),
+                l.name
+            ),
         ));
     }
     let n = net.input.size;
@@ -85,7 +89,11 @@ pub fn integrated_gradients(
             ));
         }
         if v.iter().any(|x| !x.is_finite()) {
-            return Err(Error::bad_option(what, "a NaN or infinity", "must be finite"));
+            return Err(Error::bad_option(
+                what,
+                "a NaN or infinity",
+                "must be finite",
+            ));
         }
     }
     if steps == 0 || steps > MAX_IG_STEPS {
@@ -107,7 +115,10 @@ pub fn integrated_gradients(
         let avg = (0.5 * (f64::from(col[0]) + f64::from(col[steps])) + inner) / steps as f64;
         values.push((f64::from(sample[i] - baseline[i]) * avg) as f32);
     }
-    let ends = Array2::from_shape_fn((2, n), |(r, i)| if r == 0 { sample[i] } else { baseline[i] });
+    let ends = Array2::from_shape_fn(
+        (2, n),
+        |(r, i)| if r == 0 { sample[i] } else { baseline[i] },
+    );
     let t = forward_trace(net, ends.view(), layer);
     let sum = values.iter().map(|v| f64::from(*v)).sum();
     Ok(Attribution {
@@ -145,7 +156,10 @@ mod tests {
     fn linear_unit_gets_its_closed_form() {
         // z = w . x + b has the constant gradient w, so the integral is exact at any step
         // count: IG_i = w_i (x_i - x'_i) (the paper's definition with a constant integrand).
-        let n = net(1, &[Activation::Tanh, Activation::Relu, Activation::Identity]);
+        let n = net(
+            1,
+            &[Activation::Tanh, Activation::Relu, Activation::Identity],
+        );
         let x = [0.5f32, -0.25, 1.0, 0.0, -1.0, 0.75];
         let base = [0.1f32, 0.2, -0.3, 0.4, 0.0, -0.5];
         for steps in [1, 7] {
@@ -162,7 +176,10 @@ mod tests {
     fn completeness_holds_within_the_integration_error() {
         // Proposition 1 of the paper: sum_i IG_i = z(x) - z(x'). The trapezoid rule's error
         // falls as 1/steps^2 on a smooth (tanh, sigmoid) network.
-        let n = net(2, &[Activation::Tanh, Activation::Sigmoid, Activation::Identity]);
+        let n = net(
+            2,
+            &[Activation::Tanh, Activation::Sigmoid, Activation::Identity],
+        );
         let mut rng = ChaCha8Rng::seed_from_u64(3);
         for _ in 0..5 {
             let x: Vec<f32> = (0..6).map(|_| rng.random_range(-1.0f32..1.0)).collect();
@@ -170,11 +187,18 @@ mod tests {
             let coarse = integrated_gradients(&n, 2, 1, &x, &base, 8).expect("ig");
             let fine = integrated_gradients(&n, 2, 1, &x, &base, 256).expect("ig");
             let scale = f64::from((coarse.z_sample - coarse.z_baseline).abs()).max(1e-3);
-            assert!(fine.gap().abs() <= 1e-3 * scale.max(1.0), "gap {}", fine.gap());
+            assert!(
+                fine.gap().abs() <= 1e-3 * scale.max(1.0),
+                "gap {}",
+                fine.gap()
+            );
             assert!(fine.gap().abs() <= coarse.gap().abs() + 1e-6);
         }
         // ReLU networks are piecewise linear: the gap stays small with enough steps.
-        let r = net(4, &[Activation::Relu, Activation::Relu, Activation::Identity]);
+        let r = net(
+            4,
+            &[Activation::Relu, Activation::Relu, Activation::Identity],
+        );
         let x = [0.9f32, -0.8, 0.7, -0.6, 0.5, -0.4];
         let a = integrated_gradients(&r, 2, 0, &x, &[0.0; 6], 2048).expect("ig");
         let scale = f64::from((a.z_sample - a.z_baseline).abs()).max(1.0);
@@ -183,7 +207,10 @@ mod tests {
 
     #[test]
     fn bad_requests_are_refused() {
-        let n = net(5, &[Activation::Tanh, Activation::Relu, Activation::Identity]);
+        let n = net(
+            5,
+            &[Activation::Tanh, Activation::Relu, Activation::Identity],
+        );
         let x = [0.0f32; 6];
         assert!(integrated_gradients(&n, 3, 0, &x, &x, 8).is_err());
         assert!(integrated_gradients(&n, 0, 5, &x, &x, 8).is_err());

@@ -20,6 +20,10 @@ pub enum ThumbKind {
     Sensitivity(bool),
     /// A probe sample (row index).
     Sample(usize),
+    /// One facet of the preferred input (facet index).
+    Facet(usize),
+    /// Integrated gradients for a probe row, from the probe mean (true) or the box centre.
+    Attribution(usize, bool),
 }
 
 /// Key of one cached texture.
@@ -60,14 +64,24 @@ impl Thumbs {
 
     /// Drops textures that depend on the probe.
     pub fn clear_probe(&mut self) {
-        self.tex
-            .retain(|k, _| !matches!(k.kind, ThumbKind::Sensitivity(_) | ThumbKind::Sample(_)));
+        // Preferred inputs may have used the old probe's data.
+        self.tex.retain(|k, _| {
+            !matches!(
+                k.kind,
+                ThumbKind::Sensitivity(_)
+                    | ThumbKind::Sample(_)
+                    | ThumbKind::Preferred
+                    | ThumbKind::Facet(_)
+                    | ThumbKind::Attribution(..)
+            )
+        });
     }
 
     /// Drops the preferred-input textures of one layer (searched again).
     pub fn clear_layer(&mut self, layer: usize) {
-        self.tex
-            .retain(|k, _| !(k.layer == layer && k.kind == ThumbKind::Preferred));
+        self.tex.retain(|k, _| {
+            !(k.layer == layer && matches!(k.kind, ThumbKind::Preferred | ThumbKind::Facet(_)))
+        });
     }
 
     /// The texture for `key`, made by `make` the first time. `tile` uploads count against the

@@ -74,7 +74,11 @@ pub fn run(args: &AttributeArgs) -> Result<ExitCode> {
         return Err(Error::bad_option(
             "row",
             args.row,
-            format!("must be a row of {} ({rows} rows, 0 to {})", data.origin, rows.saturating_sub(1)),
+            format!(
+                "must be a row of {} ({rows} rows, 0 to {})",
+                data.origin,
+                rows.saturating_sub(1)
+            ),
         ));
     }
     let sample = data.inputs.row(args.row).to_vec();
@@ -95,7 +99,15 @@ pub fn run(args: &AttributeArgs) -> Result<ExitCode> {
             ("sum", Cell::F64(a.sum)),
             ("gap", Cell::F64(a.gap())),
         ];
-        tables::write_attribute(args.common.format, w, &net.input, &sample, &baseline, &a, &extra)?;
+        tables::write_attribute(
+            args.common.format,
+            w,
+            &net.input,
+            &sample,
+            &baseline,
+            &a,
+            &extra,
+        )?;
         Ok::<(), Stop>(())
     })?;
     Ok(ExitCode::SUCCESS)

@@ -4,9 +4,9 @@
 use super::CommonArgs;
 use crate::analysis::Silent;
 use crate::analysis::prefer::{PreferOptions, Preferred, Reference, prefer_with};
-use crate::probe::memory::read_probe;
 use crate::error::Result;
 use crate::model::Network;
+use crate::probe::memory::read_probe;
 use crate::report::picture;
 use crate::report::table::{Cell, Stop, emit};
 use crate::report::tables;
@@ -145,7 +145,15 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
         }
         let size = net.input.size;
         let facets = args.facets.is_some();
-        tables::write_prefer(args.common.format, w, &args.layer, size, &found, facets, &extra)?;
+        tables::write_prefer(
+            args.common.format,
+            w,
+            &args.layer,
+            size,
+            &found,
+            facets,
+            &extra,
+        )?;
         Ok::<(), Stop>(())
     })?;
     if let (Some(path), Some(bytes)) = (&args.png, png) {

@@ -58,7 +58,7 @@ use search::{GroupPenalty, Row, Setup, run_ascent};
 
 /// The default weight of the data prior: chosen on scikit-learn's digits by
 /// `scripts/measure_prior_weight.py` (see DEVELOPERS.md for the numbers).
-pub const DEFAULT_PRIOR_WEIGHT: f32 = 1.0;
+pub const DEFAULT_PRIOR_WEIGHT: f32 = 2.0;
 /// The most facets per unit.
 pub const MAX_FACETS: usize = 64;
 
@@ -426,7 +426,13 @@ fn data_clusters(
         .iter()
         .map(|&u| {
             let top = starts::top_rows(z.column(u), take);
-            starts::cluster(r.candidates(), &top, opts.facets, &width, opts.seed ^ u as u64)
+            starts::cluster(
+                r.candidates(),
+                &top,
+                opts.facets,
+                &width,
+                opts.seed ^ u as u64,
+            )
         })
         .collect()
 }
@@ -465,8 +471,13 @@ fn ascend(
                 (Some(c), Some(members)) => members.iter().map(|&r| c.row(r).to_vec()).collect(),
                 _ => Vec::new(),
             };
-            let pts =
-                starts::group_starts(&data, opts.restarts, &net.input.low, &net.input.high, &mut rng);
+            let pts = starts::group_starts(
+                &data,
+                opts.restarts,
+                &net.input.low,
+                &net.input.high,
+                &mut rng,
+            );
             for (r, x) in pts.into_iter().enumerate() {
                 let stream = ((facet * units.len() + ui) * opts.restarts + r) as u64 + 1;
                 rows.push(Row::new(x, u, ui, opts.seed, stream));

@@ -120,7 +120,7 @@ fn spd_inverse(a: &Array2<f64>) -> Option<Array2<f64>> {
                 sum -= l[[i, k]] * l[[j, k]];
             }
             if i == j {
-                if !(sum > 0.0) {
+                if sum.is_nan() || sum <= 0.0 {
                     return None;
                 }
                 l[[i, i]] = sum.sqrt();
@@ -175,9 +175,8 @@ impl Prior {
         let rows = spaced(data.nrows(), PRIOR_MAX_ROWS);
         let sub = data.select(ndarray::Axis(0), &rows);
         let lw = ledoit_wolf(sub.view(), origin)?;
-        let inv = spd_inverse(&lw.covariance).ok_or_else(|| {
-            Error::probe(origin, "the data's covariance cannot be inverted")
-        })?;
+        let inv = spd_inverse(&lw.covariance)
+            .ok_or_else(|| Error::probe(origin, "the data's covariance cannot be inverted"))?;
         Ok(Prior {
             mean: lw.mean.iter().map(|&v| v as f32).collect(),
             precision: inv.mapv(|v| v as f32),

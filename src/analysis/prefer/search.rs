@@ -367,6 +367,9 @@ fn gradients_of_moving_rows(
     Ok(())
 }
 
+/// One moving row with its gradient, z and prior product for this step.
+type RowWork<'a> = (&'a mut Row, &'a mut [f32], f32, Option<&'a [f32]>);
+
 /// Takes one step (see [`step_row`]) on every moving row, in parallel.
 fn step_moving_rows(
     rows: &mut [Row],
@@ -384,7 +387,7 @@ fn step_moving_rows(
     let with_prior = params.prior_mean.is_some();
     let pd = &batch.pd;
     let mut grads = batch.g[..na * n].chunks_mut(n.max(1));
-    let mut work: Vec<(&mut Row, &mut [f32], f32, Option<&[f32]>)> = Vec::with_capacity(na);
+    let mut work: Vec<RowWork<'_>> = Vec::with_capacity(na);
     for (r, row) in rows.iter_mut().enumerate() {
         let p = pos[r];
         if p != usize::MAX
@@ -548,6 +551,5 @@ mod tests {
         assert_eq!(halving(200, 16), Some((50, 4)));
         assert_eq!(halving(200, 2), None);
         assert_eq!(halving(4, 8), None);
-
     }
 }

@@ -88,8 +88,11 @@ pub(super) fn cluster(
         for (i, a) in assign.iter_mut().enumerate() {
             let best = (0..centres.len())
                 .min_by(|&x, &y| {
-                    dist2(row(i), &centres[x], &inv_width)
-                        .total_cmp(&dist2(row(i), &centres[y], &inv_width))
+                    dist2(row(i), &centres[x], &inv_width).total_cmp(&dist2(
+                        row(i),
+                        &centres[y],
+                        &inv_width,
+                    ))
                 })
                 .unwrap_or(0);
             if best != *a {
@@ -143,12 +146,7 @@ pub(super) fn group_starts(
     let d = data.len().min(restarts.div_ceil(2));
     let mut out: Vec<Vec<f32>> = data[..d].to_vec();
     if out.len() < restarts {
-        out.push(
-            low.iter()
-                .zip(high)
-                .map(|(l, h)| 0.5 * (l + h))
-                .collect(),
-        );
+        out.push(low.iter().zip(high).map(|(l, h)| 0.5 * (l + h)).collect());
     }
     while out.len() < restarts {
         out.push(

@@ -128,8 +128,7 @@ fn deep_units_stay_in_the_box_and_below_the_bound() {
     let b = interval_bounds(&net);
     for layer in 1..3 {
         let units: Vec<usize> = (0..net.layers[layer].units()).collect();
-        let res =
-            prefer(&net, layer, &units, &PreferOptions::default(), &Silent).expect("prefer");
+        let res = prefer(&net, layer, &units, &PreferOptions::default(), &Silent).expect("prefer");
         for r in &res {
             assert!(r.finite);
             for (i, &x) in r.input.iter().enumerate() {
