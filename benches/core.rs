@@ -123,7 +123,7 @@ fn write_npy(path: &Path, data: &Array2<f32>) -> BenchResult<()> {
 fn write_safetensors_model(net: &Network, dir: &Path) -> BenchResult<()> {
     let mut blobs: Vec<(String, Vec<usize>, Vec<u8>)> = Vec::new();
     let mut layers_json = Vec::new();
-    for l in &net.layers {
+    for l in net.layers() {
         let wname = format!("{}.weight", l.name);
         let bname = format!("{}.bias", l.name);
         let wbytes: Vec<u8> = l.weights.iter().flat_map(|v| v.to_le_bytes()).collect();
@@ -149,9 +149,9 @@ fn write_safetensors_model(net: &Network, dir: &Path) -> BenchResult<()> {
     receptor::atomic::write_bytes_atomic(&dir.join("model.safetensors"), &st)?;
     let doc = serde_json::json!({
         "schema": "receptor-model/1",
-        "name": net.name,
+        "name": net.name(),
         "input": {
-            "size": net.input.size,
+            "size": net.input().size,
             "layout": {"kind": "image", "height": 28, "width": 28, "channels": 1},
             "low": 0.0,
             "high": 1.0
@@ -286,7 +286,7 @@ fn main() -> BenchResult<()> {
         || Ok(model::load(&inline, &opts)?),
     )?;
     // The loaded model must be the one written (shortest round-trip printing of f32).
-    if model::load(&inline, &opts)?.layers != net.layers {
+    if model::load(&inline, &opts)?.layers() != net.layers() {
         return Err("inline JSON did not load back to the same weights".into());
     }
     timings.push(t);
@@ -296,7 +296,7 @@ fn main() -> BenchResult<()> {
         runs,
         || Ok(model::load(&st_json, &opts)?),
     )?);
-    if model::load(&st_json, &opts)?.layers != net.layers {
+    if model::load(&st_json, &opts)?.layers() != net.layers() {
         return Err("JSON + safetensors did not load back to the same weights".into());
     }
     timings.push(measure(

@@ -77,16 +77,16 @@ proptest! {
         let net = random_net(seed, &sizes);
         let b = bounds::interval_bounds(&net);
         let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x5eed);
-        let n = net.input.size;
+        let n = net.input().size;
         let x = Array2::from_shape_fn((256, n), |(_, i)| {
-            let (lo, hi) = (net.input.low[i], net.input.high[i]);
+            let (lo, hi) = (net.input().low[i], net.input().high[i]);
             match rng.random_range(0..3) {
                 0 => lo,
                 1 => hi,
                 _ => lo + (hi - lo) * rng.random_range(0.0f32..=1.0),
             }
         });
-        let t = forward::forward_trace(&net, x.view(), net.layers.len() - 1);
+        let t = forward::forward_trace(&net, x.view(), net.layers().len() - 1);
         for (l, pre) in t.pre.iter().enumerate() {
             for row in pre.rows() {
                 for (k, &z) in row.iter().enumerate() {
@@ -97,7 +97,7 @@ proptest! {
                 }
             }
         }
-        for k in 0..net.layers[0].units() {
+        for k in 0..net.layers()[0].units() {
             let (want, _) = prefer::closed_form_first_layer(&net, k);
             prop_assert!((b.upper[0][k] - want).abs() <= 1e-12 * want.abs().max(1.0));
         }
@@ -108,8 +108,8 @@ proptest! {
     #[test]
     fn pruning_is_exact(seed in any::<u64>(), sizes in sizes_strategy(), fraction in 0.0f64..=1.0) {
         let net = random_net(seed, &sizes);
-        let p = prune::prune_by_magnitude(&net, fraction);
-        for (a, q) in net.layers.iter().zip(&p.layers) {
+        let p = prune::prune_by_magnitude(&net, fraction).unwrap();
+        for (a, q) in net.layers().iter().zip(p.layers()) {
             let n = a.weights.len();
             let zeros = q.weights.iter().filter(|w| **w == 0.0).count();
             prop_assert_eq!(zeros, (fraction * n as f64).round() as usize);
@@ -132,14 +132,14 @@ proptest! {
         let net = random_net(seed, &sizes);
         let b = bounds::interval_bounds(&net);
         let opts = prefer::PreferOptions::new(200, 3, 0, 0.0, 0.0).expect("valid options");
-        for layer in 0..net.layers.len() {
-            let units: Vec<usize> = (0..net.layers[layer].units()).collect();
+        for layer in 0..net.layers().len() {
+            let units: Vec<usize> = (0..net.layers()[layer].units()).collect();
             // The search itself (`prefer` answers the first layer from the closed form).
             let res = prefer::prefer_by_ascent(&net, layer, &units, &opts, &Silent).expect("prefer");
             for r in &res {
                 prop_assert!(r.finite);
                 for (i, &x) in r.input.iter().enumerate() {
-                    prop_assert!(x >= net.input.low[i] && x <= net.input.high[i]);
+                    prop_assert!(x >= net.input().low[i] && x <= net.input().high[i]);
                 }
                 let z = f64::from(r.preactivation);
                 let ub = b.upper[layer][r.unit];

@@ -58,11 +58,11 @@ fn box_inputs(net: &Network, n: usize, seed: u64) -> Array2<f32> {
 fn compacting_the_overdriven_demo_removes_exactly_the_proven_dead_units() {
     let net = overdriven();
     let bounds = interval_bounds(&net);
-    let hidden = net.layers.len() - 1;
+    let hidden = net.layers().len() - 1;
     let mut proven: Vec<(usize, usize)> = Vec::new();
     for l in 0..hidden {
-        assert_eq!(net.layers[l].activation, Activation::Relu);
-        for k in 0..net.layers[l].units() {
+        assert_eq!(net.layers()[l].activation, Activation::Relu);
+        for k in 0..net.layers()[l].units() {
             if bounds.upper[l][k] <= 0.0 {
                 proven.push((l, k));
             }
@@ -80,10 +80,13 @@ fn compacting_the_overdriven_demo_removes_exactly_the_proven_dead_units() {
         .collect();
     removed.sort_unstable();
     assert_eq!(removed, proven);
-    assert_eq!(c.network.input.size, net.input.size);
+    assert_eq!(c.network.input().size, net.input().size);
     for l in 0..hidden {
         let gone = proven.iter().filter(|p| p.0 == l).count();
-        assert_eq!(c.network.layers[l].units(), net.layers[l].units() - gone);
+        assert_eq!(
+            c.network.layers()[l].units(),
+            net.layers()[l].units() - gone
+        );
     }
 
     let x = probe_inputs(&net);
@@ -119,7 +122,7 @@ fn compact_command_writes_a_smaller_model_with_a_side_file() {
     let net = overdriven();
     let small = model::load(&out, &LoadOptions::default()).expect("the output loads");
     // The summary names every layer and what was removed from it.
-    for l in &net.layers {
+    for l in net.layers() {
         assert!(stderr.contains(&format!("layer '{}'", l.name)), "{stderr}");
     }
     assert!(stderr.contains("dead_proven"), "{stderr}");

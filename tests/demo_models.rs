@@ -19,7 +19,10 @@ use receptor::model::{self, Activation, LoadOptions, Network};
 use receptor::probe;
 use std::path::{Path, PathBuf};
 
-#[allow(dead_code)]
+#[allow(
+    dead_code,
+    reason = "the generator's command-line entry point is not called here"
+)]
 #[path = "../examples/make_demos/main.rs"]
 mod make_demos;
 
@@ -62,7 +65,7 @@ fn dead_counts(net: &Network, probe_file: &str) -> Vec<(usize, usize)> {
     let path = demo_dir().join(probe_file);
     let mut src = probe::open(&path, net).unwrap();
     let report = screen(net, src.as_mut(), &ScreenOptions::default(), &Silent).unwrap();
-    let hidden = net.layers.len() - 1;
+    let hidden = net.layers().len() - 1;
     let mut counts = vec![(0, 0); hidden];
     for u in &report.units {
         match u.status {
@@ -85,8 +88,7 @@ fn every_bundled_model_loads_and_has_a_labelled_probe() {
         let net = model::load(&path, &LoadOptions::default())
             .unwrap_or_else(|e| panic!("{} does not load: {e}", path.display()));
         assert!(
-            net.description
-                .as_deref()
+            net.description()
                 .is_some_and(|d| d.starts_with("Invented data, for demos only.")),
             "{}: the description must say the data is invented",
             path.display()
@@ -111,10 +113,10 @@ fn every_bundled_model_loads_and_has_a_labelled_probe() {
 #[test]
 fn solder_joints_is_trained_well() {
     let net = load("solder-joints.json");
-    let sizes: Vec<usize> = net.layers.iter().map(|l| l.units()).collect();
+    let sizes: Vec<usize> = net.layers().iter().map(|l| l.units()).collect();
     assert_eq!(sizes, [32, 16, 5]);
     assert_eq!(
-        net.input.layout,
+        net.input().layout,
         model::Layout::Image {
             height: 12,
             width: 12,
@@ -122,7 +124,7 @@ fn solder_joints_is_trained_well() {
         }
     );
     assert!(
-        net.layers[..2]
+        net.layers()[..2]
             .iter()
             .all(|l| l.activation == Activation::Relu)
     );
@@ -144,8 +146,9 @@ fn overdriven_run_is_worse_and_has_both_kinds_of_dead_units() {
     let good = load("solder-joints.json");
     let over = load("solder-joints-overdriven.json");
     // Same architecture.
-    let shape =
-        |n: &Network| -> Vec<(usize, usize)> { n.layers.iter().map(|l| l.weights.dim()).collect() };
+    let shape = |n: &Network| -> Vec<(usize, usize)> {
+        n.layers().iter().map(|l| l.weights.dim()).collect()
+    };
     assert_eq!(shape(&good), shape(&over));
     // Measured: 0.796 (398 of 500), against 0.980 for the well-trained run.
     let acc = accuracy(&over, "solder-joints-probe.csv");
@@ -165,7 +168,7 @@ fn overdriven_run_is_worse_and_has_both_kinds_of_dead_units() {
     let proven_h1 = bounds.upper[0].iter().filter(|&&u| u <= 0.0).count();
     assert!(proven_h1 >= 8, "proven dead in h1: {proven_h1}");
     // The same count by hand, independent of the bounds module.
-    let h1 = &over.layers[0];
+    let h1 = &over.layers()[0];
     let by_hand = h1
         .weights
         .rows()
@@ -213,17 +216,17 @@ fn overdriven_tensors_live_in_the_safetensors_file() {
 fn cold_storage_takes_raw_units_and_is_accurate() {
     let net = load("cold-storage.json");
     assert!(
-        net.layers[..net.layers.len() - 1]
+        net.layers()[..net.layers().len() - 1]
             .iter()
             .all(|l| l.activation == Activation::Tanh)
     );
-    let names = net.input.names.clone().unwrap();
+    let names = net.input().names.clone().unwrap();
     assert_eq!(names.len(), 8);
     assert_eq!(names[0], "air_temp_c");
     // Per-feature box in physical units (not one shared range).
-    assert_eq!(net.input.low[6], 300.0);
-    assert_eq!(net.input.high[6], 3000.0);
-    assert_eq!(net.input.high[2], 60.0);
+    assert_eq!(net.input().low[6], 300.0);
+    assert_eq!(net.input().high[6], 3000.0);
+    assert_eq!(net.input().high[2], 60.0);
     // The probe's header carries the feature names.
     let header = std::fs::read_to_string(demo_dir().join("cold-storage-probe.csv")).unwrap();
     let first = header.lines().next().unwrap();

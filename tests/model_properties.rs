@@ -15,8 +15,8 @@ fn check(bytes: &[u8]) {
         &LoadOptions::default(),
     ) {
         Ok(net) => {
-            // A model that loads is fully valid: re-validating cannot fail.
-            receptor::model::validate::validate(&net, "mutant.json").unwrap();
+            // A model that loads is fully valid: re-validating its parts cannot fail.
+            receptor::Network::from_parts(net.into_parts(), "mutant.json").unwrap();
         }
         Err(e) => {
             let msg = e.to_string();

@@ -128,8 +128,8 @@ fn data_starts_never_lose_to_the_best_sample() {
             .expect("valid weight");
         let worst = worst_ratio(&net, &expected, &opts, Some(&reference));
         println!("{name} with data starts: worst z / reference = {worst:.5}");
-        for layer in 0..net.layers.len() {
-            let units: Vec<usize> = (0..net.layers[layer].units()).collect();
+        for layer in 0..net.layers().len() {
+            let units: Vec<usize> = (0..net.layers()[layer].units()).collect();
             let found =
                 prefer_with(&net, layer, &units, &opts, Some(&reference), &Silent).expect("ok");
             let t = forward_trace(&net, reference.candidates(), layer);
@@ -195,7 +195,7 @@ fn the_prior_keeps_class_units_near_the_digits() {
     // stays the reported value, and the prior's own penalty is lower.
     let (net, _, probe) = load("digits_relu");
     let reference = Reference::new(&net, &probe).expect("reference");
-    let out = net.layers.len() - 1;
+    let out = net.layers().len() - 1;
     let units: Vec<usize> = (0..10).collect();
     let plain = prefer(&net, out, &units, &PreferOptions::default(), &Silent).expect("plain");
     let near = prefer_with(

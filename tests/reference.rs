@@ -85,7 +85,11 @@ fn fixtures_have_the_documented_shape() {
         let fx = load_fixture(name);
         let n = u(&fx.expected["samples"]);
         assert_eq!(fx.inputs.nrows(), n, "{name}: probe rows");
-        assert_eq!(fx.inputs.ncols(), fx.net.input.size, "{name}: probe width");
+        assert_eq!(
+            fx.inputs.ncols(),
+            fx.net.input().size,
+            "{name}: probe width"
+        );
         assert_eq!(arr(&fx.expected, "predict_proba").len(), n, "{name}");
         // The probe's `label` column holds class names; the importer maps them to the output
         // units in the order of the model's labels, which is sklearn's `classes_` order.
@@ -146,12 +150,16 @@ fn trace_matches_numpy() {
         let fx = load_fixture(name);
         let trace = &fx.expected["trace"];
         let rows: Vec<usize> = arr(trace, "rows").iter().map(u).collect();
-        let last = fx.net.layers.len() - 1;
+        let last = fx.net.layers().len() - 1;
         let ours = forward::forward_trace(&fx.net, fx.inputs.view(), last);
-        assert_eq!(ours.pre.len(), fx.net.layers.len(), "{name}: traced layers");
+        assert_eq!(
+            ours.pre.len(),
+            fx.net.layers().len(),
+            "{name}: traced layers"
+        );
         assert_eq!(
             ours.post.len(),
-            fx.net.layers.len(),
+            fx.net.layers().len(),
             "{name}: traced layers"
         );
         for (key, got) in [("pre", &ours.pre), ("post", &ours.post)] {
@@ -224,11 +232,11 @@ fn bounds_match_numpy_interval_propagation() {
         let b = bounds::interval_bounds(&fx.net);
         let lower = arr(&fx.expected["bounds"], "lower");
         let upper = arr(&fx.expected["bounds"], "upper");
-        assert_eq!(b.lower.len(), fx.net.layers.len(), "{name}");
-        assert_eq!(b.upper.len(), fx.net.layers.len(), "{name}");
-        let last = fx.net.layers.len() - 1;
+        assert_eq!(b.lower.len(), fx.net.layers().len(), "{name}");
+        assert_eq!(b.upper.len(), fx.net.layers().len(), "{name}");
+        let last = fx.net.layers().len() - 1;
         let trace = forward::forward_trace(&fx.net, fx.inputs.view(), last);
-        for l in 0..fx.net.layers.len() {
+        for l in 0..fx.net.layers().len() {
             let lo = lower[l].as_array().expect("lower");
             let hi = upper[l].as_array().expect("upper");
             assert_eq!(b.lower[l].len(), lo.len(), "{name}: layer {l}");

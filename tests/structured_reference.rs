@@ -114,7 +114,7 @@ fn accuracy_curves_match_numpy() {
             for (p, w) in pts.iter().zip(want) {
                 let layer = p
                     .layer
-                    .map_or("all".to_string(), |l| net.layers[l].name.clone());
+                    .map_or("all".to_string(), |l| net.layers()[l].name.clone());
                 let what = format!("{criterion} {layer} {}", p.fraction);
                 assert_eq!(w["layer"], layer.as_str(), "{what}");
                 assert_eq!(Some(p.fraction), w["fraction"].as_f64(), "{what}");

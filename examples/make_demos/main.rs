@@ -27,7 +27,7 @@ use rand_chacha::ChaCha8Rng;
 use receptor::Error;
 use receptor::analysis::Silent;
 use receptor::atomic::{write_atomic, write_bytes_atomic};
-use receptor::model::{self, Activation, InputSpec, Layout, Network};
+use receptor::model::{self, Activation, InputSpec, Layout, Network, NetworkParts};
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -250,7 +250,7 @@ fn solder_input() -> InputSpec {
 
 /// First-layer units whose pre-activation upper bound over the input box is <= 0:
 /// `b + sum_i max(w_i * low_i, w_i * high_i)`, exact for the first layer (computed in f64).
-fn provably_dead_first_layer(net: &Network) -> usize {
+fn provably_dead_first_layer(net: &NetworkParts) -> usize {
     let l = &net.layers[0];
     l.weights
         .rows()
@@ -269,7 +269,7 @@ fn provably_dead_first_layer(net: &Network) -> usize {
 
 /// Per hidden layer, the number of rectifier units whose pre-activation is <= 0 on every
 /// row of `x`.
-fn dead_on_data(net: &Network, x: &Array2<f32>) -> Vec<usize> {
+fn dead_on_data(net: &NetworkParts, x: &Array2<f32>) -> Vec<usize> {
     let mut a = x.clone();
     let mut dead = Vec::new();
     for layer in &net.layers[..net.layers.len() - 1] {
@@ -293,7 +293,7 @@ fn dead_on_data(net: &Network, x: &Array2<f32>) -> Vec<usize> {
 /// biases a few He-initialised units start (and stay) below zero on every patch, and even a
 /// well-run training ended with dead units. A small positive start is common practice (no
 /// source).
-fn solder_start(name: &str, sizes: &[usize], labels: &[String]) -> Result<Network> {
+fn solder_start(name: &str, sizes: &[usize], labels: &[String]) -> Result<NetworkParts> {
     let mut net = train::init_network(
         name,
         solder_input(),
@@ -346,7 +346,10 @@ fn solder_models(out: &Path) -> Result<()> {
          (examples/make_demos/).",
         x.nrows()
     ));
-    model::write_json(&good, &out.join("solder-joints.json"))?;
+    model::write_json(
+        &Network::from_parts(good.clone(), "solder-joints")?,
+        &out.join("solder-joints.json"),
+    )?;
 
     // The over-driven run: the same architecture and initialisation, SGD with momentum at a
     // learning rate that is too high for this problem (measured with the same settings:
@@ -572,14 +575,14 @@ fn cold_storage_model(out: &Path) -> Result<()> {
          units. Trained with Adam on {} synthetic hours (examples/make_demos/).",
         x.nrows()
     ));
-    model::validate::validate(&net, "cold-storage (folded)")?;
+    let checked = Network::from_parts(net.clone(), "cold-storage (folded)")?;
     let acc = train::accuracy(&net, px.view(), &py)?;
     eprintln!(
         "cold-storage: train loss {:.4}, probe accuracy {acc:.4} (before folding {acc_std:.4})",
         report.epochs.last().map_or(f64::NAN, |e| e.loss)
     );
     confusion(&net, &px, &py);
-    model::write_json(&net, &out.join("cold-storage.json"))?;
+    model::write_json(&checked, &out.join("cold-storage.json"))?;
     write_probe(
         &out.join("cold-storage-probe.csv"),
         &COLD_FEATURES
@@ -620,8 +623,11 @@ fn write_probe(
 }
 
 /// Prints the confusion matrix (rows: true class, columns: predicted) to standard error.
-fn confusion(net: &Network, x: &Array2<f32>, y: &[usize]) {
-    let k = net.output_layer().units();
+fn confusion(net: &NetworkParts, x: &Array2<f32>, y: &[usize]) {
+    let Some(out) = net.layers.last() else {
+        return;
+    };
+    let k = out.units();
     let mut m = vec![vec![0usize; k]; k];
     let mut a = x.clone();
     for layer in &net.layers {
@@ -640,13 +646,13 @@ fn confusion(net: &Network, x: &Array2<f32>, y: &[usize]) {
         m[t][best] += 1;
     }
     for (t, r) in m.iter().enumerate() {
-        eprintln!("  {:>22} {:?}", net.output_names()[t], r);
+        eprintln!("  {:>22} {:?}", out.unit_name(t, "out"), r);
     }
 }
 
 /// Writes `net` as `{stem}.json` whose weights and biases live in `{stem}.safetensors`
 /// (f32, tensors `{layer}.weight` `[units, inputs]` and `{layer}.bias` `[units]`).
-fn write_safetensors_model(net: &Network, out: &Path, stem: &str) -> Result<()> {
+fn write_safetensors_model(net: &NetworkParts, out: &Path, stem: &str) -> Result<()> {
     let side = format!("{stem}.safetensors");
     let mut blobs: Vec<(String, Vec<usize>, Vec<u8>)> = Vec::new();
     for l in &net.layers {

@@ -1,4 +1,4 @@
-//! Mini-batch training of a [`Network`] with softmax cross-entropy, used to make the bundled
+//! Mini-batch training of a [`NetworkParts`] with softmax cross-entropy, used to make the bundled
 //! demo models (and by anyone who wants a small model to try the tool on).
 //!
 //! - Loss: mean softmax cross-entropy over a batch. The last layer's pre-activations are the
@@ -22,7 +22,7 @@ use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use receptor::analysis::Progress;
-use receptor::model::{Activation, InputSpec, Layer, Network};
+use receptor::model::{Activation, InputSpec, Layer, Network, NetworkParts};
 
 /// Why training (or building the demo files) failed.
 #[derive(Debug, thiserror::Error)]
@@ -211,7 +211,7 @@ pub fn init_network(
     hidden: Activation,
     labels: Option<Vec<String>>,
     seed: u64,
-) -> Result<Network> {
+) -> Result<NetworkParts> {
     if sizes.is_empty() {
         return Err(TrainError::problem(
             "a network needs at least an output layer",
@@ -234,7 +234,7 @@ pub fn init_network(
         layers.push(layer);
         inputs = units;
     }
-    Ok(Network::new(name, name, input, layers)?)
+    Ok(Network::new(name, name, input, layers)?.into_parts())
 }
 
 /// `a · b` for `a: [m, k]`, `b: [k, n]`, in a fixed summation order (k ascending for every
@@ -288,7 +288,7 @@ struct Cache {
 }
 
 /// Forward pass in the fixed order of [`matmul_fixed`]: `z = a_prev · Wᵀ + b`, `a = f(z)`.
-fn forward_cache(net: &Network, x: ArrayView2<f32>) -> Cache {
+fn forward_cache(net: &NetworkParts, x: ArrayView2<f32>) -> Cache {
     let mut pre = Vec::with_capacity(net.layers.len());
     let mut post: Vec<Array2<f32>> = Vec::with_capacity(net.layers.len());
     let last = net.layers.len() - 1;
@@ -309,8 +309,12 @@ fn forward_cache(net: &Network, x: ArrayView2<f32>) -> Cache {
 }
 
 /// Checks that `net` can be trained on `x` with `labels`.
-fn check_problem(net: &Network, x: ArrayView2<f32>, labels: &[usize]) -> Result<()> {
-    let out = net.output_layer();
+fn check_problem(net: &NetworkParts, x: ArrayView2<f32>, labels: &[usize]) -> Result<()> {
+    let Some(out) = net.layers.last() else {
+        return Err(TrainError::problem(
+            "a network needs at least an output layer",
+        ));
+    };
     if !matches!(out.activation, Activation::Softmax | Activation::Identity) {
         return Err(TrainError::problem(format!(
             "training needs a softmax or identity output layer; layer '{}' is {}",
@@ -382,7 +386,7 @@ fn argmax(row: ArrayView1<f32>) -> usize {
 }
 
 /// Backward pass for one batch whose forward pass is `cache`.
-fn backward(net: &Network, x: ArrayView2<f32>, labels: &[usize], cache: &Cache) -> Gradients {
+fn backward(net: &NetworkParts, x: ArrayView2<f32>, labels: &[usize], cache: &Cache) -> Gradients {
     let n = labels.len() as f32;
     let last = net.layers.len() - 1;
     // d(mean CE)/dz_out = (softmax(z) - onehot(y)) / n.
@@ -416,10 +420,15 @@ fn backward(net: &Network, x: ArrayView2<f32>, labels: &[usize], cache: &Cache) 
 /// `labels: [samples]`, and its gradient with respect to every weight and bias.
 ///
 /// The L2 penalty of [`TrainOptions::weight_decay`] is not included.
-// The generator itself only trains; the tests check the gradients through this.
-#[cfg_attr(not(test), allow(dead_code))]
+#[cfg_attr(
+    not(test),
+    allow(
+        dead_code,
+        reason = "the generator itself only trains; the tests check the gradients through this"
+    )
+)]
 pub fn loss_and_gradients(
-    net: &Network,
+    net: &NetworkParts,
     x: ArrayView2<f32>,
     labels: &[usize],
 ) -> Result<(f64, Gradients)> {
@@ -430,15 +439,18 @@ pub fn loss_and_gradients(
 }
 
 /// Mean softmax cross-entropy (nats) of `net` on `x: [samples, inputs]` with `labels`.
-#[cfg_attr(not(test), allow(dead_code))]
-pub fn cross_entropy(net: &Network, x: ArrayView2<f32>, labels: &[usize]) -> Result<f64> {
+#[cfg_attr(
+    not(test),
+    allow(dead_code, reason = "used by the trainer's tests only")
+)]
+pub fn cross_entropy(net: &NetworkParts, x: ArrayView2<f32>, labels: &[usize]) -> Result<f64> {
     check_problem(net, x, labels)?;
     let cache = forward_cache(net, x);
     Ok(loss_from_logits(cache.pre[net.layers.len() - 1].view(), labels).0)
 }
 
 /// Fraction of rows of `x` whose argmax output is the label.
-pub fn accuracy(net: &Network, x: ArrayView2<f32>, labels: &[usize]) -> Result<f64> {
+pub fn accuracy(net: &NetworkParts, x: ArrayView2<f32>, labels: &[usize]) -> Result<f64> {
     check_problem(net, x, labels)?;
     let cache = forward_cache(net, x);
     let (_, correct) = loss_from_logits(cache.pre[net.layers.len() - 1].view(), labels);
@@ -511,7 +523,7 @@ impl<D: ndarray::Dimension> Slot<D> {
 /// or parameter that stops being finite ends the run with a usage error naming the epoch
 /// (a learning rate far too high), leaving `net` as it was before that update.
 pub fn train(
-    net: &mut Network,
+    net: &mut NetworkParts,
     x: ArrayView2<f32>,
     labels: &[usize],
     opts: &TrainOptions,
@@ -614,7 +626,7 @@ mod tests {
     }
 
     /// A 3-5-4-3 net with the given hidden activations and output, random weights.
-    fn tiny_net(h1: Activation, h2: Activation, out: Activation) -> Network {
+    fn tiny_net(h1: Activation, h2: Activation, out: Activation) -> NetworkParts {
         let mut rng = ChaCha8Rng::seed_from_u64(7);
         let mut layers = vec![
             init_layer("h1", 5, 3, h1, &mut rng),
@@ -624,7 +636,9 @@ mod tests {
         for l in &mut layers {
             l.bias = Array1::from_shape_fn(l.units(), |_| rng.random_range(-0.3..0.3));
         }
-        Network::new("tiny", "tiny", tiny_input(3), layers).unwrap()
+        Network::new("tiny", "tiny", tiny_input(3), layers)
+            .unwrap()
+            .into_parts()
     }
 
     fn tiny_batch() -> (Array2<f32>, Vec<usize>) {
@@ -662,7 +676,7 @@ mod tests {
                 for u in 0..units {
                     for i in 0..=inputs {
                         // i == inputs stands for the bias.
-                        fn get(n: &mut Network, l: usize, u: usize, i: usize) -> &mut f32 {
+                        fn get(n: &mut NetworkParts, l: usize, u: usize, i: usize) -> &mut f32 {
                             if i == n.layers[l].fan_in() {
                                 &mut n.layers[l].bias[u]
                             } else {
@@ -733,14 +747,15 @@ mod tests {
         for out in [Activation::Softmax, Activation::Identity] {
             let net = tiny_net(Activation::Relu, Activation::Tanh, out);
             let cache = forward_cache(&net, x.view());
-            let shared = receptor::analysis::forward::forward_trace(&net, x.view(), 2);
+            let checked = Network::from_parts(net.clone(), "tiny").unwrap();
+            let shared = receptor::analysis::forward::forward_trace(&checked, x.view(), 2);
             for l in 0..3 {
                 for (p, q) in cache.pre[l].iter().zip(&shared.pre[l]) {
                     assert_abs_diff_eq!(*p, *q, epsilon = 1e-5);
                 }
             }
             if out == Activation::Softmax {
-                let probs = receptor::analysis::forward::forward(&net, x.view());
+                let probs = receptor::analysis::forward::forward(&checked, x.view());
                 for (p, q) in cache.post[2].iter().zip(&probs) {
                     assert_abs_diff_eq!(*p, *q, epsilon = 1e-6);
                 }
@@ -765,7 +780,7 @@ mod tests {
         (x, y)
     }
 
-    fn blob_net(seed: u64) -> Network {
+    fn blob_net(seed: u64) -> NetworkParts {
         init_network(
             "blobs",
             tiny_input(2),

@@ -79,9 +79,9 @@ pub fn trace_activity(
     let bins = opts.bins.max(1);
     let chunk = opts.chunk_rows.max(1);
     let rows = inputs.nrows();
-    let last = net.layers.len().saturating_sub(1);
+    let last = net.layers().len().saturating_sub(1);
     let mut layers: Vec<Vec<UnitActivity>> = net
-        .layers
+        .layers()
         .iter()
         .map(|l| {
             vec![

@@ -61,11 +61,11 @@ pub fn integrated_gradients(
     baseline: &[f32],
     steps: usize,
 ) -> Result<Attribution> {
-    let Some(l) = net.layers.get(layer) else {
+    let Some(l) = net.layers().get(layer) else {
         return Err(Error::bad_option(
             "layer",
             layer,
-            format!("must be a layer index below {}", net.layers.len()),
+            format!("must be a layer index below {}", net.layers().len()),
         ));
     };
     if unit >= l.units() {
@@ -79,7 +79,7 @@ pub fn integrated_gradients(
             ),
         ));
     }
-    let n = net.input.size;
+    let n = net.input().size;
     for (what, v) in [("sample", sample), ("baseline", baseline)] {
         if v.len() != n {
             return Err(Error::bad_option(
@@ -165,7 +165,7 @@ mod tests {
         for steps in [1, 7] {
             let a = integrated_gradients(&n, 0, 2, &x, &base, steps).expect("ig");
             for i in 0..6 {
-                let want = f64::from(n.layers[0].weights[[2, i]]) * f64::from(x[i] - base[i]);
+                let want = f64::from(n.layers()[0].weights[[2, i]]) * f64::from(x[i] - base[i]);
                 approx::assert_abs_diff_eq!(f64::from(a.values[i]), want, epsilon = 1e-6);
             }
             approx::assert_abs_diff_eq!(a.gap(), 0.0, epsilon = 1e-5);

@@ -84,11 +84,11 @@ pub const BACKSUB_MAX_MACS: f64 = 5e8;
 /// Plain interval bound propagation (Gowal et al. 2018): the pre-activation interval of
 /// every layer over the input box, each layer from the previous layer's interval.
 pub fn plain_interval_bounds(net: &Network) -> Bounds {
-    let mut lo: Vec<f64> = net.input.low.iter().map(|&v| f64::from(v)).collect();
-    let mut hi: Vec<f64> = net.input.high.iter().map(|&v| f64::from(v)).collect();
-    let mut lower = Vec::with_capacity(net.layers.len());
-    let mut upper = Vec::with_capacity(net.layers.len());
-    for layer in &net.layers {
+    let mut lo: Vec<f64> = net.input().low.iter().map(|&v| f64::from(v)).collect();
+    let mut hi: Vec<f64> = net.input().high.iter().map(|&v| f64::from(v)).collect();
+    let mut lower = Vec::with_capacity(net.layers().len());
+    let mut upper = Vec::with_capacity(net.layers().len());
+    for layer in net.layers() {
         let ranges: Vec<(f64, f64)> = (0..layer.units())
             .into_par_iter()
             .map(|k| affine_range(layer.weights.row(k), layer.bias[k], &lo, &hi))
@@ -115,7 +115,7 @@ pub fn plain_interval_bounds(net: &Network) -> Bounds {
 /// is cheap (module docs). Exact on the first layer; never looser than
 /// [`plain_interval_bounds`] on any layer.
 pub fn interval_bounds(net: &Network) -> Bounds {
-    interval_bounds_upto(net, net.layers.len())
+    interval_bounds_upto(net, net.layers().len())
 }
 
 /// [`interval_bounds`] with back-substitution only for layers `< tighten_below` (the
@@ -125,9 +125,9 @@ pub(crate) fn interval_bounds_upto(net: &Network, tighten_below: usize) -> Bound
     let plain = plain_interval_bounds(net);
     let mut lower = plain.lower;
     let mut upper = plain.upper;
-    let input = net.input.size as f64;
-    for target in 1..net.layers.len().min(tighten_below) {
-        let n_t = net.layers[target].units() as f64;
+    let input = net.input().size as f64;
+    for target in 1..net.layers().len().min(tighten_below) {
+        let n_t = net.layers()[target].units() as f64;
         let cost: f64 = 2.0
             * n_t
             * (0..target)
@@ -135,9 +135,9 @@ pub(crate) fn interval_bounds_upto(net: &Network, tighten_below: usize) -> Bound
                     let below = if l == 0 {
                         input
                     } else {
-                        net.layers[l - 1].units() as f64
+                        net.layers()[l - 1].units() as f64
                     };
-                    net.layers[l].units() as f64 * below
+                    net.layers()[l].units() as f64 * below
                 })
                 .sum::<f64>();
         if cost > BACKSUB_MAX_MACS {
@@ -145,7 +145,7 @@ pub(crate) fn interval_bounds_upto(net: &Network, tighten_below: usize) -> Bound
         }
         // Re-propagate the plain interval from the tightened layer below, then intersect
         // with back-substitution: both are sound, so their intersection is.
-        let below = &net.layers[target - 1];
+        let below = &net.layers()[target - 1];
         let lo_a: Vec<f64> = lower[target - 1]
             .iter()
             .map(|&z| activate_f64(below.activation, z))
@@ -155,7 +155,7 @@ pub(crate) fn interval_bounds_upto(net: &Network, tighten_below: usize) -> Bound
             .map(|&z| activate_f64(below.activation, z))
             .collect();
         let (bl, bu) = back_substitute(net, target, &lower, &upper);
-        let layer = &net.layers[target];
+        let layer = &net.layers()[target];
         for k in 0..layer.units() {
             let (dn, up) = affine_range(layer.weights.row(k), layer.bias[k], &lo_a, &hi_a);
             // f64::min / max ignore a NaN operand, so an overflowed estimate never wins.
@@ -202,7 +202,7 @@ fn back_substitute(
     lower: &[Array1<f64>],
     upper: &[Array1<f64>],
 ) -> (Vec<f64>, Vec<f64>) {
-    let t = &net.layers[target];
+    let t = &net.layers()[target];
     // Upper (cu, du) and lower (cl, dl) linear expressions, coefficients [units_t, width].
     let mut cu: Array2<f64> = t.weights.mapv(f64::from);
     let mut du: Array1<f64> = t.bias.mapv(f64::from);
@@ -211,7 +211,7 @@ fn back_substitute(
     // Scale of the rounding error: sum of |terms| seen, per unit.
     let mut mag: Array1<f64> = du.mapv(f64::abs);
     for l in (0..target).rev() {
-        let layer = &net.layers[l];
+        let layer = &net.layers()[l];
         let lines: Vec<((f64, f64), (f64, f64))> = (0..layer.units())
             .map(|i| relaxation(layer.activation, lower[l][i], upper[l][i]))
             .collect();
@@ -238,8 +238,8 @@ fn back_substitute(
         cu = cu.dot(&w);
         cl = cl.dot(&w);
     }
-    let lo: Vec<f64> = net.input.low.iter().map(|&v| f64::from(v)).collect();
-    let hi: Vec<f64> = net.input.high.iter().map(|&v| f64::from(v)).collect();
+    let lo: Vec<f64> = net.input().low.iter().map(|&v| f64::from(v)).collect();
+    let hi: Vec<f64> = net.input().high.iter().map(|&v| f64::from(v)).collect();
     let mut out_l = Vec::with_capacity(cu.nrows());
     let mut out_u = Vec::with_capacity(cu.nrows());
     for j in 0..cu.nrows() {
@@ -298,14 +298,14 @@ mod tests {
         // (each coordinate is free; textbook linear programming over a box).
         let net = random_net(1, &[Activation::Relu, Activation::Softmax], &[7, 5, 3]);
         let b = interval_bounds(&net);
-        let l = &net.layers[0];
+        let l = &net.layers()[0];
         for k in 0..l.units() {
             let mut up = f64::from(l.bias[k]);
             let mut dn = f64::from(l.bias[k]);
             for i in 0..7 {
                 let w = f64::from(l.weights[[k, i]]);
-                let lo = f64::from(net.input.low[i]);
-                let hi = f64::from(net.input.high[i]);
+                let lo = f64::from(net.input().low[i]);
+                let hi = f64::from(net.input().high[i]);
                 if w >= 0.0 {
                     up += w * hi;
                     dn += w * lo;
@@ -322,9 +322,9 @@ mod tests {
         for k in 0..l.units() {
             let x = Array2::from_shape_fn((1, 7), |(_, i)| {
                 if l.weights[[k, i]] > 0.0 {
-                    net.input.high[i]
+                    net.input().high[i]
                 } else {
-                    net.input.low[i]
+                    net.input().low[i]
                 }
             });
             let t = forward_trace(&net, x.view(), 0);
@@ -353,7 +353,7 @@ mod tests {
             let mut rng = ChaCha8Rng::seed_from_u64(100 + s as u64);
             let rows = 2000;
             let x = Array2::from_shape_fn((rows, 6), |(_, i)| {
-                let (lo, hi) = (net.input.low[i], net.input.high[i]);
+                let (lo, hi) = (net.input().low[i], net.input().high[i]);
                 // Include the box corners often: they are where linear maxima sit.
                 match rng.random_range(0..4) {
                     0 => lo,

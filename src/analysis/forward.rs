@@ -29,7 +29,10 @@ const PAR_MIN_ELEMS: usize = 1 << 15;
 /// # Panics
 /// When the shapes do not agree (a programming error, never caused by user data: every
 /// network is validated before analysis).
-#[allow(unsafe_code)]
+#[allow(
+    unsafe_code,
+    reason = "gemm's raw-pointer API, called after every shape and stride is checked (SAFETY below)"
+)]
 pub(crate) fn gemm_into(
     dst: &mut ArrayViewMut2<f32>,
     a: ArrayView2<f32>,
@@ -222,13 +225,13 @@ fn activated(act: Activation, pre: &Array2<f32>) -> Array2<f32> {
 pub fn forward(net: &Network, x: ArrayView2<f32>) -> Array2<f32> {
     assert_eq!(
         x.ncols(),
-        net.input.size,
+        net.input().size,
         "forward: batch has {} columns but the network has {} inputs",
         x.ncols(),
-        net.input.size
+        net.input().size
     );
     let mut a: Option<Array2<f32>> = None;
-    for layer in &net.layers {
+    for layer in net.layers() {
         let input = a.as_ref().map_or(x, |v| v.view());
         let mut z = linear(input, layer.weights.view(), layer.bias.view());
         activate_in_place(layer.activation, &mut z);
@@ -243,20 +246,20 @@ pub fn forward(net: &Network, x: ArrayView2<f32>) -> Array2<f32> {
 /// When `upto` is not a layer index or `x` has the wrong number of columns.
 pub fn forward_trace(net: &Network, x: ArrayView2<f32>, upto: usize) -> Trace {
     assert!(
-        upto < net.layers.len(),
+        upto < net.layers().len(),
         "forward_trace: layer {upto} requested but the network has {} layers",
-        net.layers.len()
+        net.layers().len()
     );
     assert_eq!(
         x.ncols(),
-        net.input.size,
+        net.input().size,
         "forward_trace: batch has {} columns but the network has {} inputs",
         x.ncols(),
-        net.input.size
+        net.input().size
     );
     let mut pre: Vec<Array2<f32>> = Vec::with_capacity(upto + 1);
     let mut post: Vec<Array2<f32>> = Vec::with_capacity(upto + 1);
-    for layer in &net.layers[..=upto] {
+    for layer in &net.layers()[..=upto] {
         let input = post.last().map_or(x, |v| v.view());
         let z = linear(input, layer.weights.view(), layer.bias.view());
         let a = activated(layer.activation, &z);

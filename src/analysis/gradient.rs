@@ -65,7 +65,7 @@ pub fn input_gradient(
 ) -> (Array1<f32>, Array2<f32>) {
     let rows = x.nrows();
     let mut z = Array1::<f32>::zeros(rows);
-    let mut grad = Array2::<f32>::zeros((rows, net.input.size));
+    let mut grad = Array2::<f32>::zeros((rows, net.input().size));
     let mut ws = GradWorkspace::default();
     let zs = z
         .as_slice_mut()
@@ -81,6 +81,10 @@ pub fn input_gradient(
 /// `grad: [samples, inputs]`, with reusable buffers. `cancelled` is polled between blocks
 /// of [`GRAD_BLOCK_ROWS`] rows; when it returns true the call stops with
 /// [`Error::Cancelled`] (outputs partly written).
+#[allow(
+    clippy::too_many_arguments,
+    reason = "the hot kernel of the search: outputs and workspace are caller-owned so a step allocates nothing"
+)]
 pub(crate) fn input_gradient_into(
     net: &Network,
     layer: usize,
@@ -92,16 +96,16 @@ pub(crate) fn input_gradient_into(
     cancelled: &dyn Fn() -> bool,
 ) -> Result<()> {
     assert!(
-        layer < net.layers.len(),
+        layer < net.layers().len(),
         "input_gradient: layer {layer} of {}",
-        net.layers.len()
+        net.layers().len()
     );
     assert_eq!(
         x.ncols(),
-        net.input.size,
+        net.input().size,
         "input_gradient: batch has {} columns but the network has {} inputs",
         x.ncols(),
-        net.input.size
+        net.input().size
     );
     let rows = x.nrows();
     assert!(
@@ -112,14 +116,14 @@ pub(crate) fn input_gradient_into(
     assert_eq!(z.len(), rows, "input_gradient: z buffer length");
     assert_eq!(
         grad.dim(),
-        (rows, net.input.size),
+        (rows, net.input().size),
         "input_gradient: grad shape"
     );
-    let n_units = net.layers[layer].units();
+    let n_units = net.layers()[layer].units();
     assert!(
         units.iter().all(|&u| u < n_units),
         "input_gradient: unit out of range for layer '{}' with {n_units} units",
-        net.layers[layer].name
+        net.layers()[layer].name
     );
     let mut start = 0;
     while start < rows {
@@ -163,7 +167,7 @@ fn gradient_block(
     ws: &mut GradWorkspace,
 ) {
     let unit_of = |b: usize| if units.len() == 1 { units[0] } else { units[b] };
-    let target = &net.layers[layer];
+    let target = &net.layers()[layer];
     if layer == 0 {
         // dz/dx of a first-layer unit is its weight row.
         let z = gathered_preactivation(x, target.weights.view(), target.bias.view(), &unit_of);
@@ -190,7 +194,7 @@ fn forward_below(net: &Network, layer: usize, x: ArrayView2<f32>, ws: &mut GradW
         ws.a.resize_with(layer, Vec::new);
     }
     for l in 0..layer {
-        let lay = &net.layers[l];
+        let lay = &net.layers()[l];
         let width = lay.units();
         let zl = ensure(&mut ws.z[l], rows * width);
         match lay.bias.as_slice() {
@@ -203,7 +207,7 @@ fn forward_below(net: &Network, layer: usize, x: ArrayView2<f32>, ws: &mut GradW
             gemm_into(&mut zview, x, lay.weights.t(), true);
         } else {
             let prev = &ws.a[l - 1];
-            let pw = net.layers[l - 1].units();
+            let pw = net.layers()[l - 1].units();
             let input = ArrayView2::from_shape((rows, pw), &prev[..rows * pw])
                 .expect("buffer length equals rows x width");
             gemm_into(&mut zview, input, lay.weights.t(), true);
@@ -234,8 +238,8 @@ fn target_and_delta(
     z_out: &mut [f32],
     ws: &mut GradWorkspace,
 ) {
-    let target = &net.layers[layer];
-    let below = &net.layers[layer - 1];
+    let target = &net.layers()[layer];
+    let below = &net.layers()[layer - 1];
     let act = below.activation;
     let width = below.units();
     let zb: &[f32] = &ws.z[layer - 1][..rows * width];
@@ -279,9 +283,9 @@ fn backward_to_input(
     let [d0, d1] = &mut ws.d;
     let mut cur: &mut Vec<f32> = d0;
     let mut next: &mut Vec<f32> = d1;
-    let mut cur_w = net.layers[layer - 1].units();
+    let mut cur_w = net.layers()[layer - 1].units();
     for l in (1..layer).rev() {
-        let w = net.layers[l].weights.view(); // [units_l, units_{l-1}]
+        let w = net.layers()[l].weights.view(); // [units_l, units_{l-1}]
         let nw = w.ncols();
         let dcur = ArrayView2::from_shape((rows, cur_w), &cur[..rows * cur_w])
             .expect("buffer length equals rows x width");
@@ -289,7 +293,7 @@ fn backward_to_input(
         let mut dview = ArrayViewMut2::from_shape((rows, nw), &mut dn[..])
             .expect("buffer length equals rows x width");
         gemm_into(&mut dview, dcur, w, false);
-        let act = net.layers[l - 1].activation;
+        let act = net.layers()[l - 1].activation;
         if !matches!(act, Activation::Identity) {
             let zp: &[f32] = &ws.z[l - 1][..rows * nw];
             dn.par_chunks_mut(4096)
@@ -305,7 +309,7 @@ fn backward_to_input(
     }
     let dcur = ArrayView2::from_shape((rows, cur_w), &cur[..rows * cur_w])
         .expect("buffer length equals rows x width");
-    gemm_into(grad, dcur, net.layers[0].weights.view(), false);
+    gemm_into(grad, dcur, net.layers()[0].weights.view(), false);
 }
 
 /// The sensitivity maps of one layer: the gradient of each unit's pre-activation with
@@ -327,21 +331,21 @@ pub struct Sensitivity {
 /// per input.
 pub fn sensitivity(net: &Network, layer: usize, at: &[f32]) -> Result<Sensitivity> {
     let units = net
-        .layers
+        .layers()
         .get(layer)
         .ok_or_else(|| {
             Error::bad_option(
                 "layer",
                 layer,
-                format!("must be a layer index below {}", net.layers.len()),
+                format!("must be a layer index below {}", net.layers().len()),
             )
         })?
         .units();
-    if at.len() != net.input.size {
+    if at.len() != net.input().size {
         return Err(Error::bad_option(
             "at",
             format!("{} values", at.len()),
-            format!("must have one value per input ({})", net.input.size),
+            format!("must have one value per input ({})", net.input().size),
         ));
     }
     let x = Array2::from_shape_fn((units, at.len()), |(_, i)| at[i]);
@@ -392,7 +396,7 @@ mod tests {
         let samples = 4;
         let x = Array2::from_shape_fn((samples, 5), |_| rng.random_range(-1.0f32..1.0));
         for layer in 0..3 {
-            let n_units = net.layers[layer].units();
+            let n_units = net.layers()[layer].units();
             let units: Vec<usize> = (0..samples).map(|b| b % n_units).collect();
             let (z, g) = input_gradient(&net, layer, &units, x.view());
             for b in 0..samples {
@@ -489,8 +493,8 @@ mod tests {
         );
         let at = [0.1f32, -0.2, 0.3, 0.0, 0.5, -0.9];
         let s = sensitivity(&net, 0, &at).unwrap();
-        assert_eq!(s.maps, net.layers[0].weights);
-        let want = net.layers[0]
+        assert_eq!(s.maps, net.layers()[0].weights);
+        let want = net.layers()[0]
             .weights
             .iter()
             .fold(0.0f32, |m, w| m.max(w.abs()));

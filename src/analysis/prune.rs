@@ -65,9 +65,10 @@ fn count_for(fraction: f64, n: usize) -> usize {
 
 /// A copy of `net` where, in every layer, the `round(fraction x weights)` weights of
 /// smallest |w| are zero (ties by position). Biases are unchanged. `fraction` is clamped
-/// to [0, 1] (NaN counts as 0).
-pub fn prune_by_magnitude(net: &Network, fraction: f64) -> Network {
-    let mut out = net.clone();
+/// to [0, 1] (NaN counts as 0). The copy is validated like every network (zeroing keeps
+/// every shape, so this fails only if the model itself would).
+pub fn prune_by_magnitude(net: &Network, fraction: f64) -> Result<Network> {
+    let mut out = net.to_parts();
     for layer in &mut out.layers {
         let n = layer.weights.len();
         let k = count_for(fraction, n);
@@ -89,7 +90,8 @@ pub fn prune_by_magnitude(net: &Network, fraction: f64) -> Network {
             layer.weights[[i / cols, i % cols]] = 0.0;
         }
     }
-    out
+    // Zeroing weights keeps every shape; validation runs as for every network.
+    Network::from_parts(out, net.name())
 }
 
 /// Accuracy of the network pruned at each of `fractions` on a labelled probe, streamed
@@ -116,9 +118,9 @@ pub fn prune_sweep(
     let pruned: Vec<Network> = fractions
         .iter()
         .map(|&f| prune_by_magnitude(net, f))
-        .collect();
+        .collect::<Result<_>>()?;
     let (correct, samples) = count_correct(&pruned, probe, progress)?;
-    let total: usize = net.layers.iter().map(|l| l.weights.len()).sum();
+    let total: usize = net.layers().iter().map(|l| l.weights.len()).sum();
     progress.set(1.0);
     Ok(fractions
         .iter()
@@ -128,7 +130,7 @@ pub fn prune_sweep(
             fraction,
             accuracy: c as f64 / samples as f64,
             zeroed: p
-                .layers
+                .layers()
                 .iter()
                 .map(|l| l.weights.iter().filter(|w| **w == 0.0).count())
                 .sum(),
@@ -249,8 +251,8 @@ mod tests {
         // round(f * n) zeros per layer, and every kept |w| >= every pruned |w|.
         let net = random_net(1);
         for &f in &[0.0, 0.1, 0.25, 0.5, 0.9, 1.0] {
-            let p = prune_by_magnitude(&net, f);
-            for (orig, pl) in net.layers.iter().zip(&p.layers) {
+            let p = prune_by_magnitude(&net, f).unwrap();
+            for (orig, pl) in net.layers().iter().zip(p.layers()) {
                 let n = orig.weights.len();
                 let zeros = pl.weights.iter().filter(|w| **w == 0.0).count();
                 assert_eq!(zeros, (f * n as f64).round() as usize, "fraction {f}");
@@ -290,8 +292,11 @@ mod tests {
             labels: None,
         };
         let net = Network::new("test", "t", input, vec![l]).expect("valid");
-        let p = prune_by_magnitude(&net, 0.5);
-        assert_eq!(p.layers[0].weights.iter().filter(|w| **w == 0.0).count(), 2);
+        let p = prune_by_magnitude(&net, 0.5).unwrap();
+        assert_eq!(
+            p.layers()[0].weights.iter().filter(|w| **w == 0.0).count(),
+            2
+        );
     }
 
     #[test]
@@ -315,7 +320,7 @@ mod tests {
         assert_eq!(pts[2].zeroed, pts[2].total);
         assert_eq!(pts[0].total, 9 * 7 + 7 * 3);
         // Fraction 0.3: compare with evaluating the pruned network directly.
-        let p = prune_by_magnitude(&net, 0.3);
+        let p = prune_by_magnitude(&net, 0.3).unwrap();
         let pred = argmax_rows(forward(&p, x.view()).view());
         let acc = pred
             .iter()

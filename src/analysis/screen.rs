@@ -276,9 +276,9 @@ pub fn screen(
     progress: &dyn Progress,
 ) -> Result<ScreenReport> {
     let describe = probe.describe();
-    let hidden = net.layers.len().saturating_sub(1);
+    let hidden = net.layers().len().saturating_sub(1);
     let bounds = interval_bounds_upto(net, hidden);
-    let mut accs: Vec<Vec<Acc>> = net.layers[..hidden]
+    let mut accs: Vec<Vec<Acc>> = net.layers()[..hidden]
         .iter()
         .map(|l| vec![Acc::EMPTY; l.units()])
         .collect();
@@ -297,7 +297,7 @@ pub fn screen(
         // place as the next layer's input (no copy of each chunk's activations is kept).
         let mut input: Option<ndarray::Array2<f32>> = None;
         for (l, acc) in accs.iter_mut().enumerate() {
-            let layer = &net.layers[l];
+            let layer = &net.layers()[l];
             let x = input.as_ref().map_or(chunk.inputs.view(), |a| a.view());
             let mut z = linear(x, layer.weights.view(), layer.bias.view());
             accumulate(layer.activation, z.view(), acc);
@@ -316,7 +316,7 @@ pub fn screen(
     }
     let mut units = Vec::new();
     for (l, acc) in accs.iter().enumerate() {
-        let layer = &net.layers[l];
+        let layer = &net.layers()[l];
         for (k, a) in acc.iter().enumerate() {
             let upper = bounds.upper[l][k];
             let (mean, max) = if a.nonfinite {

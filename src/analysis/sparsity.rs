@@ -128,7 +128,7 @@ pub fn layer_stats(
     layer: usize,
     zero_tol: Option<f64>,
 ) -> (Vec<UnitStats>, LayerSummary) {
-    let l = &net.layers[layer];
+    let l = &net.layers()[layer];
     let max_abs_layer = l
         .weights
         .iter()
@@ -187,8 +187,8 @@ pub fn layer_stats(
 /// Statistics of every unit of every layer, in layer order, and one summary per layer.
 pub fn all_stats(net: &Network, zero_tol: Option<f64>) -> (Vec<UnitStats>, Vec<LayerSummary>) {
     let mut all = Vec::new();
-    let mut summaries = Vec::with_capacity(net.layers.len());
-    for layer in 0..net.layers.len() {
+    let mut summaries = Vec::with_capacity(net.layers().len());
+    for layer in 0..net.layers().len() {
         let (u, s) = layer_stats(net, layer, zero_tol);
         all.extend(u);
         summaries.push(s);
@@ -271,11 +271,11 @@ pub struct NetworkSparsity {
 
 /// Statistics and |w| histograms of every layer; `zero_tol` as in [`layer_stats`].
 pub fn network_sparsity(net: &Network, zero_tol: Option<f64>) -> NetworkSparsity {
-    let (units, layers) = (0..net.layers.len())
+    let (units, layers) = (0..net.layers().len())
         .map(|l| layer_stats(net, l, zero_tol))
         .unzip();
     let magnitude = net
-        .layers
+        .layers()
         .iter()
         .map(|l| magnitude_histogram(l.weights.iter()))
         .collect();

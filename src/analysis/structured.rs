@@ -22,16 +22,16 @@
 //! sensitivity analysis of S. Han et al., "Learning both weights and connections for
 //! efficient neural networks" (NeurIPS 2015, section 3 and figure 5).
 
-use super::Progress;
 use super::compact::{Plan, Reason, apply};
 use super::forward::forward_trace;
 use super::prune::count_correct;
+use super::{Progress, SubProgress};
 use crate::error::{Error, Result};
 use crate::model::Network;
 use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeSource};
 
 /// How hidden units are ranked for removal.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
 pub enum Criterion {
     /// L1 norm of the incoming weights (Li et al. 2017).
     L1,
@@ -49,6 +49,16 @@ impl Criterion {
     }
 }
 
+impl Criterion {
+    /// Both criteria, in the order the fronts offer them.
+    pub const ALL: [Criterion; 2] = [Criterion::L1, Criterion::Activation];
+
+    /// True when ranking needs the reference data.
+    pub fn needs_probe(&self) -> bool {
+        *self == Criterion::Activation
+    }
+}
+
 /// Slack added before flooring `fraction x units` (module docs).
 const FLOOR_SLACK: f64 = 1e-9;
 
@@ -61,8 +71,8 @@ pub fn units_removed(fraction: f64, units: usize) -> usize {
 /// The L1 norm of each hidden unit's incoming weights, one `[units]` vector per hidden
 /// layer (all layers but the last), in f64.
 pub fn l1_scores(net: &Network) -> Vec<Vec<f64>> {
-    let hidden = net.layers.len() - 1;
-    net.layers[..hidden]
+    let hidden = net.layers().len() - 1;
+    net.layers()[..hidden]
         .iter()
         .map(|l| {
             l.weights
@@ -85,8 +95,8 @@ pub fn mean_abs_activation(
     progress: &dyn Progress,
 ) -> Result<Vec<Vec<f64>>> {
     let describe = probe.describe();
-    let hidden = net.layers.len() - 1;
-    let mut sums: Vec<Vec<f64>> = net.layers[..hidden]
+    let hidden = net.layers().len() - 1;
+    let mut sums: Vec<Vec<f64>> = net.layers()[..hidden]
         .iter()
         .map(|l| vec![0.0; l.units()])
         .collect();
@@ -117,6 +127,26 @@ pub fn mean_abs_activation(
         .collect())
 }
 
+/// Per hidden layer, the score of each unit under `criterion`: [`l1_scores`], or
+/// [`mean_abs_activation`] over `probe`.
+///
+/// Errors: a usage error for `activation` without a probe; those of
+/// [`mean_abs_activation`].
+pub fn unit_scores(
+    net: &Network,
+    criterion: Criterion,
+    probe: Option<&mut dyn ProbeSource>,
+    progress: &dyn Progress,
+) -> Result<Vec<Vec<f64>>> {
+    match (criterion, probe) {
+        (Criterion::L1, _) => Ok(l1_scores(net)),
+        (Criterion::Activation, Some(p)) => mean_abs_activation(net, p, progress),
+        (Criterion::Activation, None) => Err(Error::usage(
+            "ranking units by mean |activation| needs probe data",
+        )),
+    }
+}
+
 /// The order in which a layer's units are removed: ascending score, ties (and NaN, which
 /// sorts last) broken by the lower index first.
 pub fn removal_order(scores: &[f64]) -> Vec<usize> {
@@ -137,7 +167,7 @@ pub fn plan_units(
     only: Option<usize>,
 ) -> Result<Plan> {
     check_fraction(net, fraction, only)?;
-    let hidden = net.layers.len() - 1;
+    let hidden = net.layers().len() - 1;
     let mut plan = Plan::empty(net);
     for (l, s) in scores.iter().enumerate().take(hidden) {
         if only.is_some_and(|o| o != l) {
@@ -158,7 +188,7 @@ pub fn check_fraction(net: &Network, fraction: f64, only: Option<usize>) -> Resu
             "a unit-pruning fraction must be a number from 0 to 1, got {fraction}"
         )));
     }
-    let hidden = net.layers.len() - 1;
+    let hidden = net.layers().len() - 1;
     if hidden == 0 {
         return Err(Error::usage(
             "the model has no hidden layer, so it has no units to prune (the output layer is never pruned)",
@@ -171,7 +201,7 @@ pub fn check_fraction(net: &Network, fraction: f64, only: Option<usize>) -> Resu
             "layer {o} is not a hidden layer (the model has {hidden})"
         )));
     }
-    for (l, layer) in net.layers[..hidden].iter().enumerate() {
+    for (l, layer) in net.layers()[..hidden].iter().enumerate() {
         if only.is_some_and(|o| o != l) {
             continue;
         }
@@ -241,7 +271,7 @@ pub fn unit_sweep(
             "has no labels: a pruning sweep needs a probe whose header names a 'label' column",
         ));
     }
-    let hidden = net.layers.len() - 1;
+    let hidden = net.layers().len() - 1;
     let targets: Vec<Option<usize>> = if per_layer {
         (0..hidden).map(Some).collect()
     } else {
@@ -254,7 +284,7 @@ pub fn unit_sweep(
             check_fraction(net, f, only)?;
             let plan = plan_units(net, scores, f, only)?;
             let removed = plan.units.iter().map(Vec::len).sum();
-            let units = net.layers[..hidden]
+            let units = net.layers()[..hidden]
                 .iter()
                 .enumerate()
                 .filter(|(l, _)| only.is_none_or(|o| o == *l))
@@ -283,6 +313,66 @@ pub fn unit_sweep(
             },
         )
         .collect())
+}
+
+/// The unit-removal curves of one criterion: every hidden layer pruned at once, and each
+/// hidden layer alone (the sensitivity curves).
+#[derive(Debug, Clone, PartialEq)]
+pub struct UnitCurves {
+    /// How units were ranked.
+    pub criterion: Criterion,
+    /// Every hidden layer pruned at once, one point per fraction.
+    pub all_layers: Vec<UnitSweepPoint>,
+    /// One hidden layer at a time: for each hidden layer in order, one point per fraction.
+    pub per_layer: Vec<UnitSweepPoint>,
+}
+
+/// Ranks units by `criterion` and runs [`unit_sweep`] at `fractions` with every hidden
+/// layer at once and with one layer at a time. `open` opens the labelled reference data
+/// afresh each time it is called (two or three times).
+///
+/// Errors: those of [`unit_scores`] and [`unit_sweep`].
+pub fn unit_curves(
+    net: &Network,
+    criterion: Criterion,
+    fractions: &[f64],
+    open: &mut dyn FnMut() -> Result<Box<dyn ProbeSource>>,
+    progress: &dyn Progress,
+) -> Result<UnitCurves> {
+    let scores = if criterion.needs_probe() {
+        let mut p = open()?;
+        unit_scores(
+            net,
+            criterion,
+            Some(&mut *p),
+            &SubProgress::new(progress, 0.0, 0.2),
+        )?
+    } else {
+        unit_scores(net, criterion, None, progress)?
+    };
+    let mut p = open()?;
+    let all_layers = unit_sweep(
+        net,
+        &scores,
+        fractions,
+        false,
+        &mut *p,
+        &SubProgress::new(progress, 0.2, 0.4),
+    )?;
+    let mut p = open()?;
+    let per_layer = unit_sweep(
+        net,
+        &scores,
+        fractions,
+        true,
+        &mut *p,
+        &SubProgress::new(progress, 0.4, 1.0),
+    )?;
+    Ok(UnitCurves {
+        criterion,
+        all_layers,
+        per_layer,
+    })
 }
 
 #[cfg(test)]
@@ -335,14 +425,14 @@ mod tests {
         assert_eq!(removal_order(&s[0]), vec![1, 2, 0, 3]);
         // floor(0.5 * 4) = 2: u1 and u2 go; the output's columns 1 and 2 with them.
         let p = prune_units(&net, &s, 0.5, None, "t").unwrap();
-        assert_eq!(p.layers[0].weights, array![[1.0, -2.0], [0.0, 4.0]]);
-        assert_eq!(p.layers[1].weights, array![[1.0, 1.0], [0.0, 0.0]]);
-        assert_eq!(p.layers[1].bias, array![0.0, 0.5]);
+        assert_eq!(p.layers()[0].weights, array![[1.0, -2.0], [0.0, 4.0]]);
+        assert_eq!(p.layers()[1].weights, array![[1.0, 1.0], [0.0, 0.0]]);
+        assert_eq!(p.layers()[1].bias, array![0.0, 0.5]);
         // floor(0.25 * 4) = 1: only u1 (the tie goes to the lower index).
         let p = prune_units(&net, &s, 0.25, None, "t").unwrap();
-        assert_eq!(p.layers[0].units(), 3);
-        assert_eq!(p.layers[0].weights.row(0).to_vec(), vec![1.0, -2.0]);
-        assert_eq!(p.layers[0].weights.row(1).to_vec(), vec![-0.25, 0.25]);
+        assert_eq!(p.layers()[0].units(), 3);
+        assert_eq!(p.layers()[0].weights.row(0).to_vec(), vec![1.0, -2.0]);
+        assert_eq!(p.layers()[0].weights.row(1).to_vec(), vec![-0.25, 0.25]);
     }
 
     #[test]
@@ -443,5 +533,48 @@ mod tests {
             &Silent,
         );
         assert!(e.is_err());
+    }
+
+    #[test]
+    fn unit_curves_are_the_two_sweeps_of_the_criterions_scores() {
+        let net = tiny();
+        let x = array![[1.0f32, 0.0], [0.0, 1.0], [1.0, 1.0], [0.5, 0.5]];
+        let labels = vec![0, 1, 0, 1];
+        let fr = [0.0, 0.25, 0.5, 0.75];
+        for criterion in Criterion::ALL {
+            let mut opened = 0;
+            let curves = unit_curves(
+                &net,
+                criterion,
+                &fr,
+                &mut || {
+                    opened += 1;
+                    Ok(Box::new(MemProbe::new(x.clone(), Some(labels.clone()))))
+                },
+                &Silent,
+            )
+            .unwrap();
+            assert_eq!(opened, if criterion.needs_probe() { 3 } else { 2 });
+            let scores = match criterion {
+                Criterion::L1 => l1_scores(&net),
+                Criterion::Activation => {
+                    mean_abs_activation(&net, &mut MemProbe::new(x.clone(), None), &Silent).unwrap()
+                }
+            };
+            for (per_layer, got) in [(false, &curves.all_layers), (true, &curves.per_layer)] {
+                let want = unit_sweep(
+                    &net,
+                    &scores,
+                    &fr,
+                    per_layer,
+                    &mut MemProbe::new(x.clone(), Some(labels.clone())),
+                    &Silent,
+                )
+                .unwrap();
+                assert_eq!(got, &want, "{criterion:?}, per layer {per_layer}");
+            }
+        }
+        // Ranking by activation without data is refused.
+        assert!(unit_scores(&net, Criterion::Activation, None, &Silent).is_err());
     }
 }

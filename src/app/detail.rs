@@ -62,7 +62,7 @@ impl DetailPanel {
             ui.label("Select a unit in the grid.");
             return;
         };
-        let Some(layer) = net.layers.get(sel.layer) else {
+        let Some(layer) = net.layers().get(sel.layer) else {
             return;
         };
         if sel.unit >= layer.units() {
@@ -121,7 +121,7 @@ impl DetailPanel {
 
 /// Back button, the unit's name and status, and the choice of map.
 fn header_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Selection) {
-    let layer = &net.layers[sel.layer];
+    let layer = &net.layers()[sel.layer];
     ui.horizontal(|ui| {
         if !state.history.is_empty()
             && ui
@@ -149,7 +149,7 @@ fn header_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Select
             layer.activation.name(),
             super::state::status_words(s.status)
         ),
-        None if sel.layer + 1 == net.layers.len() => {
+        None if sel.layer + 1 == net.layers().len() => {
             format!("{} output unit", layer.activation.name())
         }
         None => format!("{} unit · screening…", layer.activation.name()),
@@ -188,7 +188,7 @@ fn map_data(
     sel: Selection,
     row: Option<usize>,
 ) -> Result<MapData, String> {
-    let l = &net.layers[sel.layer];
+    let l = &net.layers()[sel.layer];
     let scale_mode = state.prefs.scale;
     match state.prefs.map_view {
         MapView::Weights => {
@@ -268,15 +268,15 @@ pub fn current_map(state: &AppState) -> Option<(String, Picture)> {
         MapView::Sensitivity => "sensitivity",
         MapView::Attribution => "attribution",
     };
-    let name = format!("{}-unit{}-{what}", net.layers[sel.layer].name, sel.unit);
+    let name = format!("{}-unit{}-{what}", net.layers()[sel.layer].name, sel.unit);
     Some((name, image_of(&data, net)))
 }
 
 fn image_of(data: &MapData, net: &Network) -> Picture {
     match data {
-        MapData::SignedInput(v, m, _) => picture::signed_input_map(&net.input, v, *m),
+        MapData::SignedInput(v, m, _) => picture::signed_input_map(net.input(), v, *m),
         MapData::Cells(v, m) => picture::cell_grid(v, *m),
-        MapData::Input(v) => picture::input_picture(&net.input, v),
+        MapData::Input(v) => picture::input_picture(net.input(), v),
     }
 }
 
@@ -308,7 +308,8 @@ fn map_ui(
     };
     let size = tex.size_vec2();
     let avail = (ui.available_width() - KEY_WIDTH - 12.0).clamp(140.0, 420.0);
-    let vector = matches!(net.input.layout, Layout::Vector) && !matches!(data, MapData::Cells(..));
+    let vector =
+        matches!(net.input().layout, Layout::Vector) && !matches!(data, MapData::Cells(..));
     let draw = if vector {
         vec2(avail, 36.0)
     } else {
@@ -382,7 +383,7 @@ fn facets_ui(
                 kind: ThumbKind::Facet(p.facet),
             };
             let tex = thumbs.get(ui.ctx(), key, false, || {
-                Some(maps::input_picture(&net.input, &p.input))
+                Some(maps::input_picture(net.input(), &p.input))
             });
             ui.vertical(|ui| {
                 if let Some(t) = tex {
@@ -429,7 +430,7 @@ fn map_picture_ui(
         ui.visuals().widgets.noninteractive.bg_stroke,
         egui::StrokeKind::Outside,
     );
-    let label = format!("map of {} unit {}", net.layers[sel.layer].name, sel.unit);
+    let label = format!("map of {} unit {}", net.layers()[sel.layer].name, sel.unit);
     resp.widget_info(|| egui::WidgetInfo::labeled(egui::Role::Image, true, &label));
     // Hover: which pixel (or lower unit) and its value.
     let Some(p) = resp.hover_pos() else {
@@ -489,7 +490,7 @@ fn map_caption_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, sel: Selecti
         MapData::Cells(w, _) => {
             ui.weak(format!(
                 "One cell per unit of layer {} ({} cells, row by row). Click a cell to go to that unit.",
-                net.layers[sel.layer - 1].name,
+                net.layers()[sel.layer - 1].name,
                 w.len()
             ));
         }
@@ -497,7 +498,7 @@ fn map_caption_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, sel: Selecti
             ui.weak("Dark = low end of the input box, light = high end.");
         }
         MapData::SignedInput(..) => {
-            if let Layout::Image { channels: 3, .. } = net.input.layout {
+            if let Layout::Image { channels: 3, .. } = net.input().layout {
                 ui.weak("Panels: red, green, blue channel.");
             }
         }
@@ -509,24 +510,24 @@ fn hover_text(data: &MapData, net: &Network, sel: Selection, x: usize, y: usize)
         MapData::Cells(w, _) => {
             let cols = maps::cell_columns(w.len());
             let i = y * cols + x;
-            let lower = &net.layers[sel.layer - 1];
+            let lower = &net.layers()[sel.layer - 1];
             (x < cols && i < w.len())
                 .then(|| format!("{} unit {i}: weight {:+.4}", lower.name, w[i]))
         }
         MapData::SignedInput(v, _, what) => {
-            let i = maps::input_index_at(&net.input, true, x, y)?;
+            let i = maps::input_index_at(net.input(), true, x, y)?;
             Some(format!(
                 "{} ({}): {what} {:+.4}",
-                net.input.feature_name(i),
+                net.input().feature_name(i),
                 pixel_words(net, i),
                 v.get(i)?
             ))
         }
         MapData::Input(v) => {
-            let i = maps::input_index_at(&net.input, false, x, y)?;
+            let i = maps::input_index_at(net.input(), false, x, y)?;
             Some(format!(
                 "{} ({}): input {:.4}",
-                net.input.feature_name(i),
+                net.input().feature_name(i),
                 pixel_words(net, i),
                 v.get(i)?
             ))
@@ -536,7 +537,7 @@ fn hover_text(data: &MapData, net: &Network, sel: Selection, x: usize, y: usize)
 
 /// "row 3, column 5" for image inputs, "feature 7" for vectors.
 fn pixel_words(net: &Network, i: usize) -> String {
-    match net.input.layout {
+    match net.input().layout {
         Layout::Image {
             width, channels, ..
         } => {
@@ -559,9 +560,14 @@ fn pixel_words(net: &Network, i: usize) -> String {
 
 /// The key of input pictures: the grey ramp from the box's low end to its high end.
 fn grey_key_ui(ui: &mut egui::Ui, net: &Network, length: f32) {
-    let lo = net.input.low.iter().copied().fold(f32::INFINITY, f32::min);
+    let lo = net
+        .input()
+        .low
+        .iter()
+        .copied()
+        .fold(f32::INFINITY, f32::min);
     let hi = net
-        .input
+        .input()
         .high
         .iter()
         .copied()
@@ -676,7 +682,7 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
                     );
                     row(
                         "bias",
-                        format!("{:.4}", net.layers[sel.layer].bias[sel.unit]),
+                        format!("{:.4}", net.layers()[sel.layer].bias[sel.unit]),
                         "",
                     );
                 });
@@ -729,7 +735,7 @@ fn strongest_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Sel
     egui::CollapsingHeader::new("Strongest incoming connections")
         .default_open(true)
         .show(ui, |ui| {
-            let w = net.layers[sel.layer].weights.row(sel.unit);
+            let w = net.layers()[sel.layer].weights.row(sel.unit);
             let mut idx: Vec<usize> = (0..w.len()).collect();
             let k = STRONGEST.min(idx.len());
             if k == 0 {
@@ -746,11 +752,11 @@ fn strongest_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Sel
                         if sel.layer == 0 {
                             ui.label(format!(
                                 "{} ({})",
-                                net.input.feature_name(i),
+                                net.input().feature_name(i),
                                 pixel_words(net, i)
                             ));
                         } else {
-                            let lower = &net.layers[sel.layer - 1];
+                            let lower = &net.layers()[sel.layer - 1];
                             let text = format!("{} unit {i}", lower.name);
                             if ui.link(&text).on_hover_text("Go to this unit").clicked() {
                                 state.select(
@@ -791,7 +797,7 @@ fn top_samples_ui(
                 ui.weak("Tracing the probe…");
                 return;
             };
-            let image = matches!(net.input.layout, Layout::Image { .. });
+            let image = matches!(net.input().layout, Layout::Image { .. });
             let labels = probe.data.labels.as_ref();
             let names = net.output_names();
             egui::Grid::new(("top-samples", sel.layer, sel.unit))
@@ -842,7 +848,7 @@ fn sample_thumb(
     };
     let tex = thumbs.get(ui.ctx(), key, false, || {
         let x = probe.data.inputs.row(row).to_vec();
-        Some(maps::input_picture(&net.input, &x))
+        Some(maps::input_picture(net.input(), &x))
     });
     if let Some(t) = tex {
         let (r, resp) = ui.allocate_exact_size(vec2(64.0, 64.0), Sense::hover());

@@ -1,7 +1,7 @@
 //! Exports from the app: sparsity statistics (CSV or JSON, the columns of `receptor stats`),
 //! the screening report (the columns of `receptor screen`), the current map or the whole
 //! grid as PNG, and a pruned model. [`prepare`] copies what is needed out of the state (cheap:
-//! shared handles and small images); [`write`] does the work and writes the file atomically,
+//! shared handles and small images); [`write()`] does the work and writes the file atomically,
 //! off the frame thread.
 
 use super::colour::ScaleMode;
@@ -74,10 +74,10 @@ impl ExportKind {
 pub fn default_file_name(kind: ExportKind, state: &AppState) -> String {
     let base = state
         .net()
-        .map_or_else(|| "model".to_string(), |n| n.name.clone());
+        .map_or_else(|| "model".to_string(), |n| n.name().to_string());
     let layer = state
         .net()
-        .and_then(|n| n.layers.get(state.current_layer()))
+        .and_then(|n| n.layers().get(state.current_layer()))
         .map_or_else(String::new, |l| l.name.clone());
     match kind {
         ExportKind::StatsCsv => format!("{base}-stats.csv"),
@@ -179,7 +179,7 @@ pub fn prepare(
             let layer = state.current_layer();
             let order = match &state.order_cache {
                 Some((k, o)) if k.layer == layer && k.tag == state.tag() => o.to_vec(),
-                _ => (0..net.layers[layer].units()).collect(),
+                _ => (0..net.layers()[layer].units()).collect(),
             };
             let preferred = match state.results.preferred.get(&layer) {
                 Some(p) => p
@@ -187,7 +187,7 @@ pub fn prepare(
                     .iter()
                     .map(|m| m.as_ref().map(|m| m.input.clone()))
                     .collect(),
-                None => vec![None; net.layers[layer].units()],
+                None => vec![None; net.layers()[layer].units()],
             };
             Ok(ExportData::Grid {
                 net,
@@ -228,7 +228,7 @@ pub fn write(data: &ExportData, path: &Path) -> Result<()> {
             scale,
         } => grid_image(net, *layer, order, preferred, *scale)?.write_png(path),
         ExportData::Pruned(net, fraction) => {
-            let pruned = crate::analysis::prune::prune_by_magnitude(net, *fraction);
+            let pruned = crate::analysis::prune::prune_by_magnitude(net, *fraction)?;
             crate::model::write_json(&pruned, path)
         }
     }
@@ -271,12 +271,12 @@ pub fn grid_image(
     scale: ScaleMode,
 ) -> Result<Picture> {
     if layer == 0 {
-        picture::weight_grid(&net.input, net.layers[0].weights.view(), order, scale)
+        picture::weight_grid(net.input(), net.layers()[0].weights.view(), order, scale)
     } else {
         let inputs: Vec<Option<&[f32]>> = order
             .iter()
             .map(|&u| preferred.get(u).and_then(|p| p.as_deref()))
             .collect();
-        picture::preferred_grid(&net.input, &inputs)
+        picture::preferred_grid(net.input(), &inputs)
     }
 }

@@ -4,11 +4,13 @@
 //! that is no longer open is dropped.
 
 use super::state::{
-    ActivityResult, AttributionKey, LayerPreferred, MainView, MapView, OpenError, OpenModel,
-    OpenProbe, Prefs, Results, ScreenResult, Selection, Slot, Tag, Task,
+    ActivityResult, AttributionKey, CompactChoice, Criterion, LayerPreferred, MainView, MapView,
+    OpenError, OpenModel, OpenProbe, Prefs, Results, ScreenResult, Selection, Slot, Tag, Task,
+    UnitCurves,
 };
 use super::worker::{self, Job, ProbeChoice, Reply};
 use super::{DEMO_PROBE, Pick, ReceptorApp};
+use crate::analysis::compact::CheckedCompaction;
 use crate::analysis::prefer::{PreferOptions, Preferred, Reference};
 use crate::error::Result;
 use crate::model::Network;
@@ -66,6 +68,17 @@ impl ReceptorApp {
                     self.notify_failure(failed);
                 }
             }
+            Reply::UnitCurves {
+                tag,
+                criterion,
+                result,
+            } => self.on_unit_curves(tag, criterion, result),
+            Reply::Compact {
+                tag,
+                choice,
+                result,
+            } => self.on_compact(tag, choice, result),
+            Reply::CompactSaved { result } => self.on_compact_saved(result),
             Reply::Exported { result } => match result {
                 Ok(p) => self.state.confirm(format!("Saved {}", p.display())),
                 Err(e) => self.state.fail(e.to_string()),
@@ -240,6 +253,7 @@ impl ReceptorApp {
                 Pick::Model => self.open_model(&p),
                 Pick::Probe => self.open_probe(&p),
                 Pick::Export(kind) => self.export_to(kind, p),
+                Pick::CompactedModel => self.save_compacted_to(p),
             }
         }
     }
@@ -263,7 +277,7 @@ impl ReceptorApp {
         if let Some(p) = &path {
             Prefs::remember(&mut self.state.prefs.recent_models, p);
         }
-        let first = net.layers.iter().position(|l| l.units() > 0).unwrap_or(0);
+        let first = net.layers().iter().position(|l| l.units() > 0).unwrap_or(0);
         self.state.selection = Some(Selection {
             layer: first,
             unit: 0,
@@ -271,7 +285,7 @@ impl ReceptorApp {
         self.state.history.clear();
         self.state.confirm(format!(
             "Opened {origin}: {} layers, {} parameters",
-            net.layers.len(),
+            net.layers().len(),
             net.parameter_count()
         ));
         self.state.model = Some(OpenModel {
@@ -329,7 +343,7 @@ impl ReceptorApp {
         };
         let tag = self.state.tag();
         let layer = self.state.current_layer();
-        if layer < net.layers.len() && self.state.probe.is_some() {
+        if layer < net.layers().len() && self.state.probe.is_some() {
             let data = self.search_data().map(|_| tag.probe);
             let stale = self
                 .state
@@ -368,7 +382,7 @@ impl ReceptorApp {
             let baseline = Arc::new(if key.from_mean {
                 p.mean.to_vec()
             } else {
-                net.input.centre()
+                net.input().centre()
             });
             let job = Job::Attribute {
                 key,
@@ -383,8 +397,10 @@ impl ReceptorApp {
             && results.sweep.is_empty()
         {
             results.sweep.request();
-            self.worker.submit(Job::Sweep(p.data.clone()), net, tag);
+            self.worker
+                .submit(Job::Sweep(p.data.clone()), net.clone(), tag);
         }
+        self.request_pruning_work(&net);
     }
 
     /// The reference data the preferred-input search uses now: the probe file's, when the
@@ -417,7 +433,7 @@ impl ReceptorApp {
         layer: usize,
         missing: Option<Vec<usize>>,
     ) {
-        let n = net.layers[layer].units();
+        let n = net.layers()[layer].units();
         let settings = self.state.prefs.search.clone();
         let data = self.search_data().map(|_| self.state.tag().probe);
         let units = missing.unwrap_or_else(|| (0..n).collect());
@@ -543,4 +559,72 @@ fn missing_preferred(results: &Results) -> Vec<(usize, Vec<usize>)> {
         })
         .filter(|(_, m): &(usize, Vec<usize>)| !m.is_empty())
         .collect()
+}
+
+/// The unit-removal curves and the Compact window's compaction: their requests and replies.
+impl ReceptorApp {
+    /// Queues the unit-removal curves of the chosen criterion when the pruning view shows
+    /// them (labelled probe), and the compaction of the Compact window's choice while the
+    /// window is open.
+    fn request_pruning_work(&mut self, net: &Arc<Network>) {
+        let tag = self.state.tag();
+        let Some(p) = &self.state.probe else {
+            return;
+        };
+        let criterion = self.state.unit_criterion;
+        let results = &mut self.state.results;
+        if self.state.view == MainView::Sparsity
+            && p.labelled()
+            && results
+                .unit_curves_of(criterion)
+                .is_none_or(|s| s.is_empty())
+        {
+            results.unit_curves.entry(criterion).or_default().request();
+            let data = p.data.clone();
+            self.worker
+                .submit(Job::UnitCurves { data, criterion }, net.clone(), tag);
+        }
+        let choice = self.state.compact.choice;
+        if self.state.compact.open && results.compact_of(choice).is_none_or(|s| s.is_empty()) {
+            results.compact.entry(choice).or_default().request();
+            let job = Job::Compact {
+                data: p.data.clone(),
+                choice,
+                check_box: p.path.is_some(),
+            };
+            self.worker.submit(job, net.clone(), tag);
+        }
+    }
+
+    fn on_unit_curves(&mut self, tag: Tag, criterion: Criterion, result: Result<Arc<UnitCurves>>) {
+        if self.state.results.is_current(tag) {
+            let slot = self.state.results.unit_curves.entry(criterion).or_default();
+            let failed = slot.settle(result, "unit-removal sweep");
+            self.notify_failure(failed);
+        }
+    }
+
+    fn on_compact(
+        &mut self,
+        tag: Tag,
+        choice: CompactChoice,
+        result: Result<Arc<CheckedCompaction>>,
+    ) {
+        if self.state.results.is_current(tag) {
+            let slot = self.state.results.compact.entry(choice).or_default();
+            let failed = slot.settle(result, "compaction");
+            self.notify_failure(failed);
+        }
+    }
+
+    fn on_compact_saved(&mut self, result: Result<PathBuf>) {
+        self.state.compact.saving = false;
+        match result {
+            Ok(p) => {
+                self.state.confirm(format!("Saved {}", p.display()));
+                self.state.compact.saved = Some(p);
+            }
+            Err(e) => self.state.fail(e.to_string()),
+        }
+    }
 }

@@ -53,8 +53,8 @@ pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
         .auto_shrink([false, false])
         .show(ui, |ui| {
             ui.add_space(4.0);
-            ui.heading(&net.name);
-            if let Some(d) = &net.description {
+            ui.heading(net.name());
+            if let Some(d) = net.description() {
                 ui.label(egui::RichText::new(d).small()).on_hover_text(d);
             }
             ui.add_space(4.0);
@@ -69,7 +69,7 @@ pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
 
 /// The input's size, layout and box.
 fn input_ui(ui: &mut egui::Ui, net: &Network) {
-    let layout = match net.input.layout {
+    let layout = match net.input().layout {
         Layout::Image {
             height,
             width,
@@ -84,10 +84,10 @@ fn input_ui(ui: &mut egui::Ui, net: &Network) {
         ),
         Layout::Vector => "feature vector".to_string(),
     };
-    ui.label(format!("Input: {} values, {layout}", net.input.size));
+    ui.label(format!("Input: {} values, {layout}", net.input().size));
     ui.label(format!(
         "Input box: {}",
-        box_range(&net.input.low, &net.input.high)
+        box_range(&net.input().low, &net.input().high)
     ))
     .on_hover_text("The box [low, high] used by the preferred-input search and the bounds.");
 }
@@ -123,8 +123,8 @@ fn probe_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) {
 /// One selectable entry per layer, each with its health summary.
 fn layer_list_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network) {
     let current = state.current_layer();
-    let last = net.layers.len().saturating_sub(1);
-    for (i, l) in net.layers.iter().enumerate() {
+    let last = net.layers().len().saturating_sub(1);
+    for (i, l) in net.layers().iter().enumerate() {
         let selected = i == current;
         let title = format!(
             "{}  ·  {} units  ·  {}",

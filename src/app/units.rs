@@ -37,7 +37,7 @@ impl UnitsPanel {
             return;
         };
         let layer = state.current_layer();
-        if layer >= net.layers.len() {
+        if layer >= net.layers().len() {
             return;
         }
         self.toolbar_ui(ui, state, layer);
@@ -210,6 +210,10 @@ impl UnitsPanel {
 }
 
 /// Draws one tile: thumbnail, caption, status mark and selection frame.
+#[allow(
+    clippy::too_many_arguments,
+    reason = "one call site in the grid loop; the arguments are that loop's locals"
+)]
 fn tile_ui(
     ui: &mut egui::Ui,
     state: &AppState,
@@ -222,7 +226,7 @@ fn tile_ui(
     tile: f32,
 ) -> egui::Response {
     let (outer, response) = ui.allocate_exact_size(cell, Sense::click());
-    let lname = &net.layers[layer].name;
+    let lname = &net.layers()[layer].name;
     let status = state.screen_of(layer, unit).map(|s| s.status);
     let label = format!("{lname} unit {unit}");
     response.widget_info(|| egui::WidgetInfo::selected(egui::Role::Button, true, selected, &label));
@@ -290,7 +294,7 @@ fn tile_texture(
     if layer > 0 {
         let input = state.preferred_of(layer, unit)?.input.clone();
         return thumbs.get(ctx, key(ThumbKind::Preferred), true, || {
-            Some(maps::input_picture(&net.input, &input))
+            Some(maps::input_picture(net.input(), &input))
         });
     }
     let scale = state.prefs.scale;
@@ -307,9 +311,9 @@ fn tile_texture(
         return None;
     }
     thumbs.get(ctx, key(ThumbKind::Weights(shared)), true, || {
-        let w = net.layers[0].weights.row(unit).to_vec();
+        let w = net.layers()[0].weights.row(unit).to_vec();
         let m = scale.pick(maps::max_abs(&w), layer_max.unwrap_or(0.0));
-        Some(maps::signed_input_map(&net.input, &w, m))
+        Some(maps::signed_input_map(net.input(), &w, m))
     })
 }
 
@@ -356,7 +360,7 @@ fn tile_tooltip_ui(
                 100.0 * s.active_frac
             ));
         }
-        None if layer + 1 == net.layers.len() => {
+        None if layer + 1 == net.layers().len() => {
             ui.label("output unit (not screened)");
         }
         None => {

@@ -60,6 +60,7 @@ pub struct AttributeArgs {
     #[arg(long, value_name = "M", default_value_t = DEFAULT_IG_STEPS)]
     pub steps: usize,
 
+    /// Output and loading options shared by every command.
     #[command(flatten)]
     pub common: CommonArgs,
 }
@@ -83,7 +84,7 @@ pub fn run(args: &AttributeArgs) -> Result<ExitCode> {
     }
     let sample = data.inputs.row(args.row).to_vec();
     let baseline = match args.baseline {
-        BaselineArg::Centre => net.input.centre(),
+        BaselineArg::Centre => net.input().centre(),
         BaselineArg::Mean => data.mean_input()?,
     };
     let a = integrated_gradients(&net, layer, args.unit, &sample, &baseline, args.steps)?;
@@ -102,7 +103,7 @@ pub fn run(args: &AttributeArgs) -> Result<ExitCode> {
         tables::write_attribute(
             args.common.format,
             w,
-            &net.input,
+            net.input(),
             &sample,
             &baseline,
             &a,

@@ -31,6 +31,7 @@ pub struct CheckArgs {
     #[arg(value_name = "MODEL")]
     pub model: PathBuf,
 
+    /// Where the reference data comes from.
     #[command(flatten)]
     pub probe: ProbeArgs,
 
@@ -89,9 +90,9 @@ pub struct LayerVerdict {
 
 /// Counts dead rectifier units per hidden layer of `net` in a screening report.
 pub fn verdicts(net: &Network, report: &ScreenReport, max_dead: f64) -> Vec<LayerVerdict> {
-    let hidden = net.layers.len().saturating_sub(1);
+    let hidden = net.layers().len().saturating_sub(1);
     let mut out = Vec::new();
-    for (li, layer) in net.layers.iter().enumerate().take(hidden) {
+    for (li, layer) in net.layers().iter().enumerate().take(hidden) {
         if !layer.activation.is_rectifier() {
             continue;
         }

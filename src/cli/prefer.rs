@@ -96,6 +96,7 @@ pub struct PreferArgs {
     #[arg(long, value_name = "FILE")]
     pub png: Option<PathBuf>,
 
+    /// Output and loading options shared by every command.
     #[command(flatten)]
     pub common: CommonArgs,
 }
@@ -117,7 +118,7 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
     let layer = net.require_layer(&args.layer)?;
     let units: Vec<usize> = match args.unit {
         Some(k) => vec![k],
-        None => (0..net.layers[layer].units()).collect(),
+        None => (0..net.layers()[layer].units()).collect(),
     };
     let found = prefer_with(&net, layer, &units, &opts, reference.as_ref(), &Silent)?;
     for p in found.iter().filter(|p| !p.finite) {
@@ -143,7 +144,7 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
             extra.push(("prior_weight", Cell::F32(args.prior_weight)));
             extra.push(("prior_shrinkage", Cell::F64(r.prior().shrinkage)));
         }
-        let size = net.input.size;
+        let size = net.input().size;
         let facets = args.facets.is_some();
         tables::write_prefer(
             args.common.format,
@@ -170,5 +171,5 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
 /// horizontal strip per unit, strips stacked top to bottom.
 pub fn render_png(net: &Network, found: &[Preferred]) -> Result<Vec<u8>> {
     let inputs: Vec<Option<&[f32]>> = found.iter().map(|p| Some(p.input.as_slice())).collect();
-    picture::preferred_grid(&net.input, &inputs)?.png_bytes()
+    picture::preferred_grid(net.input(), &inputs)?.png_bytes()
 }

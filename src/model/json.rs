@@ -1,12 +1,13 @@
-//! Parsing the JSON model file into a raw, unchecked form, then building a [`Network`].
+//! Parsing the JSON model file into a raw, unchecked form, then building the
+//! [`NetworkParts`] that [`super::Network::from_parts`] validates.
 //!
 //! Inline tensors are parsed straight into flat `f32` buffers (no per-number JSON values),
 //! and problems inside a tensor (a string, a null, a ragged row, a value too large for
 //! f32) are recorded with their row and column instead of aborting the parse, so that the
 //! message can name the layer.
 
-use super::network::{Activation, InputSpec, Layer, Layout, Network};
 use super::tensors::SideFiles;
+use super::types::{Activation, InputSpec, Layer, Layout, NetworkParts};
 use super::{LoadOptions, SCHEMA_TAG};
 use crate::error::{Error, Result};
 use ndarray::{Array1, Array2};
@@ -322,7 +323,7 @@ fn layer_label(i: usize, name: Option<&str>) -> String {
     }
 }
 
-/// Turns the raw form into a [`Network`], reading side files and checking every declared
+/// Turns the raw form into [`NetworkParts`], reading side files and checking every declared
 /// shape against the data it describes. Runs the cheap checks first (schema tag, input,
 /// layer kinds) so that the first message is the most basic problem.
 pub(crate) fn build(
@@ -330,7 +331,7 @@ pub(crate) fn build(
     origin: &str,
     base_dir: &Path,
     opts: &LoadOptions,
-) -> Result<Network> {
+) -> Result<NetworkParts> {
     let err = |msg: String| Error::model(origin, msg);
     check_schema(raw.schema.as_ref()).map_err(err)?;
     let input = raw
@@ -367,7 +368,7 @@ pub(crate) fn build(
     let low = expand_bound(input.low, -1.0, size, "low").map_err(|m| err(format!("input: {m}")))?;
     let high =
         expand_bound(input.high, 1.0, size, "high").map_err(|m| err(format!("input: {m}")))?;
-    Ok(Network {
+    Ok(NetworkParts {
         name: raw.name.unwrap_or_default(),
         description: raw.description,
         input: InputSpec {

@@ -9,14 +9,16 @@ mod network;
 mod paths;
 mod tensors;
 mod tensors_write;
-pub mod validate;
+mod types;
+mod validate;
 mod write;
 
-pub use network::{
-    Activation, InputSpec, Layer, Layout, Network, SIGMOID_SATURATION_Z, TANH_SATURATION_Z,
-};
-pub use paths::resolve_side_path;
+pub use network::Network;
+pub use paths::{refuse_overwriting_model, resolve_side_path};
 pub use tensors_write::{check_side_file_location, tensors_bytes, write_json_with_tensors};
+pub use types::{
+    Activation, InputSpec, Layer, Layout, NetworkParts, SIGMOID_SATURATION_Z, TANH_SATURATION_Z,
+};
 pub use write::{to_json_string, write_json, write_json_to};
 
 use crate::error::{Error, Result};
@@ -72,9 +74,8 @@ pub fn from_json_bytes(
     opts: &LoadOptions,
 ) -> Result<Network> {
     let raw = json::parse(bytes, origin)?;
-    let net = json::build(raw, origin, base_dir, opts)?;
-    validate::validate(&net, origin)?;
-    Ok(net)
+    let parts = json::build(raw, origin, base_dir, opts)?;
+    Network::from_parts(parts, origin)
 }
 
 #[cfg(test)]

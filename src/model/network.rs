@@ -1,229 +1,20 @@
-//! The in-memory network every other part of receptor works on.
+//! The validated network every other part of receptor works on.
+//!
+//! A [`Network`] can only be made through validation ([`Network::new`],
+//! [`Network::from_parts`], or the loaders in [`crate::model`]), and its fields are private,
+//! so holding one means every shape and value has been checked.
 
-use ndarray::{Array1, Array2};
+use super::types::{InputSpec, Layer, NetworkParts};
 
-/// How the input vector is laid out, for drawing maps and for the total-variation penalty.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Layout {
-    /// Tabular features, drawn as a strip.
-    Vector,
-    /// An image patch: `height x width x channels`, row-major, channel last.
-    Image {
-        /// Rows of the patch.
-        height: usize,
-        /// Columns of the patch.
-        width: usize,
-        /// 1 (grey) or 3 (RGB).
-        channels: usize,
-    },
-}
-
-/// The input domain and layout of a network.
-#[derive(Debug, Clone, PartialEq)]
-pub struct InputSpec {
-    /// Number of input features.
-    pub size: usize,
-    /// How the features are arranged.
-    pub layout: Layout,
-    /// Lower end of the input box, one value per input: `[size]`.
-    pub low: Vec<f32>,
-    /// Upper end of the input box, one value per input: `[size]`.
-    pub high: Vec<f32>,
-    /// Optional feature names: `[size]`.
-    pub names: Option<Vec<String>>,
-}
-
-impl InputSpec {
-    /// The name of input `i`: its feature name, or `x{i}`.
-    pub fn feature_name(&self, i: usize) -> String {
-        match &self.names {
-            Some(n) if i < n.len() => n[i].clone(),
-            _ => format!("x{i}"),
-        }
-    }
-
-    /// The centre of the input box: `[size]`.
-    pub fn centre(&self) -> Vec<f32> {
-        self.low
-            .iter()
-            .zip(&self.high)
-            .map(|(l, h)| 0.5 * (l + h))
-            .collect()
-    }
-}
-
-/// A unit's activation function.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub enum Activation {
-    /// `a = z`.
-    Identity,
-    /// `a = max(z, 0)`.
-    Relu,
-    /// `a = z` for `z > 0`, else `alpha * z` (0 <= alpha <= 1).
-    LeakyRelu {
-        /// Slope for negative inputs.
-        alpha: f32,
-    },
-    /// The logistic function `1 / (1 + exp(-z))`, range (0, 1).
-    Sigmoid,
-    /// `tanh(z)`, range (-1, 1).
-    Tanh,
-    /// Softmax over the layer's units; allowed in the last layer only.
-    Softmax,
-}
-
-/// |z| at and beyond which a sigmoid unit counts as saturated: its slope is below 5% of the
-/// peak slope 1/4. Normative constant of the `screen` contract (solves
-/// sigma(z)(1 - sigma(z)) = 0.0125).
-pub const SIGMOID_SATURATION_Z: f64 = 4.3565;
-/// |z| at and beyond which a tanh unit counts as saturated: 1 - tanh(z)^2 < 0.05.
-/// Normative constant of the `screen` contract.
-pub const TANH_SATURATION_Z: f64 = 2.1783;
-
-impl Activation {
-    /// The schema's name of this activation.
-    pub fn name(&self) -> &'static str {
-        match self {
-            Activation::Identity => "identity",
-            Activation::Relu => "relu",
-            Activation::LeakyRelu { .. } => "leaky_relu",
-            Activation::Sigmoid => "sigmoid",
-            Activation::Tanh => "tanh",
-            Activation::Softmax => "softmax",
-        }
-    }
-
-    /// True for `relu` and `leaky_relu`, the units that can be dead.
-    pub fn is_rectifier(&self) -> bool {
-        matches!(self, Activation::Relu | Activation::LeakyRelu { .. })
-    }
-
-    /// Applies an element-wise activation to one value. Softmax is not element-wise; for it
-    /// this returns `z` unchanged (use [`Activation::apply_rows`]).
-    #[inline]
-    pub fn apply_scalar(&self, z: f32) -> f32 {
-        match *self {
-            Activation::Identity | Activation::Softmax => z,
-            Activation::Relu => z.max(0.0),
-            Activation::LeakyRelu { alpha } => {
-                if z > 0.0 {
-                    z
-                } else {
-                    alpha * z
-                }
-            }
-            Activation::Sigmoid => 1.0 / (1.0 + (-z).exp()),
-            Activation::Tanh => z.tanh(),
-        }
-    }
-
-    /// The derivative da/dz of an element-wise activation at pre-activation `z`.
-    /// (At the kink of a rectifier the derivative from the left is used.)
-    #[inline]
-    pub fn derivative_scalar(&self, z: f32) -> f32 {
-        match *self {
-            Activation::Identity | Activation::Softmax => 1.0,
-            Activation::Relu => {
-                if z > 0.0 {
-                    1.0
-                } else {
-                    0.0
-                }
-            }
-            Activation::LeakyRelu { alpha } => {
-                if z > 0.0 {
-                    1.0
-                } else {
-                    alpha
-                }
-            }
-            // Both written without the cancellation of `1 - t^2` and `s (1 - s)`, which
-            // round to exactly 0 in f32 once |z| passes about 9 (tanh) or 17 (sigmoid):
-            // sech^2 z and e^-|z| / (1 + e^-|z|)^2 stay positive until they underflow, so a
-            // saturated unit still has a (tiny) gradient to follow.
-            Activation::Sigmoid => {
-                let e = (-z.abs()).exp();
-                e / ((1.0 + e) * (1.0 + e))
-            }
-            Activation::Tanh => {
-                let c = z.cosh();
-                1.0 / (c * c)
-            }
-        }
-    }
-
-    /// Applies the activation to a batch of pre-activations `z: [samples, units]`, in place.
-    /// Softmax is taken over each row, stabilised by subtracting the row maximum.
-    pub fn apply_rows(&self, z: &mut Array2<f32>) {
-        match self {
-            Activation::Identity => {}
-            Activation::Softmax => {
-                for mut row in z.rows_mut() {
-                    let m = row.iter().copied().fold(f32::NEG_INFINITY, f32::max);
-                    let mut s = 0.0f64;
-                    for v in row.iter_mut() {
-                        *v = (*v - m).exp();
-                        s += f64::from(*v);
-                    }
-                    let inv = (1.0 / s) as f32;
-                    row.mapv_inplace(|v| v * inv);
-                }
-            }
-            a => z.mapv_inplace(|v| a.apply_scalar(v)),
-        }
-    }
-}
-
-/// One dense layer: `a = activation(W x + b)`.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Layer {
-    /// Unique name within the network.
-    pub name: String,
-    /// The units' activation function.
-    pub activation: Activation,
-    /// Incoming weights, `[units, inputs]` (row = one unit's incoming weights; the
-    /// orientation of PyTorch's `nn.Linear.weight`).
-    pub weights: Array2<f32>,
-    /// Biases, `[units]`.
-    pub bias: Array1<f32>,
-    /// Optional unit names (class labels on the last layer), `[units]`.
-    pub labels: Option<Vec<String>>,
-}
-
-impl Layer {
-    /// Number of units in this layer.
-    pub fn units(&self) -> usize {
-        self.weights.nrows()
-    }
-
-    /// Number of inputs of each unit (units of the layer below, or the input size).
-    pub fn fan_in(&self) -> usize {
-        self.weights.ncols()
-    }
-
-    /// The name of unit `k`: its label, or `{prefix}{k}`.
-    pub fn unit_name(&self, k: usize, prefix: &str) -> String {
-        match &self.labels {
-            Some(l) if k < l.len() => l[k].clone(),
-            _ => format!("{prefix}{k}"),
-        }
-    }
-}
-
-/// A validated feed-forward network. Construct it with [`crate::model::load`] or
-/// [`Network::new`], which both check every shape and value.
+/// A validated feed-forward network. Construct it with [`crate::model::load`],
+/// [`Network::new`] or [`Network::from_parts`], which all check every shape and value.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Network {
-    /// Free-text name.
-    pub name: String,
-    /// Optional free-text description.
-    pub description: Option<String>,
-    /// Input size, layout and box.
-    pub input: InputSpec,
-    /// The layers from input to output.
-    pub layers: Vec<Layer>,
-    /// Unknown top-level keys of the model file, kept so a rewritten model keeps them.
-    pub extra: serde_json::Map<String, serde_json::Value>,
+    name: String,
+    description: Option<String>,
+    input: InputSpec,
+    layers: Vec<Layer>,
+    extra: serde_json::Map<String, serde_json::Value>,
 }
 
 impl Network {
@@ -235,15 +26,85 @@ impl Network {
         input: InputSpec,
         layers: Vec<Layer>,
     ) -> crate::Result<Self> {
-        let net = Network {
-            name: name.into(),
-            description: None,
+        Network::from_parts(
+            NetworkParts {
+                name: name.into(),
+                description: None,
+                input,
+                layers,
+                extra: serde_json::Map::new(),
+            },
+            origin,
+        )
+    }
+
+    /// Validates `parts` (the same checks as loading a file; `origin` names the source in
+    /// error messages) and makes them a network.
+    pub fn from_parts(parts: NetworkParts, origin: &str) -> crate::Result<Self> {
+        super::validate::validate(&parts, origin)?;
+        let NetworkParts {
+            name,
+            description,
             input,
             layers,
-            extra: serde_json::Map::new(),
-        };
-        crate::model::validate::validate(&net, origin)?;
-        Ok(net)
+            extra,
+        } = parts;
+        Ok(Network {
+            name,
+            description,
+            input,
+            layers,
+            extra,
+        })
+    }
+
+    /// The network taken apart, to edit and validate again with [`Network::from_parts`].
+    pub fn into_parts(self) -> NetworkParts {
+        NetworkParts {
+            name: self.name,
+            description: self.description,
+            input: self.input,
+            layers: self.layers,
+            extra: self.extra,
+        }
+    }
+
+    /// A copy of the network's parts (see [`Network::into_parts`]).
+    pub fn to_parts(&self) -> NetworkParts {
+        self.clone().into_parts()
+    }
+
+    /// Free-text name.
+    pub fn name(&self) -> &str {
+        &self.name
+    }
+
+    /// Optional free-text description.
+    pub fn description(&self) -> Option<&str> {
+        self.description.as_deref()
+    }
+
+    /// Input size, layout and box.
+    pub fn input(&self) -> &InputSpec {
+        &self.input
+    }
+
+    /// The layers from input to output (at least one).
+    pub fn layers(&self) -> &[Layer] {
+        &self.layers
+    }
+
+    /// Layer `i`.
+    ///
+    /// # Panics
+    /// When `i` is not below the number of layers.
+    pub fn layer(&self, i: usize) -> &Layer {
+        &self.layers[i]
+    }
+
+    /// Unknown top-level keys of the model file, kept so a rewritten model keeps them.
+    pub fn extra(&self) -> &serde_json::Map<String, serde_json::Value> {
+        &self.extra
     }
 
     /// The index of the layer called `name`.

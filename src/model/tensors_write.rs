@@ -25,7 +25,7 @@ pub(crate) fn bias_name(layer: &str) -> String {
 /// size limit).
 pub fn tensors_bytes(net: &Network, origin: &str) -> Result<Vec<u8>> {
     let bytes: Vec<(String, Vec<usize>, Vec<u8>)> = net
-        .layers
+        .layers()
         .iter()
         .flat_map(|l| {
             let w: Vec<u8> = l.weights.iter().flat_map(|v| v.to_le_bytes()).collect();
@@ -132,9 +132,11 @@ mod tests {
                 labels: Some(vec!["no".into(), "yes".into()]),
             },
         ];
-        let mut n = Network::new("test", "side", input, layers).expect("valid");
-        n.description = Some("round trip".into());
-        n
+        let mut p = Network::new("test", "side", input, layers)
+            .expect("valid")
+            .into_parts();
+        p.description = Some("round trip".into());
+        Network::from_parts(p, "test").expect("valid")
     }
 
     #[test]
@@ -151,7 +153,7 @@ mod tests {
         assert!(!text.contains("1e30"), "weights must not be inline: {text}");
         let back = load(&j, &LoadOptions::default()).expect("loads");
         assert_eq!(back, original);
-        for (a, b) in back.layers.iter().zip(&original.layers) {
+        for (a, b) in back.layers().iter().zip(original.layers()) {
             for (x, y) in a.weights.iter().zip(b.weights.iter()) {
                 assert_eq!(x.to_bits(), y.to_bits());
             }

@@ -37,24 +37,24 @@ fn with(old: &str, new: &str) -> String {
 #[test]
 fn loads_a_good_model() {
     let net = load_str(GOOD).unwrap();
-    assert_eq!(net.input.size, 4);
+    assert_eq!(net.input().size, 4);
     assert_eq!(
-        net.input.layout,
+        net.input().layout,
         Layout::Image {
             height: 2,
             width: 2,
             channels: 1
         }
     );
-    assert_eq!(net.input.low, vec![-1.0; 4]);
-    assert_eq!(net.input.high, vec![1.0, 1.0, 2.0, 2.0]);
-    assert_eq!(net.layers.len(), 2);
-    assert_eq!(net.layers[0].weights.dim(), (3, 4));
-    assert_eq!(net.layers[0].weights[[1, 2]], 3.0);
-    assert_eq!(net.layers[1].activation, Activation::Softmax);
+    assert_eq!(net.input().low, vec![-1.0; 4]);
+    assert_eq!(net.input().high, vec![1.0, 1.0, 2.0, 2.0]);
+    assert_eq!(net.layers().len(), 2);
+    assert_eq!(net.layers()[0].weights.dim(), (3, 4));
+    assert_eq!(net.layers()[0].weights[[1, 2]], 3.0);
+    assert_eq!(net.layers()[1].activation, Activation::Softmax);
     assert_eq!(net.output_names(), vec!["yes", "no"]);
     assert!(
-        net.extra.contains_key("trained_by"),
+        net.extra().contains_key("trained_by"),
         "unknown keys are kept"
     );
 }
@@ -69,19 +69,20 @@ fn round_trips_through_write() {
 
 #[test]
 fn written_floats_round_trip_exactly() {
-    let mut net = load_str(GOOD).unwrap();
-    net.layers[0].weights[[0, 0]] = 0.1f32 + f32::EPSILON;
-    net.layers[0].weights[[0, 1]] = 1.0e-30;
-    net.layers[0].weights[[0, 2]] = -3.402_823_5e38;
+    let mut parts = load_str(GOOD).unwrap().into_parts();
+    parts.layers[0].weights[[0, 0]] = 0.1f32 + f32::EPSILON;
+    parts.layers[0].weights[[0, 1]] = 1.0e-30;
+    parts.layers[0].weights[[0, 2]] = -3.402_823_5e38;
+    let net = Network::from_parts(parts, "test").unwrap();
     let back = load_str(&to_json_string(&net)).unwrap();
-    assert_eq!(net.layers[0].weights, back.layers[0].weights);
+    assert_eq!(net.layers()[0].weights, back.layers()[0].weights);
 }
 
 #[test]
 fn leaky_relu_alpha_defaults_and_is_checked() {
     let net = load_str(&with("\"relu\"", "\"leaky_relu\"")).unwrap();
     assert_eq!(
-        net.layers[0].activation,
+        net.layers()[0].activation,
         Activation::LeakyRelu { alpha: 0.01 }
     );
     let e = err_of(&with("\"relu\"", "\"leaky_relu\", \"alpha\": 2"));
@@ -248,7 +249,7 @@ fn deep_nesting_is_an_error_not_a_crash() {
 #[test]
 fn bias_may_be_omitted() {
     let net = load_str(&with(", \"bias\": [0.5, -1, 0]", "")).unwrap();
-    assert_eq!(net.layers[0].bias.to_vec(), vec![0.0; 3]);
+    assert_eq!(net.layers()[0].bias.to_vec(), vec![0.0; 3]);
 }
 
 fn f32_bytes(v: &[f32]) -> Vec<u8> {
@@ -321,10 +322,10 @@ fn side_files_in_every_dtype_match_the_inline_model() {
     for (dtype, w, b, tol) in cases {
         write_side(&dir.path().join("w.safetensors"), dtype, &w, &b);
         let net = load_side(dir.path(), &side_model(dir.path(), "w.safetensors")).unwrap();
-        for (x, y) in net.layers[0]
+        for (x, y) in net.layers()[0]
             .weights
             .iter()
-            .zip(inline.layers[0].weights.iter())
+            .zip(inline.layers()[0].weights.iter())
         {
             // f16 has 11 significant bits, bf16 8 (IEEE 754-2008 binary16; bfloat16): the
             // relative rounding error is at most 2^-11 and 2^-8.
@@ -333,7 +334,7 @@ fn side_files_in_every_dtype_match_the_inline_model() {
                 "{dtype:?}: {x} vs {y}"
             );
         }
-        assert_eq!(net.layers[0].bias.len(), 3);
+        assert_eq!(net.layers()[0].bias.len(), 3);
     }
 }
 
@@ -444,7 +445,7 @@ fn side_paths_outside_the_folder_need_permission() {
         },
     )
     .unwrap();
-    assert_eq!(ok.layers[0].weights.dim(), (3, 4));
+    assert_eq!(ok.layers()[0].weights.dim(), (3, 4));
     // Staying inside through a detour is fine.
     std::fs::create_dir(sub.join("w")).unwrap();
     write_side(

@@ -1,11 +1,11 @@
 //! The checks every network passes before any analysis: shapes, box, layout, labels,
-//! activations and finite values. Used by the importer and by [`Network::new`].
+//! activations and finite values. Used by [`super::Network::from_parts`], through which every network is made.
 
-use super::network::{Activation, InputSpec, Layer, Layout, Network};
+use super::types::{Activation, InputSpec, Layer, Layout, NetworkParts};
 use crate::error::{Error, Result};
 
 /// Checks `net` completely; `origin` names the source in the message.
-pub fn validate(net: &Network, origin: &str) -> Result<()> {
+pub fn validate(net: &NetworkParts, origin: &str) -> Result<()> {
     check_network(net).map_err(|problem| Error::model(origin, problem))
 }
 
@@ -13,7 +13,7 @@ pub fn validate(net: &Network, origin: &str) -> Result<()> {
 type Problem = std::result::Result<(), String>;
 
 /// Every check in order: the input, then each layer against the one below it.
-fn check_network(net: &Network) -> Problem {
+fn check_network(net: &NetworkParts) -> Problem {
     let inp = &net.input;
     if inp.size == 0 {
         return Err("input: \"size\" must be at least 1".into());

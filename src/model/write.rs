@@ -3,8 +3,9 @@
 //! Numbers are printed in the shortest form that reads back to the same `f32`. The layout
 //! is compact but readable: one line per weight row.
 
+use super::Network;
 use super::SCHEMA_TAG;
-use super::network::{Activation, Layout, Network};
+use super::types::{Activation, Layout};
 use crate::error::Result;
 use std::io::{self, Write};
 use std::path::Path;
@@ -64,12 +65,12 @@ pub(crate) fn write_json_inner(
     w.write_all(b"{\n  \"schema\": ")?;
     json(w, &SCHEMA_TAG)?;
     w.write_all(b",\n  \"name\": ")?;
-    json(w, &net.name)?;
-    if let Some(d) = &net.description {
+    json(w, &net.name())?;
+    if let Some(d) = net.description() {
         w.write_all(b",\n  \"description\": ")?;
-        json(w, d)?;
+        json(w, &d)?;
     }
-    let inp = &net.input;
+    let inp = net.input();
     write!(w, ",\n  \"input\": {{\n    \"size\": {}", inp.size)?;
     match inp.layout {
         Layout::Vector => w.write_all(b",\n    \"layout\": {\"kind\": \"vector\"}")?,
@@ -91,7 +92,7 @@ pub(crate) fn write_json_inner(
         json(w, names)?;
     }
     w.write_all(b"\n  },\n  \"layers\": [")?;
-    for (i, l) in net.layers.iter().enumerate() {
+    for (i, l) in net.layers().iter().enumerate() {
         w.write_all(if i == 0 { b"\n    {" } else { b",\n    {" })?;
         w.write_all(b"\"name\": ")?;
         json(w, &l.name)?;
@@ -130,7 +131,7 @@ pub(crate) fn write_json_inner(
         w.write_all(b"}")?;
     }
     w.write_all(b"\n  ]")?;
-    for (k, v) in &net.extra {
+    for (k, v) in net.extra() {
         w.write_all(b",\n  ")?;
         json(w, k)?;
         w.write_all(b": ")?;

@@ -93,8 +93,8 @@ impl CsvProbe {
         let mut probe = CsvProbe {
             path: path.to_path_buf(),
             reader,
-            inputs: net.input.size,
-            width: net.input.size,
+            inputs: net.input().size,
+            width: net.input().size,
             label_col: None,
             labels: out.labels.clone(),
             outputs: out.units(),

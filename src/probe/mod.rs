@@ -43,7 +43,7 @@ impl ProbeChunk {
     /// Checks that the chunk has one column per input of `net`; `origin` names the probe.
     /// The file readers guarantee it; this guards other sources before a forward pass.
     pub fn check_width(&self, net: &Network, origin: &str) -> Result<()> {
-        if self.inputs.ncols() == net.input.size {
+        if self.inputs.ncols() == net.input().size {
             return Ok(());
         }
         Err(crate::Error::probe(
@@ -52,7 +52,7 @@ impl ProbeChunk {
                 "rows from {} have {} columns but the model has {} inputs",
                 self.first_row,
                 self.inputs.ncols(),
-                net.input.size
+                net.input().size
             ),
         ))
     }

@@ -364,12 +364,16 @@ impl NpyProbe {
         let file_len = meta.len();
         let mut file = BufReader::with_capacity(1 << 16, file);
         let header = read_header(&mut file).map_err(|m| Error::probe(path, m))?;
-        if header.cols != net.input.size {
+        if header.cols != net.input().size {
             return Err(Error::probe(
                 path,
                 format!(
                     "the array has shape ({}, {}) but the model has {} inputs: expected ({}, {})",
-                    header.rows, header.cols, net.input.size, header.rows, net.input.size
+                    header.rows,
+                    header.cols,
+                    net.input().size,
+                    header.rows,
+                    net.input().size
                 ),
             ));
         }

@@ -29,8 +29,8 @@ impl UniformProbe {
     /// A uniform probe of `samples` rows over `net`'s input box, from `seed`.
     pub fn new(net: &Network, samples: usize, seed: u64) -> Self {
         UniformProbe {
-            low: net.input.low.clone(),
-            high: net.input.high.clone(),
+            low: net.input().low.clone(),
+            high: net.input().high.clone(),
             samples,
             seed,
             produced: 0,

@@ -191,7 +191,7 @@ pub fn write_unit_sweep(
     for p in points {
         let layer = p
             .layer
-            .map_or_else(|| "all".to_string(), |l| net.layers[l].name.clone());
+            .map_or_else(|| "all".to_string(), |l| net.layers()[l].name.clone());
         t.row(&[
             Cell::from(criterion.as_str()),
             Cell::from(layer),

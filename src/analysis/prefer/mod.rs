@@ -238,11 +238,11 @@ pub fn facet_distance(a: &[f32], b: &[f32], low: &[f32], high: &[f32]) -> f32 {
 /// # Panics
 /// When `unit` is not a unit of the first layer.
 pub fn closed_form_first_layer(net: &Network, unit: usize) -> (f64, Vec<f32>) {
-    let l = &net.layers[0];
+    let l = &net.layers()[0];
     let w = l.weights.row(unit);
     let mut value = f64::from(l.bias[unit]);
     let mut x = Vec::with_capacity(w.len());
-    for ((wi, lo), hi) in w.iter().zip(&net.input.low).zip(&net.input.high) {
+    for ((wi, lo), hi) in w.iter().zip(&net.input().low).zip(&net.input().high) {
         let wf = f64::from(*wi);
         value += (wf * f64::from(*lo)).max(wf * f64::from(*hi));
         x.push(if *wi > 0.0 {
@@ -259,13 +259,13 @@ pub fn closed_form_first_layer(net: &Network, unit: usize) -> (f64, Vec<f32>) {
 /// Checks what depends on the model (the options themselves are valid by construction):
 /// the layer and units exist, and a total-variation penalty has an image to smooth.
 fn check_request(net: &Network, layer: usize, units: &[usize], opts: &PreferOptions) -> Result<()> {
-    let Some(l) = net.layers.get(layer) else {
+    let Some(l) = net.layers().get(layer) else {
         return Err(Error::bad_option(
             "layer",
             layer,
             format!(
                 "must be a layer index below {}, the number of layers",
-                net.layers.len()
+                net.layers().len()
             ),
         ));
     };
@@ -281,7 +281,7 @@ fn check_request(net: &Network, layer: usize, units: &[usize], opts: &PreferOpti
             ),
         ));
     }
-    if opts.tv > 0.0 && !matches!(net.input.layout, Layout::Image { .. }) {
+    if opts.tv > 0.0 && !matches!(net.input().layout, Layout::Image { .. }) {
         return Err(Error::bad_option(
             "tv",
             opts.tv,
@@ -332,7 +332,7 @@ pub fn prefer_with(
         && opts.facets == 1
         && reference.is_none_or(|_| opts.prior_weight == 0.0);
     if linear {
-        let mut inputs = Array2::<f32>::zeros((units.len(), net.input.size));
+        let mut inputs = Array2::<f32>::zeros((units.len(), net.input().size));
         for (mut row, &u) in inputs.rows_mut().into_iter().zip(units) {
             let (_, x) = closed_form_first_layer(net, u);
             row.iter_mut().zip(&x).for_each(|(d, s)| *d = *s);
@@ -389,8 +389,8 @@ fn unit_spreads(
         return prior::column_spread(r.layer_z(net, layer).view(), units);
     }
     let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x5eed_5eed);
-    let (low, high) = (&net.input.low, &net.input.high);
-    let x = Array2::from_shape_fn((SPREAD_SAMPLES, net.input.size), |(_, i)| {
+    let (low, high) = (&net.input().low, &net.input().high);
+    let x = Array2::from_shape_fn((SPREAD_SAMPLES, net.input().size), |(_, i)| {
         if high[i] > low[i] {
             rng.random_range(low[i]..=high[i])
         } else {
@@ -415,10 +415,10 @@ fn data_clusters(
     };
     let z = r.layer_z(net, layer);
     let width: Vec<f32> = net
-        .input
+        .input()
         .low
         .iter()
-        .zip(&net.input.high)
+        .zip(&net.input().high)
         .map(|(l, h)| h - l)
         .collect();
     let take = (4 * opts.facets).max(opts.restarts);
@@ -451,7 +451,7 @@ fn ascend(
         return Ok(Vec::new());
     }
     let k = opts.facets;
-    let p = net.input.size.max(1) as f32;
+    let p = net.input().size.max(1) as f32;
     let use_prior = reference.is_some() && opts.prior_weight > 0.0;
     let spreads = if use_prior || k > 1 {
         unit_spreads(net, layer, units, reference, opts.seed)
@@ -474,8 +474,8 @@ fn ascend(
             let pts = starts::group_starts(
                 &data,
                 opts.restarts,
-                &net.input.low,
-                &net.input.high,
+                &net.input().low,
+                &net.input().high,
                 &mut rng,
             );
             for (r, x) in pts.into_iter().enumerate() {
@@ -513,7 +513,7 @@ fn ascend(
                 .iter()
                 .filter(|r| r.best_obj.is_finite())
                 .max_by(|a, b| a.best_obj.total_cmp(&b.best_obj));
-            let x = best.map_or_else(|| net.input.centre(), |r| r.best_x.clone());
+            let x = best.map_or_else(|| net.input().centre(), |r| r.best_x.clone());
             found[ui].push(x);
             outcomes[ui].push(Outcome {
                 steps: group.iter().map(|r| r.steps).max().unwrap_or(0),
@@ -521,7 +521,7 @@ fn ascend(
             });
         }
     }
-    let mut inputs = Array2::<f32>::zeros((units.len() * k, net.input.size));
+    let mut inputs = Array2::<f32>::zeros((units.len() * k, net.input().size));
     for (mut dst, src) in inputs.rows_mut().into_iter().zip(found.iter().flatten()) {
         dst.iter_mut().zip(src).for_each(|(d, s)| *d = *s);
     }
@@ -573,7 +573,7 @@ fn mean_pairwise_distance(
     inputs: ArrayView2<f32>,
     rows: std::ops::Range<usize>,
 ) -> f32 {
-    let (low, high) = (&net.input.low, &net.input.high);
+    let (low, high) = (&net.input().low, &net.input().high);
     let mut sum = 0.0f64;
     let mut pairs = 0usize;
     for a in rows.clone() {

@@ -221,13 +221,13 @@ impl Reference {
     /// and as [`Prior::fit`].
     pub fn new(net: &Network, data: &ProbeData) -> Result<Reference> {
         let origin = data.origin.as_str();
-        if data.inputs.ncols() != net.input.size {
+        if data.inputs.ncols() != net.input().size {
             return Err(Error::probe(
                 origin,
                 format!(
                     "the data has {} columns but the model has {} inputs",
                     data.inputs.ncols(),
-                    net.input.size
+                    net.input().size
                 ),
             ));
         }
@@ -235,7 +235,7 @@ impl Reference {
         let rows = spaced(data.inputs.nrows(), START_MAX_ROWS);
         let mut candidates = data.inputs.select(ndarray::Axis(0), &rows);
         for mut row in candidates.rows_mut() {
-            for ((v, lo), hi) in row.iter_mut().zip(&net.input.low).zip(&net.input.high) {
+            for ((v, lo), hi) in row.iter_mut().zip(&net.input().low).zip(&net.input().high) {
                 *v = v.clamp(*lo, *hi);
             }
         }

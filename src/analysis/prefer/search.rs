@@ -253,9 +253,9 @@ pub(super) fn run_ascent(
     range: (f32, f32),
 ) -> Result<()> {
     let net = s.net;
-    let n = net.input.size;
-    let low = &net.input.low;
-    let high = &net.input.high;
+    let n = net.input().size;
+    let low = &net.input().low;
+    let high = &net.input().high;
     let width: Vec<f32> = low.iter().zip(high).map(|(l, h)| h - l).collect();
     let mut batch = Batch::default();
     let steps = s.steps;
@@ -288,7 +288,7 @@ pub(super) fn run_ascent(
             bc2: 1.0 - BETA2.powi(t as i32 + 1),
             l2: s.l2,
             tv: s.tv,
-            layout: net.input.layout,
+            layout: net.input().layout,
             prior_mean: s.prior.map(|p| p.mean.as_slice()),
             last: t == steps,
         };
@@ -319,7 +319,7 @@ fn gradients_of_moving_rows(
     progress: &dyn Progress,
 ) -> Result<()> {
     let net = s.net;
-    let n = net.input.size;
+    let n = net.input().size;
     let na = batch.rows.len();
     batch.x.resize(na * n, 0.0);
     batch.z.resize(na, 0.0);

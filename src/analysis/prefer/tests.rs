@@ -110,9 +110,9 @@ fn l2_penalty_reaches_its_closed_form() {
     };
     let res = prefer(&net, 0, &[0, 3], &opts, &Silent).expect("prefer");
     for r in &res {
-        let w = net.layers[0].weights.row(r.unit);
+        let w = net.layers()[0].weights.row(r.unit);
         for i in 0..20 {
-            let want = (w[i] / (2.0 * l2)).clamp(net.input.low[i], net.input.high[i]);
+            let want = (w[i] / (2.0 * l2)).clamp(net.input().low[i], net.input().high[i]);
             assert_abs_diff_eq!(r.input[i], want, epsilon = 5e-3);
         }
         assert_abs_diff_eq!(r.activation, r.preactivation.tanh(), epsilon = 1e-6);
@@ -127,12 +127,12 @@ fn deep_units_stay_in_the_box_and_below_the_bound() {
     let net = random_net(3, &[10, 16, 8, 3], &acts, Layout::Vector);
     let b = interval_bounds(&net);
     for layer in 1..3 {
-        let units: Vec<usize> = (0..net.layers[layer].units()).collect();
+        let units: Vec<usize> = (0..net.layers()[layer].units()).collect();
         let res = prefer(&net, layer, &units, &PreferOptions::default(), &Silent).expect("prefer");
         for r in &res {
             assert!(r.finite);
             for (i, &x) in r.input.iter().enumerate() {
-                assert!(x >= net.input.low[i] && x <= net.input.high[i]);
+                assert!(x >= net.input().low[i] && x <= net.input().high[i]);
             }
             assert!(f64::from(r.preactivation) <= b.upper[layer][r.unit] + 1e-4);
         }
@@ -325,7 +325,7 @@ fn steps_zero_evaluates_the_starts() {
     };
     let r = prefer_by_ascent(&net, 0, &[1], &o, &Silent).expect("prefer");
     assert_eq!(r[0].steps, 0);
-    assert_eq!(r[0].input, net.input.centre());
+    assert_eq!(r[0].input, net.input().centre());
 }
 
 #[test]
@@ -389,7 +389,12 @@ fn facets_differ_and_report_their_spread() {
         let f = &res[3 * u..3 * u + 3];
         // The spread is the mean of the three pairwise distances.
         let d = |a: usize, b: usize| {
-            facet_distance(&f[a].input, &f[b].input, &net.input.low, &net.input.high)
+            facet_distance(
+                &f[a].input,
+                &f[b].input,
+                &net.input().low,
+                &net.input().high,
+            )
         };
         let mean = (d(0, 1) + d(0, 2) + d(1, 2)) / 3.0;
         assert_abs_diff_eq!(f[0].spread, mean, epsilon = 1e-6);
