@@ -104,15 +104,16 @@ fn defaults_reach_99_percent_of_32_plain_restarts() {
             digits relu one less so (worst units: digits_tanh 0.77, cancer_tanh 0.95, digits_relu \
             0.97 of the reference); see DEVELOPERS.md"]
 fn defaults_reach_99_percent_on_every_reference_network() {
+    let mut short = Vec::new();
     for name in MODELS {
         let (net, expected, _) = load(name);
         let worst = worst_ratio(&net, &expected, &PreferOptions::default(), None);
         println!("{name}: worst z / reference = {worst:.5}");
-        assert!(
-            worst >= 0.99,
-            "{name}: a unit reached only {worst:.4} of the reference"
-        );
+        if worst < 0.99 {
+            short.push(format!("{name} {worst:.4}"));
+        }
     }
+    assert!(short.is_empty(), "below 99% of the reference: {short:?}");
 }
 
 #[test]

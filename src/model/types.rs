@@ -138,17 +138,29 @@ impl Activation {
                     alpha
                 }
             }
-            // Both written without the cancellation of `1 - t^2` and `s (1 - s)`, which
-            // round to exactly 0 in f32 once |z| passes about 9 (tanh) or 17 (sigmoid):
-            // sech^2 z and e^-|z| / (1 + e^-|z|)^2 stay positive until they underflow, so a
-            // saturated unit still has a (tiny) gradient to follow.
+            // Where `s (1 - s)` or `1 - t^2` rounds to exactly 0 in f32 (|z| beyond about 17
+            // or 9), the same derivative written without the cancellation, e^-|z| /
+            // (1 + e^-|z|)^2 or sech^2 z, stays positive until it underflows: a saturated
+            // unit keeps a (tiny) gradient to follow. Elsewhere the usual form is kept.
             Activation::Sigmoid => {
-                let e = (-z.abs()).exp();
-                e / ((1.0 + e) * (1.0 + e))
+                let s = 1.0 / (1.0 + (-z).exp());
+                let d = s * (1.0 - s);
+                if d > 0.0 {
+                    d
+                } else {
+                    let e = (-z.abs()).exp();
+                    e / ((1.0 + e) * (1.0 + e))
+                }
             }
             Activation::Tanh => {
-                let c = z.cosh();
-                1.0 / (c * c)
+                let t = z.tanh();
+                let d = 1.0 - t * t;
+                if d > 0.0 {
+                    d
+                } else {
+                    let c = z.cosh();
+                    1.0 / (c * c)
+                }
             }
         }
     }

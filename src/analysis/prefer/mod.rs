@@ -25,7 +25,7 @@
 //! box centre of a rectifier network with zero biases) is moved off the flat spot by a small
 //! seeded random step.
 //!
-//! Starts ([`starts`]): with reference data, each unit's (facet's) top-activating samples,
+//! Starts (`starts.rs`): with reference data, each unit's (facet's) top-activating samples,
 //! then the box centre, then uniform random points from a `ChaCha8Rng` seeded with `seed`.
 //! After a quarter of the steps each unit keeps only its best quarter of the starts
 //! (successive halving). A start stops early once it is provably stuck. The best point of
