@@ -458,6 +458,44 @@ fn side_files_outside_the_folder_need_the_users_consent() {
     );
 }
 
+#[test]
+fn an_onnx_model_opens_and_its_box_can_be_changed() {
+    // gemm_chain.onnx (tests/fixtures/onnx) has no box in its metadata: the default [-1, 1]
+    // is used and said so; the box editor opens the file again with the box given.
+    let model = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/onnx/gemm_chain.onnx");
+    let mut h = demo_app();
+    wait_idle(&mut h, Duration::from_secs(60));
+    h.state_mut().open_model(&model);
+    wait_idle(&mut h, Duration::from_secs(30));
+    let open = h
+        .state()
+        .state()
+        .model
+        .clone()
+        .expect("the ONNX model is open");
+    assert_eq!(open.net.layers().len(), 3);
+    assert!(open.box_origin.uses_default());
+    h.get_by_label_contains("(default [-1, 1])");
+    // Said twice: in the status line and under the box in the model summary.
+    assert_eq!(
+        h.query_all_by_label_contains("no input box in the model: using the default")
+            .count(),
+        2
+    );
+    h.get_by_label("Change box…").click();
+    h.run_steps(2);
+    h.state_mut().state_mut().run.box_edit = Some(("0".into(), "0.5,1,2,3,4".into()));
+    h.run_steps(2);
+    h.get_by_label("Apply box").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(30));
+    let open = h.state().state().model.clone().expect("open again");
+    assert_eq!(open.net.input().low, vec![0.0; 5]);
+    assert_eq!(open.net.input().high, vec![0.5, 1.0, 2.0, 3.0, 4.0]);
+    assert!(!open.box_origin.uses_default());
+    assert_eq!(open.box_origin.describe(), "given");
+}
+
 /// Steps frames until the status bar says `Saved {path}` (or shows an error).
 fn wait_for_notice(h: &mut Harness<'static, ReceptorApp>, path: &Path) {
     let t0 = Instant::now();

@@ -11,12 +11,17 @@ Two ways in:
   activation modules (``ReLU``, ``LeakyReLU``, ``Sigmoid``, ``Tanh``, ``Softmax``,
   ``Identity``; ``Flatten`` at the start and ``Dropout`` are accepted, as they do nothing to
   a trained model's inference on flat inputs).
+* ``export_onnx(model, example, path=..., low=..., high=...)``: any PyTorch module through
+  ``torch.onnx.export``, with the input box (and class labels) written into the ONNX file's
+  ``metadata_props`` under ``receptor.low``, ``receptor.high``, ``receptor.labels`` and
+  ``receptor.names``; receptor opens the ``.onnx`` file directly (needs the ``onnx`` package).
 
 Tensors with at least ``safetensors_threshold`` elements are written to a safetensors side
 file next to the JSON file (needs the ``safetensors`` package from PyPI) and referenced by a
 relative path; smaller ones are written inline. Everything is stored as float32.
 
-Requires numpy; torch only for ``export_torch`` (imported there, not at module load).
+Requires numpy; torch only for ``export_torch`` and ``export_onnx``, onnx only for
+``export_onnx`` (imported there, not at module load).
 
 Example::
 
@@ -24,6 +29,8 @@ Example::
     from receptor_export import export_torch
     net = nn.Sequential(nn.Linear(64, 32), nn.ReLU(), nn.Linear(32, 5), nn.Softmax(dim=1))
     export_torch(net, path="model.json", low=-1.0, high=1.0, layout=(8, 8, 1))
+    # or, through ONNX, in one line:
+    export_onnx(net, torch.zeros(1, 64), path="model.onnx", low=-1.0, high=1.0)
 """
 
 from __future__ import annotations
@@ -406,3 +413,68 @@ def export_torch(
         safetensors_threshold=safetensors_threshold,
         safetensors_file=safetensors_file,
     )
+
+
+#: metadata_props keys receptor reads from an ONNX file (see src/model/onnx/mod.rs).
+ONNX_META_LOW = "receptor.low"
+ONNX_META_HIGH = "receptor.high"
+ONNX_META_LABELS = "receptor.labels"
+ONNX_META_NAMES = "receptor.names"
+
+
+def _box_text(value, what):
+    """One number, or a list of numbers, as receptor's box text ("-1" or "0,0.5,1")."""
+    values = np.atleast_1d(np.asarray(value, dtype=np.float64)).ravel()
+    if values.size == 0 or not np.all(np.isfinite(values)):
+        raise ExportError(f"{what} must be finite numbers, got {value!r}")
+    return ",".join(repr(float(v)) for v in values)
+
+
+def export_onnx(model, example, *, path, low=-1.0, high=1.0, labels=None, names=None, opset=17):
+    """Exports a PyTorch module to ONNX with ``torch.onnx.export`` and writes the input box
+    (one number, one per input, or one per image channel) and optional class labels and
+    feature names into the file's ``metadata_props``. ``example`` is an input batch
+    (``[N, features]`` or ``[N, C, H, W]``); the batch axis is exported as dynamic. The
+    module is put in eval mode (Dropout off, BatchNorm with its running statistics).
+
+    Uses the TorchScript-based exporter (``dynamo=False``), which needs no package beyond
+    torch and onnx. Returns the path.
+    """
+    try:
+        import torch
+    except ImportError as e:
+        raise ExportError("export_onnx needs PyTorch (pip install torch)") from e
+    try:
+        import onnx
+    except ImportError as e:
+        raise ExportError("export_onnx needs the onnx package (pip install onnx)") from e
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    model = model.eval()
+    meta = {ONNX_META_LOW: _box_text(low, "low"), ONNX_META_HIGH: _box_text(high, "high")}
+    if labels is not None:
+        meta[ONNX_META_LABELS] = json.dumps([str(x) for x in labels])
+    if names is not None:
+        meta[ONNX_META_NAMES] = json.dumps([str(x) for x in names])
+
+    def write(tmp):
+        with torch.no_grad():
+            torch.onnx.export(
+                model,
+                (example,),
+                tmp,
+                input_names=["input"],
+                output_names=["output"],
+                dynamic_axes={"input": {0: "batch"}, "output": {0: "batch"}},
+                opset_version=opset,
+                dynamo=False,
+            )
+        m = onnx.load(tmp)
+        for key, value in meta.items():
+            entry = m.metadata_props.add()
+            entry.key = key
+            entry.value = value
+        onnx.save(m, tmp)
+
+    _write_atomic(path, write)
+    return path

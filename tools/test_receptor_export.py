@@ -320,6 +320,36 @@ def test_exported_files_validate_against_the_schema():
         assert list(validator.iter_errors(bad)), "schema accepted a file without 'schema'"
 
 
+def test_torch_through_onnx():
+    """export_onnx: torch.onnx.export plus the box and labels in metadata_props; receptor
+    reads the .onnx file directly (BatchNorm1d folded) and matches PyTorch's own outputs."""
+    try:
+        import torch
+        from torch import nn
+        import onnx  # noqa: F401
+    except Exception as e:
+        skip(f"torch or onnx does not import here: {type(e).__name__}: {e}")
+    torch.manual_seed(1)
+    net = nn.Sequential(nn.Linear(7, 9), nn.BatchNorm1d(9), nn.ReLU(), nn.Linear(9, 4), nn.Softmax(dim=1))
+    with torch.no_grad():
+        net[1].running_mean.copy_(torch.randn(9) * 0.5)
+        net[1].running_var.copy_(torch.rand(9) + 0.5)
+    net.eval()
+    rng = np.random.default_rng(5)
+    x = rng.uniform(0, 2, size=(25, 7)).astype(np.float32)
+    with torch.no_grad():
+        want = net(torch.from_numpy(x)).double().numpy()
+    with tempfile.TemporaryDirectory() as d:
+        model = rx.export_onnx(net, torch.zeros(1, 7), path=Path(d) / "net.onnx", low=0.0, high=2.0,
+                               labels=["w", "x", "y", "z"])
+        probe = Path(d) / "probe.csv"
+        write_probe(probe, x)
+        proc = subprocess.run([receptor_bin(), "stats", str(model)], capture_output=True, text=True, timeout=120)
+        assert proc.returncode == 0 and "default" not in proc.stderr, proc.stderr  # box from metadata
+        got = outputs_of(run_forward(model, probe), ["w", "x", "y", "z"])
+        assert np.max(np.abs(got - want)) <= TOL, np.max(np.abs(got - want))
+
+
 TESTS = [
     test_inline_model_matches_numpy_forward,
     test_large_tensors_go_to_safetensors_side_file,
@@ -327,6 +357,7 @@ TESTS = [
     test_bad_input_gives_clear_errors,
     test_exported_files_validate_against_the_schema,
     test_torch_sequential,
+    test_torch_through_onnx,
 ]
 
 

@@ -223,6 +223,8 @@ pub struct OpenModel {
     pub origin: String,
     /// The file, when it came from one (recent files, relative probe paths).
     pub path: Option<PathBuf>,
+    /// Where the input box came from (the model summary shows it).
+    pub box_origin: crate::model::BoxOrigin,
 }
 
 /// The probe data in use, held in memory for histograms and top samples.
@@ -577,6 +579,10 @@ pub struct Task {
 pub struct RunState {
     /// The running job.
     pub task: Task,
+    /// The input box given for the model being opened (empty: the model's own).
+    pub input_box: crate::model::InputBox,
+    /// The box editor's text (low, high) while it is open.
+    pub box_edit: Option<(String, String)>,
     /// What is being opened, for the status bar.
     pub opening: Option<String>,
     /// Number of the latest open-model request; replies to older ones are ignored.

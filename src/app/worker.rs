@@ -21,7 +21,7 @@ use crate::analysis::{
     Progress, bounds, compact, gradient, prefer, prune, screen, sparsity, structured,
 };
 use crate::error::{Error, Result};
-use crate::model::{LoadOptions, Network};
+use crate::model::{BoxOrigin, BoxSource, LoadOptions, Network};
 use crate::probe::memory::{MemoryProbe, read_probe};
 use crate::probe::{DEFAULT_UNIFORM_SAMPLES, DEFAULT_UNIFORM_SEED, ProbeData, ProbeSource};
 use std::path::PathBuf;
@@ -196,7 +196,7 @@ pub enum Reply {
         /// The request number given by [`Worker::open_model`].
         request: u64,
         /// The model, its name for messages and its path.
-        result: Result<(Network, String, Option<PathBuf>)>,
+        result: Result<(Network, String, Option<PathBuf>, BoxOrigin)>,
     },
     /// Statistics, histograms and bounds.
     Model {
@@ -386,12 +386,17 @@ impl Worker {
             .name("receptor-open".into())
             .spawn(move || {
                 let result = match source {
-                    ModelSource::File(path) => crate::model::load(&path, &opts)
-                        .map(|n| (n, path.display().to_string(), Some(path.clone()))),
+                    ModelSource::File(path) => crate::model::load_with_origin(&path, &opts)
+                        .map(|(n, b)| (n, path.display().to_string(), Some(path.clone()), b)),
                     ModelSource::Text { text, origin } => {
                         let base = std::path::Path::new(".");
-                        crate::model::from_json_str(&text, &origin, base, &opts)
-                            .map(|n| (n, origin.clone(), None))
+                        crate::model::from_json_str(&text, &origin, base, &opts).map(|n| {
+                            let b = BoxOrigin {
+                                low: BoxSource::ModelFile,
+                                high: BoxSource::ModelFile,
+                            };
+                            (n, origin.clone(), None, b)
+                        })
                     }
                 };
                 let _ = tx.send(Reply::ModelOpened { request, result });
