@@ -372,7 +372,10 @@ def o_value(name, dims, elem=1):
 
 
 def o_attr(name, v):
-    """AttributeProto: name 1, f 2, i 3, t 5, type 20 (FLOAT 1, INT 2, TENSOR 4)."""
+    """AttributeProto: name 1, f 2, i 3, t 5, ints 8, type 20 (FLOAT 1, INT 2, TENSOR 4,
+    INTS 7); ints are written unpacked, one field each (non-negative values only)."""
+    if isinstance(v, list):
+        return f_bytes(1, name) + b"".join(f_int(8, x) for x in v) + f_int(20, 7)
     if isinstance(v, float):
         return f_bytes(1, name) + f_float(2, v) + f_int(20, 1)
     if isinstance(v, bytes):
@@ -411,6 +414,20 @@ def onnx_good(first=None, w1=None, inputs=None, outputs=None, meta=(), tail=None
     return o_model(nodes, inits, inputs or [o_value("input", ["batch", 4])], outputs or [o_value("output", ["batch", 2])], meta)
 
 
+def onnx_image(op, channels=1, kernel=(1, 1, 3, 3), fc_in=36):
+    """input [batch, channels, 6, 6] -> op (a Conv reads conv.weight of shape `kernel`, or a
+    pooling; either gives a map "m" of fc_in values) -> Flatten -> Gemm (2 units, zeros)."""
+    kernel = list(kernel)
+    n = 1
+    for d in kernel:
+        n *= d
+    inits = [o_tensor("conv.weight", kernel, [0.5] * n), o_tensor("fc.weight", [2, fc_in], [0.0] * (2 * fc_in)),
+             o_tensor("fc.bias", [2], [0.0, 0.0])]
+    nodes = [op, o_node("Flatten", ["m"], ["f"], "flat", axis=1),
+             o_node("Gemm", ["f", "fc.weight", "fc.bias"], ["output"], "fc", transB=1)]
+    return o_model(nodes, inits, [o_value("input", ["batch", channels, 6, 6])], [o_value("output", ["batch", 2])])
+
+
 def onnx_cases(rng):
     def case(name, data, expect, reason):
         put(name, data, "model", expect, reason)
@@ -433,8 +450,9 @@ def onnx_cases(rng):
     case("onnx-external-missing.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 4], ext=[("location", "no-such.bin")])), "cannot open external data 'no-such.bin'", "external data file missing")
     case("onnx-external-length.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 4], ext=[("location", "onnx-short.bin"), ("length", "99999999999")])), "external data length is 99999999999", "external data length that disagrees with the shape")
     case("onnx-unsupported-op.onnx", onnx_good(middle=[o_node("Cos", ["h1"], ["a1"], "cosine")]), "node 'cosine' (Cos, node 2 of 4)", "an operator receptor does not read")
-    case("onnx-conv-group.onnx", onnx_good(middle=[o_node("Conv", ["h1", "fc1.bias"], ["a1"], "conv", group=2)]), "node 'conv' (Conv, node 2 of 4)", "a grouped convolution")
-    case("onnx-avgpool-pad.onnx", onnx_good(middle=[o_node("AveragePool", ["h1"], ["a1"], "pool", count_include_pad=0)]), "node 'pool' (AveragePool, node 2 of 4)", "average pooling that leaves padding out")
+    case("onnx-conv-group.onnx", onnx_image(o_node("Conv", ["input", "conv.weight"], ["m"], "conv", group=2, pads=[1, 1, 1, 1]), channels=2, kernel=[2, 1, 3, 3], fc_in=72), "node 'conv' (Conv, node 1 of 3): has group = 2", "a grouped convolution")
+    case("onnx-avgpool-pad.onnx", onnx_image(o_node("AveragePool", ["input"], ["m"], "pool", kernel_shape=[3, 3], pads=[1, 1, 1, 1], count_include_pad=0)), "node 'pool' (AveragePool, node 1 of 3): has count_include_pad = 0 with pads", "average pooling with pads that leaves the padding out of its count")
+    case("onnx-conv-asymmetric-pads.onnx", onnx_image(o_node("Conv", ["input", "conv.weight"], ["m"], "conv", pads=[0, 0, 1, 1]), kernel=[1, 1, 2, 2]), "node 'conv' (Conv, node 1 of 3): has asymmetric pads [0, 0, 1, 1]", "a convolution padded on one side only")
     case("onnx-residual.onnx", onnx_good(middle=[o_node("Relu", ["h1"], ["r1"], "relu"), o_node("Add", ["r1", "h1"], ["a1"], "residual")]), "so the graph branches", "a residual connection")
     case("onnx-two-inputs.onnx", onnx_good(inputs=[o_value("input", ["batch", 4]), o_value("extra", ["batch", 4])]), "has 2 inputs", "two graph inputs")
     case("onnx-two-outputs.onnx", onnx_good(outputs=[o_value("output", ["batch", 2]), o_value("h1", ["batch", 3])]), "has 2 outputs", "two graph outputs")

@@ -1,7 +1,8 @@
 #!/usr/bin/env python3
 """Writes the ONNX reference fixtures in tests/fixtures/onnx/ (used by tests/onnx_reference.rs).
 
-Each case is an ONNX model built with the `onnx` package's helpers (or exported from PyTorch
+Each case is an ONNX model (dense chains, and CNNs with Conv, BatchNormalization,
+MaxPool, AveragePool, GlobalAveragePool, Flatten and Reshape) built with the `onnx` package's helpers (or exported from PyTorch
 with tools/receptor_export.py's export_onnx when torch imports), a probe CSV in receptor's
 input order (channel-last for images), and the outputs onnxruntime (CPU) computes for it:
 
@@ -299,6 +300,83 @@ def torch_export(versions):
     write_rows_and_expected("torch_mlp", x, out, ["0", "4", "6"], "vector", labels=["a", "b", "c"])
 
 
+def cnn_helper():
+    """A small CNN from the onnx helpers on a colour image [N, 3, 8, 8]: Conv (pads 1,
+    strides [2, 1], bias) + Relu, MaxPool (pads [1, 0], strides [1, 2]), Conv (dilations
+    [2, 1], no bias) + BatchNormalization (folded) + Tanh, AveragePool (pads 1,
+    count_include_pad 1, default strides 1), GlobalAveragePool, Reshape to [0, -1], Gemm,
+    Softmax."""
+    bn_scale = RNG.uniform(0.5, 2.0, 5).astype(np.float32)
+    bn_shift = weights(5, scale=0.3)
+    bn_mean = weights(5, scale=0.3)
+    bn_var = RNG.uniform(0.2, 1.5, 5).astype(np.float32)
+    nodes = [
+        helper.make_node("Conv", ["input", "c1.weight", "c1.bias"], ["h1"], name="/c1/Conv", pads=[1, 1, 1, 1], strides=[2, 1], kernel_shape=[3, 3]),
+        helper.make_node("Relu", ["h1"], ["a1"], name="/c1/Relu"),
+        helper.make_node("MaxPool", ["a1"], ["p1"], name="/pool1/MaxPool", kernel_shape=[2, 2], strides=[1, 2], pads=[1, 0, 1, 0]),
+        helper.make_node("Conv", ["p1", "c2.weight"], ["h2"], name="/c2/Conv", dilations=[2, 1]),
+        helper.make_node("BatchNormalization", ["h2", "bn.weight", "bn.bias", "bn.running_mean", "bn.running_var"], ["n2"], name="/bn/BatchNormalization", epsilon=1e-3),
+        helper.make_node("Tanh", ["n2"], ["a2"], name="/c2/Tanh"),
+        helper.make_node("AveragePool", ["a2"], ["p2"], name="/pool2/AveragePool", kernel_shape=[2, 2], pads=[1, 1, 1, 1], count_include_pad=1),
+        helper.make_node("GlobalAveragePool", ["p2"], ["g"], name="/gap/GlobalAveragePool"),
+        helper.make_node("Reshape", ["g", "flat_shape"], ["f"], name="/flat/Reshape"),
+        helper.make_node("Gemm", ["f", "head.weight", "head.bias"], ["z"], name="/head/Gemm", transB=1),
+        helper.make_node("Softmax", ["z"], ["output"], name="/out/Softmax", axis=1),
+    ]
+    inits = [
+        tensor("c1.weight", weights(4, 3, 3, 3, scale=0.4)), tensor("c1.bias", weights(4)),
+        tensor("c2.weight", weights(5, 4, 2, 2, scale=0.4)),
+        tensor("bn.weight", bn_scale), tensor("bn.bias", bn_shift), tensor("bn.running_mean", bn_mean), tensor("bn.running_var", bn_var),
+        tensor("flat_shape", np.array([0, -1], dtype=np.int64)),
+        tensor("head.weight", weights(3, 5)), tensor("head.bias", weights(3)),
+    ]
+    m = model("cnn_helper", nodes, inits, ["batch", 3, 8, 8], 3)
+    write_case("cnn_helper", m, probe_rows((3, 8, 8)), ["c1", "pool1", "c2", "pool2", "gap", "flat", "head"], "image 8x8x3")
+
+
+def torch_cnn():
+    """A PyTorch CNN (Conv2d, BatchNorm2d, ReLU, MaxPool2d, Conv2d with stride and
+    dilation, ReLU, AvgPool2d with padding, Flatten, Linear) exported by
+    tools/receptor_export.py's export_onnx (torch.onnx.export, dynamo=False, eval mode)."""
+    try:
+        import torch
+        from torch import nn
+    except ImportError:
+        print("torch not installed: the PyTorch-exported CNN is skipped")
+        return
+    import receptor_export as rx
+
+    torch.manual_seed(11)
+    net = nn.Sequential(
+        nn.Conv2d(1, 4, 3, padding=1), nn.BatchNorm2d(4), nn.ReLU(), nn.MaxPool2d(2),
+        nn.Conv2d(4, 6, 3, stride=(1, 2), padding=2, dilation=2), nn.ReLU(),
+        nn.AvgPool2d(3, stride=2, padding=1), nn.Flatten(), nn.Linear(6 * 3 * 2, 3),
+    )
+    with torch.no_grad():
+        net[1].running_mean.copy_(torch.randn(4) * 0.3)
+        net[1].running_var.copy_(torch.rand(4) + 0.5)
+        net[1].weight.copy_(torch.rand(4) + 0.5)
+        net[1].bias.copy_(torch.randn(4) * 0.2)
+        # Larger weights than PyTorch's default initialisation, so the outputs vary
+        # clearly from one probe row to the next.
+        for k in (0, 4, 8):
+            net[k].weight.mul_(3.0)
+    path = rx.export_onnx(net, torch.zeros(2, 1, 10, 10), path=OUT / "torch_cnn.onnx", low=0.0, high=1.0)
+    x = probe_rows((1, 10, 10), 0.0, 1.0)
+    out = run_ort(path, x)
+    with torch.no_grad():
+        direct = net(torch.from_numpy(x)).numpy()
+    assert np.abs(direct - out).max() < 1e-5, "onnxruntime and PyTorch disagree"
+    ops = [n.op_type for n in onnx.load(path).graph.node]
+    print("torch_cnn operators:", " ".join(ops))
+    write_rows_and_expected("torch_cnn", x, out, TORCH_CNN_LAYERS, "image 10x10x1")
+
+
+# receptor's layer names for torch_cnn: module indices from the weight names (Conv and
+# BatchNorm2d fused into one Conv by the exporter in eval mode) and from the node names.
+TORCH_CNN_LAYERS = ["0", "3", "4", "6", "7", "8"]
+
+
 def main():
     OUT.mkdir(parents=True, exist_ok=True)
     for p in OUT.iterdir():
@@ -317,6 +395,8 @@ def main():
     image_flatten()
     grey_reshape()
     torch_export(versions)
+    cnn_helper()
+    torch_cnn()
     with open(OUT / "VERSIONS.txt", "w") as f:
         f.write("Made by scripts/make_onnx_fixtures.py with:\n")
         for v in versions:

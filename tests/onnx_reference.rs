@@ -9,7 +9,12 @@
 //! Constant node), Identity, Dropout, BatchNormalization (folded); float32, float16 and
 //! float64 initializers in raw_data and in the typed fields; external data; an image input
 //! (channel-first in ONNX, channel-last in receptor's probe rows); labels and box from
-//! metadata_props.
+//! metadata_props. Two CNNs: `cnn_helper` (onnx helpers: Conv with pads, strides and
+//! dilations, BatchNormalization folded into a Conv, MaxPool with pads and strides,
+//! AveragePool with count_include_pad = 1, GlobalAveragePool, Reshape to [0, -1], Gemm,
+//! Softmax) and `torch_cnn` (a PyTorch Conv2d/BatchNorm2d/ReLU/MaxPool2d/AvgPool2d/
+//! Flatten/Linear network exported with `torch.onnx.export(dynamo=False)`, whose exporter
+//! fuses the BatchNorm2d into the Conv).
 //!
 //! Each model is checked as read directly and after `receptor convert` (inline tensors and
 //! a safetensors side file): outputs within 1e-4 of onnxruntime's.
@@ -25,7 +30,7 @@ use std::process::Command;
 /// The tolerance for receptor (float32) against onnxruntime.
 const TOL: f64 = 1e-4;
 
-const CASES: [&str; 8] = [
+const CASES: [&str; 10] = [
     "gemm_chain",
     "matmul_add",
     "batchnorm_f16",
@@ -34,6 +39,8 @@ const CASES: [&str; 8] = [
     "image_flatten",
     "grey_reshape",
     "torch_mlp",
+    "cnn_helper",
+    "torch_cnn",
 ];
 
 fn dir() -> PathBuf {

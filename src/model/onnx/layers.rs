@@ -1,27 +1,37 @@
 //! The one place where ONNX operators become receptor layers.
 //!
-//! The chain is walked once with the shape of the value flowing through it: an image
-//! `[N, C, H, W]` or a flat vector `[N, F]`. `Gemm` and `MatMul` start a dense layer; `Add`
-//! of a constant adds to its bias; `BatchNormalization` right after it is folded into its
-//! weights and bias exactly (in `f64`); an activation closes it. `Flatten`, `Reshape` to
-//! `[N, -1]`, `Identity` and `Dropout` change no numbers. An image input keeps receptor's
-//! channel-last order (`x[(row * W + col) * C + c]`), so the first dense layer's columns are
-//! permuted from ONNX's channel-first order.
+//! The chain is walked once with the shape of the value flowing through it: a map
+//! `[N, C, H, W]` or a flat vector `[N, F]`. `Gemm`, `MatMul` and `Conv` start a layer with
+//! weights; `Add` of a constant adds to its bias; `BatchNormalization` right after it is
+//! folded into its weights and bias exactly (in `f64`, per unit or output channel); an
+//! activation closes it. `MaxPool`, `AveragePool` and `GlobalAveragePool` become pooling
+//! layers. `Flatten` (axis 1) or `Reshape` to `[N, -1]` of a computed map becomes a
+//! flatten layer (ONNX and receptor both flatten channel, then row, then column);
+//! `Identity` and `Dropout` change no numbers.
+//!
+//! An image input keeps receptor's channel-last order (`x[(row * W + col) * C + c]`): a
+//! convolution or pooling reads it in place (the network's first spatial layer reads the
+//! input channel-last), and when the input image is flattened straight into a dense layer
+//! that layer's columns are permuted from ONNX's channel-first order.
 
 use super::Context;
 use super::graph::{Chain, Step, is_default_domain};
 use super::proto::{self, NodeProto};
 use super::tensor::{self, Constant};
 use crate::error::Result;
-use crate::model::{Activation, Layer, Layout};
+use crate::model::{Activation, Conv2d, Layer, LayerKind, Layout, window_output};
 use ndarray::{Array1, Array2};
 
 /// What receptor reads instead of an unsupported operator.
-const SUPPORTED: &str = "receptor reads Gemm, MatMul (+ Add of a bias), Relu, LeakyRelu, Sigmoid, Tanh, Softmax (last), Flatten (axis 1), Reshape to [N, -1], Identity, Dropout, and BatchNormalization right after Gemm or MatMul";
+const SUPPORTED: &str = "receptor reads Gemm, MatMul (+ Add of a bias), Conv (group 1), MaxPool, AveragePool, GlobalAveragePool, Relu, LeakyRelu, Sigmoid, Tanh, Softmax (last), Flatten (axis 1), Reshape to [N, -1], Identity, Dropout, and BatchNormalization right after Gemm, MatMul or Conv";
 /// The operators this reader maps to layers (every other one is refused).
 const OPERATORS: &[&str] = &[
     "Gemm",
     "MatMul",
+    "Conv",
+    "MaxPool",
+    "AveragePool",
+    "GlobalAveragePool",
     "Add",
     "BatchNormalization",
     "Relu",
@@ -35,7 +45,7 @@ const OPERATORS: &[&str] = &[
     "Dropout",
 ];
 /// What receptor reads instead of a misplaced activation.
-const ACTIVATION_PLACE: &str = "receptor reads one activation right after each Gemm or MatMul (with its bias and BatchNormalization)";
+const ACTIVATION_PLACE: &str = "receptor reads one activation right after each Gemm, MatMul or Conv (with its bias and BatchNormalization)";
 
 /// The layers and the input they read.
 #[derive(Debug)]
@@ -44,14 +54,14 @@ pub struct Lowered {
     pub input_size: usize,
     /// Vector, or image with its shape.
     pub layout: Layout,
-    /// The dense layers, input to output.
+    /// The layers, input to output.
     pub layers: Vec<Layer>,
 }
 
 /// The value between two operators (the batch axis left out).
 #[derive(Debug, Clone, Copy, PartialEq)]
 enum Value {
-    /// `[C, H, W]` in ONNX's order.
+    /// `[C, H, W]` in ONNX's order: the input image, or a map computed by a layer.
     Image { c: usize, h: usize, w: usize },
     /// `[F]`; `chw` is set while the features are still the input image flattened in
     /// ONNX's channel-first order.
@@ -63,7 +73,9 @@ enum Value {
     FlatUnknown,
 }
 
-/// A dense layer being assembled: `weights: [units, inputs]`, `bias: [units]`, in `f64`.
+/// A dense or conv2d layer being assembled: `weights: [units, inputs]` (conv2d: `[out,
+/// in x kh x kw]`, ONNX's `[out, in, kh, kw]` with the last three axes flattened),
+/// `bias: [units]`, in `f64`.
 struct Dense<'a> {
     name: String,
     units: usize,
@@ -73,13 +85,22 @@ struct Dense<'a> {
     activation: Option<(Activation, Step<'a>)>,
     /// Columns in ONNX's channel-first order of the input image `(C, H, W)`.
     chw: Option<(usize, usize, usize)>,
+    /// The convolution's geometry (`None` for a dense layer).
+    conv: Option<Conv2d>,
+}
+
+/// A layer being assembled: one with weights (still open to a bias, a normalisation and
+/// an activation), or a finished one without weights (pooling, flatten).
+enum Item<'a> {
+    Weighted(Dense<'a>),
+    Fixed(Layer),
 }
 
 /// Walks the chain and builds the layers (see the module comment).
 pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
     let (mut value, batch_is_one) = input_value(chain, ctx)?;
     let input = value;
-    let mut dense: Vec<Dense<'_>> = Vec::new();
+    let mut items: Vec<Item<'_>> = Vec::new();
     let mut softmax: Option<Step<'_>> = None;
     for &step in &chain.steps {
         let node = step.node;
@@ -95,9 +116,11 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
             return Err(ctx.node_error(step, "is an operator receptor does not read", SUPPORTED));
         }
         check_attributes(step, ctx)?;
-        if matches!(op, "Gemm" | "MatMul")
-            && let Some(s) = softmax
-        {
+        let makes_layer = matches!(
+            op,
+            "Gemm" | "MatMul" | "Conv" | "MaxPool" | "AveragePool" | "GlobalAveragePool"
+        ) || (matches!(op, "Flatten" | "Reshape") && !items.is_empty());
+        if makes_layer && let Some(s) = softmax {
             return Err(ctx.node_error(
                 s,
                 "is followed by another layer",
@@ -126,10 +149,9 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
             "Flatten" => {
                 let axis = attr_int(node, "axis").unwrap_or(1);
                 value = match value {
-                    Value::Image { c, h, w } if axis == 1 || axis == -3 => Value::Flat {
-                        f: c * h * w,
-                        chw: Some((c, h, w)),
-                    },
+                    Value::Image { .. } if axis == 1 || axis == -3 => {
+                        flatten_map(&mut items, step, value)
+                    }
                     Value::Flat { .. } | Value::FlatUnknown if axis == 1 || axis == -1 => value,
                     _ => {
                         return Err(ctx.node_error(
@@ -140,17 +162,32 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
                     }
                 };
             }
-            "Reshape" => value = reshape(chain, step, value, batch_is_one, ctx)?,
+            "Reshape" => {
+                value = reshape(chain, step, value, batch_is_one, ctx)?;
+                if let (Value::Flat { chw: Some(_), .. }, false) = (value, items.is_empty()) {
+                    value = flatten_map(&mut items, step, value);
+                }
+            }
             "Gemm" | "MatMul" => {
-                let d = new_dense(chain, step, value, dense.len(), ctx)?;
+                let d = new_dense(chain, step, value, items.len(), ctx)?;
                 value = Value::Flat {
                     f: d.units,
                     chw: None,
                 };
-                dense.push(d);
+                items.push(Item::Weighted(d));
+            }
+            "Conv" => {
+                let (d, out) = new_conv(chain, step, value, items.len(), ctx)?;
+                value = out;
+                items.push(Item::Weighted(d));
+            }
+            "MaxPool" | "AveragePool" | "GlobalAveragePool" => {
+                let (layer, out) = new_pool(step, value, items.len(), ctx)?;
+                value = out;
+                items.push(Item::Fixed(layer));
             }
             "Add" => {
-                let d = open_dense(&mut dense, step, "Add", ctx)?;
+                let d = open_dense(&mut items, step, "Add", ctx)?;
                 let other = node
                     .input
                     .iter()
@@ -159,11 +196,20 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
                     Some(name) => constant_floats(chain, name, step, ctx)?,
                     None => return Err(ctx.node_error(step, "adds no constant", SUPPORTED)),
                 };
-                let b = per_unit(&c, d.units).ok_or_else(|| {
+                let b = if d.conv.is_some() {
+                    per_channel(&c, d.units)
+                } else {
+                    per_unit(&c, d.units)
+                };
+                let b = b.ok_or_else(|| {
                     ctx.node_error(
                         step,
                         &format!("adds a constant of shape {:?} to {} units", c.dims, d.units),
-                        "receptor reads a bias of shape [units] or [1, units]",
+                        if d.conv.is_some() {
+                            "receptor reads a bias of shape [channels, 1, 1] or [1, channels, 1, 1] after a Conv"
+                        } else {
+                            "receptor reads a bias of shape [units] or [1, units]"
+                        },
                     )
                 })?;
                 for (x, y) in d.bias.iter_mut().zip(b) {
@@ -171,7 +217,7 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
                 }
             }
             "BatchNormalization" => {
-                let d = open_dense(&mut dense, step, "BatchNormalization", ctx)?;
+                let d = open_dense(&mut items, step, "BatchNormalization", ctx)?;
                 fold_batch_norm(chain, step, d, ctx)?;
             }
             "Relu" | "LeakyRelu" | "Sigmoid" | "Tanh" | "Softmax" => {
@@ -192,7 +238,7 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
                     "Tanh" => Activation::Tanh,
                     _ => {
                         let axis = attr_int(node, "axis").unwrap_or(-1);
-                        if axis != 1 && axis != -1 {
+                        if axis != 1 && axis != -1 || matches!(value, Value::Image { .. }) {
                             return Err(ctx.node_error(
                                 step,
                                 &format!("takes the softmax over axis {axis}"),
@@ -203,7 +249,7 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
                         Activation::Softmax
                     }
                 };
-                let d = open_dense(&mut dense, step, op, ctx)?;
+                let d = open_dense(&mut items, step, op, ctx)?;
                 d.activation = Some((act, step));
             }
             _ => {
@@ -215,13 +261,17 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
             }
         }
     }
-    if dense.is_empty() {
+    let first_weighted = items.iter().find_map(|i| match i {
+        Item::Weighted(d) => Some(d),
+        Item::Fixed(_) => None,
+    });
+    let Some(first_weighted) = first_weighted else {
         return Err(ctx.error(format!(
-            "the graph has no Gemm or MatMul layer; {SUPPORTED}"
+            "the graph has no Gemm, MatMul or Conv layer; {SUPPORTED}"
         )));
-    }
-    let (input_size, layout) = match (input, dense.first()) {
-        (Value::Image { c, h, w }, _) => (
+    };
+    let (input_size, layout) = match input {
+        Value::Image { c, h, w } => (
             c * h * w,
             Layout::Image {
                 height: h,
@@ -229,20 +279,39 @@ pub fn lower(chain: &Chain<'_>, ctx: &Context) -> Result<Lowered> {
                 channels: c,
             },
         ),
-        (Value::Flat { f, .. }, _) => (f, Layout::Vector),
-        (Value::FlatUnknown, Some(d)) => (d.inputs, Layout::Vector),
-        (Value::FlatUnknown, None) => (0, Layout::Vector),
+        Value::Flat { f, .. } => (f, Layout::Vector),
+        Value::FlatUnknown => (first_weighted.inputs, Layout::Vector),
     };
     if let Value::Image { .. } = value {
         return Err(ctx.error(
-            "the graph's output is an image; receptor reads networks whose output is a vector [N, units]",
+            "the graph's output is an image; receptor reads networks whose output is a vector [N, units] (add Flatten and a Gemm)",
         ));
     }
     Ok(Lowered {
         input_size,
         layout,
-        layers: finish(dense),
+        layers: finish(items),
     })
+}
+
+/// A computed map flattened: a flatten layer, and the flat value it gives. The input image
+/// itself is not flattened by a layer (the dense layer after it permutes its columns).
+fn flatten_map(items: &mut Vec<Item<'_>>, step: Step<'_>, value: Value) -> Value {
+    let (f, chw) = match value {
+        Value::Image { c, h, w } => (c * h * w, (c, h, w)),
+        Value::Flat {
+            f, chw: Some(chw), ..
+        } => (f, chw),
+        other => return other,
+    };
+    if items.is_empty() {
+        return Value::Flat { f, chw: Some(chw) };
+    }
+    items.push(Item::Fixed(Layer::flatten(node_layer_name(
+        step.node,
+        &format!("flatten{}", items.len()),
+    ))));
+    Value::Flat { f, chw: None }
 }
 
 /// The graph input's shape: `[N, F]` or `[N, C, H, W]`, and whether `N` is fixed at 1.
@@ -314,6 +383,32 @@ fn check_attributes(step: Step<'_>, ctx: &Context) -> Result<()> {
         "Gemm" => &["alpha", "beta", "transA", "transB"],
         "LeakyRelu" => &["alpha"],
         "Softmax" | "Flatten" => &["axis"],
+        "Conv" => &[
+            "auto_pad",
+            "dilations",
+            "group",
+            "kernel_shape",
+            "pads",
+            "strides",
+        ],
+        "MaxPool" => &[
+            "auto_pad",
+            "ceil_mode",
+            "dilations",
+            "kernel_shape",
+            "pads",
+            "storage_order",
+            "strides",
+        ],
+        "AveragePool" => &[
+            "auto_pad",
+            "ceil_mode",
+            "count_include_pad",
+            "dilations",
+            "kernel_shape",
+            "pads",
+            "strides",
+        ],
         "Reshape" => &["allowzero"],
         "Dropout" => &["seed", "ratio", "is_test"],
         "BatchNormalization" => &[
@@ -369,6 +464,21 @@ fn attr_int(node: &NodeProto, name: &str) -> Option<i64> {
         .iter()
         .find(|a| a.name == name)
         .and_then(|a| a.i)
+}
+
+fn attr_ints<'n>(node: &'n NodeProto, name: &str) -> Option<&'n [i64]> {
+    node.attribute
+        .iter()
+        .find(|a| a.name == name)
+        .map(|a| a.ints.as_slice())
+}
+
+fn attr_string<'n>(node: &'n NodeProto, name: &str) -> Option<&'n str> {
+    node.attribute
+        .iter()
+        .find(|a| a.name == name)
+        .and_then(|a| a.s.as_deref())
+        .map(|s| std::str::from_utf8(s).unwrap_or("(not UTF-8)"))
 }
 
 fn attr_float(node: &NodeProto, name: &str) -> Option<f32> {
@@ -553,13 +663,312 @@ fn new_dense<'a>(
         }
     }
     Ok(Dense {
-        name: layer_name(node, b_name, index),
+        name: layer_name(node, b_name, &format!("dense{index}")),
         units,
         inputs,
         weights,
         bias,
         activation: None,
         chw,
+        conv: None,
+    })
+}
+
+/// A `Conv` (group 1) as a new conv2d layer reading the map `value`, and the map it gives.
+/// Weights `[out, in, kh, kw]`, optional bias `[out]`; `strides`, `dilations` and
+/// symmetric `pads` as in the ONNX operator definition of Conv.
+fn new_conv<'a>(
+    chain: &Chain<'a>,
+    step: Step<'a>,
+    value: Value,
+    index: usize,
+    ctx: &Context,
+) -> Result<(Dense<'a>, Value)> {
+    let node = step.node;
+    let group = attr_int(node, "group").unwrap_or(1);
+    if group != 1 {
+        return Err(ctx.node_error(
+            step,
+            &format!("has group = {group} (a grouped convolution)"),
+            "receptor reads Conv with group = 1 (every filter reads every input channel)",
+        ));
+    }
+    let Value::Image { c, h, w } = value else {
+        return Err(ctx.node_error(
+            step,
+            "reads a 2-D value",
+            "receptor reads Conv on a 4-D map [N, C, H, W]",
+        ));
+    };
+    let current_first = node
+        .input
+        .first()
+        .is_some_and(|i| !chain.constants.contains_key(i.as_str()));
+    let w_name = node.input.get(1).map(String::as_str).unwrap_or("");
+    if !current_first || !chain.constants.contains_key(w_name) {
+        return Err(ctx.node_error(
+            step,
+            "does not convolve the incoming value (first input) with a constant kernel (second input)",
+            "receptor reads Conv(X, W, B) with W and B stored in the file",
+        ));
+    }
+    let wt = constant_floats(chain, w_name, step, ctx)?;
+    let &[out, inp, kh, kw] = wt.dims.as_slice() else {
+        return Err(ctx.node_error(
+            step,
+            &format!("has a weight tensor of shape {:?}", wt.dims),
+            "receptor reads 2-D convolutions with weights [out_channels, in_channels, kh, kw]",
+        ));
+    };
+    if inp != c {
+        return Err(ctx.node_error(
+            step,
+            &format!("has weights for {inp} input channels but the map before it has {c}"),
+            "the kernel must match the map below",
+        ));
+    }
+    if out == 0 || kh == 0 || kw == 0 {
+        return Err(ctx.node_error(
+            step,
+            &format!("has an empty weight tensor {:?}", wt.dims),
+            "a convolution needs at least one filter of at least 1 x 1",
+        ));
+    }
+    if let Some(k) = attr_ints(node, "kernel_shape")
+        && k != [kh as i64, kw as i64]
+    {
+        return Err(ctx.node_error(
+            step,
+            &format!("has kernel_shape {k:?} but weights of shape {:?}", wt.dims),
+            "kernel_shape must match the weights' last two dimensions",
+        ));
+    }
+    let stride = pair(step, ctx, "strides")?;
+    let dilation = pair(step, ctx, "dilations")?;
+    let padding = pads(step, ctx)?;
+    let geom = Conv2d {
+        in_channels: c,
+        kernel: [kh, kw],
+        stride,
+        padding,
+        dilation,
+    };
+    let (oh, ow) = window_fit(step, ctx, (h, w), geom.kernel, stride, padding, dilation)?;
+    let mut bias = vec![0.0f64; out];
+    if let Some(b_name) = node.input.get(2).filter(|b| !b.is_empty()) {
+        let b = constant_floats(chain, b_name, step, ctx)?;
+        if b.dims != [out] {
+            return Err(ctx.node_error(
+                step,
+                &format!("has a bias of shape {:?} for {out} filters", b.dims),
+                "receptor reads a Conv bias of shape [out_channels]",
+            ));
+        }
+        bias = b.values;
+    }
+    let d = Dense {
+        name: layer_name(node, w_name, &format!("conv{index}")),
+        units: out,
+        inputs: inp * kh * kw,
+        weights: wt.values,
+        bias,
+        activation: None,
+        chw: None,
+        conv: Some(geom),
+    };
+    Ok((
+        d,
+        Value::Image {
+            c: out,
+            h: oh,
+            w: ow,
+        },
+    ))
+}
+
+/// A `MaxPool`, `AveragePool` or `GlobalAveragePool` as a pooling layer reading the map
+/// `value`, and the map it gives (ONNX operator definitions: strides default to 1,
+/// `count_include_pad` to 0).
+fn new_pool(step: Step<'_>, value: Value, index: usize, ctx: &Context) -> Result<(Layer, Value)> {
+    let node = step.node;
+    let op = node.op_type.as_str();
+    let Value::Image { c, h, w } = value else {
+        return Err(ctx.node_error(
+            step,
+            "reads a 2-D value",
+            &format!("receptor reads {op} on a 4-D map [N, C, H, W]"),
+        ));
+    };
+    let name = node_layer_name(node, &format!("pool{index}"));
+    if op == "GlobalAveragePool" {
+        let layer = Layer::avg_pool2d(name, [h, w], [1, 1], [0, 0]);
+        return Ok((layer, Value::Image { c, h: 1, w: 1 }));
+    }
+    let kernel = match attr_ints(node, "kernel_shape") {
+        Some(&[a, b]) if a >= 1 && b >= 1 => [a as usize, b as usize],
+        k => {
+            return Err(ctx.node_error(
+                step,
+                &format!("has kernel_shape {k:?}"),
+                &format!("receptor reads {op} with a 2-D kernel_shape of at least 1 x 1"),
+            ));
+        }
+    };
+    let stride = pair(step, ctx, "strides")?;
+    let dilation = pair(step, ctx, "dilations")?;
+    if dilation != [1, 1] {
+        return Err(ctx.node_error(
+            step,
+            &format!("has dilations {dilation:?}"),
+            &format!("receptor reads {op} with dilations 1"),
+        ));
+    }
+    let ceil = attr_int(node, "ceil_mode").unwrap_or(0);
+    if ceil != 0 {
+        return Err(ctx.node_error(
+            step,
+            &format!("has ceil_mode = {ceil}"),
+            &format!("receptor reads {op} with ceil_mode = 0 (output sizes rounded down)"),
+        ));
+    }
+    let order = attr_int(node, "storage_order").unwrap_or(0);
+    if order != 0 {
+        return Err(ctx.node_error(
+            step,
+            &format!("has storage_order = {order}"),
+            "receptor reads MaxPool with storage_order = 0",
+        ));
+    }
+    let padding = pads(step, ctx)?;
+    if op == "AveragePool"
+        && attr_int(node, "count_include_pad").unwrap_or(0) == 0
+        && padding != [0, 0]
+    {
+        return Err(ctx.node_error(
+            step,
+            &format!("has count_include_pad = 0 with pads {padding:?}, so its border windows divide by fewer cells"),
+            "receptor reads AveragePool with count_include_pad = 1 (padded cells count as zeros), or without pads",
+        ));
+    }
+    if padding[0] * 2 > kernel[0] || padding[1] * 2 > kernel[1] {
+        return Err(ctx.node_error(
+            step,
+            &format!("has pads {padding:?} larger than half the kernel {kernel:?}"),
+            &format!("receptor reads {op} with pads at most half the kernel (windows that are never all padding)"),
+        ));
+    }
+    let (oh, ow) = window_fit(step, ctx, (h, w), kernel, stride, padding, [1, 1])?;
+    let layer = if op == "MaxPool" {
+        Layer::max_pool2d(name, kernel, stride, padding)
+    } else {
+        Layer::avg_pool2d(name, kernel, stride, padding)
+    };
+    Ok((layer, Value::Image { c, h: oh, w: ow }))
+}
+
+/// A 2-D `[h, w]` attribute of positive integers (`strides`, `dilations`), 1 when absent.
+fn pair(step: Step<'_>, ctx: &Context, name: &str) -> Result<[usize; 2]> {
+    match attr_ints(step.node, name) {
+        None => Ok([1, 1]),
+        Some(&[a, b]) if a >= 1 && b >= 1 => match (usize::try_from(a), usize::try_from(b)) {
+            (Ok(a), Ok(b)) => Ok([a, b]),
+            _ => Err(ctx.node_error(step, &format!("has {name} [{a}, {b}]"), "sizes too large")),
+        },
+        Some(v) => Err(ctx.node_error(
+            step,
+            &format!("has {name} {v:?}"),
+            &format!("receptor reads {name} as two values [h, w] of at least 1"),
+        )),
+    }
+}
+
+/// The padding `[h, w]` from `pads` `[h_begin, w_begin, h_end, w_end]` (begin and end must
+/// be equal) and `auto_pad` (NOTSET, or VALID meaning no padding).
+fn pads(step: Step<'_>, ctx: &Context) -> Result<[usize; 2]> {
+    let node = step.node;
+    let auto = attr_string(node, "auto_pad").unwrap_or("NOTSET");
+    if auto != "NOTSET" && auto != "VALID" {
+        return Err(ctx.node_error(
+            step,
+            &format!("has auto_pad = {auto}"),
+            "receptor reads auto_pad NOTSET (explicit symmetric pads) or VALID (no padding)",
+        ));
+    }
+    let p = match attr_ints(node, "pads") {
+        None => [0, 0],
+        Some(&[hb, wb, he, we]) if hb >= 0 && wb >= 0 && he >= 0 && we >= 0 => {
+            if hb != he || wb != we {
+                return Err(ctx.node_error(
+                    step,
+                    &format!("has asymmetric pads [{hb}, {wb}, {he}, {we}] (begin and end differ)"),
+                    "receptor reads symmetric pads [h_begin, w_begin, h_end, w_end] with h_begin = h_end and w_begin = w_end",
+                ));
+            }
+            match (usize::try_from(hb), usize::try_from(wb)) {
+                (Ok(a), Ok(b)) => [a, b],
+                _ => return Err(ctx.node_error(step, "has pads too large", "sizes too large")),
+            }
+        }
+        Some(v) => {
+            return Err(ctx.node_error(
+                step,
+                &format!("has pads {v:?}"),
+                "receptor reads pads as four values [h_begin, w_begin, h_end, w_end] of at least 0",
+            ));
+        }
+    };
+    if auto == "VALID" && p != [0, 0] {
+        return Err(ctx.node_error(
+            step,
+            &format!("has auto_pad = VALID with pads {p:?}"),
+            "receptor reads pads only with auto_pad NOTSET",
+        ));
+    }
+    Ok(p)
+}
+
+/// The output `(height, width)` of a window sliding over an `(h, w)` map, or a message
+/// naming the node when the window does not fit.
+fn window_fit(
+    step: Step<'_>,
+    ctx: &Context,
+    (h, w): (usize, usize),
+    kernel: [usize; 2],
+    stride: [usize; 2],
+    padding: [usize; 2],
+    dilation: [usize; 2],
+) -> Result<(usize, usize)> {
+    match (
+        window_output(h, kernel[0], stride[0], padding[0], dilation[0]),
+        window_output(w, kernel[1], stride[1], padding[1], dilation[1]),
+    ) {
+        (Some(oh), Some(ow)) => Ok((oh, ow)),
+        _ => Err(ctx.node_error(
+            step,
+            &format!(
+                "has a {} x {} window (dilation {:?}, pads {:?}) that does not fit the {h} x {w} map before it",
+                kernel[0], kernel[1], dilation, padding
+            ),
+            "the window must fit the padded map at least once",
+        )),
+    }
+}
+
+/// A constant broadcast over a `[C, H, W]` map per channel: shapes `[]`, `[1]`,
+/// `[C, 1, 1]`, `[1, C, 1, 1]` (ONNX broadcasting aligns the last axes).
+fn per_channel(c: &Constant, channels: usize) -> Option<Vec<f64>> {
+    let ok = match c.dims.as_slice() {
+        [] | [1] | [1, 1, 1] | [1, 1, 1, 1] => true,
+        [n, 1, 1] | [1, n, 1, 1] => *n == channels,
+        _ => false,
+    };
+    if !ok {
+        return None;
+    }
+    Some(if c.len() == 1 {
+        vec![c.values[0]; channels]
+    } else {
+        c.values.clone()
     })
 }
 
@@ -580,32 +989,41 @@ fn per_unit(c: &Constant, units: usize) -> Option<Vec<f64>> {
     })
 }
 
-/// The dense layer a bias, normalisation or activation applies to: the last one, still
-/// without an activation.
+/// The layer a bias, normalisation or activation applies to: the last one, with weights
+/// and still without an activation.
 fn open_dense<'d, 'a>(
-    dense: &'d mut [Dense<'a>],
+    items: &'d mut [Item<'a>],
     step: Step<'_>,
     op: &str,
     ctx: &Context,
 ) -> Result<&'d mut Dense<'a>> {
-    match dense.last_mut() {
-        Some(d) if d.activation.is_none() => Ok(d),
-        Some(d) => {
-            let prev = d
-                .activation
-                .map(|(_, s)| s.node.op_type.clone())
-                .unwrap_or_default();
-            Err(ctx.node_error(
+    let place = if op == "Add" || op == "BatchNormalization" {
+        "receptor reads a bias Add and BatchNormalization between Gemm/MatMul/Conv and its activation"
+    } else {
+        ACTIVATION_PLACE
+    };
+    match items.last_mut() {
+        Some(Item::Weighted(d)) => match d.activation {
+            None => Ok(d),
+            Some((_, s)) => Err(ctx.node_error(
                 step,
-                &format!("follows the activation {prev} of the layer before"),
-                if op == "Add" || op == "BatchNormalization" {
-                    "receptor reads a bias Add and BatchNormalization between Gemm/MatMul and its activation"
-                } else {
-                    ACTIVATION_PLACE
-                },
-            ))
-        }
-        None => Err(ctx.node_error(step, "comes before any Gemm or MatMul", ACTIVATION_PLACE)),
+                &format!(
+                    "follows the activation {} of the layer before",
+                    s.node.op_type
+                ),
+                place,
+            )),
+        },
+        Some(Item::Fixed(l)) => Err(ctx.node_error(
+            step,
+            &format!("follows a {} layer, which has no weights", l.kind.name()),
+            place,
+        )),
+        None => Err(ctx.node_error(
+            step,
+            "comes before any Gemm, MatMul or Conv",
+            ACTIVATION_PLACE,
+        )),
     }
 }
 
@@ -654,8 +1072,8 @@ fn fold_batch_norm(
 }
 
 /// A layer name from the weight tensor (`fc1.weight` gives `fc1`), else from the node
-/// (`/fc1/Gemm` gives `fc1`), else `dense{index}`.
-fn layer_name(node: &NodeProto, weight: &str, index: usize) -> String {
+/// (`/fc1/Gemm` gives `fc1`), else `fallback`.
+fn layer_name(node: &NodeProto, weight: &str, fallback: &str) -> String {
     let from_weight = weight
         .strip_suffix(".weight")
         .or_else(|| weight.strip_suffix("_weight"))
@@ -663,52 +1081,83 @@ fn layer_name(node: &NodeProto, weight: &str, index: usize) -> String {
     if let Some(n) = from_weight {
         return n.to_string();
     }
-    let trimmed = node.name.trim_start_matches('/');
-    let trimmed = trimmed
-        .strip_suffix(&format!("/{}", node.op_type))
-        .unwrap_or(trimmed);
-    if !trimmed.is_empty() {
-        return trimmed.to_string();
+    let from_node = node_layer_name(node, "");
+    if !from_node.is_empty() {
+        return from_node;
     }
     if !weight.is_empty() && !weight.contains("::") {
         return weight.to_string();
     }
-    format!("dense{index}")
+    fallback.to_string()
 }
 
-/// The finished layers: activation (identity when none), columns put in receptor's
-/// channel-last order, names made unique (`fc`, `fc_2`, ...).
-fn finish(dense: Vec<Dense<'_>>) -> Vec<Layer> {
+/// A layer name from the node (`/pool1/MaxPool` gives `pool1`), else `fallback`.
+fn node_layer_name(node: &NodeProto, fallback: &str) -> String {
+    let trimmed = node.name.trim_start_matches('/');
+    let trimmed = trimmed
+        .strip_suffix(&format!("/{}", node.op_type))
+        .unwrap_or(trimmed);
+    if trimmed.is_empty() {
+        fallback.to_string()
+    } else {
+        trimmed.to_string()
+    }
+}
+
+/// The finished layers: activation (identity when none), a dense layer's columns put in
+/// receptor's channel-last order when it reads the flattened input image, names made
+/// unique (`fc`, `fc_2`, ...).
+fn finish(items: Vec<Item<'_>>) -> Vec<Layer> {
     let mut used = std::collections::HashSet::new();
-    dense
+    items
         .into_iter()
-        .map(|d| {
-            let mut name = d.name.clone();
+        .map(|item| {
+            let mut layer = match item {
+                Item::Weighted(d) => weighted_layer(d),
+                Item::Fixed(l) => l,
+            };
+            let stem = layer.name.clone();
             let mut k = 2;
-            while !used.insert(name.clone()) {
-                name = format!("{}_{k}", d.name);
+            while !used.insert(layer.name.clone()) {
+                layer.name = format!("{stem}_{k}");
                 k += 1;
             }
-            let col = |j: usize| -> usize {
-                match d.chw {
-                    // Receptor column j = (row * W + col) * C + ch; ONNX's = ch * H * W + row * W + col.
-                    Some((c, h, w)) => {
-                        let ch = j % c;
-                        let pix = j / c;
-                        ch * h * w + pix
-                    }
-                    None => j,
-                }
-            };
-            let weights = Array2::from_shape_fn((d.units, d.inputs), |(u, j)| {
-                d.weights[u * d.inputs + col(j)] as f32
-            });
-            Layer::dense(
-                name,
-                d.activation.map_or(Activation::Identity, |(a, _)| a),
-                weights,
-                Array1::from_iter(d.bias.iter().map(|&b| b as f32)),
-            )
+            layer
         })
         .collect()
+}
+
+/// A dense or conv2d layer from its assembled `f64` parts.
+fn weighted_layer(d: Dense<'_>) -> Layer {
+    let activation = d.activation.map_or(Activation::Identity, |(a, _)| a);
+    let bias = Array1::from_iter(d.bias.iter().map(|&b| b as f32));
+    if let Some(g) = d.conv {
+        let mut layer = Layer::dense(
+            d.name,
+            activation,
+            Array2::from_shape_fn((d.units, d.inputs), |(u, j)| {
+                d.weights[u * d.inputs + j] as f32
+            }),
+            bias,
+        );
+        // Same row layout as `Layer::conv2d`: `[out, in x kh x kw]` in ONNX's (and
+        // PyTorch's) order.
+        layer.kind = LayerKind::Conv2d(g);
+        return layer;
+    }
+    let col = |j: usize| -> usize {
+        match d.chw {
+            // Receptor column j = (row * W + col) * C + ch; ONNX's = ch * H * W + row * W + col.
+            Some((c, h, w)) => {
+                let ch = j % c;
+                let pix = j / c;
+                ch * h * w + pix
+            }
+            None => j,
+        }
+    };
+    let weights = Array2::from_shape_fn((d.units, d.inputs), |(u, j)| {
+        d.weights[u * d.inputs + col(j)] as f32
+    });
+    Layer::dense(d.name, activation, weights, bias)
 }

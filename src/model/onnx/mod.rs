@@ -4,8 +4,9 @@
 //! - `proto.rs`: the protobuf messages (only the fields read; numbers from onnx.proto).
 //! - `tensor.rs`: constant tensors (raw, typed or external data), sizes checked first.
 //! - `graph.rs`: the node list read as a chain; branches and merges are refused.
-//! - `layers.rs`: the one place where operators become layers (Gemm, MatMul + Add,
-//!   activations, BatchNormalization folded into the layer before, Flatten, Reshape).
+//! - `layers.rs`: the one place where operators become layers (Gemm, MatMul + Add, Conv,
+//!   MaxPool, AveragePool, GlobalAveragePool, activations, BatchNormalization folded into
+//!   the layer before, Flatten, Reshape).
 //!
 //! ONNX carries no input box: it comes from the caller ([`super::InputBox`]), else from
 //! the model's `metadata_props` ([`META_LOW`], [`META_HIGH`]), else [`super::DEFAULT_BOX`].

@@ -333,3 +333,168 @@ fn dropout_is_read_only_in_inference_mode() {
         }
     }
 }
+
+fn attr_ints(name: &str, v: &[i64]) -> AttributeProto {
+    AttributeProto {
+        name: name.into(),
+        ints: v.to_vec(),
+        r#type: 7,
+        ..Default::default()
+    }
+}
+
+fn attr_s(name: &str, s: &str) -> AttributeProto {
+    AttributeProto {
+        name: name.into(),
+        s: Some(s.as_bytes().to_vec()),
+        r#type: 3,
+        ..Default::default()
+    }
+}
+
+/// `[N, 1, 2, 2]` -> Conv (1 x 1, two filters) -> `middle` -> GlobalAveragePool ->
+/// Flatten -> Gemm (2 -> 1).
+fn conv_model(
+    conv_attrs: Vec<AttributeProto>,
+    middle: Vec<NodeProto>,
+    extra: Vec<TensorProto>,
+) -> Vec<u8> {
+    let last = middle
+        .last()
+        .map(|n| n.output[0].clone())
+        .unwrap_or_else(|| "c".to_string());
+    let mut nodes = vec![node("Conv", &["x", "K"], "c", conv_attrs)];
+    nodes.extend(middle);
+    nodes.push(node("GlobalAveragePool", &[&last], "g", vec![]));
+    nodes.push(node("Flatten", &["g"], "f", vec![]));
+    nodes.push(node(
+        "Gemm",
+        &["f", "W", "b"],
+        "y",
+        vec![attr_i("transB", 1)],
+    ));
+    let mut inits = vec![
+        t("K", &[2, 1, 1, 1], &[2.0, -1.0]),
+        t("W", &[1, 2], &[1.0, 1.0]),
+        t("b", &[1], &[0.0]),
+    ];
+    inits.extend(extra);
+    bytes(nodes, inits, &[0, 1, 2, 2], &[])
+}
+
+#[test]
+fn conv_bias_and_batch_norm_fold_per_channel() {
+    // Add of a [1, C, 1, 1] bias, then BatchNormalization (ONNX operator definition):
+    // s = scale / sqrt(var + eps), W' = s W, b' = s (b - mean) + B, per output channel.
+    let (scale, shift, mean, var, eps) = ([2.0, 1.0], [0.0, 1.0], [1.0, 0.0], [3.0, 0.25], 1.0);
+    let m = conv_model(
+        vec![],
+        vec![
+            node("Add", &["c", "cb"], "a", vec![]),
+            node(
+                "BatchNormalization",
+                &["a", "s", "sh", "mu", "v"],
+                "n",
+                vec![attr_f("epsilon", eps)],
+            ),
+            node("Relu", &["n"], "r", vec![]),
+        ],
+        vec![
+            t("cb", &[1, 2, 1, 1], &[0.5, 1.0]),
+            t("s", &[2], &scale),
+            t("sh", &[2], &shift),
+            t("mu", &[2], &mean),
+            t("v", &[2], &var),
+        ],
+    );
+    let (net, _) = read(&m, &LoadOptions::default()).expect("reads");
+    let kinds: Vec<&str> = net.layers().iter().map(|l| l.kind.name()).collect();
+    assert_eq!(kinds, ["conv2d", "avg_pool2d", "flatten", "dense"]);
+    let conv = &net.layers()[0];
+    assert_eq!(conv.activation, Activation::Relu);
+    let (w, b) = ([2.0f64, -1.0], [0.5f64, 1.0]);
+    for u in 0..2 {
+        let s = f64::from(scale[u]) / (f64::from(var[u]) + f64::from(eps)).sqrt();
+        let want_w = s * w[u];
+        let want_b = s * (b[u] - f64::from(mean[u])) + f64::from(shift[u]);
+        assert!(
+            (f64::from(conv.weights[[u, 0]]) - want_w).abs() < 1e-6,
+            "W'[{u}]"
+        );
+        assert!((f64::from(conv.bias[u]) - want_b).abs() < 1e-6, "b'[{u}]");
+    }
+    // GlobalAveragePool: an average pool whose window is the whole 2 x 2 map.
+    assert_eq!(
+        net.layers()[1].kind,
+        crate::model::LayerKind::AvgPool2d(crate::model::Pool2d {
+            kernel: [2, 2],
+            stride: [1, 1],
+            padding: [0, 0]
+        })
+    );
+}
+
+#[test]
+fn conv_and_pool_attributes_outside_the_subset_are_refused() {
+    let refused = |m: Vec<u8>, want: &str| {
+        let e = read(&m, &LoadOptions::default())
+            .expect_err("refused")
+            .to_string();
+        assert!(e.contains(want), "{e}");
+        assert!(e.contains("m.onnx"), "{e}");
+    };
+    refused(
+        conv_model(vec![attr_s("auto_pad", "SAME_UPPER")], vec![], vec![]),
+        "has auto_pad = SAME_UPPER",
+    );
+    refused(
+        conv_model(vec![attr_ints("pads", &[1, 0, 0, 0])], vec![], vec![]),
+        "asymmetric pads [1, 0, 0, 0]",
+    );
+    let pool = |attrs| {
+        vec![
+            node("MaxPool", &["c"], "p", attrs),
+            node("Relu", &["p"], "r", vec![]),
+        ]
+    };
+    refused(
+        conv_model(
+            vec![],
+            pool(vec![attr_ints("kernel_shape", &[1, 1])]),
+            vec![],
+        ),
+        "follows a max_pool2d layer",
+    );
+    let pool_only = |attrs| vec![node("MaxPool", &["c"], "p", attrs)];
+    refused(
+        conv_model(
+            vec![],
+            pool_only(vec![
+                attr_ints("kernel_shape", &[2, 2]),
+                attr_i("ceil_mode", 1),
+            ]),
+            vec![],
+        ),
+        "has ceil_mode = 1",
+    );
+    refused(
+        conv_model(
+            vec![],
+            pool_only(vec![
+                attr_ints("kernel_shape", &[2, 2]),
+                attr_ints("pads", &[2, 2, 2, 2]),
+            ]),
+            vec![],
+        ),
+        "larger than half the kernel",
+    );
+    // A [C] constant broadcasts over the width in ONNX, not over the channels.
+    refused(
+        conv_model(
+            vec![],
+            vec![node("Add", &["c", "cb"], "a", vec![])],
+            vec![t("cb", &[2], &[0.5, 1.0])],
+        ),
+        "adds a constant of shape [2]",
+    );
+}
