@@ -43,22 +43,27 @@ export LIBGL_ALWAYS_SOFTWARE=1
 export XDG_DATA_HOME="$WORK/data"
 sleep 1
 
-"$BIN" > "$WORK/app.log" 2>&1 &
-APP_PID=$!
-WID=""
-for _ in $(seq 1 60); do
-    kill -0 "$APP_PID" 2> /dev/null || { echo "screenshot.sh: the app exited:" >&2; cat "$WORK/app.log" >&2; exit 2; }
-    WID="$(xdotool search --name '^receptor$' 2> /dev/null | head -1 || true)"
-    [ -n "$WID" ] && break
-    sleep 0.5
-done
-[ -n "$WID" ] || { echo "screenshot.sh: no receptor window appeared" >&2; exit 2; }
-# The demo model is small; its analysis (statistics, screening, preferred inputs) finishes
-# within a few seconds even on software rendering.
-sleep 6
-xdotool windowfocus --sync "$WID"
-# Park the pointer on the status bar so no tooltip covers the views.
-xdotool mousemove 1000 792
+# Starts the app with the given arguments and waits for its window (WID).
+start_app() {
+    "$BIN" "$@" > "$WORK/app.log" 2>&1 &
+    APP_PID=$!
+    WID=""
+    for _ in $(seq 1 60); do
+        kill -0 "$APP_PID" 2> /dev/null || { echo "screenshot.sh: the app exited:" >&2; cat "$WORK/app.log" >&2; exit 2; }
+        WID="$(xdotool search --name '^receptor$' 2> /dev/null | head -1 || true)"
+        [ -n "$WID" ] && break
+        sleep 0.5
+    done
+    [ -n "$WID" ] || { echo "screenshot.sh: no receptor window appeared" >&2; exit 2; }
+    # The demo models are small; their analysis (statistics, screening, preferred inputs,
+    # pruning sweeps) finishes within a few seconds even on software rendering.
+    sleep 6
+    xdotool windowfocus --sync "$WID"
+    # Park the pointer on the status bar so no tooltip covers the views.
+    xdotool mousemove 1000 792
+}
+
+start_app
 
 shot() {
     sleep 2
@@ -80,6 +85,21 @@ shot deeper-unit-preferred.png
 xdotool key w
 shot deeper-unit-weights.png
 
-# 4. Sparsity and pruning view.
+# 4. Sparsity and pruning view; then scrolled down to the pruning curves: magnitude and
+#    unit removal for the whole model, one curve per layer beside them, the table below.
 xdotool key Tab
 shot sparsity-and-pruning.png
+xdotool mousemove 700 500
+xdotool click --repeat 6 --delay 50 5
+xdotool mousemove 1000 792
+shot pruning-curves.png
+
+# 5. The over-driven demo with its labelled probe: the Compact model window (Ctrl+K) over
+#    the pruning view, with what it would remove and the check of the outputs.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+start_app demo-models/solder-joints-overdriven.json --probe demo-models/solder-joints-probe.csv
+xdotool key Tab
+sleep 2
+xdotool key ctrl+k
+shot compact-model.png

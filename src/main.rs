@@ -16,7 +16,7 @@ fn main() -> ExitCode {
         }
     };
     match cli.command {
-        None => open_app(cli.model, cli.allow_outside_paths),
+        None => open_app(cli.model, cli.probe, cli.allow_outside_paths),
         Some(command) => match cli::run(command) {
             Ok(code) => code,
             Err(e) => {
@@ -30,14 +30,26 @@ fn main() -> ExitCode {
 
 /// Opens the desktop app (built with the default `gui` feature).
 #[cfg(feature = "gui")]
-fn open_app(model: Option<std::path::PathBuf>, allow_outside_paths: bool) -> ExitCode {
-    receptor::app::run(model, allow_outside_paths)
+fn open_app(
+    model: Option<std::path::PathBuf>,
+    probe: Option<std::path::PathBuf>,
+    allow_outside_paths: bool,
+) -> ExitCode {
+    receptor::app::run(receptor::app::Start {
+        model,
+        probe,
+        allow_outside_paths,
+    })
 }
 
 /// Without the `gui` feature there is no window; say so.
 #[cfg(not(feature = "gui"))]
-fn open_app(model: Option<std::path::PathBuf>, allow_outside_paths: bool) -> ExitCode {
-    let _ = (model, allow_outside_paths);
+fn open_app(
+    model: Option<std::path::PathBuf>,
+    probe: Option<std::path::PathBuf>,
+    allow_outside_paths: bool,
+) -> ExitCode {
+    let _ = (model, probe, allow_outside_paths);
     eprintln!(
         "receptor: the desktop app is not available in this build; see `receptor --help` for the commands"
     );

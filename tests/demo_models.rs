@@ -19,7 +19,10 @@ use receptor::model::{self, Activation, LoadOptions, Network};
 use receptor::probe;
 use std::path::{Path, PathBuf};
 
-#[allow(dead_code)]
+#[allow(
+    dead_code,
+    reason = "the generator's command-line entry point is not called here"
+)]
 #[path = "../examples/make_demos/main.rs"]
 mod make_demos;
 

@@ -292,7 +292,7 @@ fn opening_a_second_model_cancels_the_first_and_never_mixes_results() {
     let large = write_large_model(dir.path());
     let mut h = app_with(Start {
         model: Some(large.clone()),
-        allow_outside_paths: false,
+        ..Start::default()
     });
     // Wait until the large model is open and its analysis is running.
     let t0 = Instant::now();
@@ -372,7 +372,7 @@ fn cancel_stops_the_running_analysis() {
     let large = write_large_model(dir.path());
     let mut h = app_with(Start {
         model: Some(large),
-        allow_outside_paths: false,
+        ..Start::default()
     });
     let t0 = Instant::now();
     while h.state().state().model.is_none() || h.query_by_label("Cancel").is_none() {
@@ -456,5 +456,228 @@ fn side_files_outside_the_folder_need_the_users_consent() {
     assert_eq!(
         h.state().state().model.as_ref().unwrap().net.name(),
         "outside"
+    );
+}
+
+/// Steps frames until the status bar says `Saved {path}` (or shows an error).
+fn wait_for_notice(h: &mut Harness<'static, ReceptorApp>, path: &Path) {
+    let t0 = Instant::now();
+    let name = format!("Saved {}", path.display());
+    while !h
+        .state()
+        .state()
+        .notice
+        .as_ref()
+        .is_some_and(|n| n.text == name || n.error)
+    {
+        assert!(
+            t0.elapsed() < Duration::from_secs(60),
+            "saving {} did not finish",
+            path.display()
+        );
+        h.step();
+        std::thread::sleep(Duration::from_millis(5));
+    }
+    let n = h.state().state().notice.clone().unwrap();
+    assert!(!n.error, "saving failed: {}", n.text);
+}
+
+/// Runs the command-line binary in `dir`; panics unless it exits 0. Returns its stdout.
+fn receptor_cli(args: &[&str], dir: &Path) -> String {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_receptor"))
+        .args(args)
+        .current_dir(dir)
+        .output()
+        .expect("the receptor binary runs");
+    assert!(
+        out.status.success(),
+        "receptor {args:?} failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout).unwrap()
+}
+
+#[test]
+fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let model = root.join("demo-models/solder-joints-overdriven.json");
+    let probe = root.join("demo-models/solder-joints-probe.csv");
+    let mut h = app_with(Start {
+        model: Some(model.clone()),
+        ..Start::default()
+    });
+    wait_idle(&mut h, Duration::from_secs(60));
+    h.get_by_label("Sparsity and pruning").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    // The uniform probe has no labels: the view says why the curves are missing.
+    h.get_by_label_contains("The pruning curves are missing");
+    h.get_by_label_contains("uniform samples from the input box, which have no labels");
+
+    h.state_mut().open_probe(&probe);
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    // Each series is labelled in a legend beside its plot.
+    h.get_by_label("weights zeroed, smallest |w| first");
+    h.get_by_label("units removed, smallest L1 norm first");
+    h.get_by_label("h1 (32 units)");
+    h.get_by_label("h2 (16 units)");
+
+    // The same numbers as `receptor prune-sweep --by unit [--per-layer]` (one core, two
+    // fronts): compare every accuracy with the command line's CSV.
+    let curves = h
+        .state()
+        .state()
+        .results
+        .unit_curves_of(receptor::app::state::Criterion::L1)
+        .and_then(|s| s.ready())
+        .expect("the L1 unit curves are there");
+    let dir = model.parent().unwrap();
+    for (flag, points) in [
+        (None, &curves.all_layers),
+        (Some("--per-layer"), &curves.per_layer),
+    ] {
+        let mut args = vec![
+            "prune-sweep",
+            "solder-joints-overdriven.json",
+            "--probe",
+            "solder-joints-probe.csv",
+            "--by",
+            "unit",
+        ];
+        args.extend(flag);
+        let csv = receptor_cli(&args, dir);
+        let rows: Vec<&str> = csv.lines().skip(1).collect();
+        assert_eq!(rows.len(), points.len(), "{flag:?}");
+        for (row, p) in rows.iter().zip(points.iter()) {
+            let cells: Vec<&str> = row.split(',').collect();
+            let accuracy: f64 = cells.last().unwrap().parse().unwrap();
+            let removed: usize = cells[3].parse().unwrap();
+            assert_eq!(p.removed, removed, "{row}");
+            assert!(
+                (p.accuracy - accuracy).abs() < 1e-12,
+                "{row}: {}",
+                p.accuracy
+            );
+        }
+    }
+
+    // Ranking by mean |activation| recomputes the curves.
+    h.get_by_label("mean |activation| on the probe").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("units removed, smallest mean |activation| first");
+}
+
+#[test]
+fn compacts_the_overdriven_demo_and_opens_the_smaller_model() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let demo = root.join("demo-models");
+    let model = demo.join("solder-joints-overdriven.json");
+    let probe = demo.join("solder-joints-probe.csv");
+    // As `receptor MODEL --probe DATA` starts the app.
+    let mut h = app_with(Start {
+        model: Some(model.clone()),
+        probe: Some(probe.clone()),
+        ..Start::default()
+    });
+    wait_idle(&mut h, Duration::from_secs(60));
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    let in_use = h
+        .state()
+        .state()
+        .probe
+        .as_ref()
+        .and_then(|p| p.path.clone());
+    assert_eq!(in_use.as_deref(), Some(probe.as_path()));
+
+    h.get_by_label("File").click();
+    h.run();
+    // The menu item's accessible label carries its shortcut ("Compact model… Ctrl+K").
+    h.get_by_label_contains("Compact model…").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+
+    // `receptor compact` on this model removes 9 dead_proven units of h1 and 12 of h2
+    // (README; `screen` reports the same units as dead_proven): the window lists them.
+    h.get_by_label_contains("21 units would be removed");
+    h.get_by_label("32 -> 23");
+    h.get_by_label("16 -> 4");
+    h.get_by_label("5 -> 5");
+    // Which units, per layer: those `receptor screen` marks dead_proven (the same interval
+    // bounds; Gowal et al. 2018).
+    let screen = receptor_cli(
+        &[
+            "screen",
+            "solder-joints-overdriven.json",
+            "--probe",
+            "solder-joints-probe.csv",
+        ],
+        &demo,
+    );
+    for layer in ["h1", "h2"] {
+        let units: Vec<&str> = screen
+            .lines()
+            .map(|l| l.split(',').collect::<Vec<_>>())
+            .filter(|c| c[0] == layer && c.last() == Some(&"dead_proven"))
+            .map(|c| c[1])
+            .collect();
+        assert!(!units.is_empty());
+        h.get_by_label(&format!("dead_proven: {}", units.join(", ")));
+    }
+    // The output check on the probe and on uniform box samples, as `receptor compact`
+    // reports it (README: largest |difference| 0.0 on both, 0 predictions changed).
+    h.get_by_label_contains("On 500 samples of");
+    h.get_by_label_contains("On 4096 samples of the input box (uniform, seed 0)");
+    assert_eq!(
+        h.get_all_by_label_contains(
+            "largest output difference 0.0 (equal within 0.00001); 0 predictions changed"
+        )
+        .count(),
+        2
+    );
+    h.get_by_label_contains("79.6% before, 79.6% after");
+
+    // Save (what the save dialog calls), then open the result from the window.
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("smaller.json");
+    h.state_mut().save_compacted_to(out.clone());
+    wait_for_notice(&mut h, &out);
+    h.run_steps(2);
+    let written = receptor::model::load(&out, &Default::default()).expect("the output loads");
+    let sizes: Vec<usize> = written.layers().iter().map(|l| l.units()).collect();
+    assert_eq!(sizes, vec![23, 4, 5]);
+
+    // Byte for byte what the command line writes for the same model and probe.
+    let cli_out = tmp.path().join("cli.json");
+    receptor_cli(
+        &[
+            "compact",
+            model.to_str().unwrap(),
+            "--probe",
+            probe.to_str().unwrap(),
+            "--out",
+            cli_out.to_str().unwrap(),
+        ],
+        tmp.path(),
+    );
+    assert_eq!(
+        std::fs::read(&out).unwrap(),
+        std::fs::read(&cli_out).unwrap(),
+        "the app and the command line write the same compacted model"
+    );
+
+    h.get_by_label("Open the compacted model").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    let st = h.state().state();
+    let open = st.model.as_ref().expect("a model is open");
+    assert_eq!(open.path.as_deref(), Some(out.as_path()));
+    let sizes: Vec<usize> = open.net.layers().iter().map(|l| l.units()).collect();
+    assert_eq!(sizes, vec![23, 4, 5]);
+    assert!(
+        !st.compact.open,
+        "the window closes when the smaller model opens"
     );
 }

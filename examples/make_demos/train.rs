@@ -421,8 +421,13 @@ fn backward(net: &NetworkParts, x: ArrayView2<f32>, labels: &[usize], cache: &Ca
 /// `labels: [samples]`, and its gradient with respect to every weight and bias.
 ///
 /// The L2 penalty of [`TrainOptions::weight_decay`] is not included.
-// The generator itself only trains; the tests check the gradients through this.
-#[cfg_attr(not(test), allow(dead_code))]
+#[cfg_attr(
+    not(test),
+    allow(
+        dead_code,
+        reason = "the generator itself only trains; the tests check the gradients through this"
+    )
+)]
 pub fn loss_and_gradients(
     net: &NetworkParts,
     x: ArrayView2<f32>,
@@ -435,7 +440,10 @@ pub fn loss_and_gradients(
 }
 
 /// Mean softmax cross-entropy (nats) of `net` on `x: [samples, inputs]` with `labels`.
-#[cfg_attr(not(test), allow(dead_code))]
+#[cfg_attr(
+    not(test),
+    allow(dead_code, reason = "used by the trainer's tests only")
+)]
 pub fn cross_entropy(net: &NetworkParts, x: ArrayView2<f32>, labels: &[usize]) -> Result<f64> {
     check_problem(net, x, labels)?;
     let cache = forward_cache(net, x);

@@ -26,9 +26,18 @@
 //!
 //! Planning is repeated on the smaller network until nothing more qualifies, because
 //! folding a constant into a bias can tighten the bounds above it.
+//!
+//! Both fronts (`receptor compact` and the app's "Compact model" window) call
+//! [`compact_checked`]: it finds the never-active units when asked, compacts, and compares
+//! the outputs of the two models on the reference data (and on uniform box samples), so
+//! both show the same removals, the same largest difference and the same accuracies;
+//! [`CheckedCompaction::refusal`] is the one rule deciding whether the result may be
+//! written, and [`Compaction::layer_summaries`] the one per-layer summary.
 
 use super::bounds::{Bounds, activate_f64, interval_bounds};
 use super::forward::{argmax_rows, forward};
+use super::screen::{ScreenOptions, Status, UnitScreen, screen};
+use super::{Progress, SubProgress};
 use crate::error::{Error, Result};
 use crate::model::{Activation, InputSpec, Layer, Layout, Network};
 use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeSource};
@@ -175,6 +184,70 @@ impl Compaction {
             }
         }
         out
+    }
+
+    /// What was removed, as one summary for the input and one per layer (in order), with
+    /// unit numbers of `original`, the network given to [`compact`].
+    pub fn layer_summaries(&self, original: &Network) -> Vec<LayerSummary> {
+        let entry = |layer: Option<usize>, name: &str, before: usize, after: usize| {
+            let mut removed: Vec<(usize, Reason)> = self
+                .removed
+                .iter()
+                .filter(|r| r.layer == layer)
+                .map(|r| (r.index, r.reason))
+                .collect();
+            removed.sort_by_key(|r| r.0);
+            LayerSummary {
+                layer,
+                name: name.to_string(),
+                activation: layer.map(|l| original.layers()[l].activation),
+                before,
+                after,
+                counts: self.counts(layer),
+                removed,
+            }
+        };
+        let mut out = vec![entry(
+            None,
+            "input",
+            original.input().size,
+            self.network.input().size,
+        )];
+        for (l, (a, b)) in original
+            .layers()
+            .iter()
+            .zip(self.network.layers())
+            .enumerate()
+        {
+            out.push(entry(Some(l), &a.name, a.units(), b.units()));
+        }
+        out
+    }
+}
+
+/// What compaction removed from the input or from one layer.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LayerSummary {
+    /// Layer index, or `None` for the input's features.
+    pub layer: Option<usize>,
+    /// The layer's name (`input` for the input).
+    pub name: String,
+    /// The layer's activation (`None` for the input).
+    pub activation: Option<Activation>,
+    /// Units (or features) before.
+    pub before: usize,
+    /// Units (or features) after.
+    pub after: usize,
+    /// Removed units per reason name, in first-seen order.
+    pub counts: Vec<(&'static str, usize)>,
+    /// Removed units (numbered as in the original network), ascending, with the reason.
+    pub removed: Vec<(usize, Reason)>,
+}
+
+impl LayerSummary {
+    /// Units removed.
+    pub fn removed_count(&self) -> usize {
+        self.removed.len()
     }
 }
 
@@ -468,11 +541,27 @@ pub fn compare(
     kept_inputs: &[usize],
     probe: &mut dyn ProbeSource,
 ) -> Result<Comparison> {
+    compare_with_progress(original, smaller, kept_inputs, probe, &super::Silent)
+}
+
+/// [`compare`], reporting the fraction of the probe read to `progress` and stopping with
+/// [`Error::Cancelled`] when it asks.
+pub fn compare_with_progress(
+    original: &Network,
+    smaller: &Network,
+    kept_inputs: &[usize],
+    probe: &mut dyn ProbeSource,
+    progress: &dyn Progress,
+) -> Result<Comparison> {
     let describe = probe.describe();
+    let total = probe.total_rows();
     let outputs = original.output_layer().units();
     let mut c = Comparison::default();
     let mut correct: Option<(usize, usize)> = probe.has_labels().then_some((0, 0));
     while let Some(chunk) = probe.next_chunk(DEFAULT_CHUNK_ROWS)? {
+        if progress.cancelled() {
+            return Err(Error::Cancelled);
+        }
         chunk.check_width(original, &describe)?;
         let x = &chunk.inputs;
         c.outside_box += x
@@ -527,12 +616,164 @@ pub fn compare(
                 .count();
         }
         c.samples += x.nrows();
+        if let Some(t) = total.filter(|&t| t > 0) {
+            progress.set(c.samples as f32 / t as f32);
+        }
     }
     if c.samples == 0 {
         return Err(Error::probe(&describe, "the probe has no samples"));
     }
     c.correct = correct;
     Ok(c)
+}
+
+impl Comparison {
+    /// Accuracy of the original and of the smaller model (`correct / samples`), when the
+    /// data was labelled.
+    pub fn accuracy(&self) -> Option<(f64, f64)> {
+        let n = self.samples as f64;
+        self.correct.map(|(a, b)| (a as f64 / n, b as f64 / n))
+    }
+
+    /// True when the largest difference is at most `tolerance` (false for NaN).
+    pub fn within(&self, tolerance: f64) -> bool {
+        self.max_abs_diff <= tolerance
+    }
+}
+
+/// Per hidden layer, per unit: true for a `relu` unit that screening found never active on
+/// its data (`dead_on_probe`, or `dead_proven`, which is never active either). `units` is a
+/// screening report of `net`; units it does not list count as active. This is what
+/// [`CompactRequest::dead_on_probe`] removes.
+pub fn never_active(net: &Network, units: &[UnitScreen]) -> Vec<Vec<bool>> {
+    let hidden = net.layers().len() - 1;
+    let mut out: Vec<Vec<bool>> = net.layers()[..hidden]
+        .iter()
+        .map(|l| vec![false; l.units()])
+        .collect();
+    for u in units {
+        let relu = net
+            .layers()
+            .get(u.layer_index)
+            .is_some_and(|l| l.activation == Activation::Relu);
+        if let Some(slot) = out.get_mut(u.layer_index).and_then(|v| v.get_mut(u.unit)) {
+            *slot = relu && matches!(u.status, Status::DeadOnProbe | Status::DeadProven);
+        }
+    }
+    out
+}
+
+/// What a front asks [`compact_checked`] to remove beyond the exact reasons.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct CompactRequest {
+    /// Also remove `relu` units never active on the reference data (lossy outside it).
+    pub dead_on_probe: bool,
+    /// Fold units constant over the box within this tolerance (`None`: never fold).
+    pub fold_tolerance: Option<f64>,
+}
+
+/// Which data an output check ran on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CheckData {
+    /// The reference data (the probe, or uniform box samples without one).
+    Reference,
+    /// Uniform samples of the input box, checked besides a probe.
+    Box,
+}
+
+/// A compaction with the comparison of its outputs against the original's.
+#[derive(Debug, Clone)]
+pub struct CheckedCompaction {
+    /// The smaller network and what was removed.
+    pub compaction: Compaction,
+    /// Outputs compared on the reference data.
+    pub reference: Comparison,
+    /// Outputs compared on uniform box samples (when those were given besides a probe).
+    pub on_box: Option<Comparison>,
+    /// The request (lossy when `dead_on_probe`).
+    pub request: CompactRequest,
+}
+
+impl CheckedCompaction {
+    /// The check that forbids writing the smaller model, if any: the reference data must
+    /// agree within `tolerance` always; the box samples too unless units never active on
+    /// the reference data were removed (such removals are expected to change outputs
+    /// elsewhere in the box).
+    pub fn refusal(&self, tolerance: f64) -> Option<(CheckData, &Comparison)> {
+        if !self.reference.within(tolerance) {
+            return Some((CheckData::Reference, &self.reference));
+        }
+        match &self.on_box {
+            Some(b) if !self.request.dead_on_probe && !b.within(tolerance) => {
+                Some((CheckData::Box, b))
+            }
+            _ => None,
+        }
+    }
+}
+
+/// Compacts `net` and checks the result: with `request.dead_on_probe` the reference data
+/// is screened first (default screening options) for units never active on it; then
+/// [`compact`] runs, and the outputs of both models are compared on the reference data and
+/// on `on_box` when given. `reference` opens the reference data afresh each time it is
+/// called (it is read once or twice). `origin` names the smaller model in messages.
+///
+/// Errors: those of the probes, of screening and of [`compact`]; [`Error::Cancelled`] when
+/// `progress` asks to stop.
+pub fn compact_checked(
+    net: &Network,
+    request: &CompactRequest,
+    reference: &mut dyn FnMut() -> Result<Box<dyn ProbeSource>>,
+    on_box: Option<&mut dyn ProbeSource>,
+    origin: &str,
+    progress: &dyn Progress,
+) -> Result<CheckedCompaction> {
+    let never = if request.dead_on_probe {
+        let mut source = reference()?;
+        let report = screen(
+            net,
+            &mut *source,
+            &ScreenOptions::default(),
+            &SubProgress::new(progress, 0.0, 0.4),
+        )?;
+        Some(never_active(net, &report.units))
+    } else {
+        None
+    };
+    let opts = CompactOptions {
+        fold_tolerance: request.fold_tolerance,
+        never_active: never,
+    };
+    let compaction = compact(net, &opts, origin)?;
+    if progress.cancelled() {
+        return Err(Error::Cancelled);
+    }
+    let mut source = reference()?;
+    let c = &compaction;
+    let on_ref = compare_with_progress(
+        net,
+        &c.network,
+        &c.kept_inputs,
+        &mut *source,
+        &SubProgress::new(progress, 0.4, 0.7),
+    )?;
+    let on_box = match on_box {
+        Some(u) => Some(compare_with_progress(
+            net,
+            &c.network,
+            &c.kept_inputs,
+            u,
+            &SubProgress::new(progress, 0.7, 1.0),
+        )?),
+        None => None,
+    };
+    progress.set(1.0);
+    Ok(CheckedCompaction {
+        compaction,
+        reference: on_ref,
+        on_box,
+        request: *request,
+    })
 }
 
 #[cfg(test)]

@@ -53,7 +53,10 @@ pub(crate) fn gemm_serial_into(
 }
 
 /// [`gemm_into`] with a chosen parallelism.
-#[allow(unsafe_code)]
+#[allow(
+    unsafe_code,
+    reason = "gemm's raw-pointer API, called after every shape and stride is checked (SAFETY below)"
+)]
 fn gemm_with(
     dst: &mut ArrayViewMut2<f32>,
     a: ArrayView2<f32>,

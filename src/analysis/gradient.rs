@@ -85,6 +85,10 @@ pub fn input_gradient(
 /// `grad: [samples, inputs]`, with reusable buffers. `cancelled` is polled between blocks
 /// of [`GRAD_BLOCK_ROWS`] rows; when it returns true the call stops with
 /// [`Error::Cancelled`] (outputs partly written).
+#[allow(
+    clippy::too_many_arguments,
+    reason = "the hot kernel of the search: outputs and workspace are caller-owned so a step allocates nothing"
+)]
 pub(crate) fn input_gradient_into(
     net: &Network,
     layer: usize,

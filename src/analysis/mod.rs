@@ -39,3 +39,29 @@ pub struct Silent;
 impl Progress for Silent {
     fn set(&self, _fraction: f32) {}
 }
+
+/// Maps one step's own 0..1 progress into `lo..hi` of the whole job's, and passes the
+/// cancel request through (for core functions that run several steps).
+pub struct SubProgress<'a> {
+    inner: &'a dyn Progress,
+    lo: f32,
+    hi: f32,
+}
+
+impl<'a> SubProgress<'a> {
+    /// Reports `inner`'s fraction `lo + f x (hi - lo)` for this step's fraction `f`.
+    pub fn new(inner: &'a dyn Progress, lo: f32, hi: f32) -> Self {
+        SubProgress { inner, lo, hi }
+    }
+}
+
+impl Progress for SubProgress<'_> {
+    fn set(&self, fraction: f32) {
+        self.inner
+            .set(self.lo + fraction.clamp(0.0, 1.0) * (self.hi - self.lo));
+    }
+
+    fn cancelled(&self) -> bool {
+        self.inner.cancelled()
+    }
+}

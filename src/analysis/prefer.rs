@@ -384,14 +384,12 @@ pub fn prefer_by_ascent(
     Ok(relabel(found, units, position))
 }
 
+/// The output values to maximise, one per unit, and the map position (if any).
+type Targets = (Vec<usize>, Option<(usize, usize)>);
+
 /// The output values the search maximises: unit `u` itself on a layer with a vector output;
 /// channel `u` at the chosen position (default the centre) on a map, with that position.
-fn targets(
-    net: &Network,
-    layer: usize,
-    units: &[usize],
-    opts: &PreferOptions,
-) -> Result<(Vec<usize>, Option<(usize, usize)>)> {
+fn targets(net: &Network, layer: usize, units: &[usize], opts: &PreferOptions) -> Result<Targets> {
     let shape = net.output_shape(layer);
     let position = match shape {
         Shape::Map { .. } => Some(check_position(net, layer, opts.position)?),

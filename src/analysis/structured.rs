@@ -22,16 +22,16 @@
 //! sensitivity analysis of S. Han et al., "Learning both weights and connections for
 //! efficient neural networks" (NeurIPS 2015, section 3 and figure 5).
 
-use super::Progress;
 use super::compact::{Plan, Reason, apply};
 use super::forward::forward_trace;
 use super::prune::count_correct;
+use super::{Progress, SubProgress};
 use crate::error::{Error, Result};
 use crate::model::Network;
 use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeSource};
 
 /// How hidden units are ranked for removal.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
 pub enum Criterion {
     /// L1 norm of the incoming weights (Li et al. 2017).
     L1,
@@ -46,6 +46,16 @@ impl Criterion {
             Criterion::L1 => "l1",
             Criterion::Activation => "activation",
         }
+    }
+}
+
+impl Criterion {
+    /// Both criteria, in the order the fronts offer them.
+    pub const ALL: [Criterion; 2] = [Criterion::L1, Criterion::Activation];
+
+    /// True when ranking needs the reference data.
+    pub fn needs_probe(&self) -> bool {
+        *self == Criterion::Activation
     }
 }
 
@@ -115,6 +125,26 @@ pub fn mean_abs_activation(
         .into_iter()
         .map(|s| s.into_iter().map(|v| v / samples as f64).collect())
         .collect())
+}
+
+/// Per hidden layer, the score of each unit under `criterion`: [`l1_scores`], or
+/// [`mean_abs_activation`] over `probe`.
+///
+/// Errors: a usage error for `activation` without a probe; those of
+/// [`mean_abs_activation`].
+pub fn unit_scores(
+    net: &Network,
+    criterion: Criterion,
+    probe: Option<&mut dyn ProbeSource>,
+    progress: &dyn Progress,
+) -> Result<Vec<Vec<f64>>> {
+    match (criterion, probe) {
+        (Criterion::L1, _) => Ok(l1_scores(net)),
+        (Criterion::Activation, Some(p)) => mean_abs_activation(net, p, progress),
+        (Criterion::Activation, None) => Err(Error::usage(
+            "ranking units by mean |activation| needs probe data",
+        )),
+    }
 }
 
 /// The order in which a layer's units are removed: ascending score, ties (and NaN, which
@@ -286,6 +316,66 @@ pub fn unit_sweep(
         .collect())
 }
 
+/// The unit-removal curves of one criterion: every hidden layer pruned at once, and each
+/// hidden layer alone (the sensitivity curves).
+#[derive(Debug, Clone, PartialEq)]
+pub struct UnitCurves {
+    /// How units were ranked.
+    pub criterion: Criterion,
+    /// Every hidden layer pruned at once, one point per fraction.
+    pub all_layers: Vec<UnitSweepPoint>,
+    /// One hidden layer at a time: for each hidden layer in order, one point per fraction.
+    pub per_layer: Vec<UnitSweepPoint>,
+}
+
+/// Ranks units by `criterion` and runs [`unit_sweep`] at `fractions` with every hidden
+/// layer at once and with one layer at a time. `open` opens the labelled reference data
+/// afresh each time it is called (two or three times).
+///
+/// Errors: those of [`unit_scores`] and [`unit_sweep`].
+pub fn unit_curves(
+    net: &Network,
+    criterion: Criterion,
+    fractions: &[f64],
+    open: &mut dyn FnMut() -> Result<Box<dyn ProbeSource>>,
+    progress: &dyn Progress,
+) -> Result<UnitCurves> {
+    let scores = if criterion.needs_probe() {
+        let mut p = open()?;
+        unit_scores(
+            net,
+            criterion,
+            Some(&mut *p),
+            &SubProgress::new(progress, 0.0, 0.2),
+        )?
+    } else {
+        unit_scores(net, criterion, None, progress)?
+    };
+    let mut p = open()?;
+    let all_layers = unit_sweep(
+        net,
+        &scores,
+        fractions,
+        false,
+        &mut *p,
+        &SubProgress::new(progress, 0.2, 0.4),
+    )?;
+    let mut p = open()?;
+    let per_layer = unit_sweep(
+        net,
+        &scores,
+        fractions,
+        true,
+        &mut *p,
+        &SubProgress::new(progress, 0.4, 1.0),
+    )?;
+    Ok(UnitCurves {
+        criterion,
+        all_layers,
+        per_layer,
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -446,5 +536,48 @@ mod tests {
             &Silent,
         );
         assert!(e.is_err());
+    }
+
+    #[test]
+    fn unit_curves_are_the_two_sweeps_of_the_criterions_scores() {
+        let net = tiny();
+        let x = array![[1.0f32, 0.0], [0.0, 1.0], [1.0, 1.0], [0.5, 0.5]];
+        let labels = vec![0, 1, 0, 1];
+        let fr = [0.0, 0.25, 0.5, 0.75];
+        for criterion in Criterion::ALL {
+            let mut opened = 0;
+            let curves = unit_curves(
+                &net,
+                criterion,
+                &fr,
+                &mut || {
+                    opened += 1;
+                    Ok(Box::new(MemProbe::new(x.clone(), Some(labels.clone()))))
+                },
+                &Silent,
+            )
+            .unwrap();
+            assert_eq!(opened, if criterion.needs_probe() { 3 } else { 2 });
+            let scores = match criterion {
+                Criterion::L1 => l1_scores(&net),
+                Criterion::Activation => {
+                    mean_abs_activation(&net, &mut MemProbe::new(x.clone(), None), &Silent).unwrap()
+                }
+            };
+            for (per_layer, got) in [(false, &curves.all_layers), (true, &curves.per_layer)] {
+                let want = unit_sweep(
+                    &net,
+                    &scores,
+                    &fr,
+                    per_layer,
+                    &mut MemProbe::new(x.clone(), Some(labels.clone())),
+                    &Silent,
+                )
+                .unwrap();
+                assert_eq!(got, &want, "{criterion:?}, per layer {per_layer}");
+            }
+        }
+        // Ranking by activation without data is refused.
+        assert!(unit_scores(&net, Criterion::Activation, None, &Silent).is_err());
     }
 }

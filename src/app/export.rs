@@ -1,7 +1,7 @@
 //! Exports from the app: sparsity statistics (CSV or JSON, the columns of `receptor stats`),
 //! the screening report (the columns of `receptor screen`), the current map or the whole
 //! grid as PNG, and a pruned model. [`prepare`] copies what is needed out of the state (cheap:
-//! shared handles and small images); [`write`] does the work and writes the file atomically,
+//! shared handles and small images); [`write()`] does the work and writes the file atomically,
 //! off the frame thread.
 
 use super::colour::ScaleMode;

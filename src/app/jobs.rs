@@ -4,11 +4,12 @@
 //! that is no longer open is dropped.
 
 use super::state::{
-    ActivityResult, LayerPreferred, MainView, MapView, OpenError, OpenModel, OpenProbe, Prefs,
-    Results, ScreenResult, Selection, Slot, Tag, Task,
+    ActivityResult, CompactChoice, Criterion, LayerPreferred, MainView, MapView, OpenError,
+    OpenModel, OpenProbe, Prefs, Results, ScreenResult, Selection, Slot, Tag, Task, UnitCurves,
 };
 use super::worker::{self, Job, ProbeChoice, Reply};
 use super::{DEMO_PROBE, Pick, ReceptorApp};
+use crate::analysis::compact::CheckedCompaction;
 use crate::analysis::prefer::{PreferOptions, Preferred};
 use crate::error::Result;
 use crate::model::Network;
@@ -55,6 +56,17 @@ impl ReceptorApp {
                     self.notify_failure(failed);
                 }
             }
+            Reply::UnitCurves {
+                tag,
+                criterion,
+                result,
+            } => self.on_unit_curves(tag, criterion, result),
+            Reply::Compact {
+                tag,
+                choice,
+                result,
+            } => self.on_compact(tag, choice, result),
+            Reply::CompactSaved { result } => self.on_compact_saved(result),
             Reply::Exported { result } => match result {
                 Ok(p) => self.state.confirm(format!("Saved {}", p.display())),
                 Err(e) => self.state.fail(e.to_string()),
@@ -213,6 +225,7 @@ impl ReceptorApp {
                 Pick::Model => self.open_model(&p),
                 Pick::Probe => self.open_probe(&p),
                 Pick::Export(kind) => self.export_to(kind, p),
+                Pick::CompactedModel => self.save_compacted_to(p),
             }
         }
     }
@@ -321,8 +334,10 @@ impl ReceptorApp {
             && results.sweep.is_empty()
         {
             results.sweep.request();
-            self.worker.submit(Job::Sweep(p.data.clone()), net, tag);
+            self.worker
+                .submit(Job::Sweep(p.data.clone()), net.clone(), tag);
         }
+        self.request_pruning_work(&net);
     }
 
     /// Queues preferred-input batches for `layer` (all units, or only `missing` ones).
@@ -420,4 +435,72 @@ fn missing_preferred(results: &Results) -> Vec<(usize, Vec<usize>)> {
         })
         .filter(|(_, m): &(usize, Vec<usize>)| !m.is_empty())
         .collect()
+}
+
+/// The unit-removal curves and the Compact window's compaction: their requests and replies.
+impl ReceptorApp {
+    /// Queues the unit-removal curves of the chosen criterion when the pruning view shows
+    /// them (labelled probe), and the compaction of the Compact window's choice while the
+    /// window is open.
+    fn request_pruning_work(&mut self, net: &Arc<Network>) {
+        let tag = self.state.tag();
+        let Some(p) = &self.state.probe else {
+            return;
+        };
+        let criterion = self.state.unit_criterion;
+        let results = &mut self.state.results;
+        if self.state.view == MainView::Sparsity
+            && p.labelled()
+            && results
+                .unit_curves_of(criterion)
+                .is_none_or(|s| s.is_empty())
+        {
+            results.unit_curves.entry(criterion).or_default().request();
+            let data = p.data.clone();
+            self.worker
+                .submit(Job::UnitCurves { data, criterion }, net.clone(), tag);
+        }
+        let choice = self.state.compact.choice;
+        if self.state.compact.open && results.compact_of(choice).is_none_or(|s| s.is_empty()) {
+            results.compact.entry(choice).or_default().request();
+            let job = Job::Compact {
+                data: p.data.clone(),
+                choice,
+                check_box: p.path.is_some(),
+            };
+            self.worker.submit(job, net.clone(), tag);
+        }
+    }
+
+    fn on_unit_curves(&mut self, tag: Tag, criterion: Criterion, result: Result<Arc<UnitCurves>>) {
+        if self.state.results.is_current(tag) {
+            let slot = self.state.results.unit_curves.entry(criterion).or_default();
+            let failed = slot.settle(result, "unit-removal sweep");
+            self.notify_failure(failed);
+        }
+    }
+
+    fn on_compact(
+        &mut self,
+        tag: Tag,
+        choice: CompactChoice,
+        result: Result<Arc<CheckedCompaction>>,
+    ) {
+        if self.state.results.is_current(tag) {
+            let slot = self.state.results.compact.entry(choice).or_default();
+            let failed = slot.settle(result, "compaction");
+            self.notify_failure(failed);
+        }
+    }
+
+    fn on_compact_saved(&mut self, result: Result<PathBuf>) {
+        self.state.compact.saving = false;
+        match result {
+            Ok(p) => {
+                self.state.confirm(format!("Saved {}", p.display()));
+                self.state.compact.saved = Some(p);
+            }
+            Err(e) => self.state.fail(e.to_string()),
+        }
+    }
 }

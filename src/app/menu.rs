@@ -7,6 +7,9 @@ use egui::{Button, Key, KeyboardShortcut, Modifiers};
 use std::path::PathBuf;
 use std::time::Duration;
 
+/// The key of the Compact model shortcut (with Ctrl, or Cmd on macOS).
+pub const COMPACT_KEY: Key = Key::K;
+
 /// Draws the menu bar.
 pub fn menu_ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
     egui::MenuBar::new().ui(ui, |ui| {
@@ -41,7 +44,7 @@ fn shortcut(ui: &egui::Ui, key: Key) -> String {
         .format_shortcut(&KeyboardShortcut::new(Modifiers::COMMAND, key))
 }
 
-/// The File menu: models, probe data, exports and Quit.
+/// The File menu: models, probe data, exports, Compact model and Quit.
 fn file_menu_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) {
     let open = Button::new("Open model…").shortcut_text(shortcut(ui, Key::O));
     if ui.add(open).clicked() {
@@ -86,6 +89,10 @@ fn file_menu_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) 
             }
         }
     });
+    let compact = Button::new("Compact model…").shortcut_text(shortcut(ui, COMPACT_KEY));
+    if ui.add_enabled(state.model.is_some(), compact).clicked() {
+        actions.push(Action::CompactWindow);
+    }
     ui.separator();
     let quit = Button::new("Quit").shortcut_text(shortcut(ui, Key::Q));
     if ui.add(quit).clicked() {
@@ -137,6 +144,7 @@ pub fn help_ui(ctx: &egui::Context, open: &mut bool, longest_busy_frame: Duratio
                         ("Esc", "stop the running analysis"),
                         ("Ctrl+O / Ctrl+P", "open a model / probe data"),
                         ("Ctrl+E", "export sparsity statistics (CSV)"),
+                        ("Ctrl+K", "compact the model (remove provably dead units)"),
                     ] {
                         ui.strong(k);
                         ui.label(what);

@@ -6,6 +6,7 @@
 //! files are opened and exports written on helper threads.
 
 pub mod colour;
+pub mod compact;
 pub mod detail;
 pub mod export;
 mod jobs;
@@ -40,9 +41,10 @@ const DEMO_PROBE: &str = concat!(
     "/demo-models/solder-joints-probe.csv"
 );
 
-/// Opens the window and runs until it is closed. `model` is opened at start (the bundled
-/// demo when `None`). Returns 0 on a normal close, 2 when no window could be opened.
-pub fn run(model: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
+/// Opens the window and runs until it is closed. `start` says what to open first (the
+/// bundled demo when it names no model). Returns 0 on a normal close, 2 when no window
+/// could be opened.
+pub fn run(start: Start) -> ExitCode {
     let options = eframe::NativeOptions {
         viewport: egui::ViewportBuilder::default()
             .with_title("receptor")
@@ -51,10 +53,6 @@ pub fn run(model: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
             .with_drag_and_drop(true),
         persist_window: true,
         ..Default::default()
-    };
-    let start = Start {
-        model,
-        allow_outside_paths,
     };
     let result = eframe::run_native(
         "receptor",
@@ -75,6 +73,9 @@ pub fn run(model: Option<PathBuf>, allow_outside_paths: bool) -> ExitCode {
 pub struct Start {
     /// A model file, or `None` for the bundled demo.
     pub model: Option<PathBuf>,
+    /// Probe data to open once the model is in (`None`: the uniform probe, or the demo's
+    /// own probe for the demo).
+    pub probe: Option<PathBuf>,
     /// Allow side-file paths outside the model's folder.
     pub allow_outside_paths: bool,
 }
@@ -88,6 +89,8 @@ pub enum Pick {
     Probe,
     /// Where to save an export.
     Export(ExportKind),
+    /// Where to save the compacted model.
+    CompactedModel,
 }
 
 /// Requests the panels make; the app carries them out after drawing.
@@ -113,6 +116,10 @@ pub enum Action {
     Cancel,
     /// Queue again whatever a cancel left unfinished.
     RunAgain,
+    /// Show the Compact model window.
+    CompactWindow,
+    /// Show the save dialog for the compacted model.
+    SaveCompactedDialog,
     /// Show the keyboard and marks help.
     Help,
     /// Leave the app.
@@ -133,6 +140,8 @@ pub struct ReceptorApp {
     show_help: bool,
     /// What the panels asked for this frame.
     actions: Vec<Action>,
+    /// Probe data given at start, opened once the start model is in.
+    start_probe: Option<PathBuf>,
 }
 
 impl ReceptorApp {
@@ -153,6 +162,7 @@ impl ReceptorApp {
             dialog_open: false,
             show_help: false,
             actions: Vec::new(),
+            start_probe: start.probe,
         };
         if let Some(e) = app.worker.spawn_error() {
             let e = e.to_string();
@@ -271,6 +281,8 @@ impl ReceptorApp {
             }
             Action::Cancel => self.cancel(),
             Action::RunAgain => self.run_again(),
+            Action::CompactWindow => self.state.compact.open = true,
+            Action::SaveCompactedDialog => self.pick(Pick::CompactedModel),
             Action::Help => self.show_help = true,
             Action::Quit => ctx.send_viewport_cmd(egui::ViewportCommand::Close),
         }
@@ -303,9 +315,16 @@ impl ReceptorApp {
                         .and_then(|p| p.parent().map(Path::to_path_buf))
                 }),
             Pick::Export(_) => None,
+            Pick::CompactedModel => self
+                .state
+                .model
+                .as_ref()
+                .and_then(|m| m.path.as_ref())
+                .and_then(|p| p.parent().map(Path::to_path_buf)),
         };
         let file_name = match purpose {
             Pick::Export(kind) => Some(export::default_file_name(kind, &self.state)),
+            Pick::CompactedModel => Some(compact::default_file_name(&self.state)),
             _ => None,
         };
         self.worker.spawn_helper("receptor-dialog", move || {
@@ -329,6 +348,11 @@ impl ReceptorApp {
                         .add_filter(name, exts)
                         .save_file()
                 }
+                Pick::CompactedModel => d
+                    .set_title("Save the compacted model")
+                    .set_file_name(file_name.unwrap_or_default())
+                    .add_filter("receptor model (JSON)", &["json"])
+                    .save_file(),
             };
             Reply::Picked { purpose, path }
         });
@@ -340,6 +364,7 @@ impl ReceptorApp {
         let probe = KeyboardShortcut::new(Modifiers::COMMAND, Key::P);
         let stats = KeyboardShortcut::new(Modifiers::COMMAND, Key::E);
         let quit = KeyboardShortcut::new(Modifiers::COMMAND, Key::Q);
+        let compact = KeyboardShortcut::new(Modifiers::COMMAND, menu::COMPACT_KEY);
         ctx.input_mut(|i| {
             if i.consume_shortcut(&open) {
                 self.actions.push(Action::OpenModelDialog);
@@ -350,6 +375,9 @@ impl ReceptorApp {
             if i.consume_shortcut(&stats) {
                 self.actions
                     .push(Action::ExportDialog(ExportKind::StatsCsv));
+            }
+            if i.consume_shortcut(&compact) {
+                self.actions.push(Action::CompactWindow);
             }
             if i.consume_shortcut(&quit) {
                 self.actions.push(Action::Quit);
@@ -532,6 +560,15 @@ impl eframe::App for ReceptorApp {
         for a in std::mem::take(&mut self.actions) {
             self.perform(a, ctx);
         }
+        if self.state.model.is_some()
+            && let Some(p) = self.start_probe.take()
+        {
+            self.open_probe(&p);
+        }
+        if self.state.model.is_none() && self.state.open_error.is_some() {
+            // The start model did not open: its probe belongs to no model.
+            self.start_probe = None;
+        }
         self.request_needed();
     }
 
@@ -567,6 +604,9 @@ impl eframe::App for ReceptorApp {
                 });
         }
         egui::CentralPanel::default().show(ui, |ui| self.central_ui(ui));
+        if self.state.compact.open {
+            compact::window_ui(&ctx, &mut self.state, &mut self.actions);
+        }
         if self.show_help {
             menu::help_ui(&ctx, &mut self.show_help, self.state.run.longest_busy_frame);
         }

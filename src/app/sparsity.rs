@@ -1,10 +1,14 @@
 //! Sparsity and pruning: the histogram of |w| of a layer on a log axis with the near-zero
-//! tolerance marked, and, with a labelled probe, the accuracy after zeroing the smallest
-//! weights (the core's prune sweep). A pruned model can be saved from here.
+//! tolerance marked, and, with a labelled probe, the accuracy after pruning: zeroing the
+//! smallest weights (the core's prune sweep) and removing whole units ranked by a criterion
+//! (the core's unit sweeps), for the whole model and for one layer at a time. A pruned model
+//! can be saved from here, and the Compact model window opened.
 
-use super::state::{AppState, Selection, StatsResult};
+use super::state::{AppState, Criterion, Selection, Slot, StatsResult, UnitCurves};
 use super::{Action, ExportKind};
 use crate::model::Network;
+use crate::report::colour::{SERIES, series_rgb};
+use std::sync::Arc;
 
 /// The sparsity panel.
 #[derive(Default)]
@@ -40,9 +44,19 @@ impl SparsityPanel {
                     Some(stats) => magnitude_ui(ui, stats, &net, layer),
                 }
                 ui.add_space(10.0);
-                ui.heading("Accuracy after magnitude pruning");
-                prune_curve_ui(ui, state, actions);
+                ui.heading("Accuracy after pruning");
+                pruning_ui(ui, state, &net, actions);
                 ui.add_space(10.0);
+                ui.heading("Make the model smaller");
+                ui.horizontal(|ui| {
+                    if ui.button("Compact model…").clicked() {
+                        actions.push(Action::CompactWindow);
+                    }
+                    ui.label(
+                        "removes the units that cannot change any output in the input box \
+                         (exact), after a check on the probe",
+                    );
+                });
                 ui.horizontal(|ui| {
                     ui.add(
                         egui::Slider::new(&mut state.prune_fraction, 0.0..=0.99)
@@ -102,47 +116,257 @@ fn magnitude_ui(ui: &mut egui::Ui, stats: &StatsResult, net: &Network, layer: us
         });
 }
 
-/// The accuracy-after-pruning curve and its table, or what it still needs.
-fn prune_curve_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) {
-    let labelled = state.probe.as_ref().is_some_and(|p| p.labelled());
+/// One curve of a pruning plot.
+struct Series {
+    /// The name in the legend and the hover label.
+    name: String,
+    /// Index into the series palette ([`series_rgb`]); past the palette's length the line
+    /// is dashed so repeated colours stay apart.
+    colour: usize,
+    /// `[removed %, accuracy %]` per point.
+    points: Vec<[f64; 2]>,
+}
+
+impl Series {
+    fn colour32(&self) -> egui::Color32 {
+        super::colour::color32(series_rgb(self.colour))
+    }
+
+    fn dashed(&self) -> bool {
+        self.colour >= SERIES.len()
+    }
+}
+
+/// The pruning curves, or why they are missing: the whole-model plot (magnitude and
+/// unit-removal curves) beside the per-layer sensitivity plot, and a table of the numbers.
+fn pruning_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, actions: &mut Vec<Action>) {
+    let probe = state.probe.as_ref();
+    let labelled = probe.is_some_and(|p| p.labelled());
     if !labelled {
-        ui.label("The pruning curve needs probe data with a label column.");
+        let what = match probe {
+            Some(p) if p.path.is_none() => {
+                "The probe in use is uniform samples from the input box, which have no labels."
+                    .to_string()
+            }
+            Some(p) => format!("The probe in use ({}) has no label column.", p.data.origin),
+            None => "No probe data is loaded yet.".to_string(),
+        };
+        ui.label(format!(
+            "The pruning curves are missing: they measure accuracy, which needs probe data \
+             with a label column. {what}"
+        ));
         if ui.button("Open probe data…").clicked() {
             actions.push(Action::OpenProbeDialog);
         }
         return;
     }
-    let Some(points) = state.results.sweep.as_ref() else {
-        ui.weak("Running the pruning sweep…");
-        return;
-    };
-    let pts: Vec<[f64; 2]> = points
-        .iter()
-        .map(|p| [100.0 * p.fraction, 100.0 * p.accuracy])
-        .collect();
-    egui_plot::Plot::new("prune-curve")
-        .height(220.0)
+    ui.horizontal(|ui| {
+        ui.label("Rank units by:");
+        ui.radio_value(
+            &mut state.unit_criterion,
+            Criterion::L1,
+            "L1 norm of incoming weights (Li et al. 2017)",
+        );
+        ui.radio_value(
+            &mut state.unit_criterion,
+            Criterion::Activation,
+            "mean |activation| on the probe",
+        );
+    });
+    let criterion = state.unit_criterion;
+    let magnitude = state.results.sweep.clone();
+    let units = state
+        .results
+        .unit_curves_of(criterion)
+        .cloned()
+        .unwrap_or_default();
+    let hidden = net.layers().len().saturating_sub(1);
+    let mut whole = Vec::new();
+    if let Some(points) = magnitude.as_ref() {
+        whole.push(Series {
+            name: "weights zeroed, smallest |w| first".into(),
+            colour: 0,
+            points: points
+                .iter()
+                .map(|p| [100.0 * p.fraction, 100.0 * p.accuracy])
+                .collect(),
+        });
+    }
+    let mut per_layer = Vec::new();
+    if let Some(c) = units.as_ref() {
+        whole.push(Series {
+            name: format!(
+                "units removed, smallest {} first",
+                criterion_words(criterion)
+            ),
+            colour: 1,
+            points: c
+                .all_layers
+                .iter()
+                .map(|p| [100.0 * p.fraction, 100.0 * p.accuracy])
+                .collect(),
+        });
+        for l in 0..hidden {
+            per_layer.push(Series {
+                name: format!(
+                    "{} ({} units)",
+                    net.layers()[l].name,
+                    net.layers()[l].units()
+                ),
+                colour: 2 + l,
+                points: c
+                    .per_layer
+                    .iter()
+                    .filter(|p| p.layer == Some(l))
+                    .map(|p| [100.0 * p.fraction, 100.0 * p.accuracy])
+                    .collect(),
+            });
+        }
+    }
+    ui.columns(2, |cols| {
+        let ui = &mut cols[0];
+        ui.strong("Whole model: every layer pruned by the same fraction");
+        curves_plot_ui(ui, "prune-whole", "removed from every layer (%)", &whole);
+        slot_note_ui(ui, &magnitude, "magnitude pruning sweep");
+        slot_note_ui(ui, &units, "unit-removal sweep");
+        let ui = &mut cols[1];
+        ui.strong("Per layer: one layer's units removed, the others whole");
+        curves_plot_ui(ui, "prune-per-layer", "units removed from that layer (%)", &per_layer);
+        slot_note_ui(ui, &units, "per-layer sweep");
+        if units.is_ready() {
+            ui.weak(format!(
+                "Sensitivity analysis as in Han et al. 2015; each layer's units ranked by {}, smallest removed first.",
+                criterion_words(criterion)
+            ));
+        }
+    });
+    if let (Some(m), Some(c)) = (magnitude.as_ref(), units.as_ref()) {
+        table_ui(ui, net, m, c);
+    }
+}
+
+/// How a criterion ranks, in words.
+fn criterion_words(c: Criterion) -> &'static str {
+    match c {
+        Criterion::L1 => "L1 norm",
+        Criterion::Activation => "mean |activation|",
+    }
+}
+
+/// What a curve's result slot is doing, when it is not there yet.
+fn slot_note_ui<T>(ui: &mut egui::Ui, slot: &Slot<T>, what: &str) {
+    match slot {
+        Slot::Ready(_) => {}
+        Slot::Failed(msg) => {
+            ui.colored_label(ui.visuals().error_fg_color, msg);
+        }
+        Slot::Pending | Slot::Empty => {
+            ui.horizontal(|ui| {
+                ui.spinner();
+                ui.weak(format!("Running the {what}…"));
+            });
+        }
+    }
+}
+
+/// A plot of accuracy (%) against the fraction removed (%), one coloured line per series,
+/// with the legend below the plot so it never hides a curve.
+fn curves_plot_ui(ui: &mut egui::Ui, id: &str, x_label: &str, series: &[Series]) {
+    egui_plot::Plot::new(id)
+        .height(230.0)
         .allow_drag(false)
         .allow_zoom(false)
         .allow_scroll(false)
+        .allow_boxed_zoom(false)
+        .include_x(0.0)
+        .include_x(90.0)
         .include_y(0.0)
         .include_y(100.0)
-        .x_axis_label("weights zeroed in every layer (%)")
+        .x_axis_label(x_label)
         .y_axis_label("accuracy on the probe (%)")
+        // Grid lines every 10, 20 and 100 points on x and 5, 25 and 100 on y, so the fractions
+        // and accuracies are labelled (the default decimal spacer labels only 0 and 100).
+        .x_grid_spacer(egui_plot::uniform_grid_spacer(|_| [10.0, 20.0, 100.0]))
+        .y_grid_spacer(egui_plot::uniform_grid_spacer(|_| [5.0, 25.0, 100.0]))
         .show(ui, |p| {
-            p.line(egui_plot::Line::new("accuracy", pts.clone()).width(2.0));
-            p.points(egui_plot::Points::new("measured", pts).radius(3.5));
+            // The first series is drawn widest, so a later one lying exactly on it (curves
+            // that agree, as on the over-driven demo) leaves it visible as a border.
+            for (i, s) in series.iter().enumerate() {
+                let (width, radius) = if i == 0 { (4.0, 4.5) } else { (2.0, 3.0) };
+                let style = if s.dashed() {
+                    egui_plot::LineStyle::dashed_loose()
+                } else {
+                    egui_plot::LineStyle::Solid
+                };
+                p.line(
+                    egui_plot::Line::new(s.name.clone(), s.points.clone())
+                        .color(s.colour32())
+                        .style(style)
+                        .width(width),
+                );
+                p.points(
+                    egui_plot::Points::new(s.name.clone(), s.points.clone())
+                        .color(s.colour32())
+                        .radius(radius),
+                );
+            }
         });
+    ui.horizontal_wrapped(|ui| {
+        for s in series {
+            let (rect, _) = ui.allocate_exact_size(egui::vec2(22.0, 12.0), egui::Sense::hover());
+            let y = rect.center().y;
+            let stroke = egui::Stroke::new(3.0, s.colour32());
+            if s.dashed() {
+                ui.painter().line_segment(
+                    [rect.left_center(), egui::pos2(rect.left() + 8.0, y)],
+                    stroke,
+                );
+                ui.painter().line_segment(
+                    [egui::pos2(rect.right() - 8.0, y), rect.right_center()],
+                    stroke,
+                );
+            } else {
+                ui.painter()
+                    .line_segment([rect.left_center(), rect.right_center()], stroke);
+            }
+            ui.label(&s.name);
+            ui.add_space(8.0);
+        }
+    });
+}
+
+/// The numbers behind the curves: one row per curve, one column per fraction.
+fn table_ui(
+    ui: &mut egui::Ui,
+    net: &Network,
+    magnitude: &Arc<Vec<crate::analysis::prune::SweepPoint>>,
+    units: &Arc<UnitCurves>,
+) {
+    ui.add_space(6.0);
     egui::Grid::new("sweep-table").striped(true).show(ui, |ui| {
-        ui.strong("zeroed");
-        for p in points.iter() {
+        ui.strong("removed");
+        for p in magnitude.iter() {
             ui.monospace(format!("{:.0}%", 100.0 * p.fraction));
         }
         ui.end_row();
-        ui.strong("accuracy");
-        for p in points.iter() {
+        ui.strong("weights, by |w|");
+        for p in magnitude.iter() {
             ui.monospace(format!("{:.1}%", 100.0 * p.accuracy));
         }
         ui.end_row();
+        ui.strong("units, every layer");
+        for p in &units.all_layers {
+            ui.monospace(format!("{:.1}%", 100.0 * p.accuracy));
+        }
+        ui.end_row();
+        let hidden = net.layers().len().saturating_sub(1);
+        for l in 0..hidden {
+            ui.strong(format!("units of {} only", net.layers()[l].name));
+            for p in units.per_layer.iter().filter(|p| p.layer == Some(l)) {
+                ui.monospace(format!("{:.1}%", 100.0 * p.accuracy));
+            }
+            ui.end_row();
+        }
     });
+    ui.weak("Accuracy on the probe after removing each fraction.");
 }

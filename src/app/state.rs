@@ -5,12 +5,14 @@
 
 pub use crate::analysis::activity::{ActivityResult, UnitActivity};
 use crate::analysis::bounds::Bounds;
+use crate::analysis::compact::{CheckedCompaction, CompactRequest, DEFAULT_FOLD_TOLERANCE};
 pub use crate::analysis::gradient::Sensitivity;
 use crate::analysis::prefer::{PreferOptions, Preferred};
 use crate::analysis::prune::SweepPoint;
 use crate::analysis::screen::{ScreenReport, Status, UnitScreen};
 pub use crate::analysis::sparsity::MagnitudeHistogram;
 use crate::analysis::sparsity::{NetworkSparsity, UnitStats};
+pub use crate::analysis::structured::{Criterion, UnitCurves};
 use crate::model::Network;
 use crate::probe::ProbeData;
 use serde::{Deserialize, Serialize};
@@ -356,6 +358,12 @@ pub struct Results {
     pub sensitivity: HashMap<usize, Slot<Arc<Sensitivity>>>,
     /// The pruning curve (model and a labelled probe).
     pub sweep: Slot<Arc<Vec<SweepPoint>>>,
+    /// Unit-removal curves, whole model and per layer, per ranking criterion (model and a
+    /// labelled probe).
+    pub unit_curves: HashMap<Criterion, Slot<Arc<UnitCurves>>>,
+    /// The compaction and its output check, per choice of the Compact window (model and
+    /// probe: the check runs on the probe).
+    pub compact: HashMap<CompactChoice, Slot<Arc<CheckedCompaction>>>,
 }
 
 impl Results {
@@ -390,6 +398,18 @@ impl Results {
         self.activity = Slot::Empty;
         self.sensitivity.clear();
         self.sweep = Slot::Empty;
+        self.unit_curves.clear();
+        self.compact.clear();
+    }
+
+    /// The unit-removal curves of `criterion` (empty when never asked for).
+    pub fn unit_curves_of(&self, criterion: Criterion) -> Option<&Slot<Arc<UnitCurves>>> {
+        self.unit_curves.get(&criterion)
+    }
+
+    /// The compaction for `choice` (empty when never asked for).
+    pub fn compact_of(&self, choice: CompactChoice) -> Option<&Slot<Arc<CheckedCompaction>>> {
+        self.compact.get(&choice)
     }
 
     /// The sensitivity slot of `layer` (empty when never asked for).
@@ -422,6 +442,12 @@ impl Results {
         for s in self.sensitivity.values_mut() {
             f(s);
         }
+        for s in self.unit_curves.values_mut() {
+            f(s);
+        }
+        for s in self.compact.values_mut() {
+            f(s);
+        }
     }
 }
 
@@ -445,6 +471,40 @@ impl<T> SlotState for Slot<T> {
             *self = Slot::Empty;
         }
     }
+}
+
+/// What the Compact window asks for beyond the exact removals.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Default)]
+pub struct CompactChoice {
+    /// Also remove relu units never active on the probe in use (lossy; only with a probe
+    /// file, as `receptor compact --also dead-on-probe` needs `--probe`).
+    pub dead_on_probe: bool,
+    /// Fold units constant over the input box into the next layer's bias (within
+    /// [`DEFAULT_FOLD_TOLERANCE`], the default of `receptor compact --fold-constant`).
+    pub fold_constant: bool,
+}
+
+impl CompactChoice {
+    /// The core's request for this choice.
+    pub fn request(self) -> CompactRequest {
+        CompactRequest {
+            dead_on_probe: self.dead_on_probe,
+            fold_tolerance: self.fold_constant.then_some(DEFAULT_FOLD_TOLERANCE),
+        }
+    }
+}
+
+/// The Compact window: open or not, the user's choice, and what was saved.
+#[derive(Debug, Clone, Default)]
+pub struct CompactView {
+    /// The window is shown.
+    pub open: bool,
+    /// What to remove beyond the exact reasons.
+    pub choice: CompactChoice,
+    /// The compacted model is being written.
+    pub saving: bool,
+    /// The file the compacted model was last written to (offered for opening).
+    pub saved: Option<PathBuf>,
 }
 
 /// The running job as the status bar shows it.
@@ -543,6 +603,10 @@ pub struct AppState {
     pub order_cache: Option<(OrderKey, Arc<Vec<usize>>)>,
     /// Pruning fraction chosen for "Save pruned model".
     pub prune_fraction: f64,
+    /// How the pruning view ranks units for the unit-removal curves.
+    pub unit_criterion: Criterion,
+    /// The Compact window.
+    pub compact: CompactView,
 }
 
 /// Everything the grid order depends on.
@@ -578,6 +642,8 @@ impl AppState {
             allow_outside_paths,
             order_cache: None,
             prune_fraction: 0.5,
+            unit_criterion: Criterion::L1,
+            compact: CompactView::default(),
         }
     }
 

@@ -7,16 +7,22 @@
 //! `probe/`) with the same functions and defaults the command line uses, and its result is
 //! sent back as it is.
 
-use super::state::{ActivityResult, OpenProbe, ScreenResult, Sensitivity, StatsResult, Tag};
+use super::state::{
+    ActivityResult, CompactChoice, Criterion, OpenProbe, ScreenResult, Sensitivity, StatsResult,
+    Tag, UnitCurves,
+};
 use crate::analysis::activity::{ActivityOptions, trace_activity};
+use crate::analysis::compact::CheckedCompaction;
 use crate::analysis::prefer::{PreferOptions, Preferred};
 use crate::analysis::prune::{DEFAULT_SWEEP_FRACTIONS, SweepPoint};
 use crate::analysis::screen::ScreenOptions;
-use crate::analysis::{Progress, bounds, gradient, prefer, prune, screen, sparsity};
+use crate::analysis::{
+    Progress, bounds, compact, gradient, prefer, prune, screen, sparsity, structured,
+};
 use crate::error::{Error, Result};
 use crate::model::{LoadOptions, Network};
-use crate::probe::ProbeData;
 use crate::probe::memory::{MemoryProbe, read_probe};
+use crate::probe::{DEFAULT_UNIFORM_SAMPLES, DEFAULT_UNIFORM_SEED, ProbeData, ProbeSource};
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, AtomicU32, AtomicUsize, Ordering};
 use std::sync::mpsc::{Receiver, Sender, channel};
@@ -84,6 +90,23 @@ pub enum Job {
     },
     /// The pruning curve on a labelled probe.
     Sweep(Arc<ProbeData>),
+    /// The unit-removal curves (whole model and per layer) on a labelled probe.
+    UnitCurves {
+        /// The labelled probe.
+        data: Arc<ProbeData>,
+        /// How units are ranked.
+        criterion: Criterion,
+    },
+    /// Compaction of the model, checked on the probe (and on uniform box samples when
+    /// `check_box`, i.e. when the probe is a file, as `receptor compact --probe` does).
+    Compact {
+        /// The probe in use (the reference data).
+        data: Arc<ProbeData>,
+        /// What to remove beyond the exact reasons.
+        choice: CompactChoice,
+        /// Also compare the outputs on uniform box samples.
+        check_box: bool,
+    },
 }
 
 impl Job {
@@ -109,6 +132,13 @@ impl Job {
                 format!("Computing sensitivity of layer {}", lname(*layer))
             }
             Job::Sweep(_) => "Pruning sweep".into(),
+            Job::UnitCurves { criterion, .. } => {
+                format!(
+                    "Unit-removal sweeps (units ranked by {})",
+                    criterion.as_str()
+                )
+            }
+            Job::Compact { .. } => "Compacting the model and checking its outputs".into(),
         }
     }
 }
@@ -201,6 +231,29 @@ pub enum Reply {
         tag: Tag,
         /// Points or error.
         result: Result<Arc<Vec<SweepPoint>>>,
+    },
+    /// The unit-removal curves of one criterion.
+    UnitCurves {
+        /// Tag.
+        tag: Tag,
+        /// The criterion they were computed with.
+        criterion: Criterion,
+        /// Curves or error.
+        result: Result<Arc<UnitCurves>>,
+    },
+    /// A checked compaction.
+    Compact {
+        /// Tag.
+        tag: Tag,
+        /// The choice it was computed for.
+        choice: CompactChoice,
+        /// The compaction with its output check, or the error.
+        result: Result<Arc<CheckedCompaction>>,
+    },
+    /// The compacted model was written (or failed to be).
+    CompactSaved {
+        /// The file, or the error.
+        result: Result<PathBuf>,
     },
     /// A file export finished.
     Exported {
@@ -477,6 +530,41 @@ fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
             let result = prune::prune_sweep(net, &mut src, &DEFAULT_SWEEP_FRACTIONS, progress);
             Reply::Sweep {
                 tag,
+                result: not_cancelled(result)?.map(Arc::new),
+            }
+        }
+        Job::UnitCurves { data, criterion } => {
+            let result = structured::unit_curves(
+                net,
+                *criterion,
+                &DEFAULT_SWEEP_FRACTIONS,
+                &mut || Ok(Box::new(MemoryProbe::new(data.clone())) as Box<dyn ProbeSource>),
+                progress,
+            );
+            Reply::UnitCurves {
+                tag,
+                criterion: *criterion,
+                result: not_cancelled(result)?.map(Arc::new),
+            }
+        }
+        Job::Compact {
+            data,
+            choice,
+            check_box,
+        } => {
+            let mut uniform = check_box
+                .then(|| crate::probe::uniform(net, DEFAULT_UNIFORM_SAMPLES, DEFAULT_UNIFORM_SEED));
+            let result = compact::compact_checked(
+                net,
+                &choice.request(),
+                &mut || Ok(Box::new(MemoryProbe::new(data.clone())) as Box<dyn ProbeSource>),
+                uniform.as_deref_mut().map(|u| u as &mut dyn ProbeSource),
+                "the compacted model",
+                progress,
+            );
+            Reply::Compact {
+                tag,
+                choice: *choice,
                 result: not_cancelled(result)?.map(Arc::new),
             }
         }

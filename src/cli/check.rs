@@ -31,6 +31,7 @@ pub struct CheckArgs {
     #[arg(value_name = "MODEL")]
     pub model: PathBuf,
 
+    /// Where the reference data comes from.
     #[command(flatten)]
     pub probe: ProbeArgs,
 

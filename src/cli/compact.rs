@@ -6,13 +6,12 @@ use super::ProbeArgs;
 use super::output::{f32_text, f64_text};
 use crate::analysis::Silent;
 use crate::analysis::compact::{
-    CompactOptions, Compaction, Comparison, DEFAULT_CHECK_TOLERANCE, DEFAULT_FOLD_TOLERANCE,
-    compact, compare,
+    CheckData, CompactRequest, Compaction, Comparison, DEFAULT_CHECK_TOLERANCE,
+    DEFAULT_FOLD_TOLERANCE, LayerSummary, Reason, compact_checked,
 };
-use crate::analysis::screen::{ScreenOptions, Status, screen};
 use crate::error::{Error, Result};
-use crate::model::{Activation, LoadOptions, Network};
-use crate::probe;
+use crate::model::{LoadOptions, Network};
+use crate::probe::{self, ProbeSource};
 use clap::{Args, ValueEnum};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -41,6 +40,7 @@ pub struct CompactArgs {
     #[arg(long, value_name = "FILE")]
     pub tensors: Option<PathBuf>,
 
+    /// Where the reference data comes from.
     #[command(flatten)]
     pub probe: ProbeArgs,
 
@@ -70,56 +70,6 @@ pub struct CompactArgs {
     pub allow_outside_paths: bool,
 }
 
-/// True when `a` and `b` name the same existing file (or the same path).
-pub(crate) fn same_file(a: &Path, b: &Path) -> bool {
-    match (std::fs::canonicalize(a), std::fs::canonicalize(b)) {
-        (Ok(x), Ok(y)) => x == y,
-        _ => a == b,
-    }
-}
-
-/// The safetensors side files the model file at `model` refers to, resolved against its
-/// folder (best effort: an unreadable or malformed file gives none; loading reports it).
-fn side_files(model: &Path) -> Vec<PathBuf> {
-    let Ok(text) = std::fs::read(model) else {
-        return Vec::new();
-    };
-    let Ok(v) = serde_json::from_slice::<serde_json::Value>(&text) else {
-        return Vec::new();
-    };
-    let base = match model.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-        _ => PathBuf::from("."),
-    };
-    let mut out = Vec::new();
-    for layer in v["layers"].as_array().map(Vec::as_slice).unwrap_or(&[]) {
-        for key in ["weights", "bias"] {
-            if let Some(rel) = layer[key]["safetensors"].as_str() {
-                out.push(base.join(rel));
-            }
-        }
-    }
-    out
-}
-
-/// Refuses an output path that is the input model itself or one of its side files.
-pub(crate) fn refuse_overwriting_input(model: &Path, out: &Path, flag: &str) -> Result<()> {
-    if same_file(model, out) {
-        return Err(Error::usage(format!(
-            "{}: {flag} is the input model itself; choose another file (the input is never overwritten)",
-            out.display()
-        )));
-    }
-    if side_files(model).iter().any(|s| same_file(s, out)) {
-        return Err(Error::usage(format!(
-            "{}: {flag} is a side file of the input model {}; choose another file (the input is never overwritten)",
-            out.display(),
-            model.display()
-        )));
-    }
-    Ok(())
-}
-
 fn check_tolerance_arg(name: &str, v: f64) -> Result<()> {
     if v.is_finite() && v >= 0.0 {
         Ok(())
@@ -132,9 +82,9 @@ fn check_tolerance_arg(name: &str, v: f64) -> Result<()> {
 
 /// Runs `compact`.
 pub fn run(args: &CompactArgs) -> Result<ExitCode> {
-    refuse_overwriting_input(&args.model, &args.out, "--out")?;
+    crate::model::refuse_overwriting_model(&args.model, &args.out, "--out")?;
     if let Some(t) = &args.tensors {
-        refuse_overwriting_input(&args.model, t, "--tensors")?;
+        crate::model::refuse_overwriting_model(&args.model, t, "--tensors")?;
         crate::model::check_side_file_location(&args.out, t)?;
     }
     check_tolerance_arg("--fold-tolerance", args.fold_tolerance)?;
@@ -151,50 +101,52 @@ pub fn run(args: &CompactArgs) -> Result<ExitCode> {
             allow_outside_paths: args.allow_outside_paths,
         },
     )?;
-    let never_active = match (&args.probe.probe, dead_on_probe) {
-        (Some(p), true) => Some(never_active_on(&net, p)?),
-        _ => None,
-    };
-    let opts = CompactOptions {
+    let request = CompactRequest {
+        dead_on_probe,
         fold_tolerance: args.fold_constant.then_some(args.fold_tolerance),
-        never_active,
     };
     let origin = args.out.display().to_string();
-    let c = compact(&net, &opts, &origin)?;
-
     // The check: the reference data (the probe, else uniform box samples) always; uniform
     // box samples as well when a probe was given.
-    let (mut source, _seed) = args.probe.open(&net)?;
-    let on_ref = compare(&net, &c.network, &c.kept_inputs, &mut *source)?;
-    let on_box = match &args.probe.probe {
-        Some(_) => {
-            let mut u = probe::uniform(&net, args.probe.samples.get(), args.probe.probe_seed);
-            Some((
-                u.describe(),
-                compare(&net, &c.network, &c.kept_inputs, &mut *u)?,
-            ))
-        }
-        None => None,
-    };
+    let mut uniform = args
+        .probe
+        .probe
+        .as_ref()
+        .map(|_| probe::uniform(&net, args.probe.samples.get(), args.probe.probe_seed));
+    let box_name = uniform.as_ref().map(|u| u.describe());
+    let checked = compact_checked(
+        &net,
+        &request,
+        &mut || Ok(args.probe.open(&net)?.0),
+        uniform.as_deref_mut().map(|u| u as &mut dyn ProbeSource),
+        &origin,
+        &Silent,
+    )?;
+    let c = &checked.compaction;
+    let on_ref = &checked.reference;
+    let on_box = box_name.zip(checked.on_box.as_ref());
     let ref_name = match &args.probe.probe {
         Some(p) => p.display().to_string(),
         None => format!("the input box (uniform, seed {})", args.probe.probe_seed),
     };
-    require_within(&args.model, &ref_name, &on_ref, args.check_tolerance)?;
-    if !dead_on_probe && let Some((name, cmp)) = &on_box {
-        require_within(&args.model, name, cmp, args.check_tolerance)?;
+    if let Some((which, cmp)) = checked.refusal(args.check_tolerance) {
+        let data = match (which, &on_box) {
+            (CheckData::Box, Some((name, _))) => name.as_str(),
+            _ => ref_name.as_str(),
+        };
+        return Err(refused(&args.model, data, cmp, args.check_tolerance));
     }
 
     match &args.tensors {
         Some(t) => crate::model::write_json_with_tensors(&c.network, &args.out, t)?,
         None => crate::model::write_json(&c.network, &args.out)?,
     }
-    for line in summary_lines(&net, &c) {
+    for line in summary_lines(&net, c) {
         eprintln!("receptor: {line}");
     }
     eprintln!(
         "receptor: {}",
-        check_line(&ref_name, &on_ref, args.check_tolerance)
+        check_line(&ref_name, on_ref, args.check_tolerance)
     );
     if let Some((name, cmp)) = &on_box {
         let mut line = check_line(name, cmp, args.check_tolerance);
@@ -203,12 +155,11 @@ pub fn run(args: &CompactArgs) -> Result<ExitCode> {
         }
         eprintln!("receptor: {line}");
     }
-    if let Some((before, after)) = on_ref.correct {
-        let n = on_ref.samples as f64;
+    if let Some((before, after)) = on_ref.accuracy() {
         eprintln!(
             "receptor: accuracy on {ref_name}: {} before, {} after",
-            f64_text(before as f64 / n),
-            f64_text(after as f64 / n)
+            f64_text(before),
+            f64_text(after)
         );
     }
     match &args.tensors {
@@ -218,29 +169,8 @@ pub fn run(args: &CompactArgs) -> Result<ExitCode> {
     Ok(ExitCode::SUCCESS)
 }
 
-/// Per hidden layer, per unit: a relu unit never active on the probe at `path` (screened
-/// as `screen` does; `dead_proven` units are never active either).
-fn never_active_on(net: &Network, path: &Path) -> Result<Vec<Vec<bool>>> {
-    let mut source = probe::open(path, net)?;
-    let report = screen(net, &mut *source, &ScreenOptions::default(), &Silent)?;
-    let hidden = net.layers().len() - 1;
-    let mut out: Vec<Vec<bool>> = net.layers()[..hidden]
-        .iter()
-        .map(|l| vec![false; l.units()])
-        .collect();
-    for u in &report.units {
-        let relu = net.layers()[u.layer_index].activation == Activation::Relu;
-        out[u.layer_index][u.unit] =
-            relu && matches!(u.status, Status::DeadOnProbe | Status::DeadProven);
-    }
-    Ok(out)
-}
-
-/// Refuses (nothing written) when the outputs differ by more than `tol` on `data`.
-fn require_within(model: &Path, data: &str, cmp: &Comparison, tol: f64) -> Result<()> {
-    if cmp.max_abs_diff <= tol {
-        return Ok(());
-    }
+/// The refusal (nothing written) when the outputs differ by more than `tol` on `data`.
+fn refused(model: &Path, data: &str, cmp: &Comparison, tol: f64) -> Error {
     let outside = if cmp.outside_box > 0 {
         format!(
             "; {} of its {} rows lie outside the input box, where the removals are not proven",
@@ -249,7 +179,7 @@ fn require_within(model: &Path, data: &str, cmp: &Comparison, tol: f64) -> Resul
     } else {
         String::new()
     };
-    Err(Error::model(
+    Error::model(
         model,
         format!(
             "the compacted model's outputs differ from the original's by {} (more than --check-tolerance {}) at row {} of {data}{outside}; nothing was written",
@@ -257,12 +187,12 @@ fn require_within(model: &Path, data: &str, cmp: &Comparison, tol: f64) -> Resul
             f64_text(tol),
             cmp.worst_row
         ),
-    ))
+    )
 }
 
 /// The line reporting one output check.
 fn check_line(data: &str, cmp: &Comparison, tol: f64) -> String {
-    let verdict = if cmp.max_abs_diff <= tol {
+    let verdict = if cmp.within(tol) {
         "equal within"
     } else {
         "more than"
@@ -288,46 +218,16 @@ fn reasons_text(counts: &[(&str, usize)]) -> String {
 /// The summary of what was removed, one line per layer plus the input and the totals.
 pub fn summary_lines(original: &Network, c: &Compaction) -> Vec<String> {
     let mut lines = Vec::new();
-    let counts = c.counts(None);
-    let gone: usize = counts.iter().map(|x| x.1).sum();
-    let mut line = format!(
-        "input: {} -> {} features",
-        original.input().size,
-        c.network.input().size
-    );
-    if gone > 0 {
-        line.push_str(&format!(" (removed {gone}: {})", reasons_text(&counts)));
-    }
-    if c.zero_inputs_kept > 0 {
-        line.push_str(&format!(
-            "; {} features with only zero outgoing weights kept (image layout)",
-            c.zero_inputs_kept
-        ));
-    }
-    lines.push(line);
-    for (l, (a, b)) in original.layers().iter().zip(c.network.layers()).enumerate() {
-        let counts = c.counts(Some(l));
-        let gone: usize = counts.iter().map(|x| x.1).sum();
-        let mut line = format!(
-            "layer '{}' ({}): {} -> {} units",
-            a.name,
-            a.activation.name(),
-            a.units(),
-            b.units()
-        );
-        if gone > 0 {
-            line.push_str(&format!(" (removed {gone}: {})", reasons_text(&counts)));
-        }
-        if l + 1 == original.layers().len() {
-            line.push_str(" (output layer: never pruned)");
-        }
-        lines.push(line);
+    let summaries = c.layer_summaries(original);
+    let last = summaries.len() - 1;
+    for (i, s) in summaries.iter().enumerate() {
+        lines.push(summary_line(s, i == last, c.zero_inputs_kept));
     }
     let constants: Vec<String> = c
         .removed
         .iter()
         .filter_map(|r| match (r.layer, r.reason) {
-            (Some(l), crate::analysis::compact::Reason::Constant { value }) => Some(format!(
+            (Some(l), Reason::Constant { value }) => Some(format!(
                 "{}[{}] = {}",
                 original.layers()[l].name,
                 r.index,
@@ -348,4 +248,32 @@ pub fn summary_lines(original: &Network, c: &Compaction) -> Vec<String> {
         c.network.parameter_count()
     ));
     lines
+}
+
+/// One line of the summary: the input (`zero_inputs_kept` features kept with only zero
+/// weights) or one layer (`output` for the last).
+fn summary_line(s: &LayerSummary, output: bool, zero_inputs_kept: usize) -> String {
+    let gone = s.removed_count();
+    let mut line = match s.activation {
+        None => format!("input: {} -> {} features", s.before, s.after),
+        Some(act) => format!(
+            "layer '{}' ({}): {} -> {} units",
+            s.name,
+            act.name(),
+            s.before,
+            s.after
+        ),
+    };
+    if gone > 0 {
+        line.push_str(&format!(" (removed {gone}: {})", reasons_text(&s.counts)));
+    }
+    if s.layer.is_none() && zero_inputs_kept > 0 {
+        line.push_str(&format!(
+            "; {zero_inputs_kept} features with only zero outgoing weights kept (image layout)"
+        ));
+    }
+    if output {
+        line.push_str(" (output layer: never pruned)");
+    }
+    line
 }

@@ -26,6 +26,7 @@ pub struct ForwardArgs {
           default_value_t = probe::DEFAULT_CHUNK_ROWS_NONZERO)]
     pub chunk_rows: NonZeroUsize,
 
+    /// Output and loading options shared by every command.
     #[command(flatten)]
     pub common: CommonArgs,
 }

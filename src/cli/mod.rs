@@ -56,6 +56,11 @@ pub struct Cli {
     #[arg(value_name = "MODEL")]
     pub model: Option<PathBuf>,
 
+    /// Probe data (.csv or .npy) to open in the desktop app with MODEL (default: uniform
+    /// samples of the input box; the demo's own labelled probe for the demo).
+    #[arg(long, value_name = "DATA")]
+    pub probe: Option<PathBuf>,
+
     /// Allow the model's side files (safetensors) to be absolute paths or to lie outside the
     /// model's folder.
     #[arg(long)]

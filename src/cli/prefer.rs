@@ -84,6 +84,7 @@ pub struct PreferArgs {
     #[arg(long, value_name = "FILE")]
     pub png: Option<PathBuf>,
 
+    /// Output and loading options shared by every command.
     #[command(flatten)]
     pub common: CommonArgs,
 }

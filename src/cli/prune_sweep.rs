@@ -62,6 +62,7 @@ pub struct PruneSweepArgs {
     #[arg(long)]
     pub per_layer: bool,
 
+    /// Output and loading options shared by every command.
     #[command(flatten)]
     pub common: CommonArgs,
 }
@@ -107,7 +108,7 @@ pub fn zero_count(net: &Network) -> (usize, usize) {
 pub fn run(args: &PruneSweepArgs) -> Result<ExitCode> {
     // The sweep's fractions are checked by the sweep; --write-pruned by the same rule.
     if let Some(out) = &args.common.out {
-        super::compact::refuse_overwriting_input(&args.model, out, "--out")?;
+        crate::model::refuse_overwriting_model(&args.model, out, "--out")?;
     }
     if args.by == By::Unit {
         return run_units(args);
@@ -173,52 +174,7 @@ fn run_units(args: &PruneSweepArgs) -> Result<ExitCode> {
         ));
     }
     if let Some(f) = args.write_pruned {
-        check_fractions(&[f]).map_err(|e| e.for_option("write_pruned"))?;
-        if args.per_layer {
-            return Err(Error::usage(
-                "--write-pruned prunes every hidden layer; it cannot be combined with --per-layer",
-            ));
-        }
-        let Some(out) = &args.common.out else {
-            return Err(Error::usage(
-                "--write-pruned needs --out FILE: the file to write the pruned model to",
-            ));
-        };
-        let net = args.common.load(&args.model)?;
-        structured::check_fraction(&net, f, None).map_err(|e| {
-            Error::usage(format!("{}: --write-pruned {f}: {e}", args.model.display()))
-        })?;
-        let scores = unit_scores(&net, criterion, args.probe.as_deref())?;
-        let pruned = structured::prune_units(&net, &scores, f, None, &out.display().to_string())?;
-        if let Some(p) = &args.probe {
-            let mut source = probe::open(p, &net)?;
-            require_labels(&*source, p)?;
-            let pts = structured::unit_sweep(&net, &scores, &[f], false, &mut *source, &Silent)?;
-            if let Some(pt) = pts.first() {
-                eprintln!(
-                    "receptor: accuracy on {} after removing {} of each hidden layer's units ({}): {}",
-                    p.display(),
-                    super::output::f64_text(f),
-                    criterion.as_str(),
-                    super::output::f64_text(pt.accuracy)
-                );
-            }
-        }
-        crate::model::write_json(&pruned, out)?;
-        let sizes: Vec<String> = net
-            .layers()
-            .iter()
-            .zip(pruned.layers())
-            .map(|(a, b)| format!("'{}' {} -> {}", a.name, a.units(), b.units()))
-            .collect();
-        eprintln!(
-            "receptor: wrote {} (units per layer: {}; parameters {} -> {})",
-            out.display(),
-            sizes.join(", "),
-            net.parameter_count(),
-            pruned.parameter_count()
-        );
-        return Ok(ExitCode::SUCCESS);
+        return write_pruned_units(args, criterion, f);
     }
     let Some(probe_path) = &args.probe else {
         return Err(Error::usage(
@@ -256,6 +212,57 @@ fn run_units(args: &PruneSweepArgs) -> Result<ExitCode> {
     Ok(ExitCode::SUCCESS)
 }
 
+/// `prune-sweep --by unit --write-pruned FRAC --out FILE`: removes the fraction `f` of every
+/// hidden layer's lowest-ranked units and writes the physically smaller model (with the
+/// accuracy on the probe when one is given).
+fn write_pruned_units(args: &PruneSweepArgs, criterion: Criterion, f: f64) -> Result<ExitCode> {
+    check_fractions(&[f]).map_err(|e| e.for_option("write_pruned"))?;
+    if args.per_layer {
+        return Err(Error::usage(
+            "--write-pruned prunes every hidden layer; it cannot be combined with --per-layer",
+        ));
+    }
+    let Some(out) = &args.common.out else {
+        return Err(Error::usage(
+            "--write-pruned needs --out FILE: the file to write the pruned model to",
+        ));
+    };
+    let net = args.common.load(&args.model)?;
+    structured::check_fraction(&net, f, None)
+        .map_err(|e| Error::usage(format!("{}: --write-pruned {f}: {e}", args.model.display())))?;
+    let scores = unit_scores(&net, criterion, args.probe.as_deref())?;
+    let pruned = structured::prune_units(&net, &scores, f, None, &out.display().to_string())?;
+    if let Some(p) = &args.probe {
+        let mut source = probe::open(p, &net)?;
+        require_labels(&*source, p)?;
+        let pts = structured::unit_sweep(&net, &scores, &[f], false, &mut *source, &Silent)?;
+        if let Some(pt) = pts.first() {
+            eprintln!(
+                "receptor: accuracy on {} after removing {} of each hidden layer's units ({}): {}",
+                p.display(),
+                super::output::f64_text(f),
+                criterion.as_str(),
+                super::output::f64_text(pt.accuracy)
+            );
+        }
+    }
+    crate::model::write_json(&pruned, out)?;
+    let sizes: Vec<String> = net
+        .layers()
+        .iter()
+        .zip(pruned.layers())
+        .map(|(a, b)| format!("'{}' {} -> {}", a.name, a.units(), b.units()))
+        .collect();
+    eprintln!(
+        "receptor: wrote {} (units per layer: {}; parameters {} -> {})",
+        out.display(),
+        sizes.join(", "),
+        net.parameter_count(),
+        pruned.parameter_count()
+    );
+    Ok(ExitCode::SUCCESS)
+}
+
 /// Per hidden layer, the score of each unit under `criterion` (the probe is read once more
 /// for `activation`).
 fn unit_scores(
@@ -263,16 +270,14 @@ fn unit_scores(
     criterion: Criterion,
     probe_path: Option<&Path>,
 ) -> Result<Vec<Vec<f64>>> {
-    match (criterion, probe_path) {
-        (Criterion::L1, _) => Ok(structured::l1_scores(net)),
-        (Criterion::Activation, Some(p)) => {
-            let mut source = probe::open(p, net)?;
-            structured::mean_abs_activation(net, &mut *source, &Silent)
-        }
-        (Criterion::Activation, None) => {
-            Err(Error::usage("--criterion activation needs --probe DATA"))
-        }
-    }
+    let mut source = match probe_path {
+        Some(p) if criterion.needs_probe() => Some(probe::open(p, net)?),
+        _ => None,
+    };
+    let source = source
+        .as_deref_mut()
+        .map(|s| s as &mut dyn probe::ProbeSource);
+    structured::unit_scores(net, criterion, source, &Silent)
 }
 
 fn require_labels(source: &dyn probe::ProbeSource, path: &std::path::Path) -> Result<()> {

@@ -21,6 +21,7 @@ pub struct ScreenArgs {
     #[arg(value_name = "MODEL")]
     pub model: PathBuf,
 
+    /// Where the reference data comes from.
     #[command(flatten)]
     pub probe: ProbeArgs,
 
@@ -39,6 +40,7 @@ pub struct ScreenArgs {
           default_value_t = probe::DEFAULT_CHUNK_ROWS_NONZERO)]
     pub chunk_rows: NonZeroUsize,
 
+    /// Output and loading options shared by every command.
     #[command(flatten)]
     pub common: CommonArgs,
 }

@@ -21,6 +21,7 @@ pub struct StatsArgs {
     #[arg(long, allow_negative_numbers = true, value_name = "ABS")]
     pub zero_tol: Option<f64>,
 
+    /// Output and loading options shared by every command.
     #[command(flatten)]
     pub common: CommonArgs,
 }

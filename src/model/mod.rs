@@ -15,7 +15,7 @@ mod validate;
 mod write;
 
 pub use network::Network;
-pub use paths::resolve_side_path;
+pub use paths::{refuse_overwriting_model, resolve_side_path};
 pub use tensors_write::{check_side_file_location, tensors_bytes, write_json_with_tensors};
 pub use types::{
     Activation, Conv2d, InputSpec, Layer, LayerKind, Layout, NetworkParts, Pool2d,

@@ -1,5 +1,5 @@
 //! Resolving side-file paths safely: relative to the model file, and inside its folder
-//! unless the user allows otherwise.
+//! unless the user allows otherwise; and refusing to write over a model or its side files.
 
 use crate::error::{Error, Result};
 use std::path::{Component, Path, PathBuf};
@@ -51,6 +51,58 @@ pub fn resolve_side_path(
     } else {
         base_dir.join(p)
     })
+}
+
+/// True when `a` and `b` name the same existing file (or the same path).
+fn same_file(a: &Path, b: &Path) -> bool {
+    match (std::fs::canonicalize(a), std::fs::canonicalize(b)) {
+        (Ok(x), Ok(y)) => x == y,
+        _ => a == b,
+    }
+}
+
+/// The safetensors side files the model file at `model` refers to, resolved against its
+/// folder (best effort: an unreadable or malformed file gives none; loading reports it).
+fn side_files(model: &Path) -> Vec<PathBuf> {
+    let Ok(text) = std::fs::read(model) else {
+        return Vec::new();
+    };
+    let Ok(v) = serde_json::from_slice::<serde_json::Value>(&text) else {
+        return Vec::new();
+    };
+    let base = match model.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+        _ => PathBuf::from("."),
+    };
+    let mut out = Vec::new();
+    for layer in v["layers"].as_array().map(Vec::as_slice).unwrap_or(&[]) {
+        for key in ["weights", "bias"] {
+            if let Some(rel) = layer[key]["safetensors"].as_str() {
+                out.push(base.join(rel));
+            }
+        }
+    }
+    out
+}
+
+/// Refuses an output path that is the model file `model` itself or one of its side files;
+/// `what` names the output in the message (an option such as `--out`, or "the chosen
+/// file").
+pub fn refuse_overwriting_model(model: &Path, out: &Path, what: &str) -> Result<()> {
+    if same_file(model, out) {
+        return Err(Error::usage(format!(
+            "{}: {what} is the input model itself; choose another file (the input is never overwritten)",
+            out.display()
+        )));
+    }
+    if side_files(model).iter().any(|s| same_file(s, out)) {
+        return Err(Error::usage(format!(
+            "{}: {what} is a side file of the input model {}; choose another file (the input is never overwritten)",
+            out.display(),
+            model.display()
+        )));
+    }
+    Ok(())
 }
 
 #[cfg(test)]

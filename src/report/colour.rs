@@ -1,4 +1,5 @@
-//! receptor's own diverging colour key for signed maps (weights, preferred inputs, sensitivities).
+//! receptor's own diverging colour key for signed maps (weights, preferred inputs, sensitivities),
+//! and the colours of the curves of line plots ([`SERIES`]).
 //!
 //! The stops live in `assets/colour-key.json` as CIELAB (D65) colours at positions `t` in
 //! `[-1, 1]`; they are parsed once, at first use, and a lookup table of sRGB colours is built from
@@ -509,6 +510,28 @@ pub fn legend_description(max_abs: f32, label: &str) -> String {
     }
 }
 
+/// Colours of the series of a line plot, one per curve: the palette of M. Okabe and K. Ito,
+/// "Color Universal Design (CUD): how to make figures and presentations that are friendly to
+/// colorblind people" (2008), in the order sky blue, orange, bluish green, vermillion,
+/// reddish purple, blue, yellow. Their black is left out: it vanishes on a dark background.
+/// The test `series_colours_stay_apart` checks the pairwise CIELAB distances, also under
+/// simulated protanopia and deuteranopia.
+pub const SERIES: [[u8; 3]; 7] = [
+    [0x56, 0xB4, 0xE9],
+    [0xE6, 0x9F, 0x00],
+    [0x00, 0x9E, 0x73],
+    [0xD5, 0x5E, 0x00],
+    [0xCC, 0x79, 0xA7],
+    [0x00, 0x72, 0xB2],
+    [0xF0, 0xE4, 0x42],
+];
+
+/// The colour of series `i` (the palette repeats after [`SERIES`]`.len()` series; a plot with
+/// more curves tells the repeats apart by line style).
+pub fn series_rgb(i: usize) -> [u8; 3] {
+    SERIES[i % SERIES.len()]
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -918,5 +941,36 @@ mod tests {
             "weight colour key, -0.42 to +0.42"
         );
         assert_eq!(legend_description(0.0, ""), "colour key, all values zero");
+    }
+
+    #[test]
+    fn series_colours_stay_apart() {
+        // Pairwise CIELAB distance (CIE 1976) of the plot series colours, with normal vision
+        // and under Machado et al. (2009) protanopia and deuteranopia; and each colour's
+        // distance from egui's dark panel grey (27, 27, 27). Measured minima: 26.4 (sky
+        // blue / blue), 20.7 (protanopia), 17.0 (deuteranopia, orange / yellow), 55.0.
+        let normal = |c: [u8; 3]| srgb8_to_lab(c);
+        let prot = |c: [u8; 3]| simulate_lab(&PROTANOPIA, c);
+        let deut = |c: [u8; 3]| simulate_lab(&DEUTERANOPIA, c);
+        for (vision, lab, least) in [
+            ("normal", &normal as &dyn Fn([u8; 3]) -> [f64; 3], 25.0),
+            ("protanopia", &prot, 15.0),
+            ("deuteranopia", &deut, 15.0),
+        ] {
+            for (i, a) in SERIES.iter().enumerate() {
+                for b in &SERIES[i + 1..] {
+                    let d = delta_e76(lab(*a), lab(*b));
+                    assert!(d >= least, "{vision}: {a:?} and {b:?} only {d:.1} apart");
+                }
+            }
+        }
+        let dark = srgb8_to_lab([27, 27, 27]);
+        for c in SERIES {
+            assert!(
+                delta_e76(srgb8_to_lab(c), dark) >= 50.0,
+                "{c:?} on dark grey"
+            );
+        }
+        assert_eq!(series_rgb(SERIES.len()), SERIES[0]);
     }
 }

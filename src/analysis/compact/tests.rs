@@ -453,3 +453,133 @@ fn compare_counts_rows_outside_the_box() {
     assert_eq!(cmp.worst_row, 1);
     assert!(cmp.correct.is_none());
 }
+
+/// The net of `dead_on_probe_needs_the_option_and_screening_finds_it` with its probe
+/// (x0 <= 0.4, so u0 = relu(x0 - 0.5) is never active on it) and labels 0.
+fn off_probe_net() -> (Network, Array2<f32>) {
+    let h = layer(
+        "h",
+        Activation::Relu,
+        array![[1.0, 0.0], [0.0, 1.0]],
+        array![-0.5, 0.0],
+    );
+    let o = layer("out", Activation::Identity, array![[1.0, 1.0]], array![0.0]);
+    let net = Network::new("test", "n", input(2), vec![h, o]).unwrap();
+    let probe = Array2::from_shape_fn((25, 2), |(r, c)| {
+        if c == 0 {
+            (r / 5) as f32 / 10.0
+        } else {
+            (r % 5) as f32 / 4.0
+        }
+    });
+    (net, probe)
+}
+
+#[test]
+fn checked_compaction_refuses_by_the_one_rule_both_fronts_use() {
+    let (net, probe) = off_probe_net();
+    let labels = Some(vec![0; probe.nrows()]);
+    let open = || -> Result<Box<dyn ProbeSource>> {
+        Ok(Box::new(MemProbe::new(probe.clone(), labels.clone())))
+    };
+    // The box corner x = (1, 0) is where u0 is active: out = 0.5 there, 0 after removal.
+    let corner = array![[1.0f32, 0.0]];
+    let lossy = CompactRequest {
+        dead_on_probe: true,
+        fold_tolerance: None,
+    };
+    let checked = compact_checked(
+        &net,
+        &lossy,
+        &mut || open(),
+        Some(&mut MemProbe::new(corner.clone(), None)),
+        "t",
+        &Silent,
+    )
+    .unwrap();
+    // never_active from screening: u0 is dead on the probe, u1 is not.
+    assert_eq!(
+        checked.compaction.counts(Some(0)),
+        vec![("dead_on_probe", 1)]
+    );
+    assert_eq!(checked.reference.samples, 25);
+    assert_eq!(checked.reference.max_abs_diff, 0.0);
+    // One output unit: every prediction is class 0, so accuracy is 1 before and after.
+    assert_eq!(checked.reference.accuracy(), Some((1.0, 1.0)));
+    let on_box = checked.on_box.as_ref().unwrap();
+    assert_abs_diff_eq!(on_box.max_abs_diff, 0.5, epsilon = 1e-7);
+    // Lossy removals may change outputs off the reference data: not refused.
+    assert_eq!(checked.refusal(DEFAULT_CHECK_TOLERANCE), None);
+    // The same difference on the box refuses an exact request ...
+    let mut exact = checked.clone();
+    exact.request.dead_on_probe = false;
+    assert_eq!(
+        exact.refusal(DEFAULT_CHECK_TOLERANCE).map(|r| r.0),
+        Some(CheckData::Box)
+    );
+    // ... and a difference on the reference data refuses any request.
+    let mut bad = checked.clone();
+    bad.reference.max_abs_diff = 2e-5;
+    assert_eq!(
+        bad.refusal(DEFAULT_CHECK_TOLERANCE).map(|r| r.0),
+        Some(CheckData::Reference)
+    );
+    bad.reference.max_abs_diff = f64::NAN;
+    assert!(
+        bad.refusal(DEFAULT_CHECK_TOLERANCE).is_some(),
+        "NaN refuses"
+    );
+
+    // Exact request: nothing qualifies, the check still runs.
+    let plain = compact_checked(
+        &net,
+        &CompactRequest::default(),
+        &mut || open(),
+        None,
+        "t",
+        &Silent,
+    )
+    .unwrap();
+    assert!(plain.compaction.removed.is_empty());
+    assert!(plain.on_box.is_none());
+    assert_eq!(plain.refusal(DEFAULT_CHECK_TOLERANCE), None);
+}
+
+#[test]
+fn never_active_takes_relu_units_screening_found_dead() {
+    let (net, probe) = off_probe_net();
+    let report = screen(
+        &net,
+        &mut MemProbe::new(probe, None),
+        &ScreenOptions::default(),
+        &Silent,
+    )
+    .unwrap();
+    assert_eq!(never_active(&net, &report.units), vec![vec![true, false]]);
+    // A tanh unit is never taken, whatever its status.
+    let mut parts = net.to_parts();
+    parts.layers[0].activation = Activation::Tanh;
+    let t = Network::from_parts(parts, "t").unwrap();
+    let mut units = report.units.clone();
+    units[0].status = Status::DeadOnProbe;
+    assert_eq!(never_active(&t, &units), vec![vec![false, false]]);
+}
+
+#[test]
+fn layer_summaries_list_every_removal_with_original_numbers() {
+    let net = planted();
+    let c = compact(&net, &CompactOptions::default(), "t").unwrap();
+    let s = c.layer_summaries(&net);
+    assert_eq!(s.len(), 3, "the input and two layers");
+    assert_eq!(
+        (s[0].name.as_str(), s[0].before, s[0].after),
+        ("input", 3, 2)
+    );
+    assert_eq!(s[0].removed, vec![(2, Reason::ZeroOutgoing)]);
+    assert_eq!(s[0].activation, None);
+    assert_eq!((s[1].name.as_str(), s[1].before, s[1].after), ("h", 4, 3));
+    assert_eq!(s[1].removed, vec![(1, Reason::DeadProven)]);
+    assert_eq!(s[1].counts, vec![("dead_proven", 1)]);
+    assert_eq!(s[2].removed_count(), 0);
+    assert_eq!(s[2].activation, Some(Activation::Softmax));
+}
