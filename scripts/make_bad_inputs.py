@@ -5,6 +5,10 @@ Standard library only, deterministic. Each case gets one line in INDEX.tsv:
     file <TAB> kind (model | probe) <TAB> text the error message must contain <TAB> reason
 `tests/bad_inputs.rs` runs the receptor binary on every case: `receptor stats FILE` for
 models, `receptor screen good-model.json --probe FILE` for probe files.
+
+ONNX cases are encoded here with a few lines of protobuf wire format (varints and
+length-delimited fields), using the field numbers of the published ONNX specification
+(onnx/onnx.proto; the same numbers as src/model/onnx/proto.rs).
 """
 import json
 import os
@@ -305,6 +309,8 @@ def main():
     probe("npy-bad-header.npy", npy("x", "<f4", (1, 4), row, header="{'descr': <f4, 'shape': ((}"), "npy-bad-header.npy", "a header that is not a Python dict")
     probe("npy-zero-rows.npy", npy("x", "<f4", (0, 4), b""), "no samples", "an array with no rows")
 
+    onnx_cases(rng)
+
     cases.sort()
     with open(os.path.join(HERE, "INDEX.tsv"), "w") as f:
         f.write("# file\tkind\tthe message must contain\treason\n")
@@ -312,6 +318,144 @@ def main():
             if kind != "side":
                 f.write(f"{name}\t{kind}\t{expect}\t{reason}\n")
     print(len([c for c in cases if c[1] != "side"]), "cases")
+
+
+# --- ONNX: protobuf wire format (https://protobuf.dev/programming-guides/encoding/) ----------
+
+def varint(n):
+    n &= (1 << 64) - 1  # negative int64 values are ten bytes of two's complement
+    out = bytearray()
+    while True:
+        b = n & 0x7F
+        n >>= 7
+        if n:
+            out.append(b | 0x80)
+        else:
+            out.append(b)
+            return bytes(out)
+
+
+def f_int(num, v):
+    return varint(num << 3) + varint(v)
+
+
+def f_bytes(num, b):
+    if isinstance(b, str):
+        b = b.encode()
+    return varint(num << 3 | 2) + varint(len(b)) + b
+
+
+def f_float(num, v):
+    return varint(num << 3 | 5) + struct.pack("<f", v)
+
+
+def o_tensor(name, dims, values=None, data_type=1, raw=None, ext=None, typed=None):
+    """TensorProto: dims 1, data_type 2, float_data 4, name 8, raw_data 9,
+    external_data 13, data_location 14."""
+    b = b"".join(f_int(1, d) for d in dims) + f_int(2, data_type) + f_bytes(8, name)
+    if typed is not None:
+        b += f_bytes(4, struct.pack(f"<{len(typed)}f", *typed))
+    elif ext is not None:
+        b += b"".join(f_bytes(13, f_bytes(1, k) + f_bytes(2, v)) for k, v in ext) + f_int(14, 1)
+    else:
+        if raw is None:
+            raw = struct.pack(f"<{len(values)}f", *values)
+        b += f_bytes(9, raw)
+    return b
+
+
+def o_value(name, dims, elem=1):
+    """ValueInfoProto {name 1, type 2: TypeProto {tensor_type 1: {elem_type 1, shape 2:
+    TensorShapeProto {dim 1: Dimension {dim_value 1 | dim_param 2}}}}}."""
+    shape = b"".join(f_bytes(1, f_bytes(2, d) if isinstance(d, str) else f_int(1, d)) for d in dims)
+    return f_bytes(1, name) + f_bytes(2, f_bytes(1, f_int(1, elem) + f_bytes(2, shape)))
+
+
+def o_attr(name, v):
+    """AttributeProto: name 1, f 2, i 3, t 5, type 20 (FLOAT 1, INT 2, TENSOR 4)."""
+    if isinstance(v, float):
+        return f_bytes(1, name) + f_float(2, v) + f_int(20, 1)
+    if isinstance(v, bytes):
+        return f_bytes(1, name) + f_bytes(5, v) + f_int(20, 4)
+    return f_bytes(1, name) + f_int(3, v) + f_int(20, 2)
+
+
+def o_node(op, inputs, outputs, name, **attrs):
+    """NodeProto: input 1, output 2, name 3, op_type 4, attribute 5."""
+    return (b"".join(f_bytes(1, i) for i in inputs) + b"".join(f_bytes(2, o) for o in outputs)
+            + f_bytes(3, name) + f_bytes(4, op) + b"".join(f_bytes(5, o_attr(k, v)) for k, v in attrs.items()))
+
+
+def o_model(nodes, inits, inputs, outputs, meta=()):
+    """ModelProto {ir_version 1, graph 7: GraphProto {node 1, name 2, initializer 5,
+    input 11, output 12}, opset_import 8 {domain 1, version 2}, metadata_props 14}."""
+    g = (b"".join(f_bytes(1, n) for n in nodes) + f_bytes(2, "corpus")
+         + b"".join(f_bytes(5, t) for t in inits) + b"".join(f_bytes(11, v) for v in inputs)
+         + b"".join(f_bytes(12, v) for v in outputs))
+    return (f_int(1, 8) + f_bytes(7, g) + f_bytes(8, f_bytes(1, "") + f_int(2, 17))
+            + b"".join(f_bytes(14, f_bytes(1, k) + f_bytes(2, v)) for k, v in meta))
+
+
+W1 = [0.5, -0.25, 0.125, 1.0, 1.0, 2.0, -3.0, 0.5, -0.5, 0.5, 0.25, -1.0]
+
+
+def onnx_good(first=None, w1=None, inputs=None, outputs=None, meta=(), tail=None, middle=None):
+    """input [batch, 4] -> Gemm (3 units) -> Relu -> Gemm (2 units) -> Softmax, with pieces
+    replaceable for each case."""
+    inits = [w1 or o_tensor("fc1.weight", [3, 4], W1), o_tensor("fc1.bias", [3], [0.1, -0.2, 0.0]),
+             o_tensor("fc2.weight", [2, 3], [1.0, -1.0, 0.5, -1.0, 1.0, 0.25]), o_tensor("fc2.bias", [2], [0.0, 0.1])]
+    nodes = [first or o_node("Gemm", ["input", "fc1.weight", "fc1.bias"], ["h1"], "/fc1/Gemm", transB=1)]
+    nodes += middle if middle is not None else [o_node("Relu", ["h1"], ["a1"], "/fc1/Relu")]
+    nodes += [o_node("Gemm", ["a1", "fc2.weight", "fc2.bias"], ["h2"], "/fc2/Gemm", transB=1),
+              tail or o_node("Softmax", ["h2"], ["output"], "/out/Softmax", axis=-1)]
+    return o_model(nodes, inits, inputs or [o_value("input", ["batch", 4])], outputs or [o_value("output", ["batch", 2])], meta)
+
+
+def onnx_cases(rng):
+    def case(name, data, expect, reason):
+        put(name, data, "model", expect, reason)
+
+    good_onnx = onnx_good()
+    put("good-model.onnx", good_onnx, "side", "", "")
+    case("onnx-empty.onnx", b"", "it has no graph", "an empty .onnx file")
+    case("onnx-garbage.onnx", bytes(rng.randrange(256) for _ in range(3000)), "not a readable ONNX file", "random bytes")
+    case("onnx-truncated.onnx", good_onnx[:-9], "not a readable ONNX file", "a model cut short")
+    case("UPPER-CASE.ONNX", b"\x3a\xff\xff\xff\xff\x0f", "not a readable ONNX file", "a .ONNX extension in capitals is read as ONNX (a lying length)")
+    case("onnx-huge-dims.onnx", onnx_good(w1=o_tensor("fc1.weight", [10**12, 10**12], W1)), "absurd dimensions", "dimensions whose product overflows")
+    case("onnx-lying-size.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 10**9], W1)), "holds 48", "declares 3 x 10^9 weights, holds 12")
+    case("onnx-typed-short.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 4], typed=W1[:5])), "the file holds 5", "float_data with 5 of 12 values")
+    case("onnx-negative-dim.onnx", onnx_good(w1=o_tensor("fc1.weight", [-3, 4], W1)), "negative size -3", "a negative dimension")
+    case("onnx-int-weights.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 4], raw=b"\0" * 48, data_type=6)), "int32", "int32 weights")
+    case("onnx-external-outside.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 4], ext=[("location", "../secret.bin")])), "climbs out of the model's folder", "external data outside the model's folder")
+    case("onnx-external-absolute.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 4], ext=[("location", "/etc/passwd")])), "is absolute", "external data at an absolute path")
+    put("onnx-short.bin", b"\0" * 10, "side", "", "")
+    case("onnx-external-short.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 4], ext=[("location", "onnx-short.bin")])), "which has 10 bytes", "external data file shorter than the tensor")
+    case("onnx-external-missing.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 4], ext=[("location", "no-such.bin")])), "cannot open external data 'no-such.bin'", "external data file missing")
+    case("onnx-external-length.onnx", onnx_good(w1=o_tensor("fc1.weight", [3, 4], ext=[("location", "onnx-short.bin"), ("length", "99999999999")])), "external data length is 99999999999", "external data length that disagrees with the shape")
+    case("onnx-unsupported-op.onnx", onnx_good(middle=[o_node("Cos", ["h1"], ["a1"], "cosine")]), "node 'cosine' (Cos, node 2 of 4)", "an operator receptor does not read")
+    case("onnx-conv-group.onnx", onnx_good(middle=[o_node("Conv", ["h1", "fc1.bias"], ["a1"], "conv", group=2)]), "node 'conv' (Conv, node 2 of 4)", "a grouped convolution")
+    case("onnx-avgpool-pad.onnx", onnx_good(middle=[o_node("AveragePool", ["h1"], ["a1"], "pool", count_include_pad=0)]), "node 'pool' (AveragePool, node 2 of 4)", "average pooling that leaves padding out")
+    case("onnx-residual.onnx", onnx_good(middle=[o_node("Relu", ["h1"], ["r1"], "relu"), o_node("Add", ["r1", "h1"], ["a1"], "residual")]), "so the graph branches", "a residual connection")
+    case("onnx-two-inputs.onnx", onnx_good(inputs=[o_value("input", ["batch", 4]), o_value("extra", ["batch", 4])]), "has 2 inputs", "two graph inputs")
+    case("onnx-two-outputs.onnx", onnx_good(outputs=[o_value("output", ["batch", 2]), o_value("h1", ["batch", 3])]), "has 2 outputs", "two graph outputs")
+    case("onnx-dynamic-image.onnx", onnx_good(inputs=[o_value("input", ["batch", 1, "height", 2])]), "not a fixed positive size", "an image input of unknown height")
+    case("onnx-rank3.onnx", onnx_good(inputs=[o_value("input", ["batch", 2, 2])]), "has 3 dimensions", "a 3-D input")
+    case("onnx-transa.onnx", onnx_good(first=o_node("Gemm", ["input", "fc1.weight", "fc1.bias"], ["h1"], "g", transA=1, transB=1)), "transA = 1", "Gemm with transA")
+    case("onnx-softmax-axis.onnx", onnx_good(tail=o_node("Softmax", ["h2"], ["output"], "sm", axis=0)), "axis 0", "softmax over the batch axis")
+    case("onnx-leaky-alpha.onnx", onnx_good(middle=[o_node("LeakyRelu", ["h1"], ["a1"], "lr", alpha=2.0)]), "has alpha 2", "LeakyRelu slope above 1")
+    case("onnx-two-activations.onnx", onnx_good(middle=[o_node("Relu", ["h1"], ["r1"], "relu1"), o_node("Tanh", ["r1"], ["a1"], "tanh2")]), "follows the activation Relu", "two activations in a row")
+    case("onnx-unknown-attribute.onnx", onnx_good(middle=[o_node("Relu", ["h1"], ["a1"], "relu", bogus=1)]), "attribute 'bogus'", "an attribute receptor does not read")
+    case("onnx-batchnorm-first.onnx", onnx_good(first=o_node("BatchNormalization", ["input", "fc1.bias", "fc1.bias", "fc1.bias", "fc1.bias"], ["h1"], "bn")), "comes before any Gemm", "BatchNormalization with no layer to fold into")
+    case("onnx-width-mismatch.onnx", onnx_good(inputs=[o_value("input", ["batch", 5])]), "has weights for 4 inputs but the value before it has 5", "weights that do not fit the input")
+    case("onnx-matmul-order.onnx", onnx_good(first=o_node("MatMul", ["fc1.weight", "input"], ["h1"], "mm")), "does not multiply the incoming value", "the weight matrix on the left")
+    case("onnx-reshape.onnx", onnx_good(first=o_node("Reshape", ["input", "fc1.bias"], ["h1"], "rs")), "int64 is expected", "a Reshape whose shape is not int64")
+    case("onnx-bad-labels.onnx", onnx_good(meta=[("receptor.labels", "yes,no")]), "receptor.labels", "labels metadata that is not a JSON array")
+    case("onnx-bad-box.onnx", onnx_good(meta=[("receptor.low", "0,0,zero,0")]), "receptor.low", "box metadata with a word in it")
+    case("onnx-box-inverted.onnx", onnx_good(meta=[("receptor.low", "2"), ("receptor.high", "1")]), "above", "low above high in the metadata")
+    os.makedirs(os.path.join(HERE, "onnx-folder.onnx"), exist_ok=True)
+    with open(os.path.join(HERE, "onnx-folder.onnx", "README"), "w") as f:
+        f.write("A folder named like an ONNX file: receptor must say it is a folder.\n")
+    cases.append(("onnx-folder.onnx", "model", "folder", "a directory called .onnx"))
 
 
 if __name__ == "__main__":

@@ -103,3 +103,12 @@ xdotool key Tab
 sleep 2
 xdotool key ctrl+k
 shot compact-model.png
+
+# 6. The convolutional demo with its labelled probe: the first layer's filters as colour
+#    tiles, channel 2 in detail (filter, effective receptive field, feature map).
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+start_app demo-models/solder-joints-cnn.json --probe demo-models/solder-joints-cnn-probe.csv
+xdotool key --delay 200 Right Right
+sleep 4
+shot cnn-first-layer.png

@@ -16,7 +16,12 @@ fn main() -> ExitCode {
         }
     };
     match cli.command {
-        None => open_app(cli.model, cli.probe, cli.allow_outside_paths),
+        None => open_app(
+            cli.model,
+            cli.probe,
+            cli.allow_outside_paths,
+            cli.input_box.to_input_box(),
+        ),
         Some(command) => match cli::run(command) {
             Ok(code) => code,
             Err(e) => {
@@ -34,11 +39,13 @@ fn open_app(
     model: Option<std::path::PathBuf>,
     probe: Option<std::path::PathBuf>,
     allow_outside_paths: bool,
+    input_box: receptor::model::InputBox,
 ) -> ExitCode {
     receptor::app::run(receptor::app::Start {
         model,
         probe,
         allow_outside_paths,
+        input_box,
     })
 }
 
@@ -48,8 +55,9 @@ fn open_app(
     model: Option<std::path::PathBuf>,
     probe: Option<std::path::PathBuf>,
     allow_outside_paths: bool,
+    input_box: receptor::model::InputBox,
 ) -> ExitCode {
-    let _ = (model, probe, allow_outside_paths);
+    let _ = (model, probe, allow_outside_paths, input_box);
     eprintln!(
         "receptor: the desktop app is not available in this build; see `receptor --help` for the commands"
     );

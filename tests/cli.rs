@@ -1372,3 +1372,49 @@ fn fields_table_and_prefer_position_on_a_conv_model() {
     );
     assert_bad_input(&r, &["position", "gives a vector"]);
 }
+
+#[test]
+fn onnx_models_take_the_box_from_the_command_line_and_convert_writes_it() {
+    // gemm_chain.onnx (5 inputs) carries no box: a notice without --low/--high, none with.
+    let fixture = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/onnx/gemm_chain.onnx");
+    let dir = tempfile::tempdir().unwrap();
+    let model = fixture.to_str().unwrap();
+    let r = receptor(&["stats", model], dir.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("default [-1, 1]") && r.stderr.contains("--low"),
+        "{}",
+        r.stderr
+    );
+    let r = receptor(
+        &[
+            "convert",
+            model,
+            "--out",
+            "m.json",
+            "--low",
+            "-2",
+            "--high",
+            "0,1,2,3,4",
+        ],
+        dir.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(!r.stderr.contains("default"), "{}", r.stderr);
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.path().join("m.json")).unwrap()).unwrap();
+    assert_eq!(json["input"]["low"], serde_json::json!(-2.0));
+    assert_eq!(
+        json["input"]["high"],
+        serde_json::json!([0.0, 1.0, 2.0, 3.0, 4.0])
+    );
+    // A box of the wrong length is refused naming the file.
+    let r = receptor(&["stats", model, "--low", "0,1"], dir.path());
+    assert_bad_input(&r, &["gemm_chain.onnx", "2 values", "(5)"]);
+    // convert never writes over its input, nor JSON into a .onnx name.
+    let r = receptor(&["convert", "m.json", "--out", "m.json"], dir.path());
+    assert_eq!(r.code, 2);
+    let r = receptor(&["convert", model, "--out", "x.ONNX"], dir.path());
+    assert_eq!(r.code, 2);
+    assert!(r.stderr.contains("name the output .json"), "{}", r.stderr);
+}

@@ -459,6 +459,116 @@ fn side_files_outside_the_folder_need_the_users_consent() {
     );
 }
 
+#[test]
+fn an_onnx_model_opens_and_its_box_can_be_changed() {
+    // gemm_chain.onnx (tests/fixtures/onnx) has no box in its metadata: the default [-1, 1]
+    // is used and said so; the box editor opens the file again with the box given.
+    let model = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/onnx/gemm_chain.onnx");
+    let mut h = demo_app();
+    wait_idle(&mut h, Duration::from_secs(60));
+    h.state_mut().open_model(&model);
+    wait_idle(&mut h, Duration::from_secs(30));
+    let open = h
+        .state()
+        .state()
+        .model
+        .clone()
+        .expect("the ONNX model is open");
+    assert_eq!(open.net.layers().len(), 3);
+    assert!(open.box_origin.uses_default());
+    h.get_by_label_contains("(default [-1, 1])");
+    // Said twice: in the status line and under the box in the model summary.
+    assert_eq!(
+        h.query_all_by_label_contains("no input box in the model: using the default")
+            .count(),
+        2
+    );
+    h.get_by_label("Change box…").click();
+    h.run_steps(2);
+    h.state_mut().state_mut().run.box_edit = Some(("0".into(), "0.5,1,2,3,4".into()));
+    h.run_steps(2);
+    h.get_by_label("Apply box").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(30));
+    let open = h.state().state().model.clone().expect("open again");
+    assert_eq!(open.net.input().low, vec![0.0; 5]);
+    assert_eq!(open.net.input().high, vec![0.5, 1.0, 2.0, 3.0, 4.0]);
+    assert!(!open.box_origin.uses_default());
+    assert_eq!(open.box_origin.describe(), "given");
+}
+
+/// The convolutional demo: the layer list shows map sizes and receptive fields, the first
+/// layer's tiles are its filters, and a channel's detail shows its filter, preferred input,
+/// effective receptive field, feature map on a chosen sample and strongest samples.
+#[test]
+fn convolutional_demo_shows_filters_fields_and_feature_maps() {
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models");
+    // As `receptor demo-models/solder-joints-cnn.json --probe ...-probe.csv` starts it.
+    let mut h = app_with(Start {
+        model: Some(demo.join("solder-joints-cnn.json")),
+        probe: Some(demo.join("solder-joints-cnn-probe.csv")),
+        allow_outside_paths: false,
+        input_box: Default::default(),
+    });
+    wait_idle(&mut h, Duration::from_secs(120));
+    assert!(
+        h.state()
+            .state()
+            .probe
+            .as_ref()
+            .is_some_and(|p| p.labelled()),
+        "the probe given at start is open"
+    );
+
+    // Layer list: the receptive fields by the Araujo et al. recurrences, worked by hand:
+    // conv1 3x3 -> 3; pool1 2x2 stride 2 -> 3 + 1 = 4, jump 2; conv2 3x3 -> 4 + 2*2 = 8;
+    // pool2 -> 8 + 1*2 = 10.
+    h.get_by_label_contains("conv1  ·  conv 3×3  ·  8 channels  ·  relu");
+    h.get_by_label_contains("16 × 16 maps · receptive field 3 × 3");
+    h.get_by_label_contains("pool1  ·  max pool 2×2");
+    h.get_by_label_contains("8 × 8 maps · receptive field 8 × 8");
+    h.get_by_label_contains("4 × 4 maps · receptive field 10 × 10");
+    h.get_by_label_contains("Tiles: filters in colour");
+
+    // A first-layer channel: its filter (colour and signed panels) and the views that need
+    // the probe.
+    h.get_by_label("conv1 unit 2").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("Channel 2 of layer conv1");
+    h.get_by_label("filter of conv1 channel 2 in colour");
+    h.get_by_label("filter of conv1 channel 2");
+    h.get_by_label("effective receptive field of conv1 channel 2");
+    h.get_by_label("feature map of conv1 channel 2 on sample 0");
+    assert!(
+        h.get_all_by_label_contains("patch of sample ").count() >= 4,
+        "the strongest samples are shown as patches"
+    );
+
+    // Choose another sample for the feature map.
+    h.get_by_label("Sample").click();
+    h.run();
+    h.get_by_label("Sample").type_text("7");
+    h.key_press(egui::Key::Enter);
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    assert_eq!(h.state().state().conv_sample, 7);
+    h.get_by_label("feature map of conv1 channel 2 on sample 7");
+
+    // A deeper channel: its preferred input with the receptive-field box.
+    h.get_by_label_contains("conv2  ·  conv 3×3  ·  16 channels")
+        .click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(180));
+    h.get_by_label_contains("Tiles: preferred inputs, cropped to the receptive field");
+    h.get_by_label("conv2 unit 5").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("Channel 5 of layer conv2");
+    h.get_by_label("preferred input of conv2 channel 5");
+    h.get_by_label("filter of conv2 channel 5");
+}
+
 /// Steps frames until the status bar says `Saved {path}` (or shows an error).
 fn wait_for_notice(h: &mut Harness<'static, ReceptorApp>, path: &Path) {
     let t0 = Instant::now();

@@ -1,6 +1,9 @@
 #!/usr/bin/env python3
 """Tests of tools/receptor_export.py: export with numpy, then run the real `receptor forward`
-binary on the exported model and compare its output with a numpy forward pass.
+binary on the exported model and compare its output with a numpy forward pass (dense and
+convolutional networks; the numpy convolution and pooling below are written from PyTorch's
+documented definitions of `conv2d`, `max_pool2d` and `avg_pool2d`). The PyTorch path is
+compared with the PyTorch module's own output.
 
 Needs numpy and safetensors (pip install numpy safetensors); torch is optional (the PyTorch
 path is tested only where torch imports). The receptor binary is taken from $RECEPTOR_BIN,
@@ -81,6 +84,102 @@ def np_forward(layers, x):
             a = e / e.sum(axis=1, keepdims=True)
         else:
             raise AssertionError(act)
+    return a
+
+
+def _pair(v):
+    return (v, v) if isinstance(v, int) else (v[0], v[1])
+
+
+def np_conv2d(x, w, b, stride, padding, dilation):
+    """Cross-correlation as `torch.nn.functional.conv2d` defines it, float64:
+    x [N, C, H, W], w [O, C, kh, kw] -> [N, O, oh, ow], zero padding."""
+    (sh, sw), (ph, pw), (dh, dw) = _pair(stride), _pair(padding), _pair(dilation)
+    n, c, h, wd = x.shape
+    o, c2, kh, kw = w.shape
+    assert c == c2
+    xp = np.pad(x, ((0, 0), (0, 0), (ph, ph), (pw, pw)))
+    oh = (h + 2 * ph - dh * (kh - 1) - 1) // sh + 1
+    ow = (wd + 2 * pw - dw * (kw - 1) - 1) // sw + 1
+    out = np.zeros((n, o, oh, ow))
+    for i in range(kh):
+        for j in range(kw):
+            patch = xp[:, :, i * dh: i * dh + sh * (oh - 1) + 1: sh, j * dw: j * dw + sw * (ow - 1) + 1: sw]
+            out += np.einsum("nchw,oc->nohw", patch, w[:, :, i, j])
+    return out + np.asarray(b, np.float64)[None, :, None, None]
+
+
+def np_pool(x, kind, kernel, stride, padding):
+    """`max_pool2d` (padding never wins: -inf) or `avg_pool2d` (count_include_pad=True:
+    the divisor is always kh * kw), floor mode, as PyTorch defines them."""
+    (kh, kw), (sh, sw), (ph, pw) = _pair(kernel), _pair(stride), _pair(padding)
+    fill = -np.inf if kind == "max_pool2d" else 0.0
+    xp = np.pad(x, ((0, 0), (0, 0), (ph, ph), (pw, pw)), constant_values=fill)
+    n, c, h, w = x.shape
+    oh = (h + 2 * ph - kh) // sh + 1
+    ow = (w + 2 * pw - kw) // sw + 1
+    cells = np.stack(
+        [xp[:, :, i: i + sh * (oh - 1) + 1: sh, j: j + sw * (ow - 1) + 1: sw] for i in range(kh) for j in range(kw)]
+    )
+    return cells.max(axis=0) if kind == "max_pool2d" else cells.sum(axis=0) / (kh * kw)
+
+
+def np_activation(z, entry):
+    act = entry["activation"]
+    if act == "relu":
+        return np.maximum(z, 0.0)
+    if act == "leaky_relu":
+        return np.where(z > 0, z, entry["alpha"] * z)
+    if act == "tanh":
+        return np.tanh(z)
+    if act == "sigmoid":
+        return 1.0 / (1.0 + np.exp(-z))
+    if act == "identity":
+        return z
+    if act == "softmax":
+        e = np.exp(z - z.max(axis=1, keepdims=True))
+        return e / e.sum(axis=1, keepdims=True)
+    raise AssertionError(act)
+
+
+def np_forward_file(model_path, x):
+    """Reference forward pass of an exported file, read with json and safetensors' own
+    numpy loader: the flat channel-last input is reshaped to [N, C, H, W] for the
+    convolutional layers, `flatten` uses numpy's C order on [N, C, H, W] (PyTorch's)."""
+    model_path = Path(model_path)
+    doc = json.loads(model_path.read_text())
+
+    def tensor(v):
+        if isinstance(v, dict):
+            from safetensors.numpy import load_file
+
+            return load_file(str(model_path.parent / v["safetensors"]))[v["tensor"]].astype(np.float64)
+        return np.asarray(v, np.float32).astype(np.float64)
+
+    lay = doc["input"]["layout"]
+    a = x.astype(np.float64)
+    flat = True
+    for entry in doc["layers"]:
+        kind = entry["type"]
+        if kind == "dense":
+            if not flat:
+                raise AssertionError("dense after a map")
+            a = np_activation(a @ tensor(entry["weights"]).T + tensor(entry["bias"]), entry)
+            continue
+        if flat:
+            a = a.reshape(len(a), lay["height"], lay["width"], lay["channels"]).transpose(0, 3, 1, 2)
+            flat = False
+        if kind == "conv2d":
+            z = np_conv2d(a, tensor(entry["weights"]), tensor(entry["bias"]), entry["stride"],
+                          entry["padding"], entry["dilation"])
+            a = np_activation(z, entry)
+        elif kind in ("max_pool2d", "avg_pool2d"):
+            a = np_pool(a, kind, entry["kernel"], entry["stride"], entry["padding"])
+        elif kind == "flatten":
+            a = a.reshape(len(a), -1)
+            flat = True
+        else:
+            raise AssertionError(kind)
     return a
 
 
@@ -288,9 +387,13 @@ def test_torch_sequential():
         rows = run_forward(model, probe)
         got = outputs_of(rows, ["a", "b", "c"])
         assert np.max(np.abs(got - want)) <= TOL, np.max(np.abs(got - want))
-        bad = nn.Sequential(nn.Linear(4, 4), nn.BatchNorm1d(4))
-        expect_error("module 1 ('1', BatchNorm1d) is not supported",
+        bad = nn.Sequential(nn.Linear(4, 4), nn.GELU())
+        expect_error("module 1 ('1', GELU) is not supported",
                      lambda: rx.export_torch(bad, path=Path(d) / "bad.json"))
+        bad = nn.Sequential(nn.Linear(4, 4), nn.ReLU(), nn.BatchNorm1d(4))
+        expect_error("module 2 ('2', BatchNorm1d): can only be folded when it directly follows a Linear",
+                     lambda: rx.export_torch(bad, path=Path(d) / "bad.json"))
+        assert not (Path(d) / "bad.json").exists()
 
 
 def test_exported_files_validate_against_the_schema():
@@ -310,7 +413,13 @@ def test_exported_files_validate_against_the_schema():
                              labels=["x", "y", "z"], names=[f"n{i}" for i in range(8)]),
             rx.export_arrays(layers, 8, np.zeros(8), np.arange(1, 9), path=Path(d) / "b.json",
                              safetensors_threshold=1, description="side file"),
+            # receptor-model/2: every convolutional layer type, inline and in a side file.
+            rx.export_arrays(conv_layers(rng), 126, layout=(7, 6, 3), path=Path(d) / "c.json",
+                             labels=["a", "b", "c"], safetensors_threshold=None),
+            rx.export_arrays(conv_layers(rng), 126, layout=(7, 6, 3), path=Path(d) / "d.json",
+                             safetensors_threshold=20),
         ]
+        assert json.loads(paths[2].read_text())["schema"] == "receptor-model/2"
         for p in paths:
             errors = sorted(validator.iter_errors(json.loads(p.read_text())), key=str)
             assert not errors, f"{p.name}: {[e.message for e in errors]}"
@@ -320,6 +429,266 @@ def test_exported_files_validate_against_the_schema():
         assert list(validator.iter_errors(bad)), "schema accepted a file without 'schema'"
 
 
+def test_torch_through_onnx():
+    """export_onnx: torch.onnx.export plus the box and labels in metadata_props; receptor
+    reads the .onnx file directly (BatchNorm1d folded) and matches PyTorch's own outputs."""
+    try:
+        import torch
+        from torch import nn
+        import onnx  # noqa: F401
+    except Exception as e:
+        skip(f"torch or onnx does not import here: {type(e).__name__}: {e}")
+    torch.manual_seed(1)
+    net = nn.Sequential(nn.Linear(7, 9), nn.BatchNorm1d(9), nn.ReLU(), nn.Linear(9, 4), nn.Softmax(dim=1))
+    with torch.no_grad():
+        net[1].running_mean.copy_(torch.randn(9) * 0.5)
+        net[1].running_var.copy_(torch.rand(9) + 0.5)
+    net.eval()
+    rng = np.random.default_rng(5)
+    x = rng.uniform(0, 2, size=(25, 7)).astype(np.float32)
+    with torch.no_grad():
+        want = net(torch.from_numpy(x)).double().numpy()
+    with tempfile.TemporaryDirectory() as d:
+        model = rx.export_onnx(net, torch.zeros(1, 7), path=Path(d) / "net.onnx", low=0.0, high=2.0,
+                               labels=["w", "x", "y", "z"])
+        probe = Path(d) / "probe.csv"
+        write_probe(probe, x)
+        proc = subprocess.run([receptor_bin(), "stats", str(model)], capture_output=True, text=True, timeout=120)
+        assert proc.returncode == 0 and "default" not in proc.stderr, proc.stderr  # box from metadata
+        got = outputs_of(run_forward(model, probe), ["w", "x", "y", "z"])
+        assert np.max(np.abs(got - want)) <= TOL, np.max(np.abs(got - want))
+
+
+def conv_layers(rng):
+    """A small CNN on a 7 x 6 x 3 input using every new layer type and field form."""
+    def w(*shape):
+        return rng.normal(0.0, 0.5, size=shape).astype(np.float32)
+
+    return [
+        {"name": "c1", "type": "conv2d", "weights": w(4, 3, 3, 2), "bias": w(4),
+         "stride": [1, 2], "padding": [1, 0], "dilation": 1, "activation": "relu"},
+        {"name": "p1", "type": "max_pool2d", "kernel": 2, "stride": 1, "padding": 1},
+        {"name": "c2", "type": "conv2d", "weights": w(5, 4, 2, 2), "dilation": [2, 1],
+         "activation": ("leaky_relu", 0.1)},
+        {"name": "p2", "type": "avg_pool2d", "kernel": [2, 3], "stride": [2, 1], "padding": [1, 1]},
+        {"name": "flat", "type": "flatten"},
+        # Shapes by hand (PyTorch's floor formula, [channels, height, width]): input [3, 7, 6];
+        # c1 (7 + 2 - 3) + 1 = 7, (6 - 2) // 2 + 1 = 3 -> [4, 7, 3]; p1 -> [4, 8, 4];
+        # c2 (8 - 2 * 1 - 1) + 1 = 6, (4 - 1 - 1) + 1 = 3 -> [5, 6, 3];
+        # p2 (6 + 2 - 2) // 2 + 1 = 4, (3 + 2 - 3) + 1 = 3 -> [5, 4, 3]; flatten -> 60.
+        ("fc", w(3, 60), w(3), "softmax"),
+    ]
+
+
+def test_conv_arrays_match_numpy_forward():
+    rng = np.random.default_rng(5)
+    layers = conv_layers(rng)
+    x = rng.uniform(-1.0, 1.0, size=(30, 7 * 6 * 3)).astype(np.float32)
+    with tempfile.TemporaryDirectory() as d:
+        model = Path(d) / "cnn.json"
+        rx.export_arrays(layers, 7 * 6 * 3, layout=(7, 6, 3), labels=["a", "b", "c"], path=model,
+                         safetensors_threshold=20)
+        doc = json.loads(model.read_text())
+        assert doc["schema"] == "receptor-model/2"
+        c1, p1, c2, p2, flat, fc = doc["layers"]
+        assert c1["stride"] == [1, 2] and c1["padding"] == [1, 0] and c1["dilation"] == 1
+        assert c1["weights"] == {"safetensors": "cnn.safetensors", "tensor": "c1.weight"}
+        assert c2["bias"] == [0.0] * 5  # no bias given: zeros
+        assert p1 == {"name": "p1", "type": "max_pool2d", "kernel": 2, "stride": 1, "padding": 1}
+        assert p2["kernel"] == [2, 3] and p2["stride"] == [2, 1]
+        assert flat == {"name": "flat", "type": "flatten"}
+        assert fc["labels"] == ["a", "b", "c"]
+        want = np_forward_file(model, x)
+        probe = Path(d) / "probe.csv"
+        write_probe(probe, x)
+        rows = run_forward(model, probe)
+        got = outputs_of(rows, ["a", "b", "c"])
+        assert np.max(np.abs(got - want)) <= TOL, np.max(np.abs(got - want))
+
+
+def test_conv_shape_errors_name_the_layer():
+    rng = np.random.default_rng(6)
+    good = conv_layers(rng)
+    with tempfile.TemporaryDirectory() as d:
+        p = Path(d) / "m.json"
+
+        def export(layers, layout=(7, 6, 3), size=126, **kw):
+            return lambda: rx.export_arrays(layers, size, layout=layout, path=p, **kw)
+
+        c2_wrong = dict(good[2], weights=np.zeros((5, 8, 2, 2), np.float32))
+        expect_error("layer 'c2': weights expect 8 input channels but 'p1' gives 4",
+                     export([good[0], good[1], c2_wrong]))
+        expect_error("layer 'c1': weights expect 3 input channels but the input has 1",
+                     export(good[:1], layout=(7, 18, 1)))
+        expect_error("layer 'fc': a dense layer after a [5, 4, 3] map from 'p2' needs a flatten layer first",
+                     export(good[:4] + good[5:]))
+        expect_error("layer 'c1': a conv2d layer needs a spatial map",
+                     export(good[:1], layout=None))
+        big = dict(good[0], weights=np.zeros((4, 3, 10, 2), np.float32))
+        expect_error("layer 'c1': the 10 x 2 kernel (dilation [1, 1]) is larger than the padded input 9 x 6",
+                     export([big]))
+        expect_error("layer 'c1': stride: must be at least 1, got 0", export([dict(good[0], stride=0)]))
+        expect_error("layer 'c1': padding: must be at least 0, got [-1, 0]",
+                     export([dict(good[0], padding=[-1, 0])]))
+        expect_error("layer 'p1': the 9 x 9 pool gives an empty map on a [4, 7, 3] map from c1",
+                     export([good[0], dict(good[1], kernel=9, padding=0)]))
+        expect_error("layer 'p1': padding [2, 2] is more than half the kernel [2, 2]",
+                     export([good[0], dict(good[1], padding=2)]))
+        expect_error("layer 'f': flatten needs a spatial map but the input gives a vector of 126",
+                     export([{"name": "f", "type": "flatten"}], layout=None))
+        expect_error("labels: the last layer 'flat' is flatten, not dense",
+                     export(good[:5], labels=["a"]))
+        expect_error("layer 'c1': a conv2d layer has no field 'kernel'", export([dict(good[0], kernel=3)]))
+        expect_error("layer 'c1': unknown layer type 'conv3d'", export([dict(good[0], type="conv3d")]))
+        expect_error("layer 'c1': softmax is allowed only on a dense output layer",
+                     export([dict(good[0], activation="softmax")]))
+        assert not p.exists(), "a failed export left a file behind"
+        # A global pool takes the whole map, whatever its size.
+        rx.export_arrays(good[:3] + [{"name": "g", "type": "avg_pool2d", "kernel": "global"}], 126,
+                         layout=(7, 6, 3), path=p)
+        g = json.loads(p.read_text())["layers"][-1]
+        assert (g["kernel"], g["stride"], g["padding"]) == ([6, 3], [6, 3], 0), g
+
+
+def test_fold_batchnorm_matches_the_normalisation():
+    """Folding against the batch-normalisation formula of PyTorch's documentation,
+    y = (z - mean) / sqrt(var + eps) * gamma + beta, applied to the unfolded layer's output."""
+    rng = np.random.default_rng(7)
+    w = rng.normal(size=(4, 2, 3, 3))
+    b = rng.normal(size=4)
+    gamma, beta = rng.normal(size=4), rng.normal(size=4)
+    mean, var = rng.normal(size=4), rng.uniform(0.1, 2.0, size=4)
+    x = rng.normal(size=(5, 2, 6, 6))
+    z = np_conv2d(x, w, b, 1, 1, 1)
+    c = (None, slice(None), None, None)
+    want = (z - mean[c]) / np.sqrt(var[c] + 1e-3) * gamma[c] + beta[c]
+    w2, b2 = rx.fold_batchnorm(w, b, gamma, beta, mean, var, eps=1e-3)
+    assert w2.dtype == np.float32 and w2.shape == w.shape and b2.shape == (4,)
+    got = np_conv2d(x, w2.astype(np.float64), b2, 1, 1, 1)
+    assert np.max(np.abs(got - want)) <= 1e-4 * max(1.0, np.max(np.abs(want))), np.max(np.abs(got - want))
+    # No affine parameters and no bias: gamma 1, beta 0, b 0.
+    w3, b3 = rx.fold_batchnorm(w, None, None, None, mean, var)
+    assert np.allclose(b3, -mean / np.sqrt(var + 1e-5), atol=1e-6)
+    expect_error("running_mean has shape (3,)", lambda: rx.fold_batchnorm(w, b, gamma, beta, mean[:3], var))
+
+
+def _torch():
+    try:
+        import torch
+        from torch import nn
+    except Exception as e:  # ImportError, or a CUDA build without its libraries
+        skip(f"torch does not import here: {type(e).__name__}: {e}")
+    return torch, nn
+
+
+def test_numpy_reference_agrees_with_torch_functional():
+    """The numpy convolution and pooling used as references above against
+    torch.nn.functional.conv2d / max_pool2d / avg_pool2d (CPU), so the references are not
+    checked only against themselves."""
+    torch, _ = _torch()
+    import torch.nn.functional as F
+
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=(2, 3, 9, 8))
+    w = rng.normal(size=(4, 3, 3, 2))
+    b = rng.normal(size=4)
+    for stride, padding, dilation in [(1, 0, 1), ((2, 1), (1, 2), (1, 2)), (3, 1, 2)]:
+        want = F.conv2d(torch.from_numpy(x), torch.from_numpy(w), torch.from_numpy(b),
+                        stride=stride, padding=padding, dilation=dilation).numpy()
+        got = np_conv2d(x, w, b, stride, padding, dilation)
+        assert got.shape == want.shape and np.max(np.abs(got - want)) < 1e-10, (stride, padding, dilation)
+    for kernel, stride, padding in [(2, 2, 0), ((3, 2), (1, 2), (1, 1)), (3, 2, 1)]:
+        t = torch.from_numpy(x)
+        want = F.max_pool2d(t, kernel, stride, padding).numpy()
+        assert np.array_equal(np_pool(x, "max_pool2d", kernel, stride, padding), want)
+        want = F.avg_pool2d(t, kernel, stride, padding).numpy()  # count_include_pad=True
+        assert np.max(np.abs(np_pool(x, "avg_pool2d", kernel, stride, padding) - want)) < 1e-12
+
+
+def test_torch_cnn_with_batchnorm():
+    torch, nn = _torch()
+    torch.manual_seed(1)
+    net = nn.Sequential(
+        nn.Conv2d(3, 6, 3, padding=1),
+        nn.BatchNorm2d(6),
+        nn.ReLU(),
+        nn.MaxPool2d(2),
+        nn.Conv2d(6, 8, (3, 2), stride=(1, 2), padding=(1, 0), bias=False),
+        nn.MaxPool2d(2, stride=1),
+        nn.LeakyReLU(0.1),  # after a max pool: moved onto the convolution (max commutes)
+        nn.Dropout2d(0.2),
+        nn.AvgPool2d(3, stride=2, padding=1),
+        nn.Conv2d(8, 8, 3, padding="same", dilation=2),
+        nn.Tanh(),
+        nn.AdaptiveAvgPool2d(1),
+        nn.Flatten(),
+        nn.Linear(8, 6),
+        nn.BatchNorm1d(6),
+        nn.Sigmoid(),
+        nn.Linear(6, 3),
+        nn.Softmax(dim=1),
+    )
+    # Give the normalisations non-trivial running statistics and affine parameters, then
+    # switch to inference.
+    with torch.no_grad():
+        for m in net.modules():
+            if isinstance(m, (nn.BatchNorm1d, nn.BatchNorm2d)):
+                m.running_mean.uniform_(-0.5, 0.5)
+                m.running_var.uniform_(0.5, 2.0)
+                m.weight.uniform_(0.5, 1.5)
+                m.bias.uniform_(-0.3, 0.3)
+    net.eval()
+    rng = np.random.default_rng(9)
+    x = rng.uniform(0.0, 1.0, size=(20, 12 * 16 * 3)).astype(np.float32)
+    # receptor's input is channel last; the PyTorch module reads [N, C, H, W].
+    xt = torch.from_numpy(x.reshape(20, 12, 16, 3).transpose(0, 3, 1, 2).copy())
+    with torch.no_grad():
+        want = net(xt).double().numpy()
+    with tempfile.TemporaryDirectory() as d:
+        model = Path(d) / "cnn.json"
+        rx.export_torch(net, path=model, low=0.0, high=1.0, layout=(12, 16, 3), labels=["a", "b", "c"],
+                        safetensors_threshold=100)
+        doc = json.loads(model.read_text())
+        assert doc["schema"] == "receptor-model/2"
+        assert [(l["name"], l["type"]) for l in doc["layers"]] == [
+            ("conv1", "conv2d"), ("pool1", "max_pool2d"), ("conv2", "conv2d"), ("pool2", "max_pool2d"),
+            ("pool3", "avg_pool2d"), ("conv3", "conv2d"), ("pool4", "avg_pool2d"), ("flatten", "flatten"),
+            ("h1", "dense"), ("out", "dense"),
+        ]
+        acts = [l.get("activation") for l in doc["layers"]]
+        assert acts == ["relu", None, "leaky_relu", None, None, "tanh", None, None, "sigmoid", "softmax"]
+        assert doc["layers"][5]["padding"] == 2  # "same" with a dilated 3 x 3 kernel
+        # The global pool over conv3's map: input 12 x 16; conv1 12 x 16; pool1 6 x 8;
+        # conv2 6 x (8 - 2) // 2 + 1 = 4; pool2 5 x 3; pool3 (5 + 2 - 3) // 2 + 1 = 3,
+        # (3 + 2 - 3) // 2 + 1 = 2; conv3 ("same") 3 x 2.
+        assert doc["layers"][6]["kernel"] == [3, 2]
+        # The exported file, read back by the numpy reference, gives PyTorch's outputs ...
+        ref = np_forward_file(model, x)
+        assert np.max(np.abs(ref - want)) <= TOL, np.max(np.abs(ref - want))
+        # ... and so does receptor itself.
+        probe = Path(d) / "probe.csv"
+        write_probe(probe, x)
+        got = outputs_of(run_forward(model, probe), ["a", "b", "c"])
+        assert np.max(np.abs(got - want)) <= TOL, np.max(np.abs(got - want))
+        for bad, fragment in [
+            (nn.Sequential(nn.Conv2d(4, 4, 3, groups=2)), "module 0 ('0', Conv2d): groups=2 is not supported"),
+            (nn.Sequential(nn.Conv2d(3, 4, 3), nn.Upsample(scale_factor=2)), "module 1 ('1', Upsample) is not supported"),
+            (nn.Sequential(nn.Conv2d(3, 4, 3), nn.AvgPool2d(2), nn.ReLU()),
+             "module 2 ('2', ReLU): an activation after avg_pool2d cannot be written"),
+            (nn.Sequential(nn.Conv2d(3, 4, 3), nn.MaxPool2d(2, ceil_mode=True)), "ceil_mode=True is not supported"),
+            (nn.Sequential(nn.Conv2d(3, 4, 2, padding="same")), "padding='same' with an even kernel"),
+            (nn.Sequential(nn.Conv2d(3, 4, 3), nn.AdaptiveAvgPool2d(2)), "only output_size=1"),
+            (nn.Sequential(nn.Conv2d(3, 4, 3), nn.BatchNorm1d(4)),
+             "module 1 ('1', BatchNorm1d): can only be folded when it directly follows a Linear"),
+            (nn.Sequential(nn.Conv2d(3, 4, 3), nn.Flatten(), nn.Linear(8, 2)),
+             "layer 'out': weights have 8 columns but 'flatten' gives 560 values"),
+        ]:
+            expect_error(fragment, lambda bad=bad: rx.export_torch(bad, path=Path(d) / "bad.json", layout=(12, 16, 3)))
+        expect_error("the network starts with conv2d: pass layout=(height, width, channels)",
+                     lambda: rx.export_torch(nn.Sequential(nn.Conv2d(3, 4, 3)), path=Path(d) / "bad.json"))
+        assert not (Path(d) / "bad.json").exists()
+
+
 TESTS = [
     test_inline_model_matches_numpy_forward,
     test_large_tensors_go_to_safetensors_side_file,
@@ -327,6 +696,12 @@ TESTS = [
     test_bad_input_gives_clear_errors,
     test_exported_files_validate_against_the_schema,
     test_torch_sequential,
+    test_torch_through_onnx,
+    test_conv_arrays_match_numpy_forward,
+    test_conv_shape_errors_name_the_layer,
+    test_fold_batchnorm_matches_the_normalisation,
+    test_numpy_reference_agrees_with_torch_functional,
+    test_torch_cnn_with_batchnorm,
 ]
 
 

@@ -3,9 +3,10 @@
 //! ```text
 //! cargo run --release --example make_demos            # writes demo-models/
 //! cargo run --release --example make_demos -- OUT_DIR # writes elsewhere (to compare)
+//! cargo run --release --example make_demos -- OUT_DIR cnn  # only the convolutional demo
 //! ```
 //!
-//! Both data sets are invented (synthesised here with fixed seeds), for demos only:
+//! Every data set is invented (synthesised here with fixed seeds), for demos only:
 //!
 //! 1. Solder-joint inspection. An assembly line photographs every solder joint after
 //!    reflow; each photo is cut to a 12 x 12 grey patch with brightness in [-1, 1]. Five
@@ -17,6 +18,9 @@
 //!    features in physical units; four classes: normal, door left open, compressor wear,
 //!    defrost fault. A tanh classifier whose input standardisation is folded into the
 //!    first-layer weights, so the model takes raw units; and a labelled probe CSV.
+//! 3. The solder joints again, seen by a colour camera (16 x 16 RGB patches): a small
+//!    convolutional network (`receptor-model/2`, tensors in a safetensors side file) and its
+//!    labelled probe CSV (`cnn_demo.rs`, trained by `conv_train.rs`).
 //!
 //! Training uses the `train` module beside this file, whose fixed-order matrix products make the
 //! output independent of thread scheduling.
@@ -33,6 +37,8 @@ use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use train::{Optimizer, Result, TrainError, TrainOptions};
 
+mod cnn_demo;
+pub mod conv_train;
 mod train;
 
 /// Class names of the solder-joint classifier, in output order.
@@ -77,7 +83,17 @@ fn main() -> ExitCode {
         .nth(1)
         .map(PathBuf::from)
         .unwrap_or_else(|| Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models"));
-    match run(&out) {
+    let only = std::env::args().nth(2);
+    let result = match only.as_deref() {
+        None => run(&out),
+        Some("cnn") => std::fs::create_dir_all(&out)
+            .map_err(|e| Error::io(&out, "cannot create folder", e).into())
+            .and_then(|()| cnn_demo::cnn_model(&out)),
+        Some(other) => Err(TrainError::problem(format!(
+            "unknown demo '{other}'; the only one made alone is 'cnn'"
+        ))),
+    };
+    match result {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
             eprintln!("make_demos: {e}");
@@ -91,6 +107,7 @@ pub fn run(out: &Path) -> Result<()> {
     std::fs::create_dir_all(out).map_err(|e| Error::io(out, "cannot create folder", e))?;
     solder_models(out)?;
     cold_storage_model(out)?;
+    cnn_demo::cnn_model(out)?;
     Ok(())
 }
 

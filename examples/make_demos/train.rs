@@ -358,7 +358,7 @@ fn check_problem(net: &NetworkParts, x: ArrayView2<f32>, labels: &[usize]) -> Re
 
 /// Mean cross-entropy (nats) of the rows of `pre_out` (logits `[samples, classes]`), computed
 /// in f64 as `logsumexp(z) - z_label`, plus the number of rows whose argmax is the label.
-fn loss_from_logits(pre_out: ArrayView2<f32>, labels: &[usize]) -> (f64, usize) {
+pub fn loss_from_logits(pre_out: ArrayView2<f32>, labels: &[usize]) -> (f64, usize) {
     let mut total = 0.0f64;
     let mut correct = 0usize;
     for (row, &y) in pre_out.rows().into_iter().zip(labels) {
@@ -458,14 +458,16 @@ pub fn accuracy(net: &NetworkParts, x: ArrayView2<f32>, labels: &[usize]) -> Res
     Ok(correct as f64 / labels.len() as f64)
 }
 
-/// Optimiser state for one parameter tensor.
-struct Slot<D: ndarray::Dimension> {
+/// Optimiser state for one parameter tensor (also used by the convolutional trainer in
+/// `conv_train.rs`).
+pub struct Slot<D: ndarray::Dimension> {
     m: ndarray::Array<f32, D>,
     v: ndarray::Array<f32, D>,
 }
 
 impl<D: ndarray::Dimension> Slot<D> {
-    fn new(shape: D) -> Self {
+    /// Zero moments for a tensor of `shape`.
+    pub fn new(shape: D) -> Self {
         Slot {
             m: ndarray::Array::zeros(shape.clone()),
             v: ndarray::Array::zeros(shape),
@@ -473,7 +475,7 @@ impl<D: ndarray::Dimension> Slot<D> {
     }
 
     /// Applies one update to `theta` with gradient `g` at step `t` (from 1).
-    fn step(
+    pub fn step(
         &mut self,
         theta: &mut ndarray::Array<f32, D>,
         g: &ndarray::Array<f32, D>,

@@ -5,6 +5,7 @@
 
 pub mod activity;
 pub mod bounds;
+pub mod channels;
 pub mod compact;
 pub(crate) mod conv;
 pub mod fields;

@@ -384,7 +384,7 @@ pub fn prefer_by_ascent(
     Ok(relabel(found, units, position))
 }
 
-/// The output values to maximise, one per unit, and the map position (if any).
+/// Output-value indices to maximise, with the map position they sit at (`None` on a vector).
 type Targets = (Vec<usize>, Option<(usize, usize)>);
 
 /// The output values the search maximises: unit `u` itself on a layer with a vector output;

@@ -45,6 +45,18 @@ impl DetailPanel {
         if sel.unit >= layer.units() {
             return;
         }
+        if matches!(layer.kind, crate::model::LayerKind::Conv2d(_)) {
+            egui::ScrollArea::vertical()
+                .id_salt("detail-scroll")
+                .auto_shrink([false, false])
+                .show(ui, |ui| {
+                    ui.add_space(4.0);
+                    super::conv::detail_ui(ui, state, thumbs, &net, sel);
+                    ui.add_space(6.0);
+                    numbers_ui(ui, state, &net, sel);
+                });
+            return;
+        }
         egui::ScrollArea::vertical()
             .id_salt("detail-scroll")
             .auto_shrink([false, false])

@@ -12,7 +12,7 @@ use super::{DEMO_PROBE, Pick, ReceptorApp};
 use crate::analysis::compact::CheckedCompaction;
 use crate::analysis::prefer::{PreferOptions, Preferred};
 use crate::error::Result;
-use crate::model::Network;
+use crate::model::{BoxOrigin, Network};
 use crate::probe::ProbeData;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -56,6 +56,7 @@ impl ReceptorApp {
                     self.notify_failure(failed);
                 }
             }
+            Reply::Conv { tag, reply } => self.on_conv_reply(tag, reply),
             Reply::UnitCurves {
                 tag,
                 criterion,
@@ -106,14 +107,16 @@ impl ReceptorApp {
     fn on_model_opened(
         &mut self,
         request: u64,
-        result: Result<(Network, String, Option<PathBuf>)>,
+        result: Result<(Network, String, Option<PathBuf>, BoxOrigin)>,
     ) {
         if request != self.state.run.open_request {
             return; // superseded by a later open
         }
         self.state.run.opening = None;
         match result {
-            Ok((net, origin, path)) => self.install_model(net, origin, path),
+            Ok((net, origin, path, box_origin)) => {
+                self.install_model(net, origin, path, box_origin);
+            }
             Err(e) => {
                 let err = OpenError::new(&e);
                 let text = err.text.clone();
@@ -233,7 +236,13 @@ impl ReceptorApp {
     /// Makes `net` the open model: stops the old model's work (its late replies carry the
     /// old identity and are dropped), starts a fresh results cache, and queues the
     /// statistics and the probe.
-    pub(super) fn install_model(&mut self, net: Network, origin: String, path: Option<PathBuf>) {
+    pub(super) fn install_model(
+        &mut self,
+        net: Network,
+        origin: String,
+        path: Option<PathBuf>,
+        box_origin: BoxOrigin,
+    ) {
         self.worker.cancel_all();
         self.state.run.stopped = false;
         let tag = Tag {
@@ -255,15 +264,23 @@ impl ReceptorApp {
             unit: 0,
         });
         self.state.history.clear();
-        self.state.confirm(format!(
+        let opened = format!(
             "Opened {origin}: {} layers, {} parameters",
             net.layers().len(),
             net.parameter_count()
-        ));
+        );
+        if box_origin.uses_default() {
+            self.state
+                .fail(format!("{opened}; {}", box_origin.default_notice()));
+        } else {
+            self.state.confirm(opened);
+        }
+        self.state.run.box_edit = None;
         self.state.model = Some(OpenModel {
             net: net.clone(),
             origin,
             path,
+            box_origin,
         });
         self.state.open_error = None;
         self.submit_model_job(net.clone());
@@ -315,6 +332,7 @@ impl ReceptorApp {
         };
         let tag = self.state.tag();
         let layer = self.state.current_layer();
+        self.request_conv(&net, tag);
         if layer < net.layers().len() && !self.state.results.preferred.contains_key(&layer) {
             self.queue_prefer(&net, layer, None);
         }

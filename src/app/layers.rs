@@ -2,9 +2,9 @@
 //! name, size, activation and a one-line health summary. Clicking a layer shows its units.
 
 use super::Action;
-use super::state::{AppState, Selection};
+use super::state::{AppState, OpenModel, Selection};
 use crate::analysis::screen::Status;
-use crate::model::{Layout, Network};
+use crate::model::{InputBox, Layout, Network};
 
 /// Counts of the problem statuses in one layer.
 #[derive(Debug, Default, Clone, Copy, PartialEq, Eq)]
@@ -58,7 +58,7 @@ pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
                 ui.label(egui::RichText::new(d).small()).on_hover_text(d);
             }
             ui.add_space(4.0);
-            input_ui(ui, &net);
+            input_ui(ui, state, &model, actions);
             probe_ui(ui, state, actions);
             ui.separator();
             ui.strong("Layers");
@@ -67,8 +67,10 @@ pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
         });
 }
 
-/// The input's size, layout and box.
-fn input_ui(ui: &mut egui::Ui, net: &Network) {
+/// The input's size, layout and box, where the box came from, and an editor to give
+/// another box (the model file is opened again with it).
+fn input_ui(ui: &mut egui::Ui, state: &mut AppState, model: &OpenModel, actions: &mut Vec<Action>) {
+    let net = &model.net;
     let layout = match net.input().layout {
         Layout::Image {
             height,
@@ -85,11 +87,93 @@ fn input_ui(ui: &mut egui::Ui, net: &Network) {
         Layout::Vector => "feature vector".to_string(),
     };
     ui.label(format!("Input: {} values, {layout}", net.input().size));
-    ui.label(format!(
-        "Input box: {}",
-        box_range(&net.input().low, &net.input().high)
-    ))
-    .on_hover_text("The box [low, high] used by the preferred-input search and the bounds.");
+    ui.horizontal_wrapped(|ui| {
+        ui.label(format!(
+            "Input box: {} ({})",
+            box_range(&net.input().low, &net.input().high),
+            model.box_origin.describe()
+        ))
+        .on_hover_text("The box [low, high] used by the preferred-input search and the bounds.");
+        if model.path.is_some()
+            && state.run.box_edit.is_none()
+            && ui.small_button("Change box…").clicked()
+        {
+            state.run.box_edit = Some((box_text(&net.input().low), box_text(&net.input().high)));
+        }
+    });
+    if model.box_origin.uses_default() {
+        ui.colored_label(
+            ui.visuals().warn_fg_color,
+            model.box_origin.default_notice(),
+        );
+    }
+    box_editor_ui(ui, state, actions);
+}
+
+/// One end of the box as editable text: one number when all inputs share it.
+fn box_text(values: &[f32]) -> String {
+    match values.first() {
+        Some(&v) if values.iter().all(|&x| x == v) => v.to_string(),
+        _ => values
+            .iter()
+            .map(f32::to_string)
+            .collect::<Vec<_>>()
+            .join(","),
+    }
+}
+
+/// The open box editor: low and high (one number, or a comma list), Apply and Cancel.
+fn box_editor_ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
+    let Some((low, high)) = state.run.box_edit.as_mut() else {
+        return;
+    };
+    let mut close = false;
+    let mut apply = None;
+    ui.group(|ui| {
+        ui.horizontal(|ui| {
+            ui.label("Low");
+            ui.add(egui::TextEdit::singleline(low).desired_width(120.0))
+                .on_hover_text(
+                    "One number for every input, or a comma list (one per input or per channel)",
+                );
+        });
+        ui.horizontal(|ui| {
+            ui.label("High");
+            ui.add(egui::TextEdit::singleline(high).desired_width(120.0));
+        });
+        let parsed = crate::model::parse_box_values(low)
+            .map_err(|e| format!("low: {e}"))
+            .and_then(|l| {
+                crate::model::parse_box_values(high)
+                    .map(|h| (l, h))
+                    .map_err(|e| format!("high: {e}"))
+            });
+        if let Err(e) = &parsed {
+            ui.colored_label(ui.visuals().error_fg_color, e);
+        }
+        ui.horizontal(|ui| {
+            if ui
+                .add_enabled(parsed.is_ok(), egui::Button::new("Apply box"))
+                .clicked()
+                && let Ok((l, h)) = &parsed
+            {
+                apply = Some(InputBox {
+                    low: Some(l.clone()),
+                    high: Some(h.clone()),
+                });
+            }
+            if ui.button("Cancel").clicked() {
+                close = true;
+            }
+        });
+    });
+    if let Some(b) = apply {
+        actions.push(Action::ReopenWithBox(b));
+        close = true;
+    }
+    if close {
+        state.run.box_edit = None;
+    }
 }
 
 /// The probe in use, with buttons to open another or go back to the uniform one.
@@ -124,13 +208,30 @@ fn probe_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) {
 fn layer_list_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network) {
     let current = state.current_layer();
     let last = net.layers().len().saturating_sub(1);
+    let fields = super::conv::fields_of(net);
     for (i, l) in net.layers().iter().enumerate() {
         let selected = i == current;
-        let title = format!(
-            "{}  ·  {} units  ·  {}",
-            l.name,
-            l.units(),
-            l.activation.name()
+        let entry = super::conv::layer_entry(net, &fields, i);
+        if let Some(e) = entry.as_ref().filter(|e| !e.selectable) {
+            ui.label(&e.title);
+            ui.indent(("layer-health", i), |ui| {
+                for line in &e.lines {
+                    ui.label(egui::RichText::new(line).small());
+                }
+            });
+            ui.add_space(4.0);
+            continue;
+        }
+        let title = entry.as_ref().map_or_else(
+            || {
+                format!(
+                    "{}  ·  {} units  ·  {}",
+                    l.name,
+                    l.units(),
+                    l.activation.name()
+                )
+            },
+            |e| e.title.clone(),
         );
         let resp = ui.add(egui::Button::selectable(
             selected,
@@ -139,7 +240,8 @@ fn layer_list_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network) {
         if resp.clicked() && !selected {
             state.select(Selection { layer: i, unit: 0 }, false);
         }
-        let summary = summary_line(state, i, i == last);
+        let mut summary = entry.map(|e| e.lines).unwrap_or_default();
+        summary.extend(summary_line(state, i, i == last));
         ui.indent(("layer-health", i), |ui| {
             for line in summary {
                 ui.label(egui::RichText::new(line).small());

@@ -7,6 +7,8 @@
 
 pub mod colour;
 pub mod compact;
+pub mod conv;
+pub mod conv_jobs;
 pub mod detail;
 pub mod export;
 mod jobs;
@@ -22,7 +24,7 @@ pub mod worker;
 
 pub use export::ExportKind;
 
-use crate::model::LoadOptions;
+use crate::model::{InputBox, LoadOptions};
 use state::{AppState, MainView, MapView, Prefs, Selection};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -78,6 +80,8 @@ pub struct Start {
     pub probe: Option<PathBuf>,
     /// Allow side-file paths outside the model's folder.
     pub allow_outside_paths: bool,
+    /// The input box given for `model` (command-line `--low`/`--high`).
+    pub input_box: InputBox,
 }
 
 /// What a file dialog was opened for.
@@ -100,6 +104,9 @@ pub enum Action {
     OpenModelDialog,
     /// Open this model file.
     OpenModel(PathBuf),
+    /// Open the current model file again with this input box (the model summary's box
+    /// editor).
+    ReopenWithBox(InputBox),
     /// Show the open-probe dialog.
     OpenProbeDialog,
     /// Open this probe file.
@@ -169,7 +176,7 @@ impl ReceptorApp {
             app.state.fail(e);
         }
         match start.model {
-            Some(p) => app.open_model(&p),
+            Some(p) => app.open_model_with_box(&p, start.input_box),
             None => app.open_demo(),
         }
         app
@@ -178,6 +185,13 @@ impl ReceptorApp {
     /// Opens a model file in the background. When it fails, the error is shown and the
     /// model that was open stays open.
     pub fn open_model(&mut self, path: &Path) {
+        self.open_model_with_box(path, InputBox::default());
+    }
+
+    /// Opens a model file with an input box given by the user (ends left `None` come from
+    /// the model, or the default for an ONNX file without one).
+    pub fn open_model_with_box(&mut self, path: &Path, input_box: InputBox) {
+        self.state.run.input_box = input_box;
         let opts = self.load_options();
         let run = &mut self.state.run;
         run.open_request += 1;
@@ -259,6 +273,7 @@ impl ReceptorApp {
     fn load_options(&self) -> LoadOptions {
         LoadOptions {
             allow_outside_paths: self.state.allow_outside_paths,
+            input_box: self.state.run.input_box.clone(),
         }
     }
 
@@ -266,6 +281,12 @@ impl ReceptorApp {
         match action {
             Action::OpenModelDialog => self.pick(Pick::Model),
             Action::OpenModel(p) => self.open_model(&p),
+            Action::ReopenWithBox(b) => {
+                match self.state.model.as_ref().and_then(|m| m.path.clone()) {
+                    Some(p) => self.open_model_with_box(&p, b),
+                    None => self.state.fail("the bundled demo model carries its own box; open a model file to change its box"),
+                }
+            }
             Action::OpenProbeDialog => self.pick(Pick::Probe),
             Action::OpenProbe(p) => self.open_probe(&p),
             Action::UniformProbe => self.use_uniform_probe(),
@@ -335,7 +356,7 @@ impl ReceptorApp {
             let path = match purpose {
                 Pick::Model => d
                     .set_title("Open a model")
-                    .add_filter("receptor model (JSON)", &["json"])
+                    .add_filter("model (receptor JSON, ONNX)", &["json", "onnx"])
                     .pick_file(),
                 Pick::Probe => d
                     .set_title("Open probe data")
@@ -391,6 +412,7 @@ impl ReceptorApp {
             return;
         }
         let n_layers = self.state.net().map_or(0, |n| n.layers().len());
+        let net = self.state.net().cloned();
         ctx.input_mut(|i| {
             if i.consume_key(Modifiers::NONE, Key::Escape) && self.worker.pending() > 0 {
                 self.actions.push(Action::Cancel);
@@ -412,23 +434,17 @@ impl ReceptorApp {
             }
             let sel = self.state.selection;
             if let Some(s) = sel {
-                if i.consume_key(Modifiers::NONE, Key::PageDown) && s.layer + 1 < n_layers {
-                    self.state.select(
-                        Selection {
-                            layer: s.layer + 1,
-                            unit: 0,
-                        },
-                        false,
-                    );
+                // Pooling and flatten layers have no units to show: skip them.
+                let has_units = |l: &usize| net.as_ref().is_some_and(|n| n.layer(*l).units() > 0);
+                if i.consume_key(Modifiers::NONE, Key::PageDown)
+                    && let Some(layer) = (s.layer + 1..n_layers).find(has_units)
+                {
+                    self.state.select(Selection { layer, unit: 0 }, false);
                 }
-                if i.consume_key(Modifiers::NONE, Key::PageUp) && s.layer > 0 {
-                    self.state.select(
-                        Selection {
-                            layer: s.layer - 1,
-                            unit: 0,
-                        },
-                        false,
-                    );
+                if i.consume_key(Modifiers::NONE, Key::PageUp)
+                    && let Some(layer) = (0..s.layer).rev().find(has_units)
+                {
+                    self.state.select(Selection { layer, unit: 0 }, false);
                 }
                 if i.consume_key(Modifiers::NONE, Key::Backspace)
                     && let Some(prev) = self.state.history.pop()
@@ -544,7 +560,7 @@ fn drop_overlay(ctx: &egui::Context) {
     painter.text(
         rect.center(),
         egui::Align2::CENTER_CENTER,
-        "Drop a model (.json) or probe data (.csv, .npy)",
+        "Drop a model (.json, .onnx) or probe data (.csv, .npy)",
         egui::TextStyle::Heading.resolve(&ctx.global_style()),
         egui::Color32::WHITE,
     );

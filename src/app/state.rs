@@ -206,6 +206,8 @@ pub struct OpenModel {
     pub origin: String,
     /// The file, when it came from one (recent files, relative probe paths).
     pub path: Option<PathBuf>,
+    /// Where the input box came from (the model summary shows it).
+    pub box_origin: crate::model::BoxOrigin,
 }
 
 /// The probe data in use, held in memory for histograms and top samples.
@@ -358,6 +360,8 @@ pub struct Results {
     pub sensitivity: HashMap<usize, Slot<Arc<Sensitivity>>>,
     /// The pruning curve (model and a labelled probe).
     pub sweep: Slot<Arc<Vec<SweepPoint>>>,
+    /// The convolution views' results (model and probe).
+    pub conv: super::conv_jobs::ConvResults,
     /// Unit-removal curves, whole model and per layer, per ranking criterion (model and a
     /// labelled probe).
     pub unit_curves: HashMap<Criterion, Slot<Arc<UnitCurves>>>,
@@ -398,6 +402,7 @@ impl Results {
         self.activity = Slot::Empty;
         self.sensitivity.clear();
         self.sweep = Slot::Empty;
+        self.conv = super::conv_jobs::ConvResults::default();
         self.unit_curves.clear();
         self.compact.clear();
     }
@@ -424,12 +429,14 @@ impl Results {
             lp.pending = 0;
         }
         self.each_slot(|s| s.forget_pending());
+        self.conv.forget_unfinished();
     }
 
     /// Before "Run again": every result that is not there (pending or failed) becomes
     /// not-asked-for, so it is asked for again.
     pub fn forget_unfinished(&mut self) {
         self.each_slot(|s| s.forget_unfinished());
+        self.conv.forget_unfinished();
     }
 
     /// Runs `f` on the state of every slot.
@@ -522,6 +529,10 @@ pub struct Task {
 pub struct RunState {
     /// The running job.
     pub task: Task,
+    /// The input box given for the model being opened (empty: the model's own).
+    pub input_box: crate::model::InputBox,
+    /// The box editor's text (low, high) while it is open.
+    pub box_edit: Option<(String, String)>,
     /// What is being opened, for the status bar.
     pub opening: Option<String>,
     /// Number of the latest open-model request; replies to older ones are ignored.
@@ -603,6 +614,8 @@ pub struct AppState {
     pub order_cache: Option<(OrderKey, Arc<Vec<usize>>)>,
     /// Pruning fraction chosen for "Save pruned model".
     pub prune_fraction: f64,
+    /// The probe row whose feature maps the convolution detail shows.
+    pub conv_sample: usize,
     /// How the pruning view ranks units for the unit-removal curves.
     pub unit_criterion: Criterion,
     /// The Compact window.
@@ -642,6 +655,7 @@ impl AppState {
             allow_outside_paths,
             order_cache: None,
             prune_fraction: 0.5,
+            conv_sample: 0,
             unit_criterion: Criterion::L1,
             compact: CompactView::default(),
         }

@@ -20,6 +20,42 @@ pub enum ThumbKind {
     Sensitivity(bool),
     /// A probe sample (row index).
     Sample(usize),
+    /// A picture of the convolution views.
+    Conv(ConvPic),
+}
+
+/// The pictures of a convolutional channel (see `app/conv.rs`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum ConvPic {
+    /// The filter as a tile (a colour picture for three input channels).
+    Filter,
+    /// The filter as signed panels, one per input channel.
+    FilterPanels,
+    /// The preferred input cropped to the receptive field of the map centre.
+    PreferredCrop,
+    /// The whole preferred input with the receptive-field box.
+    PreferredBox,
+    /// The effective receptive field (depends on the probe).
+    Erf,
+    /// The channel's feature map on a probe row (depends on the probe).
+    FeatureMap(usize),
+    /// The receptive-field patch of a probe row (depends on the probe).
+    Hit(usize),
+}
+
+impl ConvPic {
+    /// True for pictures computed from the probe.
+    fn needs_probe(self) -> bool {
+        matches!(
+            self,
+            ConvPic::Erf | ConvPic::FeatureMap(_) | ConvPic::Hit(_)
+        )
+    }
+
+    /// True for pictures of the preferred input.
+    fn needs_search(self) -> bool {
+        matches!(self, ConvPic::PreferredCrop | ConvPic::PreferredBox)
+    }
 }
 
 /// Key of one cached texture.
@@ -60,14 +96,23 @@ impl Thumbs {
 
     /// Drops textures that depend on the probe.
     pub fn clear_probe(&mut self) {
-        self.tex
-            .retain(|k, _| !matches!(k.kind, ThumbKind::Sensitivity(_) | ThumbKind::Sample(_)));
+        self.tex.retain(|k, _| match k.kind {
+            ThumbKind::Sensitivity(_) | ThumbKind::Sample(_) => false,
+            ThumbKind::Conv(p) => !p.needs_probe(),
+            _ => true,
+        });
     }
 
     /// Drops the preferred-input textures of one layer (searched again).
     pub fn clear_layer(&mut self, layer: usize) {
-        self.tex
-            .retain(|k, _| !(k.layer == layer && k.kind == ThumbKind::Preferred));
+        self.tex.retain(|k, _| {
+            k.layer != layer
+                || match k.kind {
+                    ThumbKind::Preferred => false,
+                    ThumbKind::Conv(p) => !p.needs_search(),
+                    _ => true,
+                }
+        });
     }
 
     /// The texture for `key`, made by `make` the first time. `tile` uploads count against the

@@ -143,11 +143,14 @@ impl UnitsPanel {
                     .text("Tile size")
                     .integer(),
             );
-            ui.weak(if layer == 0 {
+            let caption = state
+                .net()
+                .and_then(|n| super::conv::tiles_caption(n, layer));
+            ui.weak(caption.unwrap_or(if layer == 0 {
                 "Tiles: incoming weights"
             } else {
                 "Tiles: preferred inputs"
-            });
+            }));
         });
         ui.horizontal_wrapped(|ui| {
             ui.weak("Marks:");
@@ -285,6 +288,9 @@ fn tile_texture(
     layer: usize,
     unit: usize,
 ) -> Option<egui::TextureHandle> {
+    if let Some(t) = super::conv::tile_texture(ctx, state, thumbs, net, layer, unit) {
+        return t;
+    }
     let key = |kind| ThumbKey { layer, unit, kind };
     if layer > 0 {
         let input = state.preferred_of(layer, unit)?.input.clone();

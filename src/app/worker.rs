@@ -20,7 +20,7 @@ use crate::analysis::{
     Progress, bounds, compact, gradient, prefer, prune, screen, sparsity, structured,
 };
 use crate::error::{Error, Result};
-use crate::model::{LoadOptions, Network};
+use crate::model::{BoxOrigin, BoxSource, LoadOptions, Network};
 use crate::probe::memory::{MemoryProbe, read_probe};
 use crate::probe::{DEFAULT_UNIFORM_SAMPLES, DEFAULT_UNIFORM_SEED, ProbeData, ProbeSource};
 use std::path::PathBuf;
@@ -90,6 +90,8 @@ pub enum Job {
     },
     /// The pruning curve on a labelled probe.
     Sweep(Arc<ProbeData>),
+    /// Work of the convolution views.
+    Conv(super::conv_jobs::ConvJob),
     /// The unit-removal curves (whole model and per layer) on a labelled probe.
     UnitCurves {
         /// The labelled probe.
@@ -132,6 +134,7 @@ impl Job {
                 format!("Computing sensitivity of layer {}", lname(*layer))
             }
             Job::Sweep(_) => "Pruning sweep".into(),
+            Job::Conv(job) => job.title(net),
             Job::UnitCurves { criterion, .. } => {
                 format!(
                     "Unit-removal sweeps (units ranked by {})",
@@ -178,7 +181,7 @@ pub enum Reply {
         /// The request number given by [`Worker::open_model`].
         request: u64,
         /// The model, its name for messages and its path.
-        result: Result<(Network, String, Option<PathBuf>)>,
+        result: Result<(Network, String, Option<PathBuf>, BoxOrigin)>,
     },
     /// Statistics, histograms and bounds.
     Model {
@@ -231,6 +234,13 @@ pub enum Reply {
         tag: Tag,
         /// Points or error.
         result: Result<Arc<Vec<SweepPoint>>>,
+    },
+    /// A result of the convolution views.
+    Conv {
+        /// Model and probe tag.
+        tag: Tag,
+        /// The result.
+        reply: super::conv_jobs::ConvReply,
     },
     /// The unit-removal curves of one criterion.
     UnitCurves {
@@ -359,12 +369,17 @@ impl Worker {
             .name("receptor-open".into())
             .spawn(move || {
                 let result = match source {
-                    ModelSource::File(path) => crate::model::load(&path, &opts)
-                        .map(|n| (n, path.display().to_string(), Some(path.clone()))),
+                    ModelSource::File(path) => crate::model::load_with_origin(&path, &opts)
+                        .map(|(n, b)| (n, path.display().to_string(), Some(path.clone()), b)),
                     ModelSource::Text { text, origin } => {
                         let base = std::path::Path::new(".");
-                        crate::model::from_json_str(&text, &origin, base, &opts)
-                            .map(|n| (n, origin.clone(), None))
+                        crate::model::from_json_str(&text, &origin, base, &opts).map(|n| {
+                            let b = BoxOrigin {
+                                low: BoxSource::ModelFile,
+                                high: BoxSource::ModelFile,
+                            };
+                            (n, origin.clone(), None, b)
+                        })
                     }
                 };
                 let _ = tx.send(Reply::ModelOpened { request, result });
@@ -532,6 +547,13 @@ fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
                 tag,
                 result: not_cancelled(result)?.map(Arc::new),
             }
+        }
+        Job::Conv(job) => {
+            let reply = job.run(net, progress);
+            if super::conv_jobs::ConvJob::was_cancelled(&reply) {
+                return None;
+            }
+            Reply::Conv { tag, reply }
         }
         Job::UnitCurves { data, criterion } => {
             let result = structured::unit_curves(

@@ -67,10 +67,14 @@ pub struct CheckArgs {
     #[arg(long, value_name = "FILE")]
     pub out: Option<PathBuf>,
 
-    /// Allow the model's side files (safetensors) to be absolute paths or to lie outside the
-    /// model's folder.
+    /// Allow the model's side files (safetensors, ONNX external data) to be absolute paths
+    /// or to lie outside the model's folder.
     #[arg(long)]
     pub allow_outside_paths: bool,
+
+    /// The input box (ONNX models carry none).
+    #[command(flatten)]
+    pub input_box: super::BoxArgs,
 }
 
 /// The verdict on one hidden layer with rectifier units.
@@ -143,6 +147,7 @@ pub fn run(args: &CheckArgs) -> Result<ExitCode> {
         format: Format::Csv,
         out: args.out.clone(),
         allow_outside_paths: args.allow_outside_paths,
+        input_box: args.input_box.clone(),
     };
     let (net, report, seed) = load_and_screen(
         &common,

@@ -10,7 +10,7 @@ use crate::analysis::compact::{
     DEFAULT_FOLD_TOLERANCE, LayerSummary, Reason, compact_checked,
 };
 use crate::error::{Error, Result};
-use crate::model::{LoadOptions, Network};
+use crate::model::Network;
 use crate::probe::{self, ProbeSource};
 use clap::{Args, ValueEnum};
 use std::path::{Path, PathBuf};
@@ -64,10 +64,14 @@ pub struct CompactArgs {
     #[arg(long, value_name = "T", allow_negative_numbers = true, default_value_t = DEFAULT_CHECK_TOLERANCE)]
     pub check_tolerance: f64,
 
-    /// Allow the model's side files (safetensors) to be absolute paths or to lie outside the
-    /// model's folder.
+    /// Allow the model's side files (safetensors, ONNX external data) to be absolute paths
+    /// or to lie outside the model's folder.
     #[arg(long)]
     pub allow_outside_paths: bool,
+
+    /// The input box (ONNX models carry none).
+    #[command(flatten)]
+    pub input_box: super::BoxArgs,
 }
 
 fn check_tolerance_arg(name: &str, v: f64) -> Result<()> {
@@ -95,12 +99,7 @@ pub fn run(args: &CompactArgs) -> Result<ExitCode> {
             "--also dead-on-probe needs --probe DATA: the units removed are those never active on that data",
         ));
     }
-    let net = crate::model::load(
-        &args.model,
-        &LoadOptions {
-            allow_outside_paths: args.allow_outside_paths,
-        },
-    )?;
+    let net = super::load_model(&args.model, args.allow_outside_paths, &args.input_box)?;
     let request = CompactRequest {
         dead_on_probe,
         fold_tolerance: args.fold_constant.then_some(args.fold_tolerance),

@@ -18,7 +18,7 @@ pub struct FieldsArgs {
     #[arg(value_name = "MODEL")]
     pub model: PathBuf,
 
-    /// Output and loading options shared by every command.
+    /// Output format and file, as for every table command.
     #[command(flatten)]
     pub common: CommonArgs,
 }

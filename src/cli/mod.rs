@@ -6,6 +6,7 @@
 
 pub mod check;
 pub mod compact;
+pub mod convert;
 pub mod fields;
 pub mod forward;
 pub mod output;
@@ -15,7 +16,7 @@ pub mod screen;
 pub mod stats;
 
 use crate::error::{Error, Result};
-use crate::model::{LoadOptions, Network};
+use crate::model::{InputBox, LoadOptions, Network};
 use crate::probe::{self, ProbeSource};
 use clap::{Args, Parser, Subcommand};
 use output::{Destination, Format};
@@ -32,7 +33,8 @@ const ABOUT: &str =
     "Inspect a trained feed-forward network: preferred inputs, weight sparsity, dead ReLU units";
 
 const LONG_ABOUT: &str = "\
-Inspect a trained feed-forward network saved in the receptor-model/1 JSON schema.
+Inspect a trained feed-forward network saved in the receptor-model/1 JSON schema or as an \
+ONNX file (.onnx: a chain of dense layers; see `receptor convert --help`).
 
 Without a command, receptor opens the desktop app (on MODEL, or on the bundled demo model). \
 The commands below do the same analysis from the command line, for scripts and training \
@@ -52,10 +54,14 @@ Exit codes: 0 success; 2 bad input or bad usage; 3 a failed `check`.";
     max_term_width = 100
 )]
 pub struct Cli {
-    /// Model file to open in the desktop app (default: the bundled demo model).
+    /// Model file to open in the desktop app (receptor-model/1 .json or .onnx; default: the
+    /// bundled demo model).
     #[arg(value_name = "MODEL")]
     pub model: Option<PathBuf>,
 
+    /// The input box of the model opened in the app.
+    #[command(flatten)]
+    pub input_box: BoxArgs,
     /// Probe data (.csv or .npy) to open in the desktop app with MODEL (default: uniform
     /// samples of the input box; the demo's own labelled probe for the demo).
     #[arg(long, value_name = "DATA")]
@@ -201,6 +207,16 @@ Weaker arguments only when asked: --fold-constant folds units constant over the 
 active on the --probe data (lossy elsewhere; the accuracy before and after on a labelled \
 probe and the number of changed predictions are reported).")]
     Compact(compact::CompactArgs),
+
+    /// Write a model (ONNX or receptor-model/1) in the receptor-model/1 JSON schema.
+    #[command(long_about = "\
+Write MODEL (an .onnx file, or a receptor-model/1 .json file) to --out in the receptor-model/1 \
+JSON schema, with its tensors inline or, with --tensors FILE, in a safetensors side file in the \
+same folder. The result can then be annotated (feature names, units, class labels) and \
+versioned. ONNX files carry no input box: give --low and --high, or the box is taken from \
+the model's metadata (keys receptor.low and receptor.high), else the default [-1, 1] with a \
+notice on standard error.")]
+    Convert(convert::ConvertArgs),
 }
 
 /// Options shared by the analysis commands.
@@ -215,10 +231,14 @@ pub struct CommonArgs {
     #[arg(long, value_name = "FILE")]
     pub out: Option<PathBuf>,
 
-    /// Allow the model's side files (safetensors) to be absolute paths or to lie outside the
-    /// model's folder.
+    /// Allow the model's side files (safetensors, ONNX external data) to be absolute paths
+    /// or to lie outside the model's folder.
     #[arg(long)]
     pub allow_outside_paths: bool,
+
+    /// The input box (ONNX models carry none).
+    #[command(flatten)]
+    pub input_box: BoxArgs,
 }
 
 impl CommonArgs {
@@ -229,13 +249,61 @@ impl CommonArgs {
 
     /// Loads and validates the model.
     pub fn load(&self, model: &Path) -> Result<Network> {
-        crate::model::load(
-            model,
-            &LoadOptions {
-                allow_outside_paths: self.allow_outside_paths,
-            },
-        )
+        load_model(model, self.allow_outside_paths, &self.input_box)
     }
+}
+
+/// `--low` and `--high`: the input box, for models that carry none (ONNX) or to override a
+/// model's own.
+#[derive(Debug, Clone, Default, Args)]
+pub struct BoxArgs {
+    /// Lower end of the input box: one number for every input, or a comma-separated list
+    /// (one per input, or one per channel of an image). Default: the model's own box (for
+    /// ONNX, metadata key receptor.low), else -1.
+    #[arg(long, value_name = "V[,V...]", allow_hyphen_values = true, value_parser = parse_box_arg)]
+    pub low: Option<BoxValues>,
+
+    /// Upper end of the input box (same form as --low). Default: the model's own box (for
+    /// ONNX, metadata key receptor.high), else 1.
+    #[arg(long, value_name = "V[,V...]", allow_hyphen_values = true, value_parser = parse_box_arg)]
+    pub high: Option<BoxValues>,
+}
+
+/// One end of a box as given on the command line.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BoxValues(pub Vec<f32>);
+
+impl BoxArgs {
+    /// The box as the loader takes it.
+    pub fn to_input_box(&self) -> InputBox {
+        InputBox {
+            low: self.low.as_ref().map(|v| v.0.clone()),
+            high: self.high.as_ref().map(|v| v.0.clone()),
+        }
+    }
+}
+
+/// clap value parser for `--low`/`--high`.
+fn parse_box_arg(text: &str) -> std::result::Result<BoxValues, String> {
+    crate::model::parse_box_values(text).map(BoxValues)
+}
+
+/// Loads and validates a model for a command, and says on standard error when its input
+/// box is the default one (bounds and preferred inputs depend on it).
+pub fn load_model(model: &Path, allow_outside_paths: bool, input_box: &BoxArgs) -> Result<Network> {
+    let opts = LoadOptions {
+        allow_outside_paths,
+        input_box: input_box.to_input_box(),
+    };
+    let (net, origin) = crate::model::load_with_origin(model, &opts)?;
+    if origin.uses_default() {
+        eprintln!(
+            "receptor: {}: {} (give --low and --high to set it)",
+            model.display(),
+            origin.default_notice()
+        );
+    }
+    Ok(net)
 }
 
 /// Options choosing the probe of `screen` and `check`.
@@ -331,6 +399,7 @@ pub fn run(command: Command) -> Result<ExitCode> {
         Command::Check(a) => check::run(&a),
         Command::PruneSweep(a) => prune_sweep::run(&a),
         Command::Compact(a) => compact::run(&a),
+        Command::Convert(a) => convert::run(&a),
         Command::Fields(a) => fields::run(&a),
     }
 }

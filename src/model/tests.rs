@@ -444,6 +444,7 @@ fn side_paths_outside_the_folder_need_permission() {
         &p,
         &LoadOptions {
             allow_outside_paths: true,
+            ..LoadOptions::default()
         },
     )
     .unwrap();

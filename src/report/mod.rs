@@ -7,12 +7,15 @@
 //!   the tick labels of its legend;
 //! - [`picture`]: the one renderer of maps, input pictures, cell grids and tile grids into
 //!   RGBA buffers and PNG bytes, so `receptor prefer --png`, the app's textures and its PNG
-//!   exports draw the same pixels.
+//!   exports draw the same pixels;
+//! - [`filters`]: the convolution pictures (filters, feature maps, effective receptive
+//!   fields, receptive-field crops and boxes), built on [`picture`].
 //!
 //! Like `model/`, `probe/` and `analysis/`, nothing here names egui, eframe or rfd
 //! (`.ci/run` greps); `cli/` and `app/` both build on it and never on each other.
 
 pub mod colour;
+pub mod filters;
 pub mod picture;
 pub mod table;
 pub mod tables;

@@ -102,6 +102,53 @@ impl Picture {
         self.pixels.iter().all(|p| p[3] == 255)
     }
 
+    /// A `width x height` picture from its pixels, row by row from the top left; `None`
+    /// when `pixels` does not hold `width x height` of them.
+    pub fn from_pixels(width: usize, height: usize, pixels: Vec<Rgba>) -> Option<Picture> {
+        (width.checked_mul(height) == Some(pixels.len())).then_some(Picture {
+            width,
+            height,
+            pixels,
+        })
+    }
+
+    /// The part of the picture from column `x0`, row `y0`, `width x height` pixels, clipped
+    /// to the picture (empty when nothing is left).
+    pub fn cropped(&self, x0: usize, y0: usize, width: usize, height: usize) -> Picture {
+        let x1 = x0.saturating_add(width).min(self.width);
+        let y1 = y0.saturating_add(height).min(self.height);
+        let (x0, y0) = (x0.min(x1), y0.min(y1));
+        let pixels = (y0..y1)
+            .flat_map(|y| {
+                self.pixels[y * self.width + x0..y * self.width + x1]
+                    .iter()
+                    .copied()
+            })
+            .collect();
+        Picture {
+            width: x1 - x0,
+            height: y1 - y0,
+            pixels,
+        }
+    }
+
+    /// Draws the outline of the half-open pixel box `[x0, x1) x [y0, y1)` in `colour`, one
+    /// pixel thick, inside the box; parts outside the picture are left out.
+    pub fn outline(&mut self, (x0, y0): (usize, usize), (x1, y1): (usize, usize), colour: Rgba) {
+        let (x1, y1) = (x1.min(self.width), y1.min(self.height));
+        if x0 >= x1 || y0 >= y1 {
+            return;
+        }
+        for x in x0..x1 {
+            self.pixels[y0 * self.width + x] = colour;
+            self.pixels[(y1 - 1) * self.width + x] = colour;
+        }
+        for y in y0..y1 {
+            self.pixels[y * self.width + x0] = colour;
+            self.pixels[y * self.width + x1 - 1] = colour;
+        }
+    }
+
     /// Enlarged `sx` times across and `sy` times down (each at least 1) by repeating pixels,
     /// so that small maps stay crisp.
     pub fn zoomed(&self, sx: usize, sy: usize) -> Picture {
