@@ -24,6 +24,9 @@
 //! - `RECEPTOR_BENCH_PREFER_RESTARTS`: restarts for `prefer` (default 1, the box centre).
 //! - `RECEPTOR_BENCH_ONLY`: comma-separated measurement names to run (default: all), e.g.
 //!   `screen,prefer_all`, for interleaving runs with the numpy script on a busy machine.
+//!   `app_layer` (with `app_first_tiles`) times the app's search of the whole layer h2 at
+//!   the default settings, fed in the app's batches; it runs once, without a warm-up.
+//!   `RECEPTOR_BENCH_APP_UNITS` limits it to the first N units (default: all 2048).
 //!
 //! Every file is written before anything is timed; loads read from the page cache after a
 //! warm-up read, so "disk read" is the speed of reading a cached file, the fair baseline for
@@ -477,6 +480,51 @@ fn main() -> BenchResult<()> {
     let mean_z =
         last.iter().map(|p| f64::from(p.preactivation)).sum::<f64>() / last.len().max(1) as f64;
     let mean_steps = last.iter().map(|p| p.steps as f64).sum::<f64>() / last.len().max(1) as f64;
+
+    // The app's preferred-input search of a whole deep layer at its default settings
+    // (PreferOptions::default(); the bench model has no data file, so no data prior), as
+    // the app feeds it: batches of 16, 32, 64, then 128 units, one after another. Timed
+    // once (no warm-up: it is long); "app_first_tiles" is when the first batch is done.
+    if wanted("app_layer") || wanted("app_first_tiles") {
+        eprintln!("measuring the app's search of layer h2 at the default settings ...");
+        let defaults = prefer::PreferOptions::default();
+        let app_units = env_usize("RECEPTOR_BENCH_APP_UNITS", units.len())?.min(units.len());
+        let units = &units[..app_units];
+        let start = Instant::now();
+        let mut first = None;
+        let mut at = 0;
+        let mut size = 16;
+        while at < units.len() {
+            let end = (at + size).min(units.len());
+            std::hint::black_box(prefer::prefer(
+                &net,
+                1,
+                &units[at..end],
+                &defaults,
+                &Silent,
+            )?);
+            first.get_or_insert_with(|| start.elapsed().as_secs_f64());
+            at = end;
+            size = (size * 2).min(128);
+        }
+        let total = start.elapsed().as_secs_f64();
+        let detail = format!(
+            "layer h2, {} units, app defaults ({} steps, {} restarts), batches 16..128",
+            units.len(),
+            defaults.steps(),
+            defaults.restarts()
+        );
+        timings.push(Timing {
+            name: "app_first_tiles",
+            detail: format!("{detail}: first batch of 16"),
+            runs: first.into_iter().collect(),
+        });
+        timings.push(Timing {
+            name: "app_layer",
+            detail,
+            runs: vec![total],
+        });
+    }
 
     timings.retain(|t| !t.runs.is_empty());
     let threads = rayon::current_num_threads();

@@ -1418,3 +1418,142 @@ fn onnx_models_take_the_box_from_the_command_line_and_convert_writes_it() {
     assert_eq!(r.code, 2);
     assert!(r.stderr.contains("name the output .json"), "{}", r.stderr);
 }
+
+#[test]
+fn attribute_of_a_first_layer_unit_is_its_closed_form() {
+    // NET's hidden unit u2 has z = 0.5 - x0 - x1, a linear function with gradient
+    // (-1, -1, 0, 0): integrated gradients (Sundararajan et al. 2017) are then exactly
+    // -1 * (x_i - x'_i) for i = 0, 1 and 0 for the others. Baseline: the box centre 0.5.
+    let dir = tempfile::tempdir().unwrap();
+    write(dir.path(), "net.json", NET);
+    write(
+        dir.path(),
+        "probe.csv",
+        "x0,x1,x2,x3\n0.25,1,0,0.5\n0.75,0,1,1\n",
+    );
+    let r = receptor(
+        &[
+            "attribute",
+            "net.json",
+            "--layer",
+            "h",
+            "--unit",
+            "2",
+            "--probe",
+            "probe.csv",
+            "--row",
+            "1",
+            "--format",
+            "json",
+        ],
+        dir.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v = json(&r.stdout);
+    let rows = v["rows"].as_array().expect("rows");
+    let want = [-(0.75 - 0.5), -(0.0 - 0.5), 0.0, 0.0];
+    for (row, w) in rows.iter().zip(want) {
+        assert_abs_diff_eq!(row["attribution"].as_f64().unwrap(), w, epsilon = 1e-6);
+    }
+    // Completeness: z(x) - z(x') = (0.5 - 0.75 - 0) - (0.5 - 0.5 - 0.5) = 0.25.
+    assert_abs_diff_eq!(v["sum"].as_f64().unwrap(), 0.25, epsilon = 1e-6);
+    assert_abs_diff_eq!(v["gap"].as_f64().unwrap(), 0.0, epsilon = 1e-6);
+    // A row the probe does not have is a clean error naming the file.
+    let r = receptor(
+        &[
+            "attribute",
+            "net.json",
+            "--layer",
+            "h",
+            "--unit",
+            "2",
+            "--probe",
+            "probe.csv",
+            "--row",
+            "2",
+        ],
+        dir.path(),
+    );
+    assert_bad_input(&r, &["--row", "probe.csv", "2 rows"]);
+}
+
+#[test]
+fn prefer_facets_add_their_columns_and_prior_needs_data() {
+    let dir = tempfile::tempdir().unwrap();
+    write(dir.path(), "net.json", NET);
+    write(
+        dir.path(),
+        "data.csv",
+        "x0,x1,x2,x3\n0.1,0.2,0.3,0.4\n0.9,0.1,0.5,0.2\n0.4,0.6,0.1,0.8\n0.3,0.3,0.9,0.1\n",
+    );
+    let r = receptor(
+        &[
+            "prefer", "net.json", "--layer", "out", "--unit", "1", "--facets", "2",
+        ],
+        dir.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let (header, rows) = csv(&r.stdout);
+    assert_eq!(
+        &header[..7],
+        [
+            "layer",
+            "unit",
+            "facet",
+            "preactivation",
+            "activation",
+            "steps",
+            "facet_spread"
+        ]
+    );
+    assert_eq!(rows.len(), 2);
+    assert_eq!((rows[0][2].as_str(), rows[1][2].as_str()), ("0", "1"));
+    // Without --facets the columns are the usual ones.
+    let r = receptor(
+        &["prefer", "net.json", "--layer", "out", "--unit", "1"],
+        dir.path(),
+    );
+    let (header, _) = csv(&r.stdout);
+    assert_eq!(header[2], "preactivation");
+    // With the data prior: z_yes = 0.1 + 2 relu(0.5 - x0 - x1) <= 1.1, and the prior keeps
+    // the input no farther from the data's mean than the plain optimum (0, 0, *, *).
+    let r = receptor(
+        &[
+            "prefer", "net.json", "--layer", "out", "--unit", "1", "--prior", "data.csv",
+            "--format", "json",
+        ],
+        dir.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v = json(&r.stdout);
+    assert!(v["prior_shrinkage"].as_f64().unwrap() >= 0.0);
+    assert!(v["rows"][0]["preactivation"].as_f64().unwrap() <= 1.1 + 1e-6);
+    let r = receptor(
+        &[
+            "prefer",
+            "net.json",
+            "--layer",
+            "out",
+            "--unit",
+            "1",
+            "--prior-weight",
+            "1",
+        ],
+        dir.path(),
+    );
+    assert_eq!(r.code, 2, "--prior-weight needs --prior");
+    let r = receptor(
+        &[
+            "prefer",
+            "net.json",
+            "--layer",
+            "out",
+            "--unit",
+            "1",
+            "--prior",
+            "missing.csv",
+        ],
+        dir.path(),
+    );
+    assert_bad_input(&r, &["missing.csv"]);
+}

@@ -24,17 +24,23 @@ fn app_with(start: Start) -> Harness<'static, ReceptorApp> {
 /// the UI settle. Panics after `limit` (a hung worker is a failure, not a wait forever).
 fn wait_idle(h: &mut Harness<'static, ReceptorApp>, limit: Duration) {
     let t0 = Instant::now();
-    while h.state().is_busy() {
-        assert!(
-            t0.elapsed() < limit,
-            "the app stayed busy for more than {limit:?}"
-        );
-        h.step();
-        std::thread::sleep(Duration::from_millis(5));
+    loop {
+        while h.state().is_busy() {
+            assert!(
+                t0.elapsed() < limit,
+                "the app stayed busy for more than {limit:?}"
+            );
+            h.step();
+            std::thread::sleep(Duration::from_millis(5));
+        }
+        // A few more frames so replies that arrived last are drawn. Those frames may ask
+        // for more work (the next batch, a view's next result): then wait for that too.
+        h.run_steps(3);
+        if !h.state().is_busy() {
+            break;
+        }
     }
-    // A few more frames so replies that arrived last are drawn (the spinner is gone now,
-    // so the UI settles).
-    h.run_steps(3);
+    // The spinner is gone now, so the UI settles.
     h.run();
 }
 

@@ -4,6 +4,7 @@
 //! arrays, never paths; nothing here depends on the GUI.
 
 pub mod activity;
+pub mod attribute;
 pub mod bounds;
 pub mod channels;
 pub mod compact;

@@ -9,7 +9,7 @@ use super::colour::{self, ColourKey, LegendOrientation};
 use super::maps;
 use super::state::{AppState, MapView, Selection};
 use super::thumbs::{ThumbKey, ThumbKind, Thumbs};
-use crate::analysis::prefer::PreferOptions;
+use crate::analysis::prefer::{MAX_FACETS, PreferOptions};
 use crate::model::{Layout, Network};
 use crate::report::picture::{self, Picture};
 use egui::{Color32, Rect, Sense, pos2, vec2};
@@ -21,11 +21,34 @@ const KEY_WIDTH: f32 = 84.0;
 
 /// The detail panel.
 #[derive(Default)]
-pub struct DetailPanel {}
+pub struct DetailPanel {
+    /// The probe row chosen for the attribution map, and the unit it was chosen for.
+    attribution_row: Option<(Selection, usize)>,
+}
 
 impl DetailPanel {
     /// Forgets per-model view state (the model changed).
-    pub fn reset(&mut self) {}
+    pub fn reset(&mut self) {
+        self.attribution_row = None;
+    }
+
+    /// The probe row the attribution map of `sel` uses: the one chosen in the panel, else
+    /// the sample that drives the unit hardest (once the probe is traced).
+    pub fn attribution_row(&self, state: &AppState, sel: Selection) -> Option<usize> {
+        if let Some((s, row)) = self.attribution_row
+            && s == sel
+        {
+            return Some(row);
+        }
+        state
+            .results
+            .activity
+            .as_ref()
+            .and_then(|a| a.layers.get(sel.layer))
+            .and_then(|l| l.get(sel.unit))
+            .and_then(|u| u.top.first())
+            .map(|t| t.0)
+    }
 
     /// Draws the panel for the selected unit.
     pub fn ui(
@@ -64,7 +87,14 @@ impl DetailPanel {
                 ui.add_space(4.0);
                 header_ui(ui, state, &net, sel);
                 ui.add_space(4.0);
-                map_ui(ui, state, thumbs, &net, sel);
+                if state.prefs.map_view == MapView::Attribution {
+                    self.attribution_controls_ui(ui, state, sel);
+                }
+                let row = self.attribution_row(state, sel);
+                map_ui(ui, state, thumbs, &net, sel, row);
+                if state.prefs.map_view == MapView::Preferred {
+                    facets_ui(ui, state, thumbs, &net, sel);
+                }
                 ui.add_space(6.0);
                 numbers_ui(ui, state, &net, sel);
                 ui.add_space(6.0);
@@ -76,6 +106,28 @@ impl DetailPanel {
                 ui.add_space(6.0);
                 search_ui(ui, state, sel, actions);
             });
+    }
+
+    /// The sample and baseline of the attribution map.
+    fn attribution_controls_ui(&mut self, ui: &mut egui::Ui, state: &mut AppState, sel: Selection) {
+        let rows = state.probe.as_ref().map_or(0, |p| p.data.inputs.nrows());
+        if rows == 0 {
+            return;
+        }
+        let mut row = self.attribution_row(state, sel).unwrap_or(0);
+        ui.horizontal(|ui| {
+            ui.label("Probe row");
+            if ui
+                .add(egui::DragValue::new(&mut row).range(0..=rows - 1))
+                .changed()
+            {
+                self.attribution_row = Some((sel, row));
+            }
+            ui.label("from");
+            let m = &mut state.prefs.attribution_from_mean;
+            ui.selectable_value(m, false, "box centre");
+            ui.selectable_value(m, true, "probe mean");
+        });
     }
 }
 
@@ -125,6 +177,10 @@ fn header_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Select
             .on_hover_text("P");
         ui.selectable_value(v, MapView::Sensitivity, "Sensitivity")
             .on_hover_text("S: gradient of the pre-activation at the mean probe input");
+        ui.selectable_value(v, MapView::Attribution, "Attribution")
+            .on_hover_text(
+                "Integrated gradients: how each input moves z from the baseline to a probe sample",
+            );
     });
 }
 
@@ -138,7 +194,12 @@ enum MapData {
     Input(Vec<f32>),
 }
 
-fn map_data(state: &AppState, net: &Network, sel: Selection) -> Result<MapData, String> {
+fn map_data(
+    state: &AppState,
+    net: &Network,
+    sel: Selection,
+    row: Option<usize>,
+) -> Result<MapData, String> {
     let l = &net.layers()[sel.layer];
     let scale_mode = state.prefs.scale;
     match state.prefs.map_view {
@@ -186,6 +247,24 @@ fn map_data(state: &AppState, net: &Network, sel: Selection) -> Result<MapData, 
                 None => Err("Computing the sensitivity at the mean probe input…".into()),
             }
         }
+        MapView::Attribution => {
+            let Some(row) = row else {
+                return Err("Tracing the probe…".into());
+            };
+            let key = super::state::AttributionKey {
+                layer: sel.layer,
+                unit: sel.unit,
+                row,
+                from_mean: state.prefs.attribution_from_mean,
+            };
+            match state.results.attribution.get(&key).and_then(|s| s.as_ref()) {
+                Some(a) => {
+                    let m = maps::max_abs(&a.values);
+                    Ok(MapData::SignedInput(a.values.clone(), m, "attribution"))
+                }
+                None => Err(format!("Integrating gradients for probe row {row}…")),
+            }
+        }
     }
 }
 
@@ -194,11 +273,12 @@ fn map_data(state: &AppState, net: &Network, sel: Selection) -> Result<MapData, 
 pub fn current_map(state: &AppState) -> Option<(String, Picture)> {
     let net = state.net()?;
     let sel = state.selection?;
-    let data = map_data(state, net, sel).ok()?;
+    let data = map_data(state, net, sel, None).ok()?;
     let what = match state.prefs.map_view {
         MapView::Weights => "weights",
         MapView::Preferred => "preferred",
         MapView::Sensitivity => "sensitivity",
+        MapView::Attribution => "attribution",
     };
     let name = format!("{}-unit{}-{what}", net.layers()[sel.layer].name, sel.unit);
     Some((name, image_of(&data, net)))
@@ -219,8 +299,9 @@ fn map_ui(
     thumbs: &mut Thumbs,
     net: &Network,
     sel: Selection,
+    row: Option<usize>,
 ) {
-    let data = match map_data(state, net, sel) {
+    let data = match map_data(state, net, sel, row) {
         Ok(d) => d,
         Err(msg) => {
             map_placeholder_ui(ui, msg);
@@ -230,7 +311,7 @@ fn map_ui(
     let key = ThumbKey {
         layer: sel.layer,
         unit: sel.unit,
-        kind: thumb_kind(state, &data),
+        kind: thumb_kind(state, &data, row),
     };
     let Some(tex) = thumbs.get(ui.ctx(), key, false, || {
         Some(maps::to_color_image(&image_of(&data, net)))
@@ -270,14 +351,70 @@ fn map_placeholder_ui(ui: &mut egui::Ui, msg: String) {
 }
 
 /// Which cached texture the map is (each kind and scale is cached apart).
-fn thumb_kind(state: &AppState, data: &MapData) -> ThumbKind {
+fn thumb_kind(state: &AppState, data: &MapData, row: Option<usize>) -> ThumbKind {
     let shared = state.prefs.scale == colour::ScaleMode::SharedLayer;
     match (data, state.prefs.map_view) {
         (MapData::Cells(..), _) => ThumbKind::Cells(shared),
         (_, MapView::Weights) => ThumbKind::Weights(shared),
         (_, MapView::Preferred) => ThumbKind::Preferred,
         (_, MapView::Sensitivity) => ThumbKind::Sensitivity(shared),
+        (_, MapView::Attribution) => {
+            ThumbKind::Attribution(row.unwrap_or(usize::MAX), state.prefs.attribution_from_mean)
+        }
     }
+}
+
+/// Every facet of the selected unit side by side, with its z and the facets' spread (when
+/// the search ran with more than one facet).
+fn facets_ui(
+    ui: &mut egui::Ui,
+    state: &AppState,
+    thumbs: &mut Thumbs,
+    net: &Network,
+    sel: Selection,
+) {
+    let Some(facets) = state
+        .results
+        .preferred
+        .get(&sel.layer)
+        .and_then(|lp| lp.facets.get(&sel.unit))
+        .filter(|f| f.len() > 1)
+    else {
+        return;
+    };
+    ui.label(format!(
+        "{} facets, mean pairwise distance {:.3} box widths",
+        facets.len(),
+        facets[0].spread
+    ));
+    ui.horizontal_wrapped(|ui| {
+        for p in facets {
+            let key = ThumbKey {
+                layer: sel.layer,
+                unit: sel.unit,
+                kind: ThumbKind::Facet(p.facet),
+            };
+            let tex = thumbs.get(ui.ctx(), key, false, || {
+                Some(maps::input_picture(net.input(), &p.input))
+            });
+            ui.vertical(|ui| {
+                if let Some(t) = tex {
+                    let (r, resp) = ui.allocate_exact_size(vec2(72.0, 72.0), Sense::hover());
+                    ui.painter().image(
+                        t.id(),
+                        r,
+                        Rect::from_min_max(pos2(0.0, 0.0), pos2(1.0, 1.0)),
+                        Color32::WHITE,
+                    );
+                    resp.on_hover_text(format!(
+                        "facet {}: z = {:.4}, activation = {:.4}",
+                        p.facet, p.preactivation, p.activation
+                    ));
+                }
+                ui.small(format!("facet {} · z {:.3}", p.facet, p.preactivation));
+            });
+        }
+    });
 }
 
 /// The map picture drawn at `draw` size, with the value under the pointer and, on a grid
@@ -743,9 +880,24 @@ fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &
     egui::CollapsingHeader::new("Preferred-input search")
         .default_open(false)
         .show(ui, |ui| {
+            let data = state.probe.as_ref().and_then(|p| p.reference.as_ref());
+            let prior_text = match data {
+                Some(r) => format!("Stay near the data ({})", r.origin()),
+                None => "Stay near the data (open a probe file)".to_string(),
+            };
+            ui.add_enabled(
+                data.is_some(),
+                egui::Checkbox::new(&mut state.prefs.use_prior, prior_text),
+            )
+            .on_hover_text(
+                "Data prior: start from the unit's top-activating samples and penalise inputs \
+                 far from the probe data (its mean and Ledoit-Wolf covariance). Off: the plain \
+                 search over the whole input box.",
+            );
             let s = &mut state.prefs.search;
             let (mut steps, mut restarts, mut l2, mut tv) =
                 (s.steps(), s.restarts(), s.l2(), s.tv());
+            let (mut weight, mut facets) = (s.prior_weight(), s.facets());
             egui::Grid::new("search-settings")
                 .num_columns(2)
                 .show(ui, |ui| {
@@ -769,9 +921,22 @@ fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &
                             .speed(0.001),
                     );
                     ui.end_row();
+                    ui.label("Prior weight");
+                    ui.add(
+                        egui::DragValue::new(&mut weight)
+                            .range(0.0..=100.0)
+                            .speed(0.01),
+                    );
+                    ui.end_row();
+                    ui.label("Facets");
+                    ui.add(egui::DragValue::new(&mut facets).range(1..=MAX_FACETS));
+                    ui.end_row();
                 });
             // The controls stay inside the valid ranges; the core's constructor checks anyway.
-            if let Ok(o) = PreferOptions::new(steps, restarts, s.seed(), l2, tv) {
+            if let Ok(o) = PreferOptions::new(steps, restarts, s.seed(), l2, tv)
+                .and_then(|o| o.with_prior_weight(weight))
+                .and_then(|o| o.with_facets(facets))
+            {
                 *s = o;
             }
             let used = state.results.preferred.get(&sel.layer).map(|p| &p.settings);

@@ -4,18 +4,23 @@
 //! that is no longer open is dropped.
 
 use super::state::{
-    ActivityResult, CompactChoice, Criterion, LayerPreferred, MainView, MapView, OpenError,
-    OpenModel, OpenProbe, Prefs, Results, ScreenResult, Selection, Slot, Tag, Task, UnitCurves,
+    ActivityResult, AttributionKey, CompactChoice, Criterion, LayerPreferred, MainView, MapView,
+    OpenError, OpenModel, OpenProbe, Prefs, Results, ScreenResult, Selection, Slot, Tag, Task,
+    UnitCurves,
 };
 use super::worker::{self, Job, ProbeChoice, Reply};
 use super::{DEMO_PROBE, Pick, ReceptorApp};
 use crate::analysis::compact::CheckedCompaction;
-use crate::analysis::prefer::{PreferOptions, Preferred};
+use crate::analysis::prefer::{PreferOptions, Preferred, Reference};
 use crate::error::Result;
 use crate::model::{BoxOrigin, Network};
 use crate::probe::ProbeData;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
+
+/// Preferred-input batches of one layer queued or running at once (one runs while the
+/// next waits, so the worker never idles and a scroll reorders all later batches).
+const PREFER_IN_FLIGHT: usize = 2;
 
 impl ReceptorApp {
     /// Hands a reply to its handler.
@@ -47,6 +52,13 @@ impl ReceptorApp {
                 if self.state.results.is_current(tag) {
                     let slot = self.state.results.sensitivity.entry(layer).or_default();
                     let failed = slot.settle(result, "sensitivity");
+                    self.notify_failure(failed);
+                }
+            }
+            Reply::Attribute { tag, key, result } => {
+                if self.state.results.is_current(tag) {
+                    let slot = self.state.results.attribution.entry(key).or_default();
+                    let failed = slot.settle(result, "attribution");
                     self.notify_failure(failed);
                 }
             }
@@ -166,6 +178,10 @@ impl ReceptorApp {
         self.state.order_cache = None;
         self.thumbs.clear_probe();
         let data = probe.data.clone();
+        if let Some(e) = &probe.reference_error {
+            self.state
+                .fail(format!("no data prior for the preferred inputs: {e}"));
+        }
         self.state.probe = Some(probe);
         if changed {
             self.state
@@ -200,25 +216,37 @@ impl ReceptorApp {
         if !self.state.results.is_model(tag) {
             return;
         }
+        let current_probe = self.state.results.tag().probe;
         let Some(lp) = self.state.results.preferred.get_mut(&layer) else {
             return;
         };
         if lp.settings != *settings {
             return;
         }
+        if tag.probe != current_probe && lp.data.is_some() {
+            return; // searched with an older probe's data
+        }
         lp.pending = lp.pending.saturating_sub(1);
         match result {
             Ok(found) => {
                 for p in found {
-                    if let Some(slot) = lp.maps.get_mut(p.unit) {
+                    if settings.facets() > 1 {
+                        lp.facets.entry(p.unit).or_default().push(p.clone());
+                    }
+                    if p.facet == 0
+                        && let Some(slot) = lp.maps.get_mut(p.unit)
+                    {
                         *slot = Some(p);
                     }
                 }
             }
-            Err(e) => self
-                .state
-                .fail(format!("preferred-input search failed: {e}")),
+            Err(e) => {
+                lp.queue.clear();
+                self.state
+                    .fail(format!("preferred-input search failed: {e}"));
+            }
         }
+        self.feed_prefer(layer);
     }
 
     fn on_picked(&mut self, purpose: Pick, path: Option<PathBuf>) {
@@ -333,9 +361,24 @@ impl ReceptorApp {
         let tag = self.state.tag();
         let layer = self.state.current_layer();
         self.request_conv(&net, tag);
-        if layer < net.layers().len() && !self.state.results.preferred.contains_key(&layer) {
-            self.queue_prefer(&net, layer, None);
+        if layer < net.layers().len() && self.state.probe.is_some() {
+            let data = self.search_data().map(|_| tag.probe);
+            let stale = self
+                .state
+                .results
+                .preferred
+                .get(&layer)
+                .is_some_and(|lp| lp.data != data);
+            if stale {
+                self.state.results.preferred.remove(&layer);
+                self.thumbs.clear_layer(layer);
+            }
+            if !self.state.results.preferred.contains_key(&layer) {
+                self.queue_prefer(&net, layer, None);
+            }
+            self.feed_prefer(layer);
         }
+        let attribution = self.attribution_key();
         let results = &mut self.state.results;
         if self.state.prefs.map_view == MapView::Sensitivity
             && let Some(p) = &self.state.probe
@@ -345,6 +388,26 @@ impl ReceptorApp {
             let mean = p.mean.clone();
             self.worker
                 .submit(Job::Sensitivity { layer, mean }, net.clone(), tag);
+        }
+        if self.state.prefs.map_view == MapView::Attribution
+            && let Some(key) = attribution
+            && let Some(p) = &self.state.probe
+            && results.attribution.get(&key).is_none_or(Slot::is_empty)
+            && key.row < p.data.inputs.nrows()
+        {
+            results.attribution.entry(key).or_default().request();
+            let sample = Arc::new(p.data.inputs.row(key.row).to_vec());
+            let baseline = Arc::new(if key.from_mean {
+                p.mean.to_vec()
+            } else {
+                net.input().centre()
+            });
+            let job = Job::Attribute {
+                key,
+                sample,
+                baseline,
+            };
+            self.worker.submit(job, net.clone(), tag);
         }
         if self.state.view == MainView::Sparsity
             && let Some(p) = &self.state.probe
@@ -358,7 +421,30 @@ impl ReceptorApp {
         self.request_pruning_work(&net);
     }
 
-    /// Queues preferred-input batches for `layer` (all units, or only `missing` ones).
+    /// The reference data the preferred-input search uses now: the probe file's, when the
+    /// data prior is on and the probe came from a file.
+    pub(super) fn search_data(&self) -> Option<Arc<Reference>> {
+        if !self.state.prefs.use_prior {
+            return None;
+        }
+        self.state.probe.as_ref().and_then(|p| p.reference.clone())
+    }
+
+    /// The attribution the detail panel shows: the selected unit for the probe row chosen
+    /// there (the unit's hardest-driving sample until one is chosen).
+    pub(super) fn attribution_key(&self) -> Option<AttributionKey> {
+        let sel = self.state.selection?;
+        let row = self.detail.attribution_row(&self.state, sel)?;
+        Some(AttributionKey {
+            layer: sel.layer,
+            unit: sel.unit,
+            row,
+            from_mean: self.state.prefs.attribution_from_mean,
+        })
+    }
+
+    /// Marks `layer`'s preferred inputs as wanted (all units, or only `missing` ones); the
+    /// batches are handed to the worker by [`Self::feed_prefer`].
     pub(super) fn queue_prefer(
         &mut self,
         net: &Arc<Network>,
@@ -367,8 +453,8 @@ impl ReceptorApp {
     ) {
         let n = net.layers()[layer].units();
         let settings = self.state.prefs.search.clone();
+        let data = self.search_data().map(|_| self.state.tag().probe);
         let units = missing.unwrap_or_else(|| (0..n).collect());
-        let tag = self.state.tag();
         let entry = self
             .state
             .results
@@ -376,27 +462,65 @@ impl ReceptorApp {
             .entry(layer)
             .or_insert_with(|| LayerPreferred {
                 settings: settings.clone(),
+                data,
                 maps: vec![None; n],
+                facets: std::collections::HashMap::new(),
                 pending: 0,
+                queue: std::collections::VecDeque::new(),
+                next_batch: worker::PREFER_BATCH / 8,
             });
-        // Small batches first so the first tiles appear soon on a large layer, then full
-        // batches (each batch is still one batched call of the core's search).
-        let mut at = 0;
-        let mut size = worker::PREFER_BATCH / 8;
-        while at < units.len() {
-            let end = (at + size).min(units.len());
-            entry.pending += 1;
-            self.worker.submit(
-                Job::Prefer {
-                    layer,
-                    units: units[at..end].to_vec(),
-                    settings: settings.clone(),
-                },
-                net.clone(),
-                tag,
-            );
-            at = end;
-            size = (size * 2).min(worker::PREFER_BATCH);
+        entry.queue.extend(units);
+        self.feed_prefer(layer);
+    }
+
+    /// Hands `layer`'s next preferred-input batches to the worker, keeping at most
+    /// [`PREFER_IN_FLIGHT`] queued or running, so that the units on screen when a batch is
+    /// made go first (each batch is still one batched call of the core's search). Batches
+    /// start small so the first tiles appear soon, then double up to the full size.
+    pub(super) fn feed_prefer(&mut self, layer: usize) {
+        let Some(net) = self.state.net().cloned() else {
+            return;
+        };
+        if self.state.run.stopped {
+            return;
+        }
+        let tag = self.state.tag();
+        let reference = self.search_data();
+        let visible: Vec<usize> = match &self.state.run.visible {
+            Some((l, units)) if *l == layer => units.clone(),
+            _ => Vec::new(),
+        };
+        let Some(lp) = self.state.results.preferred.get_mut(&layer) else {
+            return;
+        };
+        let reference = if lp.data.is_some() { reference } else { None };
+        while lp.pending < PREFER_IN_FLIGHT && !lp.queue.is_empty() {
+            let size = lp.next_batch;
+            let mut units = Vec::with_capacity(size);
+            for u in &visible {
+                if units.len() == size {
+                    break;
+                }
+                if let Some(at) = lp.queue.iter().position(|q| q == u) {
+                    lp.queue.remove(at);
+                    units.push(*u);
+                }
+            }
+            while units.len() < size {
+                let Some(u) = lp.queue.pop_front() else {
+                    break;
+                };
+                units.push(u);
+            }
+            lp.pending += 1;
+            lp.next_batch = (size * 2).min(worker::PREFER_BATCH);
+            let job = Job::Prefer {
+                layer,
+                units,
+                settings: lp.settings.clone(),
+                reference: reference.clone(),
+            };
+            self.worker.submit(job, net.clone(), tag);
         }
     }
 

@@ -247,7 +247,17 @@ impl ReceptorApp {
 
     /// True while a file is being opened or analysis work is queued or running.
     pub fn is_busy(&self) -> bool {
-        self.state.run.opening.is_some() || self.worker.pending() > 0
+        // Preferred-input batches of the shown layer are handed to the worker a few at a
+        // time: units still queued for it count as work, even in the frame between one
+        // batch's reply and the next batch's submission.
+        let queued = !self.state.run.stopped
+            && self
+                .state
+                .results
+                .preferred
+                .get(&self.state.current_layer())
+                .is_some_and(|lp| !lp.queue.is_empty());
+        self.state.run.opening.is_some() || self.worker.pending() > 0 || queued
     }
 
     /// What the worker is doing now ("" when idle), as the status bar shows it.

@@ -4,10 +4,11 @@
 //! replies fill in results.
 
 pub use crate::analysis::activity::{ActivityResult, UnitActivity};
+use crate::analysis::attribute::Attribution;
 use crate::analysis::bounds::Bounds;
 use crate::analysis::compact::{CheckedCompaction, CompactRequest, DEFAULT_FOLD_TOLERANCE};
 pub use crate::analysis::gradient::Sensitivity;
-use crate::analysis::prefer::{PreferOptions, Preferred};
+use crate::analysis::prefer::{PreferOptions, Preferred, Reference};
 use crate::analysis::prune::SweepPoint;
 use crate::analysis::screen::{ScreenReport, Status, UnitScreen};
 pub use crate::analysis::sparsity::MagnitudeHistogram;
@@ -81,6 +82,8 @@ pub enum MapView {
     Preferred,
     /// The gradient of the unit's pre-activation at the mean probe input.
     Sensitivity,
+    /// Integrated gradients of the unit for one probe sample.
+    Attribution,
 }
 
 /// The main area's two views.
@@ -108,6 +111,8 @@ mod saved_search {
         seed: u64,
         l2: f32,
         tv: f32,
+        prior_weight: f32,
+        facets: usize,
     }
 
     impl From<&PreferOptions> for Saved {
@@ -118,6 +123,8 @@ mod saved_search {
                 seed: o.seed(),
                 l2: o.l2(),
                 tv: o.tv(),
+                prior_weight: o.prior_weight(),
+                facets: o.facets(),
             }
         }
     }
@@ -134,7 +141,10 @@ mod saved_search {
 
     pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<PreferOptions, D::Error> {
         let v = Saved::deserialize(d)?;
-        Ok(PreferOptions::new(v.steps, v.restarts, v.seed, v.l2, v.tv).unwrap_or_default())
+        Ok(PreferOptions::new(v.steps, v.restarts, v.seed, v.l2, v.tv)
+            .and_then(|o| o.with_prior_weight(v.prior_weight))
+            .and_then(|o| o.with_facets(v.facets))
+            .unwrap_or_default())
     }
 }
 
@@ -161,6 +171,11 @@ pub struct Prefs {
     pub problems_only: bool,
     /// The map shown in the detail panel.
     pub map_view: MapView,
+    /// Search preferred inputs with the data prior of the probe file (when one is open);
+    /// off: the plain search.
+    pub use_prior: bool,
+    /// Baseline of the attribution map: the probe's mean (true) or the box centre.
+    pub attribution_from_mean: bool,
 }
 
 impl Default for Prefs {
@@ -174,6 +189,8 @@ impl Default for Prefs {
             sort: SortKey::default(),
             problems_only: false,
             map_view: MapView::default(),
+            use_prior: true,
+            attribution_from_mean: false,
         }
     }
 }
@@ -219,6 +236,11 @@ pub struct OpenProbe {
     pub mean: Arc<Vec<f32>>,
     /// The file, or `None` for the uniform probe.
     pub path: Option<PathBuf>,
+    /// Reference data for the preferred-input search (data prior and starts), made from a
+    /// probe file (`None` for the uniform probe, or when it could not be made).
+    pub reference: Option<Arc<Reference>>,
+    /// Why the reference could not be made from the probe file.
+    pub reference_error: Option<String>,
 }
 
 impl OpenProbe {
@@ -269,10 +291,20 @@ impl ScreenResult {
 pub struct LayerPreferred {
     /// The options these results were computed with.
     pub settings: PreferOptions,
-    /// One entry per unit; `None` until its batch arrives.
+    /// The probe id whose data (prior and starts) the search used; `None` for the plain
+    /// search.
+    pub data: Option<u64>,
+    /// One entry per unit (its facet 0); `None` until its batch arrives.
     pub maps: Vec<Option<Preferred>>,
-    /// Batches still queued or running for this layer.
+    /// Every facet of the units searched with more than one facet.
+    pub facets: HashMap<usize, Vec<Preferred>>,
+    /// Batches queued or running for this layer.
     pub pending: usize,
+    /// Units not yet handed to the worker; the app sends them a batch at a time, the
+    /// units on screen first.
+    pub queue: std::collections::VecDeque<usize>,
+    /// Size of the next batch (small at first, so the first tiles appear soon).
+    pub next_batch: usize,
 }
 
 /// One result in the cache: not asked for yet, being computed, there, or failed (with the
@@ -362,12 +394,28 @@ pub struct Results {
     pub sweep: Slot<Arc<Vec<SweepPoint>>>,
     /// The convolution views' results (model and probe).
     pub conv: super::conv_jobs::ConvResults,
+    /// Integrated gradients per (layer, unit, probe row, baseline) (model and probe).
+    pub attribution: HashMap<AttributionKey, Slot<Arc<Attribution>>>,
     /// Unit-removal curves, whole model and per layer, per ranking criterion (model and a
     /// labelled probe).
     pub unit_curves: HashMap<Criterion, Slot<Arc<UnitCurves>>>,
     /// The compaction and its output check, per choice of the Compact window (model and
     /// probe: the check runs on the probe).
     pub compact: HashMap<CompactChoice, Slot<Arc<CheckedCompaction>>>,
+}
+
+/// Which attribution: unit `unit` of `layer` for probe row `row`, from the probe's mean
+/// (`from_mean`) or the box centre.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub struct AttributionKey {
+    /// Layer index.
+    pub layer: usize,
+    /// Unit index.
+    pub unit: usize,
+    /// Probe row.
+    pub row: usize,
+    /// Baseline: the probe's mean (true) or the box centre (false).
+    pub from_mean: bool,
 }
 
 impl Results {
@@ -403,6 +451,9 @@ impl Results {
         self.sensitivity.clear();
         self.sweep = Slot::Empty;
         self.conv = super::conv_jobs::ConvResults::default();
+        self.attribution.clear();
+        // Searches that used the old probe's data are no longer current.
+        self.preferred.retain(|_, lp| lp.data.is_none());
         self.unit_curves.clear();
         self.compact.clear();
     }
@@ -427,6 +478,7 @@ impl Results {
     pub fn cancel_pending(&mut self) {
         for lp in self.preferred.values_mut() {
             lp.pending = 0;
+            lp.queue.clear();
         }
         self.each_slot(|s| s.forget_pending());
         self.conv.forget_unfinished();
@@ -447,6 +499,9 @@ impl Results {
         f(&mut self.activity);
         f(&mut self.sweep);
         for s in self.sensitivity.values_mut() {
+            f(s);
+        }
+        for s in self.attribution.values_mut() {
             f(s);
         }
         for s in self.unit_curves.values_mut() {
@@ -547,6 +602,9 @@ pub struct RunState {
     pub stopped: bool,
     /// Longest frame (time spent in `ui`) while work was running.
     pub longest_busy_frame: Duration,
+    /// The layer whose tiles are on screen and those units (set by the grid every frame),
+    /// so their preferred inputs are searched first.
+    pub visible: Option<(usize, Vec<usize>)>,
 }
 
 impl RunState {

@@ -20,6 +20,10 @@ pub enum ThumbKind {
     Sensitivity(bool),
     /// A probe sample (row index).
     Sample(usize),
+    /// One facet of the preferred input (facet index).
+    Facet(usize),
+    /// Integrated gradients for a probe row, from the probe mean (true) or the box centre.
+    Attribution(usize, bool),
     /// A picture of the convolution views.
     Conv(ConvPic),
 }
@@ -96,8 +100,13 @@ impl Thumbs {
 
     /// Drops textures that depend on the probe.
     pub fn clear_probe(&mut self) {
+        // Preferred inputs may have used the old probe's data.
         self.tex.retain(|k, _| match k.kind {
-            ThumbKind::Sensitivity(_) | ThumbKind::Sample(_) => false,
+            ThumbKind::Sensitivity(_)
+            | ThumbKind::Sample(_)
+            | ThumbKind::Preferred
+            | ThumbKind::Facet(_)
+            | ThumbKind::Attribution(..) => false,
             ThumbKind::Conv(p) => !p.needs_probe(),
             _ => true,
         });
@@ -108,7 +117,7 @@ impl Thumbs {
         self.tex.retain(|k, _| {
             k.layer != layer
                 || match k.kind {
-                    ThumbKind::Preferred => false,
+                    ThumbKind::Preferred | ThumbKind::Facet(_) => false,
                     ThumbKind::Conv(p) => !p.needs_search(),
                     _ => true,
                 }

@@ -96,6 +96,11 @@ impl UnitsPanel {
                 cell.y - ui.spacing().item_spacing.y,
                 rows,
                 |ui, range| {
+                    // The units on screen, so their preferred inputs are searched first.
+                    let shown = order
+                        .get(range.start * cols..(range.end * cols).min(order.len()))
+                        .unwrap_or_default();
+                    state.run.visible = Some((layer, shown.to_vec()));
                     for row in range {
                         ui.horizontal(|ui| {
                             ui.spacing_mut().item_spacing.x = 0.0;

@@ -8,12 +8,13 @@
 //! sent back as it is.
 
 use super::state::{
-    ActivityResult, CompactChoice, Criterion, OpenProbe, ScreenResult, Sensitivity, StatsResult,
-    Tag, UnitCurves,
+    ActivityResult, AttributionKey, CompactChoice, Criterion, OpenProbe, ScreenResult, Sensitivity,
+    StatsResult, Tag, UnitCurves,
 };
 use crate::analysis::activity::{ActivityOptions, trace_activity};
+use crate::analysis::attribute::{Attribution, DEFAULT_IG_STEPS, integrated_gradients};
 use crate::analysis::compact::CheckedCompaction;
-use crate::analysis::prefer::{PreferOptions, Preferred};
+use crate::analysis::prefer::{PreferOptions, Preferred, Reference};
 use crate::analysis::prune::{DEFAULT_SWEEP_FRACTIONS, SweepPoint};
 use crate::analysis::screen::ScreenOptions;
 use crate::analysis::{
@@ -80,6 +81,17 @@ pub enum Job {
         units: Vec<usize>,
         /// Search options.
         settings: PreferOptions,
+        /// Reference data (prior and starts), `None` for the plain search.
+        reference: Option<Arc<Reference>>,
+    },
+    /// Integrated gradients of one unit for one probe sample.
+    Attribute {
+        /// Which unit, sample and baseline.
+        key: AttributionKey,
+        /// The sample, `[input size]`.
+        sample: Arc<Vec<f32>>,
+        /// The baseline, `[input size]`.
+        baseline: Arc<Vec<f32>>,
     },
     /// Sensitivity of every unit of `layer` at the mean probe input.
     Sensitivity {
@@ -133,6 +145,12 @@ impl Job {
             Job::Sensitivity { layer, .. } => {
                 format!("Computing sensitivity of layer {}", lname(*layer))
             }
+            Job::Attribute { key, .. } => format!(
+                "Attributing unit {} of layer {} for probe row {}",
+                key.unit,
+                lname(key.layer),
+                key.row
+            ),
             Job::Sweep(_) => "Pruning sweep".into(),
             Job::Conv(job) => job.title(net),
             Job::UnitCurves { criterion, .. } => {
@@ -227,6 +245,15 @@ pub enum Reply {
         layer: usize,
         /// Maps, or the error.
         result: Result<Arc<Sensitivity>>,
+    },
+    /// Integrated gradients.
+    Attribute {
+        /// Tag.
+        tag: Tag,
+        /// Which unit, sample and baseline.
+        key: AttributionKey,
+        /// The attribution, or the error.
+        result: Result<Arc<Attribution>>,
     },
     /// The pruning curve.
     Sweep {
@@ -529,11 +556,36 @@ fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
             layer,
             units,
             settings,
+            reference,
         } => Reply::Prefer {
             tag,
             layer: *layer,
             settings: settings.clone(),
-            result: not_cancelled(prefer::prefer(net, *layer, units, settings, progress))?,
+            result: not_cancelled(prefer::prefer_with(
+                net,
+                *layer,
+                units,
+                settings,
+                reference.as_deref(),
+                progress,
+            ))?,
+        },
+        Job::Attribute {
+            key,
+            sample,
+            baseline,
+        } => Reply::Attribute {
+            tag,
+            key: *key,
+            result: integrated_gradients(
+                net,
+                key.layer,
+                key.unit,
+                sample,
+                baseline,
+                DEFAULT_IG_STEPS,
+            )
+            .map(Arc::new),
         },
         Job::Sensitivity { layer, mean } => Reply::Sensitivity {
             tag,
@@ -629,9 +681,20 @@ fn load_probe(net: &Network, choice: &ProbeChoice) -> Result<OpenProbe> {
     };
     let data = read_probe(net, path.as_deref())?;
     let mean = data.mean_input()?;
+    // Real data (a file) defines the preferred-input search's data prior and starts; the
+    // uniform probe is not data.
+    let (reference, reference_error) = match path {
+        Some(_) => match Reference::new(net, &data) {
+            Ok(r) => (Some(Arc::new(r)), None),
+            Err(e) => (None, Some(e.to_string())),
+        },
+        None => (None, None),
+    };
     Ok(OpenProbe {
         data: Arc::new(data),
         mean: Arc::new(mean),
         path,
+        reference,
+        reference_error,
     })
 }

@@ -4,6 +4,7 @@
 //! `--out FILE` (atomically) or standard output. Exit codes: 0 success, 2 bad input or bad
 //! usage, 3 only for a failed `check`.
 
+pub mod attribute;
 pub mod check;
 pub mod compact;
 pub mod convert;
@@ -146,6 +147,17 @@ then x0..x{n-1}, the preferred input. JSON output has one array \"input\" instea
 A search that diverged prints NaN in CSV and null in JSON, with a warning on standard \
 error.")]
     Prefer(prefer::PreferArgs),
+    /// Attribute one sample's drive of a unit to the inputs (integrated gradients).
+    #[command(long_about = "\
+Integrated gradients (Sundararajan, Taly & Yan 2017) of a unit's pre-activation z for one \
+probe sample: per input, (x_i - x'_i) times the mean of dz/dx_i along the straight path from \
+the baseline x' (the box centre, or the probe's mean with --baseline mean) to the sample x \
+(trapezoid rule, --steps intervals).
+
+Columns: input (index), name, value (the sample), baseline, attribution. The attributions \
+sum to z(x) - z(x') up to the integration error; JSON adds z_sample, z_baseline, sum and gap \
+(sum minus that difference).")]
+    Attribute(attribute::AttributeArgs),
     /// Fail (exit 3) when too many rectifier units of a hidden layer are dead.
     #[command(long_about = "\
 For a training pipeline: screen the network (as `screen` does) and count, in every hidden \
@@ -396,6 +408,7 @@ pub fn run(command: Command) -> Result<ExitCode> {
         Command::Stats(a) => stats::run(&a),
         Command::Screen(a) => screen::run(&a),
         Command::Prefer(a) => prefer::run(&a),
+        Command::Attribute(a) => attribute::run(&a),
         Command::Check(a) => check::run(&a),
         Command::PruneSweep(a) => prune_sweep::run(&a),
         Command::Compact(a) => compact::run(&a),

@@ -4,9 +4,10 @@
 use super::CommonArgs;
 use crate::analysis::Silent;
 use crate::analysis::fields::{crop, effective_receptive_field, receptive_fields};
-use crate::analysis::prefer::{PreferOptions, Preferred, prefer};
+use crate::analysis::prefer::{PreferOptions, Preferred, Reference, prefer_with};
 use crate::error::Result;
 use crate::model::Network;
+use crate::probe::memory::read_probe;
 use crate::report::picture;
 use crate::report::table::{Cell, Stop, emit};
 use crate::report::tables;
@@ -76,6 +77,30 @@ pub struct PreferArgs {
     #[arg(long, value_name = "DATA")]
     pub erf_probe: Option<PathBuf>,
 
+    /// Reference data (CSV or .npy, like a probe): the search also starts from each unit's
+    /// top-activating samples, and a data prior keeps the preferred input near the data
+    /// (its mean and Ledoit-Wolf covariance; see --prior-weight).
+    #[arg(long, value_name = "DATA")]
+    pub prior: Option<PathBuf>,
+
+    /// Weight W of the data prior: the search maximises z - W s (x - mean)^T Sigma^-1
+    /// (x - mean) / n, s the spread of the unit's z over the data (0: data starts only).
+    /// Needs --prior.
+    #[arg(
+        long,
+        allow_negative_numbers = true,
+        value_name = "W",
+        requires = "prior",
+        default_value_t = PreferOptions::default().prior_weight()
+    )]
+    pub prior_weight: f32,
+
+    /// K distinct preferred inputs per unit (facets), each from its own cluster of the
+    /// unit's top-activating samples and pushed apart from the others; adds the columns
+    /// `facet` and `facet_spread` (the facets' mean pairwise distance in box widths).
+    #[arg(long, value_name = "K")]
+    pub facets: Option<usize>,
+
     /// Also draw the preferred input(s) as a PNG image (on a convolutional layer cropped to
     /// the receptive field of the chosen position): black is the low end of the input
     /// box, white the high end (mid grey is its centre); a grid of tiles for --all; a
@@ -93,14 +118,23 @@ pub struct PreferArgs {
 pub fn run(args: &PreferArgs) -> Result<ExitCode> {
     // The options are checked when they are made, the unit and the layout by the search.
     let opts = PreferOptions::new(args.steps, args.restarts, args.seed, args.l2, args.tv)?
+        .with_prior_weight(args.prior_weight)?
+        .with_facets(args.facets.unwrap_or(1))?
         .with_position(args.position);
     let net = args.common.load(&args.model)?;
+    let reference = match &args.prior {
+        Some(path) => {
+            let data = read_probe(&net, Some(path))?;
+            Some(Reference::new(&net, &data)?)
+        }
+        None => None,
+    };
     let layer = net.require_layer(&args.layer)?;
     let units: Vec<usize> = match args.unit {
         Some(k) => vec![k],
         None => (0..net.layers()[layer].units()).collect(),
     };
-    let found = prefer(&net, layer, &units, &opts, &Silent)?;
+    let found = prefer_with(&net, layer, &units, &opts, reference.as_ref(), &Silent)?;
     for p in found.iter().filter(|p| !p.finite) {
         eprintln!(
             "receptor: warning: layer '{}' unit {}: the search produced a non-finite value (NaN in CSV, null in JSON)",
@@ -160,8 +194,22 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
         if let Some(maps) = &erf {
             extra.push(("erf", Cell::Objects(maps.clone())));
         }
+        if let Some(r) = &reference {
+            extra.push(("prior", Cell::from(r.origin())));
+            extra.push(("prior_weight", Cell::F32(args.prior_weight)));
+            extra.push(("prior_shrinkage", Cell::F64(r.prior().shrinkage)));
+        }
         let size = net.input().size;
-        tables::write_prefer(args.common.format, w, &args.layer, size, &found, &extra)?;
+        let facets = args.facets.is_some();
+        tables::write_prefer(
+            args.common.format,
+            w,
+            &args.layer,
+            size,
+            &found,
+            facets,
+            &extra,
+        )?;
         Ok::<(), Stop>(())
     })?;
     if let (Some(path), Some(bytes)) = (&args.png, png) {

@@ -138,13 +138,29 @@ impl Activation {
                     alpha
                 }
             }
+            // Where `s (1 - s)` or `1 - t^2` rounds to exactly 0 in f32 (|z| beyond about 17
+            // or 9), the same derivative written without the cancellation, e^-|z| /
+            // (1 + e^-|z|)^2 or sech^2 z, stays positive until it underflows: a saturated
+            // unit keeps a (tiny) gradient to follow. Elsewhere the usual form is kept.
             Activation::Sigmoid => {
                 let s = 1.0 / (1.0 + (-z).exp());
-                s * (1.0 - s)
+                let d = s * (1.0 - s);
+                if d > 0.0 {
+                    d
+                } else {
+                    let e = (-z.abs()).exp();
+                    e / ((1.0 + e) * (1.0 + e))
+                }
             }
             Activation::Tanh => {
                 let t = z.tanh();
-                1.0 - t * t
+                let d = 1.0 - t * t;
+                if d > 0.0 {
+                    d
+                } else {
+                    let c = z.cosh();
+                    1.0 / (c * c)
+                }
             }
         }
     }

@@ -4,12 +4,13 @@
 //! and the same numbers.
 
 use super::table::{Cell, Format, TableWriter};
+use crate::analysis::attribute::Attribution;
 use crate::analysis::prefer::Preferred;
 use crate::analysis::prune::SweepPoint;
 use crate::analysis::screen::UnitScreen;
 use crate::analysis::sparsity::{LayerSummary, UnitStats};
 use crate::analysis::structured::{Criterion, UnitSweepPoint};
-use crate::model::Network;
+use crate::model::{InputSpec, Network};
 use std::io::Write;
 use std::path::Path;
 
@@ -223,28 +224,72 @@ pub fn write_unit_sweep(
     ])
 }
 
+/// The columns that a search with `--facets` adds: `facet` right after `unit`, and the
+/// unit's facets' mean pairwise distance (`facet_spread`, in box widths) before `input`.
+pub const FACET_COLUMNS: [&str; 2] = ["facet", "facet_spread"];
+
 /// Writes the preferred inputs of units of layer `layer` ([`PREFER_COLUMNS`]; `input_size`
-/// CSV columns `x0`, `x1`, … for the input); JSON adds the search settings in `extra`.
+/// CSV columns `x0`, `x1`, … for the input); with `facets`, also the [`FACET_COLUMNS`].
+/// JSON adds the search settings in `extra`.
 pub fn write_prefer(
     format: Format,
     w: &mut dyn Write,
     layer: &str,
     input_size: usize,
     found: &[Preferred],
+    facets: bool,
     extra: &[(&str, Cell)],
 ) -> std::io::Result<()> {
-    let columns = owned(&PREFER_COLUMNS);
-    let mut csv_header: Vec<String> = columns[..5].to_vec();
+    let mut columns = owned(&PREFER_COLUMNS);
+    if facets {
+        columns.insert(2, FACET_COLUMNS[0].to_string());
+        let at = columns.len() - 1;
+        columns.insert(at, FACET_COLUMNS[1].to_string());
+    }
+    let mut csv_header: Vec<String> = columns[..columns.len() - 1].to_vec();
     csv_header.extend((0..input_size).map(|i| format!("x{i}")));
     let mut t = TableWriter::begin(format, w, columns, csv_header)?;
     for p in found {
-        t.row(&[
+        let mut cells = vec![
             Cell::from(layer),
             Cell::from(p.unit),
             Cell::F32(p.preactivation),
             Cell::F32(p.activation),
             Cell::from(p.steps),
-            Cell::F32s(p.input.clone()),
+        ];
+        if facets {
+            cells.insert(2, Cell::from(p.facet));
+            cells.push(Cell::F32(p.spread));
+        }
+        cells.push(Cell::F32s(p.input.clone()));
+        t.row(&cells)?;
+    }
+    t.finish(extra)
+}
+
+/// The columns of the attribution table (`receptor attribute`), in order.
+pub const ATTRIBUTE_COLUMNS: [&str; 5] = ["input", "name", "value", "baseline", "attribution"];
+
+/// Writes integrated gradients: one row per input ([`ATTRIBUTE_COLUMNS`]); JSON adds
+/// `extra` (the unit, the sample's row, z at both ends, the sum and its gap).
+pub fn write_attribute(
+    format: Format,
+    w: &mut dyn Write,
+    input: &InputSpec,
+    sample: &[f32],
+    baseline: &[f32],
+    a: &Attribution,
+    extra: &[(&str, Cell)],
+) -> std::io::Result<()> {
+    let columns = owned(&ATTRIBUTE_COLUMNS);
+    let mut t = TableWriter::begin(format, w, columns.clone(), columns)?;
+    for (i, ((x, b), v)) in sample.iter().zip(baseline).zip(&a.values).enumerate() {
+        t.row(&[
+            Cell::from(i),
+            Cell::from(input.feature_name(i)),
+            Cell::F32(*x),
+            Cell::F32(*b),
+            Cell::F32(*v),
         ])?;
     }
     t.finish(extra)
