@@ -92,17 +92,18 @@ def screen(layers, chw, inp, probe_path):
     hidden = [i for i, l in enumerate(layers[:-1]) if "w" in l]
     acc = {i: None for i in hidden}
     for start in range(0, x_all.shape[0], CHUNK):
-        x = torch.from_numpy(x_all[start:start + CHUNK]).view(-1, h, w, c).permute(0, 3, 1, 2)
+        x = torch.from_numpy(x_all[start:start + CHUNK]).view(-1, h, w, c).permute(0, 3, 1, 2).contiguous()
         for i, l in enumerate(layers[:-1]):
             z = pre(l, x)
             if i in hidden:
                 a = F.relu(z)
                 zf = z.reshape(z.shape[0], z.shape[1], -1)
                 af = a.reshape(a.shape[0], a.shape[1], -1)
+                pos = zf > 0
                 stats = torch.stack([
-                    (zf > 0).any(dim=2).sum(dim=0).double(),
-                    (zf > 0).sum(dim=(0, 2)).double(),
-                    af.double().sum(dim=(0, 2)),
+                    pos.any(dim=2).sum(dim=0, dtype=torch.float64),
+                    pos.sum(dim=(0, 2), dtype=torch.float64),
+                    af.sum(dim=(0, 2), dtype=torch.float64),
                     af.amax(dim=(0, 2)).double(),
                 ])
                 if acc[i] is None:
@@ -137,7 +138,7 @@ def main():
     print(f"torch {torch.__version__}, {torch.get_num_threads()} threads")
     print(f"screen_cnn (PyTorch): median {med:.4f} s, min {min(times):.4f} s, runs {len(times)}")
     if args.rust:
-        r = json.loads(Path(args.rust).read_text())["screen_cnn"]["median_s"]
+        r = json.loads(Path(args.rust).read_text())["results"]["screen_cnn"]["median_s"]
         print(f"screen_cnn: receptor {r:.4f} s / PyTorch {med:.4f} s = {r / med:.2f}")
 
 

@@ -1284,6 +1284,95 @@ fn compact_folds_a_saturated_tanh_only_when_asked() {
     assert_eq!(v["layers"][1]["bias"], serde_json::json!([3.25, -2.0]));
 }
 
+/// `receptor fields` on a hand-worked stack (6 x 6 grey input; conv 3x3 stride 1 padding 1;
+/// max pool 2; conv 3x3 dilation 2): by the recurrences of Araujo, Norris & Sim (Distill
+/// 2019) r = 1 + 2 = 3, j = 1, u = -1 (centre 0); pool: r = 3 + 1 = 4, j = 2, u = -1
+/// (centre 0.5); dilated conv (effective kernel 5, padding 2): r = 4 + 4 x 2 = 12, j = 2,
+/// u = -1 - 2 x 2 = -5 (centre -5 + 11 / 2 = 0.5); the flatten and dense layers see the whole 6 x 6 input (centre 2.5).
+/// `prefer --position` outside the map and on a dense layer are clean bad-option errors.
+#[test]
+fn fields_table_and_prefer_position_on_a_conv_model() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = r#"{"schema": "receptor-model/2", "name": "t",
+      "input": {"size": 36, "layout": {"kind": "image", "height": 6, "width": 6, "channels": 1},
+                "low": 0, "high": 1},
+      "layers": [
+        {"name": "c1", "type": "conv2d", "activation": "relu", "padding": 1,
+         "weights": [[[[1, 0, 0], [0, 1, 0], [0, 0, 1]]]]},
+        {"name": "p", "type": "max_pool2d", "kernel": 2},
+        {"name": "c2", "type": "conv2d", "activation": "relu", "dilation": [2, 2], "padding": 2,
+         "weights": [[[[1, 0, 1], [0, 1, 0], [1, 0, 1]]], [[[0, 1, 0], [1, 0, 1], [0, 1, 0]]]]},
+        {"name": "flat", "type": "flatten"},
+        {"name": "out", "type": "dense", "activation": "identity",
+         "weights": [[1, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 1]]}]}"#;
+    write(dir.path(), "m.json", model);
+    let r = receptor(&["fields", "m.json"], dir.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let want = "layer,type,out_channels,out_height,out_width,rf_height,rf_width,jump_h,jump_w,start_h,start_w\n\
+                c1,conv2d,1,6,6,3,3,1,1,0.0,0.0\n\
+                p,max_pool2d,1,3,3,4,4,2,2,0.5,0.5\n\
+                c2,conv2d,2,3,3,12,12,2,2,0.5,0.5\n\
+                flat,flatten,18,1,1,6,6,,,2.5,2.5\n\
+                out,dense,1,1,1,6,6,,,2.5,2.5\n";
+    assert_eq!(r.stdout, want);
+    // The first layer's closed form: the centre (3, 3) of channel 0 reads pixels (2..5, 2..5)
+    // with the identity kernel, so the optimum is 1 on its diagonal (z = 3) and the PNG is
+    // the 3 x 3 field.
+    let r = receptor(
+        &[
+            "prefer", "m.json", "--layer", "c1", "--unit", "0", "--format", "json", "--png",
+            "p.png",
+        ],
+        dir.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    assert_eq!(v["rows"][0]["preactivation"], 3.0);
+    assert_eq!(v["position"][0]["row"], 3);
+    assert_eq!(v["receptive_field"][0]["row_start"], 2);
+    assert_eq!(v["receptive_field"][0]["row_end"], 5);
+    // The same drawing of the whole 6 x 6 input (a dense layer's preferred input) is larger
+    // than the cropped 3 x 3 field (pictures are scaled up to a minimum size, so not twice).
+    let r = receptor(
+        &[
+            "prefer", "m.json", "--layer", "out", "--unit", "0", "--png", "full.png",
+        ],
+        dir.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let crop = image::open(dir.path().join("p.png")).unwrap();
+    let full = image::open(dir.path().join("full.png")).unwrap();
+    assert!(crop.width() < full.width() && crop.height() < full.height());
+    let r = receptor(
+        &[
+            "prefer",
+            "m.json",
+            "--layer",
+            "c2",
+            "--unit",
+            "0",
+            "--position",
+            "3,0",
+        ],
+        dir.path(),
+    );
+    assert_bad_input(&r, &["position", "3 x 3 map"]);
+    let r = receptor(
+        &[
+            "prefer",
+            "m.json",
+            "--layer",
+            "out",
+            "--unit",
+            "0",
+            "--position",
+            "0,0",
+        ],
+        dir.path(),
+    );
+    assert_bad_input(&r, &["position", "gives a vector"]);
+}
+
 #[test]
 fn onnx_models_take_the_box_from_the_command_line_and_convert_writes_it() {
     // gemm_chain.onnx (5 inputs) carries no box: a notice without --low/--high, none with.

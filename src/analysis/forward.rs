@@ -1,5 +1,5 @@
 //! Batched forward pass: one matrix product per layer for the whole batch (convolutions:
-//! one per sample, see [`super::conv`]).
+//! one per sample, in the private module `analysis::conv`).
 //!
 //! Matrix products go through the `gemm` crate (a pure-Rust, rayon-parallel GEMM) on the
 //! arrays' raw strides, so a `[10000, 784] · [784, 2048]` product runs at BLAS-like speed
@@ -32,10 +32,6 @@ const PAR_MIN_ELEMS: usize = 1 << 15;
 /// # Panics
 /// When the shapes do not agree (a programming error, never caused by user data: every
 /// network is validated before analysis).
-#[allow(
-    unsafe_code,
-    reason = "gemm's raw-pointer API, called after every shape and stride is checked (SAFETY below)"
-)]
 pub(crate) fn gemm_into(
     dst: &mut ArrayViewMut2<f32>,
     a: ArrayView2<f32>,
@@ -57,7 +53,10 @@ pub(crate) fn gemm_serial_into(
 }
 
 /// [`gemm_into`] with a chosen parallelism.
-#[allow(unsafe_code)]
+#[allow(
+    unsafe_code,
+    reason = "gemm's raw-pointer API, called after every shape and stride is checked (SAFETY below)"
+)]
 fn gemm_with(
     dst: &mut ArrayViewMut2<f32>,
     a: ArrayView2<f32>,
@@ -268,7 +267,7 @@ pub fn forward(net: &Network, x: ArrayView2<f32>) -> Array2<f32> {
 
 /// The pre-activations of layer `l` for a batch of its inputs `x: [samples, input values
 /// of l]`: `[samples, output values of l]` (for a dense layer `x · Wᵀ + b`, for the other
-/// kinds see [`super::conv`]; maps in channel-first order).
+/// kinds see the private module `analysis::conv`; maps in channel-first order).
 ///
 /// # Panics
 /// When `x` does not have the layer's input width.
