@@ -16,7 +16,7 @@
 
 use super::Context;
 use super::graph::{Chain, Step, is_default_domain};
-use super::proto::{self, NodeProto};
+use super::proto::{self, NodeProto, TensorProto};
 use super::tensor::{self, Constant};
 use crate::error::Result;
 use crate::model::{Activation, Conv2d, Layer, LayerKind, Layout, window_output};
@@ -488,6 +488,22 @@ fn attr_float(node: &NodeProto, name: &str) -> Option<f32> {
         .and_then(|a| a.f)
 }
 
+/// The constant (initializer) called `name`, or a message naming the node that reads it.
+fn constant<'c>(
+    chain: &Chain<'c>,
+    name: &str,
+    step: Step<'_>,
+    ctx: &Context,
+) -> Result<&'c TensorProto> {
+    chain.constants.get(name).copied().ok_or_else(|| {
+        ctx.node_error(
+            step,
+            &format!("reads '{name}', which is not a constant"),
+            SUPPORTED,
+        )
+    })
+}
+
 /// The constant called `name` as floats, or a message naming the node.
 fn constant_floats(
     chain: &Chain<'_>,
@@ -495,13 +511,7 @@ fn constant_floats(
     step: Step<'_>,
     ctx: &Context,
 ) -> Result<Constant> {
-    let t = chain.constants.get(name).ok_or_else(|| {
-        ctx.node_error(
-            step,
-            &format!("reads '{name}', which is not a constant"),
-            SUPPORTED,
-        )
-    })?;
+    let t = constant(chain, name, step, ctx)?;
     tensor::floats(t, &format!("tensor '{name}'"), ctx)
 }
 
@@ -512,13 +522,7 @@ fn constant_ints(
     step: Step<'_>,
     ctx: &Context,
 ) -> Result<(Vec<usize>, Vec<i64>)> {
-    let t = chain.constants.get(name).ok_or_else(|| {
-        ctx.node_error(
-            step,
-            &format!("reads '{name}', which is not a constant"),
-            SUPPORTED,
-        )
-    })?;
+    let t = constant(chain, name, step, ctx)?;
     tensor::ints(t, &format!("tensor '{name}'"), ctx)
 }
 
