@@ -10,11 +10,10 @@
 
 use super::conv_train::{self, Cnn, CnnTrainOptions};
 use super::train::{Optimizer, Result, TrainError};
-use super::{SOLDER_CLASSES, normal, rect, uniform, write_probe};
+use super::{SOLDER_CLASSES, normal, rect, uniform, write_f32_tensors, write_probe};
 use ndarray::{Array1, Array2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
-use receptor::Error;
 use receptor::atomic::write_bytes_atomic;
 use std::path::Path;
 
@@ -244,16 +243,7 @@ fn write_cnn(net: &Cnn, out: &Path, description: &str) -> Result<()> {
         vec![net.dense_bias.len()],
         bytes_of(&mut net.dense_bias.iter()),
     ));
-    let mut views = Vec::with_capacity(blobs.len());
-    for (name, shape, data) in &blobs {
-        let view =
-            safetensors::tensor::TensorView::new(safetensors::Dtype::F32, shape.clone(), data)
-                .map_err(|e| Error::model(&side, format!("tensor {name}: {e}")))?;
-        views.push((name.clone(), view));
-    }
-    let bytes = safetensors::serialize(views, None)
-        .map_err(|e| Error::model(&side, format!("cannot serialise: {e}")))?;
-    write_bytes_atomic(&out.join(&side), &bytes)?;
+    write_f32_tensors(out, &side, &blobs)?;
 
     // Written by hand in the schema's key order, for people reading the file.
     let q = |v: &str| serde_json::Value::from(v).to_string();

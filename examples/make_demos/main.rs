@@ -667,6 +667,26 @@ fn confusion(net: &NetworkParts, x: &Array2<f32>, y: &[usize]) {
     }
 }
 
+/// Writes `blobs` (name, shape, little-endian f32 bytes) as the safetensors file `side` in
+/// `out`, atomically; used by every demo whose tensors live in a side file.
+fn write_f32_tensors(
+    out: &Path,
+    side: &str,
+    blobs: &[(String, Vec<usize>, Vec<u8>)],
+) -> Result<()> {
+    let mut views = Vec::with_capacity(blobs.len());
+    for (name, shape, data) in blobs {
+        let view =
+            safetensors::tensor::TensorView::new(safetensors::Dtype::F32, shape.clone(), data)
+                .map_err(|e| Error::model(side, format!("tensor {name}: {e}")))?;
+        views.push((name.clone(), view));
+    }
+    let bytes = safetensors::serialize(views, None)
+        .map_err(|e| Error::model(side, format!("cannot serialise: {e}")))?;
+    write_bytes_atomic(&out.join(side), &bytes)?;
+    Ok(())
+}
+
 /// Writes `net` as `{stem}.json` whose weights and biases live in `{stem}.safetensors`
 /// (f32, tensors `{layer}.weight` `[units, inputs]` and `{layer}.bias` `[units]`).
 fn write_safetensors_model(net: &NetworkParts, out: &Path, stem: &str) -> Result<()> {
@@ -687,16 +707,7 @@ fn write_safetensors_model(net: &NetworkParts, out: &Path, stem: &str) -> Result
             bytes(&mut l.bias.iter()),
         ));
     }
-    let mut views = Vec::with_capacity(blobs.len());
-    for (name, shape, data) in &blobs {
-        let view =
-            safetensors::tensor::TensorView::new(safetensors::Dtype::F32, shape.clone(), data)
-                .map_err(|e| Error::model(&side, format!("tensor {name}: {e}")))?;
-        views.push((name.clone(), view));
-    }
-    let bytes = safetensors::serialize(views, None)
-        .map_err(|e| Error::model(&side, format!("cannot serialise: {e}")))?;
-    write_bytes_atomic(&out.join(&side), &bytes)?;
+    write_f32_tensors(out, &side, &blobs)?;
 
     // Written by hand rather than through a serde_json map, to keep the schema's own key
     // order (schema, name, description, input, layers) for people reading the file.
