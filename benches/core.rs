@@ -82,6 +82,7 @@ fn build_network(rng: &mut ChaCha8Rng) -> BenchResult<Network> {
         });
     }
     let input = InputSpec {
+        units: None,
         size: SIZES[0],
         layout: Layout::Image {
             height: 28,
@@ -142,6 +143,7 @@ fn build_cnn(rng: &mut ChaCha8Rng) -> BenchResult<Network> {
     out.labels = None;
     let [h, w, c] = CNN_INPUT;
     let input = InputSpec {
+        units: None,
         size: h * w * c,
         layout: Layout::Image {
             height: h,

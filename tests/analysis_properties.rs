@@ -22,6 +22,7 @@ fn random_net(seed: u64, sizes: &[usize]) -> Network {
         .map(|l| l + rng.random_range(0.0f32..2.0))
         .collect();
     let input = InputSpec {
+        units: None,
         size: n,
         layout: Layout::Vector,
         low,

@@ -276,6 +276,7 @@ fn write_large_model(dir: &Path) -> PathBuf {
         });
     }
     let input = InputSpec {
+        units: None,
         size: 784,
         layout: Layout::Image {
             height: 28,

@@ -73,6 +73,9 @@ const COLD_FEATURES: [&str; 8] = [
     "vibration_mm_s",
 ];
 
+/// The physical unit of each cold-storage feature (the schema's `input.units`).
+const COLD_UNITS: [&str; 8] = ["degC", "%", "min/h", "A", "1/day", "degC", "ppm", "mm/s"];
+
 /// The input box of the cold-storage model: the sensors' plausible measuring ranges.
 const COLD_LOW: [f32; 8] = [-5.0, 0.0, 0.0, 0.0, 0.0, -20.0, 300.0, 0.0];
 /// Upper ends of the cold-storage input box.
@@ -253,6 +256,7 @@ fn solder_data(per_class: usize, seed: u64) -> (Array2<f32>, Vec<usize>) {
 
 fn solder_input() -> InputSpec {
     InputSpec {
+        units: None,
         size: PATCH * PATCH,
         layout: Layout::Image {
             height: PATCH,
@@ -531,6 +535,7 @@ fn cold_storage_model(out: &Path) -> Result<()> {
         ((f64::from(x[(i, j)]) - mean[j]) / sd[j]) as f32
     });
     let input = InputSpec {
+        units: Some(COLD_UNITS.iter().map(|s| s.to_string()).collect()),
         size: features,
         layout: Layout::Vector,
         low: COLD_LOW.to_vec(),

@@ -620,6 +620,7 @@ mod tests {
 
     fn tiny_input(size: usize) -> InputSpec {
         InputSpec {
+            units: None,
             size,
             layout: receptor::model::Layout::Vector,
             low: vec![-1.0; size],

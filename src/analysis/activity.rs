@@ -196,6 +196,7 @@ mod tests {
             0.5,
         );
         let input = InputSpec {
+            units: None,
             size: 5,
             layout: Layout::Vector,
             low: vec![-1.0; 5],
@@ -260,6 +261,7 @@ mod tests {
         let mut rng = ChaCha8Rng::seed_from_u64(1);
         let layers = random_layers(&mut rng, &[2, 3], &[Activation::Relu], 0.1);
         let input = InputSpec {
+            units: None,
             size: 2,
             layout: Layout::Vector,
             low: vec![0.0; 2],

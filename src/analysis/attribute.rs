@@ -142,6 +142,7 @@ mod tests {
     fn net(seed: u64, acts: &[Activation]) -> Network {
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
         let input = InputSpec {
+            units: None,
             size: 6,
             layout: Layout::Vector,
             low: vec![-1.0; 6],

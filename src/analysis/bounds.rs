@@ -320,6 +320,7 @@ mod tests {
             .map(|l| l + rng.random_range(0.1f32..2.0))
             .collect();
         let input = InputSpec {
+            units: None,
             size: n,
             layout: Layout::Vector,
             low,
@@ -428,6 +429,7 @@ mod tests {
         // h0 in [0, 2], h1 in [-1, 1], so z in [-1, 3]. Back-substitution with identity
         // relaxations is exact (Singh et al. 2019).
         let input = InputSpec {
+            units: None,
             size: 2,
             layout: Layout::Vector,
             low: vec![0.0; 2],
@@ -488,6 +490,7 @@ mod tests {
         // x in [0, 1]^2. h = relu(x0 - x1): z in [-1, 1], a in [0, 1].
         // out = 2 h - 1: z in [-1, 1].
         let input = InputSpec {
+            units: None,
             size: 2,
             layout: Layout::Vector,
             low: vec![0.0; 2],

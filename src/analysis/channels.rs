@@ -180,6 +180,7 @@ mod tests {
             [1, 1],
         );
         let input = InputSpec {
+            units: None,
             size: 16,
             layout: Layout::Image {
                 height: 4,

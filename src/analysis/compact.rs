@@ -370,16 +370,17 @@ pub fn apply(net: &Network, plan: &Plan, origin: &str) -> Result<Network> {
     }
     let keep_in = kept(net.input().size, &plan.inputs);
     let pick = |v: &[f32]| keep_in.iter().map(|&i| v[i]).collect::<Vec<f32>>();
+    let pick_text = |v: &Option<Vec<String>>| {
+        v.as_ref()
+            .map(|n| keep_in.iter().map(|&i| n[i].clone()).collect())
+    };
     let input = InputSpec {
+        units: pick_text(&net.input().units),
         size: keep_in.len(),
         layout: net.input().layout,
         low: pick(&net.input().low),
         high: pick(&net.input().high),
-        names: net
-            .input()
-            .names
-            .as_ref()
-            .map(|n| keep_in.iter().map(|&i| n[i].clone()).collect()),
+        names: pick_text(&net.input().names),
     };
     let mut layers = Vec::with_capacity(n_layers);
     let mut cols = keep_in;

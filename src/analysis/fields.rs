@@ -102,6 +102,7 @@ pub fn crop(
     };
     let size = rows.len() * cols.len() * channels;
     let cropped = InputSpec {
+        units: None,
         size,
         layout: Layout::Image {
             height: rows.len(),
@@ -342,6 +343,7 @@ mod tests {
             });
         }
         let input = InputSpec {
+            units: None,
             size: size * size,
             layout: Layout::Image {
                 height: size,

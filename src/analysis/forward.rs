@@ -420,6 +420,7 @@ mod tests {
 
     fn tiny_net(act: Activation) -> Network {
         let input = InputSpec {
+            units: None,
             size: 2,
             layout: Layout::Vector,
             low: vec![-1.0; 2],
@@ -485,6 +486,7 @@ mod tests {
         // one-row forward pass (the batched and per-sample results must agree).
         let mut rng = ChaCha8Rng::seed_from_u64(3);
         let input = InputSpec {
+            units: None,
             size: 40,
             layout: Layout::Vector,
             low: vec![0.0; 40],

@@ -463,6 +463,7 @@ mod tests {
 
     fn random_net(rng: &mut ChaCha8Rng, sizes: &[usize], acts: &[Activation]) -> Network {
         let input = InputSpec {
+            units: None,
             size: sizes[0],
             layout: Layout::Vector,
             low: vec![-1.0; sizes[0]],

@@ -222,6 +222,7 @@ mod tests {
     fn random_net(seed: u64) -> Network {
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
         let input = InputSpec {
+            units: None,
             size: 9,
             layout: Layout::Vector,
             low: vec![-1.0; 9],
@@ -280,6 +281,7 @@ mod tests {
     fn ties_are_counted_exactly() {
         // All |w| equal: still exactly round(0.5 * 4) = 2 zeros.
         let input = InputSpec {
+            units: None,
             size: 2,
             layout: Layout::Vector,
             low: vec![0.0; 2],

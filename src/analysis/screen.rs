@@ -462,6 +462,7 @@ pub(crate) mod tests {
     /// Input box [0, 1]^2 and one hidden layer with hand-chosen units.
     fn hand_net(act: Activation, w: Array2<f32>, b: Array1<f32>) -> Network {
         let input = InputSpec {
+            units: None,
             size: 2,
             layout: Layout::Vector,
             low: vec![0.0; 2],

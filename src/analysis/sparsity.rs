@@ -361,6 +361,7 @@ mod tests {
         let n_in = weights.ncols();
         let units = weights.nrows();
         let input = InputSpec {
+            units: None,
             size: n_in,
             layout: Layout::Vector,
             low: vec![-1.0; n_in],

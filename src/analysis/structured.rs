@@ -395,6 +395,7 @@ mod tests {
     /// Output weights: out0 = h0 + h1 + h2 + h3, out1 = 0.5 (bias), identity.
     fn tiny() -> Network {
         let input = InputSpec {
+            units: None,
             size: 2,
             layout: Layout::Vector,
             low: vec![0.0; 2],

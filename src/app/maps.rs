@@ -41,6 +41,7 @@ mod tests {
         // A 1 x 3 RGB input: its signed map has three one-pixel panels with transparent gaps,
         // so both opaque and transparent pixels cross the conversion.
         let spec = InputSpec {
+            units: None,
             size: 3,
             layout: Layout::Image {
                 height: 1,

@@ -21,6 +21,7 @@ use std::path::Path;
 pub(crate) struct RawModel {
     schema: Option<serde_json::Value>,
     name: Option<String>,
+    step: Option<serde_json::Value>,
     description: Option<String>,
     input: Option<RawInput>,
     layers: Option<Vec<RawLayer>>,
@@ -34,6 +35,7 @@ struct RawInput {
     low: Option<RawBound>,
     high: Option<RawBound>,
     names: Option<Vec<String>>,
+    units: Option<Vec<String>>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -325,6 +327,7 @@ impl<'de> Visitor<'de> for ModelVisitor {
                 "schema" => raw.schema = Some(m.next_value()?),
                 "name" => raw.name = Some(m.next_value()?),
                 "description" => raw.description = m.next_value()?,
+                "step" => raw.step = Some(m.next_value()?),
                 "input" => raw.input = Some(m.next_value()?),
                 "layers" => raw.layers = Some(m.next_value()?),
                 _ => {
@@ -403,6 +406,7 @@ pub(crate) fn build(
 ) -> Result<NetworkParts> {
     let err = |msg: String| Error::model(origin, msg);
     let version = check_schema(raw.schema.as_ref()).map_err(err)?;
+    let step = parse_step(raw.step.as_ref()).map_err(err)?;
     let input = raw
         .input
         .ok_or_else(|| err("missing \"input\" (size, layout, low, high)".into()))?;
@@ -469,6 +473,7 @@ pub(crate) fn build(
     let high =
         expand_bound(input.high, 1.0, size, "high").map_err(|m| err(format!("input: {m}")))?;
     Ok(NetworkParts {
+        step,
         name: raw.name.unwrap_or_default(),
         description: raw.description,
         input: InputSpec {
@@ -477,10 +482,21 @@ pub(crate) fn build(
             low,
             high,
             names: input.names,
+            units: input.units,
         },
         layers,
         extra: raw.extra,
     })
+}
+
+/// The optional top-level `"step"`: a whole number from 0 (a training step).
+fn parse_step(step: Option<&serde_json::Value>) -> std::result::Result<Option<u64>, String> {
+    match step {
+        None => Ok(None),
+        Some(v) => v.as_u64().map(Some).ok_or_else(|| {
+            format!("\"step\" must be a whole number from 0 (a training step), not {v}")
+        }),
+    }
 }
 
 /// The `"schema"` tag must be [`SCHEMA_TAG`] or [`SCHEMA_TAG_2`]; gives the version (1 or 2).

@@ -10,6 +10,7 @@ use super::types::{InputSpec, Layer, LayerKind, NetworkParts, Shape};
 /// [`Network::new`] or [`Network::from_parts`], which all check every shape and value.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Network {
+    step: Option<u64>,
     name: String,
     description: Option<String>,
     input: InputSpec,
@@ -32,6 +33,7 @@ impl Network {
     ) -> crate::Result<Self> {
         Network::from_parts(
             NetworkParts {
+                step: None,
                 name: name.into(),
                 description: None,
                 input,
@@ -47,6 +49,7 @@ impl Network {
     pub fn from_parts(parts: NetworkParts, origin: &str) -> crate::Result<Self> {
         let shapes = super::validate::validate_shapes(&parts, origin)?;
         let NetworkParts {
+            step,
             name,
             description,
             input,
@@ -54,6 +57,7 @@ impl Network {
             extra,
         } = parts;
         Ok(Network {
+            step,
             name,
             description,
             input,
@@ -67,6 +71,7 @@ impl Network {
     /// The network taken apart, to edit and validate again with [`Network::from_parts`].
     pub fn into_parts(self) -> NetworkParts {
         NetworkParts {
+            step: self.step,
             name: self.name,
             description: self.description,
             input: self.input,
@@ -83,6 +88,12 @@ impl Network {
     /// Free-text name.
     pub fn name(&self) -> &str {
         &self.name
+    }
+
+    /// The training step this model was saved at, when the file says (`"step"`); orders a
+    /// series of checkpoints.
+    pub fn step(&self) -> Option<u64> {
+        self.step
     }
 
     /// Optional free-text description.

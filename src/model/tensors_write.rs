@@ -119,6 +119,7 @@ mod tests {
 
     fn net() -> Network {
         let input = InputSpec {
+            units: None,
             size: 3,
             layout: Layout::Vector,
             low: vec![-1.0, 0.0, 2.0],

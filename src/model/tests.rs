@@ -480,3 +480,33 @@ fn files_that_are_not_models() {
         .to_string();
     assert!(e.contains("g.json"), "{e}");
 }
+
+#[test]
+fn step_and_units_round_trip_through_write() {
+    // The optional top-level "step" and "input.units" (schema receptor-model/1) survive a
+    // write and a read, and the reader gives each feature its unit.
+    let mut v: serde_json::Value = serde_json::from_str(GOOD).unwrap();
+    v["step"] = serde_json::json!(1200);
+    let size = v["input"]["size"].as_u64().unwrap() as usize;
+    let units: Vec<String> = (0..size)
+        .map(|i| {
+            if i == 0 {
+                String::new()
+            } else {
+                format!("u{i}")
+            }
+        })
+        .collect();
+    v["input"]["units"] = serde_json::json!(units);
+    let net = load_str(&v.to_string()).unwrap();
+    assert_eq!(net.step(), Some(1200));
+    assert_eq!(
+        net.input().feature_unit(0),
+        None,
+        "an empty unit counts as none"
+    );
+    assert_eq!(net.input().feature_unit(1), Some("u1"));
+    let back = load_str(&to_json_string(&net)).unwrap();
+    assert_eq!(net, back);
+    assert_eq!(back.step(), Some(1200));
+}

@@ -32,6 +32,9 @@ pub struct InputSpec {
     pub high: Vec<f32>,
     /// Optional feature names: `[size]`.
     pub names: Option<Vec<String>>,
+    /// Optional physical units of the features (`"degC"`, `"%"`, `"A"`; empty for none):
+    /// `[size]`.
+    pub units: Option<Vec<String>>,
 }
 
 impl InputSpec {
@@ -41,6 +44,15 @@ impl InputSpec {
             Some(n) if i < n.len() => n[i].clone(),
             _ => format!("x{i}"),
         }
+    }
+
+    /// The unit of input `i`, when the model names one (an empty string counts as none).
+    pub fn feature_unit(&self, i: usize) -> Option<&str> {
+        self.units
+            .as_ref()
+            .and_then(|u| u.get(i))
+            .map(String::as_str)
+            .filter(|u| !u.is_empty())
     }
 
     /// The centre of the input box: `[size]`.
@@ -654,6 +666,8 @@ fn window_sizes(
 /// [`super::Network::from_parts`], which validates them.
 #[derive(Debug, Clone, PartialEq)]
 pub struct NetworkParts {
+    /// The training step the model was saved at (`"step"` in the file), if known.
+    pub step: Option<u64>,
     /// Free-text name.
     pub name: String,
     /// Optional free-text description.

@@ -202,6 +202,15 @@ fn check_input(inp: &InputSpec) -> Problem {
             inp.size
         ));
     }
+    if let Some(units) = &inp.units
+        && units.len() != inp.size
+    {
+        return Err(format!(
+            "input: \"units\" has {} entries but the input has {}",
+            units.len(),
+            inp.size
+        ));
+    }
     Ok(())
 }
 

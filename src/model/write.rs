@@ -73,6 +73,9 @@ pub(crate) fn write_json_inner(
     json(w, &tag)?;
     w.write_all(b",\n  \"name\": ")?;
     json(w, &net.name())?;
+    if let Some(step) = net.step() {
+        write!(w, ",\n  \"step\": {step}")?;
+    }
     if let Some(d) = net.description() {
         w.write_all(b",\n  \"description\": ")?;
         json(w, &d)?;
@@ -97,6 +100,10 @@ pub(crate) fn write_json_inner(
     if let Some(names) = &inp.names {
         w.write_all(b",\n    \"names\": ")?;
         json(w, names)?;
+    }
+    if let Some(units) = &inp.units {
+        w.write_all(b",\n    \"units\": ")?;
+        json(w, units)?;
     }
     w.write_all(b"\n  },\n  \"layers\": [")?;
     for (i, l) in net.layers().iter().enumerate() {

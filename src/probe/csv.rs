@@ -346,6 +346,7 @@ mod tests {
             "test",
             "t",
             InputSpec {
+                units: None,
                 size: 3,
                 layout: Layout::Vector,
                 low: vec![-1.0; 3],

@@ -528,6 +528,7 @@ mod tests {
             "test",
             "t",
             InputSpec {
+                units: None,
                 size: inputs,
                 layout: Layout::Vector,
                 low: vec![-1.0; inputs],

@@ -102,6 +102,7 @@ mod tests {
             "test",
             "t",
             InputSpec {
+                units: None,
                 size: n,
                 layout: Layout::Vector,
                 low,

@@ -156,6 +156,7 @@ mod tests {
 
     fn rgb_spec(height: usize, width: usize) -> InputSpec {
         InputSpec {
+            units: None,
             size: height * width * 3,
             layout: Layout::Image {
                 height,

@@ -522,6 +522,7 @@ mod tests {
 
     fn image_spec(h: usize, w: usize, c: usize, low: f32, high: f32) -> InputSpec {
         InputSpec {
+            units: None,
             size: h * w * c,
             layout: Layout::Image {
                 height: h,
@@ -536,6 +537,7 @@ mod tests {
 
     fn vector_spec(n: usize) -> InputSpec {
         InputSpec {
+            units: None,
             size: n,
             layout: Layout::Vector,
             low: vec![0.0; n],

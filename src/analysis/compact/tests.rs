@@ -14,6 +14,7 @@ use rand_chacha::ChaCha8Rng;
 
 fn input(n: usize) -> InputSpec {
     InputSpec {
+        units: None,
         size: n,
         layout: Layout::Vector,
         low: vec![0.0; n],
@@ -403,6 +404,7 @@ fn screen_finds_no_proven_dead_unit_after_compaction() {
             *b = -8.0;
         }
         let inp = InputSpec {
+            units: None,
             names: None,
             ..input(6)
         };

@@ -18,6 +18,7 @@ fn random_net(seed: u64, sizes: &[usize], acts: &[Activation], layout: Layout) -
         .map(|l| l + rng.random_range(0.5f32..3.0))
         .collect();
     let input = InputSpec {
+        units: None,
         size: n,
         layout,
         low,
@@ -284,6 +285,7 @@ fn cancellation_returns_cancelled() {
 fn overflow_is_reported_not_panicked() {
     // Weights near f32::MAX overflow the second layer's pre-activation to infinity.
     let input = InputSpec {
+        units: None,
         size: 2,
         layout: Layout::Vector,
         low: vec![0.5; 2],
@@ -338,6 +340,7 @@ fn a_flat_start_is_moved_off_and_never_reported_worse() {
     // positive weight on an active first-layer unit can reach z > 0 (e.g. x = +-e_i along
     // that unit's weights), so a search stuck at the centre (z = 0) would be wrong.
     let input = InputSpec {
+        units: None,
         size: 3,
         layout: Layout::Vector,
         low: vec![-1.0; 3],

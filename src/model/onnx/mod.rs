@@ -143,6 +143,7 @@ pub fn from_bytes(
         graph.name.clone()
     };
     let input = InputSpec {
+        units: None,
         size,
         layout: lowered.layout,
         low,
