@@ -22,7 +22,7 @@ Two ways in:
 * ``export_onnx(model, example, path=..., low=..., high=...)``: any PyTorch module through
   ``torch.onnx.export``, with the input box (and class labels) written into the ONNX file's
   ``metadata_props`` under ``receptor.low``, ``receptor.high``, ``receptor.labels`` and
-  ``receptor.names``; receptor opens the ``.onnx`` file directly (needs the ``onnx`` package).
+  ``receptor.names`` (and ``receptor.units``); receptor opens the ``.onnx`` file directly (needs the ``onnx`` package).
 
 Batch normalisation is not a layer type of the schema: ``export_torch`` folds every
 ``BatchNorm2d`` (``BatchNorm1d``) into the ``Conv2d`` (``Linear``) directly before it, using
@@ -289,6 +289,14 @@ _ALLOWED_KEYS = {
 }
 
 
+def _unit_list(units, input_size):
+    """The features' units as strings, one per input, or ExportError."""
+    units = [str(u) for u in units]
+    if len(units) != input_size:
+        raise ExportError(f"units: {len(units)} units but the input size is {input_size}")
+    return units
+
+
 def export_arrays(
     layers,
     input_size,
@@ -303,6 +311,7 @@ def export_arrays(
     description=None,
     safetensors_threshold=DEFAULT_SAFETENSORS_THRESHOLD,
     safetensors_file=None,
+    units=None,
 ):
     """Writes a network given as arrays to ``path`` (JSON) in receptor's model schema.
 
@@ -332,6 +341,8 @@ def export_arrays(
     layout: ``None``/``"vector"`` or ``(height, width[, channels])`` for an image patch
         (row-major, channel last).
     names: optional feature names, ``input_size`` strings.
+    units: optional physical unit of each feature (``"degC"``, ``"%"``, ``"A"``; ``""`` for
+        none), ``input_size`` strings; written as the schema's ``input.units``.
     labels: optional class names for the last layer's units (the last layer must be dense).
     path: the JSON file to write; a side file (default ``<stem>.safetensors`` beside it)
         receives every tensor with at least ``safetensors_threshold`` elements. Use
@@ -360,6 +371,8 @@ def export_arrays(
         if len(names) != input_size:
             raise ExportError(f"names: {len(names)} names but the input size is {input_size}")
         inp["names"] = names
+    if units is not None:
+        inp["units"] = _unit_list(units, input_size)
 
     # What the next layer reads: ("vector", n) or ("map", channels, height, width). The raw
     # input of an image layout is both: a dense layer reads its flat vector, a convolution
@@ -569,6 +582,7 @@ def export_torch(
     description=None,
     safetensors_threshold=DEFAULT_SAFETENSORS_THRESHOLD,
     safetensors_file=None,
+    units=None,
 ):
     """Writes a PyTorch ``nn.Sequential`` to ``path``.
 
@@ -788,6 +802,7 @@ def export_torch(
         description=description,
         safetensors_threshold=safetensors_threshold,
         safetensors_file=safetensors_file,
+        units=units,
     )
 
 
@@ -796,6 +811,7 @@ ONNX_META_LOW = "receptor.low"
 ONNX_META_HIGH = "receptor.high"
 ONNX_META_LABELS = "receptor.labels"
 ONNX_META_NAMES = "receptor.names"
+ONNX_META_UNITS = "receptor.units"
 
 
 def _box_text(value, what):
@@ -806,10 +822,11 @@ def _box_text(value, what):
     return ",".join(repr(float(v)) for v in values)
 
 
-def export_onnx(model, example, *, path, low=-1.0, high=1.0, labels=None, names=None, opset=17):
+def export_onnx(model, example, *, path, low=-1.0, high=1.0, labels=None, names=None, opset=17,
+                units=None):
     """Exports a PyTorch module to ONNX with ``torch.onnx.export`` and writes the input box
-    (one number, one per input, or one per image channel) and optional class labels and
-    feature names into the file's ``metadata_props``. ``example`` is an input batch
+    (one number, one per input, or one per image channel) and optional class labels,
+    feature names and feature units into the file's ``metadata_props``. ``example`` is an input batch
     (``[N, features]`` or ``[N, C, H, W]``); the batch axis is exported as dynamic. The
     module is put in eval mode (Dropout off, BatchNorm with its running statistics).
 
@@ -832,6 +849,8 @@ def export_onnx(model, example, *, path, low=-1.0, high=1.0, labels=None, names=
         meta[ONNX_META_LABELS] = json.dumps([str(x) for x in labels])
     if names is not None:
         meta[ONNX_META_NAMES] = json.dumps([str(x) for x in names])
+    if units is not None:
+        meta[ONNX_META_UNITS] = json.dumps([str(x) for x in units])
 
     def write(tmp):
         with torch.no_grad():
