@@ -1,6 +1,7 @@
 //! The analysis core: forward and backward passes, preferred inputs, sensitivity, sparsity
 //! statistics and |w| histograms, per-unit activity over a probe, interval bounds,
-//! screening for dead units and magnitude pruning. Takes `&Network` and
+//! screening for dead units and magnitude pruning, and the per-feature rows and
+//! optimum summaries the fronts show. Takes `&Network` and
 //! arrays, never paths; nothing here depends on the GUI.
 
 pub mod activity;
@@ -9,9 +10,11 @@ pub mod bounds;
 pub mod channels;
 pub mod compact;
 pub(crate) mod conv;
+pub mod features;
 pub mod fields;
 pub mod forward;
 pub mod gradient;
+pub mod optimum;
 pub mod prefer;
 pub mod prune;
 pub mod screen;
