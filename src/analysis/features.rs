@@ -175,6 +175,29 @@ pub fn feature_rows(
         .collect()
 }
 
+/// How far each value of `values: [spec.size]` lies from the reference median, in box
+/// widths (from the box centre where a feature has no reference data), `[spec.size]`: the
+/// sort key "furthest from the data first" of an input chart. 0 for a box of zero width.
+pub fn distance_from_data(
+    spec: &InputSpec,
+    values: &[f32],
+    spreads: Option<&[Option<FeatureSpread>]>,
+) -> Vec<f32> {
+    (0..spec.size.min(values.len()))
+        .map(|i| {
+            let (lo, hi) = (f64::from(spec.low[i]), f64::from(spec.high[i]));
+            let mid = spreads
+                .and_then(|s| s.get(i).copied().flatten())
+                .map_or((lo + hi) / 2.0, |s| s.median);
+            if hi > lo {
+                ((f64::from(values[i]) - mid).abs() / (hi - lo)) as f32
+            } else {
+                0.0
+            }
+        })
+        .collect()
+}
+
 /// The incoming connections of `unit` of layer `layer` (a dense layer above another layer)
 /// as `(unit below, weight)`, most positive weight first (equal weights in unit order).
 /// Empty for the first layer, a unit out of range or a layer without a weight per unit below.
@@ -319,6 +342,25 @@ mod tests {
         assert_abs_diff_eq!(rows[2].position(7.5), 0.5, epsilon = 1e-6);
         assert_eq!(rows[2].position(-50.0), 0.0);
         assert_eq!(rows[2].position(f64::NAN), 0.5);
+    }
+
+    #[test]
+    fn distance_from_data_is_in_box_widths() {
+        let spread = FeatureSpread {
+            p5: 0.0,
+            median: 10.0,
+            p95: 20.0,
+        };
+        // Feature 0: |15 - 10| / 25 = 0.2 from its median; feature 1 has no data: |0 - 50|
+        // / 100 = 0.5 from the box centre; feature 2: |300 - 1650| / 2700 = 0.5.
+        let d = distance_from_data(
+            &spec(),
+            &[15.0, 0.0, 300.0],
+            Some(&[Some(spread), None, None]),
+        );
+        assert_abs_diff_eq!(d[0], 0.2, epsilon = 1e-6);
+        assert_abs_diff_eq!(d[1], 0.5, epsilon = 1e-6);
+        assert_abs_diff_eq!(d[2], 0.5, epsilon = 1e-6);
     }
 
     #[test]

@@ -176,6 +176,8 @@ pub struct Prefs {
     pub use_prior: bool,
     /// Baseline of the attribution map: the probe's mean (true) or the box centre.
     pub attribution_from_mean: bool,
+    /// Row order of the per-feature charts of vector inputs.
+    pub feature_order: crate::analysis::features::FeatureOrder,
 }
 
 impl Default for Prefs {
@@ -191,6 +193,7 @@ impl Default for Prefs {
             map_view: MapView::default(),
             use_prior: true,
             attribution_from_mean: false,
+            feature_order: Default::default(),
         }
     }
 }
@@ -241,6 +244,9 @@ pub struct OpenProbe {
     pub reference: Option<Arc<Reference>>,
     /// Why the reference could not be made from the probe file.
     pub reference_error: Option<String>,
+    /// Where the file's data lies per feature, `[input size]` (vector inputs read from a
+    /// file only: the uniform probe is not data, and image charts have no rows).
+    pub spreads: Option<Arc<Vec<Option<crate::analysis::features::FeatureSpread>>>>,
 }
 
 impl OpenProbe {

@@ -690,7 +690,14 @@ fn load_probe(net: &Network, choice: &ProbeChoice) -> Result<OpenProbe> {
         },
         None => (None, None),
     };
+    let spreads =
+        (path.is_some() && net.input().layout == crate::model::Layout::Vector).then(|| {
+            Arc::new(crate::analysis::features::feature_spreads(
+                data.inputs.view(),
+            ))
+        });
     Ok(OpenProbe {
+        spreads,
         data: Arc::new(data),
         mean: Arc::new(mean),
         path,
