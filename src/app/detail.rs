@@ -1058,39 +1058,51 @@ fn search_settings_ui(
     egui::Grid::new("search-settings")
         .num_columns(2)
         .show(ui, |ui| {
-            ui.label("Steps");
-            ui.add(egui::DragValue::new(&mut steps).range(1..=10_000));
-            ui.end_row();
-            ui.label("Restarts");
-            ui.add(egui::DragValue::new(&mut restarts).range(1..=64));
-            ui.end_row();
-            ui.label("L2 penalty");
-            ui.add(
+            // Each control is named by its label (screen readers, UI tests).
+            let mut row = |ui: &mut egui::Ui, name: &str, value: egui::DragValue<'_>| {
+                let label = ui.label(name);
+                ui.add(value).labelled_by(label.id);
+                ui.end_row();
+            };
+            row(
+                ui,
+                "Steps",
+                egui::DragValue::new(&mut steps).range(1..=10_000),
+            );
+            row(
+                ui,
+                "Restarts",
+                egui::DragValue::new(&mut restarts).range(1..=64),
+            );
+            row(
+                ui,
+                "L2 penalty",
                 egui::DragValue::new(&mut l2)
                     .range(0.0..=100.0)
                     .speed(0.001),
             );
-            ui.end_row();
             // Total variation smooths neighbouring pixels: vector inputs have none.
             if image {
-                ui.label("Total variation");
-                ui.add(
+                row(
+                    ui,
+                    "Total variation",
                     egui::DragValue::new(&mut tv)
                         .range(0.0..=100.0)
                         .speed(0.001),
                 );
-                ui.end_row();
             }
-            ui.label("Prior weight");
-            ui.add(
+            row(
+                ui,
+                "Prior weight",
                 egui::DragValue::new(&mut weight)
                     .range(0.0..=100.0)
                     .speed(0.01),
             );
-            ui.end_row();
-            ui.label("Facets");
-            ui.add(egui::DragValue::new(&mut facets).range(1..=MAX_FACETS));
-            ui.end_row();
+            row(
+                ui,
+                "Facets",
+                egui::DragValue::new(&mut facets).range(1..=MAX_FACETS),
+            );
         });
     // The controls stay inside the valid ranges; the core's constructor checks anyway.
     if let Ok(o) = PreferOptions::new(steps, restarts, s.seed(), l2, tv)

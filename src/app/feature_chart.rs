@@ -17,9 +17,11 @@ const ROW: f32 = 20.0;
 /// Width of the name column.
 const NAME_W: f32 = 150.0;
 /// Width of each box-end column (input charts).
-const END_W: f32 = 44.0;
-/// Width of the value column.
+const END_W: f32 = 36.0;
+/// Width of the value column of signed charts ("-6.508e-4 per ppm").
 const VALUE_W: f32 = 120.0;
+/// Width of the value column of input charts ("87.76 %").
+const INPUT_VALUE_W: f32 = 84.0;
 /// Rows of the incoming-connection chart shown before it scrolls.
 const INCOMING_VISIBLE: f32 = 16.0;
 
@@ -65,6 +67,15 @@ pub fn row_text(row: &FeatureRow, q: Quantity) -> String {
         Quantity::Share { what, .. } => format!("{what} {}", signed_text(f64::from(row.value))),
     };
     let mut text = format!("{}: {value}; {}", row.name, row.box_text());
+    if let Quantity::Rate { what: "weight", .. } = q {
+        // Features differ in units: what the weight does over the feature's own box
+        // (|w| (high - low), exact for the weighted sum).
+        let span = f64::from(row.high) - f64::from(row.low);
+        text.push_str(&format!(
+            " (moves z by up to {} across it)",
+            number_text(f64::from(row.value.abs()) * span)
+        ));
+    }
     let spread = row.spread_text();
     if !spread.is_empty() {
         text.push_str("; ");
@@ -148,8 +159,13 @@ fn paint_row(ui: &egui::Ui, rect: Rect, row: &FeatureRow, q: Quantity, hovered: 
         font,
         text,
     );
+    let value_w = if q == Quantity::Input {
+        INPUT_VALUE_W
+    } else {
+        VALUE_W
+    };
     let mut track = Rect::from_x_y_ranges(
-        rect.left() + NAME_W..=rect.right() - VALUE_W,
+        rect.left() + NAME_W..=rect.right() - value_w,
         cy - 6.0..=cy + 6.0,
     );
     if q == Quantity::Input {
