@@ -351,10 +351,10 @@ fn map_ui(
         size * s
     };
     ui.horizontal_top(|ui| {
-        map_picture_ui(ui, state, &tex, draw, &data, net, sel);
+        map_picture_ui(ui, &tex, draw, &data, net, sel);
         map_key_ui(ui, &data, net, draw.y.max(140.0) - 40.0);
     });
-    map_caption_ui(ui, &data, net, sel);
+    map_caption_ui(ui, &data, net);
 }
 
 /// The per-feature chart of a vector input's map, with its row order and (for signed
@@ -508,11 +508,9 @@ fn facets_ui(
     });
 }
 
-/// The map picture drawn at `draw` size, with the value under the pointer and, on a grid
-/// of lower units, a click that walks down to the clicked unit.
+/// The map picture drawn at `draw` size, with the value under the pointer.
 fn map_picture_ui(
     ui: &mut egui::Ui,
-    state: &mut AppState,
     tex: &egui::TextureHandle,
     draw: egui::Vec2,
     data: &MapData,
@@ -520,7 +518,7 @@ fn map_picture_ui(
     sel: Selection,
 ) {
     let size = tex.size_vec2();
-    let (rect, resp) = ui.allocate_exact_size(draw, Sense::click());
+    let (rect, resp) = ui.allocate_exact_size(draw, Sense::hover());
     ui.painter().image(
         tex.id(),
         rect,
@@ -554,19 +552,6 @@ fn map_picture_ui(
         )
         .show(|ui| ui.label(t));
     }
-    if let MapData::Cells(w, _) = data {
-        let cols = maps::cell_columns(w.len());
-        let i = y * cols + x;
-        if resp.clicked() && x < cols && i < w.len() && sel.layer > 0 {
-            state.select(
-                Selection {
-                    layer: sel.layer - 1,
-                    unit: i,
-                },
-                true,
-            );
-        }
-    }
 }
 
 /// The key beside the map, `length` points long: the signed colour key, or the grey ramp
@@ -588,15 +573,10 @@ fn map_key_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, length: f32) {
 }
 
 /// One line under the map saying how to read it.
-fn map_caption_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, sel: Selection) {
+fn map_caption_ui(ui: &mut egui::Ui, data: &MapData, net: &Network) {
     match data {
-        MapData::Cells(w, _) => {
-            ui.weak(format!(
-                "One cell per unit of layer {} ({} cells, row by row). Click a cell to go to that unit.",
-                net.layers()[sel.layer - 1].name,
-                w.len()
-            ));
-        }
+        // Drawn as the incoming-connection chart, which says how to read it.
+        MapData::Cells(..) => {}
         MapData::Input(_) => {
             ui.weak("Dark = low end of the input box, light = high end.");
         }
@@ -1059,7 +1039,7 @@ fn search_settings_ui(
         .num_columns(2)
         .show(ui, |ui| {
             // Each control is named by its label (screen readers, UI tests).
-            let mut row = |ui: &mut egui::Ui, name: &str, value: egui::DragValue<'_>| {
+            let row = |ui: &mut egui::Ui, name: &str, value: egui::DragValue<'_>| {
                 let label = ui.label(name);
                 ui.add(value).labelled_by(label.id);
                 ui.end_row();
