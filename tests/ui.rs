@@ -908,7 +908,7 @@ fn vector_unit_reads_its_weights_as_named_quantities() {
     );
 
     // Sorted by |w|: the first row is the feature with the largest |weight| in the file.
-    h.get_by_label("largest |value| first").click();
+    h.get_by_label("largest |w| first").click();
     h.run_steps(2);
     let w: Vec<f64> = doc["layers"][0]["weights"][2]
         .as_array()

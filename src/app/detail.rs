@@ -389,7 +389,9 @@ fn vector_chart_ui(
             features::distance_from_data(net.input(), values, spreads),
             "furthest from the data first",
         ),
-        _ => (values.clone(), "largest |value| first"),
+        Quantity::Rate { what: "weight", .. } => (values.clone(), "largest |w| first"),
+        Quantity::Rate { .. } => (values.clone(), "largest |dz/dx| first"),
+        Quantity::Share { .. } => (values.clone(), "largest |attribution| first"),
     };
     feature_chart::order_ui(ui, &mut state.prefs.feature_order, strongest);
     let rows = features::feature_rows(
