@@ -123,9 +123,12 @@ pub fn chart_ui(ui: &mut egui::Ui, rows: &[FeatureRow], q: Quantity) {
             "Each row spans the feature's box, low to high; dot: the value. Open a reference \
              data file to see where real inputs lie."
         }
+        Quantity::Rate { what: "weight", .. } => {
+            "Bars from zero, in z per unit of each feature. Features differ in units: hover a \
+             row for how far its weight can move z across the feature's box."
+        }
         Quantity::Rate { .. } => {
-            "Bars from zero, in z per unit of each feature: compare a feature's bar with its \
-             box width, since features have different units."
+            "Bars from zero, in z per unit of each feature (features differ in units)."
         }
         Quantity::Share { .. } => "Bars from zero: each feature's share of the change in z.",
     };
