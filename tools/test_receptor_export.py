@@ -410,7 +410,8 @@ def test_exported_files_validate_against_the_schema():
     with tempfile.TemporaryDirectory() as d:
         paths = [
             rx.export_arrays(layers, 8, path=Path(d) / "a.json", layout=(2, 4),
-                             labels=["x", "y", "z"], names=[f"n{i}" for i in range(8)]),
+                             labels=["x", "y", "z"], names=[f"n{i}" for i in range(8)],
+                             units=["degC", "%", "A", "", "ppm", "mm/s", "1/day", "V"]),
             rx.export_arrays(layers, 8, np.zeros(8), np.arange(1, 9), path=Path(d) / "b.json",
                              safetensors_threshold=1, description="side file"),
             # receptor-model/2: every convolutional layer type, inline and in a side file.
