@@ -388,8 +388,8 @@ pub fn incoming_ui(
 }
 
 /// The tile of a unit of a model with vector inputs: a glyph of its chart in `rect` (the
-/// first layer's weights, a deeper unit's preferred input). `None` for other inputs (the
-/// tile is a picture), `Some(false)` while the values are not there yet (a shared-scale
+/// first layer's weights, a deeper unit's preferred input). `None` for other inputs and
+/// for more features than `rect` has points of height (the tile is a picture), `Some(false)` while the values are not there yet (a shared-scale
 /// weight glyph waits for the layer's largest |w|, a preferred input for its search).
 pub fn tile_glyph(
     ui: &egui::Ui,
@@ -399,7 +399,10 @@ pub fn tile_glyph(
     unit: usize,
     rect: Rect,
 ) -> Option<bool> {
-    if !matches!(net.input().layout, crate::model::Layout::Vector) {
+    // Past one feature per point of height the rows would merge: the picture is clearer.
+    if !matches!(net.input().layout, crate::model::Layout::Vector)
+        || net.input().size as f32 > rect.height()
+    {
         return None;
     }
     let spreads = state.probe.as_ref().and_then(|p| p.spreads.as_deref());
