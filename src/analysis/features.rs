@@ -213,6 +213,30 @@ pub fn incoming_by_weight(net: &Network, layer: usize, unit: usize) -> Vec<(usiz
     rows
 }
 
+/// The name of unit `i` of the layer below `layer` in an incoming-connection chart: "h1 unit
+/// 12", "h1 unit 3 (door open)" for a labelled layer, and for a flattened map the place it
+/// came from, "flat unit 37 (channel 2, row 1, column 5)" (channel first, then row, then
+/// column: the order of `Shape::Map`). `layer` must be at least 1 and a layer of `net`.
+pub fn lower_unit_name(net: &Network, layer: usize, i: usize) -> String {
+    let lower = &net.layers()[layer - 1];
+    if lower.labels.is_some() {
+        return format!("{} unit {i} ({})", lower.name, lower.unit_name(i, ""));
+    }
+    if lower.kind == crate::model::LayerKind::Flatten
+        && let crate::model::Shape::Map { height, width, .. } = net.input_shape_of(layer - 1)
+        && height * width > 0
+    {
+        let (c, p) = (i / (height * width), i % (height * width));
+        return format!(
+            "{} unit {i} (channel {c}, row {}, column {})",
+            lower.name,
+            p / width,
+            p % width
+        );
+    }
+    format!("{} unit {i}", lower.name)
+}
+
 /// A number with 4 significant digits, no trailing zeros, scientific notation below 0.001
 /// and from 1e6 up: "3.3", "2700", "0.0015", "1.235e6".
 pub fn number_text(v: f64) -> String {
@@ -389,8 +413,57 @@ mod tests {
             incoming_by_weight(&net, 1, 0),
             vec![(2, 2.0), (0, 0.5), (3, 0.0), (1, -3.0)]
         );
+        assert_eq!(lower_unit_name(&net, 1, 3), "a unit 3");
         assert!(incoming_by_weight(&net, 0, 0).is_empty());
         assert!(incoming_by_weight(&net, 1, 9).is_empty());
+    }
+
+    #[test]
+    fn flattened_units_are_named_by_channel_row_and_column() {
+        // A 2 x 3 x 1 image, a 1x1 conv to 2 channels, flatten (2 x 3 x 1 -> 6), dense.
+        use crate::model::LayerKind::Conv2d;
+        let input = InputSpec {
+            size: 6,
+            layout: Layout::Image {
+                height: 3,
+                width: 2,
+                channels: 1,
+            },
+            low: vec![0.0; 6],
+            high: vec![1.0; 6],
+            names: None,
+            units: None,
+        };
+        let conv = Layer {
+            kind: Conv2d(crate::model::Conv2d {
+                in_channels: 1,
+                kernel: [1, 1],
+                stride: [1, 1],
+                padding: [0, 0],
+                dilation: [1, 1],
+            }),
+            name: "c".into(),
+            activation: Activation::Relu,
+            weights: Array2::ones((2, 1)),
+            bias: Array1::zeros(2),
+            labels: None,
+        };
+        let flat = Layer::flatten("flat");
+        let fc = Layer {
+            kind: LayerKind::Dense,
+            name: "fc".into(),
+            activation: Activation::Identity,
+            weights: Array2::ones((2, 12)),
+            bias: Array1::zeros(2),
+            labels: None,
+        };
+        let net = Network::new("t", "t", input, vec![conv, flat, fc]).unwrap();
+        // Channel first: 12 = 2 channels x 3 rows x 2 columns; unit 9 = channel 1
+        // (9 / 6), place 3 = row 1, column 1.
+        assert_eq!(
+            lower_unit_name(&net, 2, 9),
+            "flat unit 9 (channel 1, row 1, column 1)"
+        );
     }
 
     #[test]

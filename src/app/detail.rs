@@ -853,8 +853,11 @@ fn strongest_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Sel
                             ));
                         } else {
                             let lower = &net.layers()[sel.layer - 1];
-                            let text = format!("{} unit {i}", lower.name);
-                            if ui.link(&text).on_hover_text("Go to this unit").clicked() {
+                            let text = features::lower_unit_name(net, sel.layer, i);
+                            // A flattened map's entries are not units to go to.
+                            if lower.units() == 0 {
+                                ui.label(text);
+                            } else if ui.link(&text).on_hover_text("Go to this unit").clicked() {
                                 state.select(
                                     Selection {
                                         layer: sel.layer - 1,

@@ -7,7 +7,8 @@
 use super::colour::{self, ColourKey};
 use super::state::{AppState, Selection};
 use crate::analysis::features::{
-    FeatureOrder, FeatureRow, FeatureSpread, incoming_by_weight, number_text, signed_text,
+    FeatureOrder, FeatureRow, FeatureSpread, incoming_by_weight, lower_unit_name, number_text,
+    signed_text,
 };
 use crate::model::{InputSpec, Network};
 use egui::{Align2, Color32, Rect, Sense, Stroke, pos2, vec2};
@@ -321,6 +322,7 @@ pub fn incoming_ui(
         return;
     };
     let width = ui.available_width().clamp(380.0, 640.0);
+    let walkable = lower.units() > 0;
     let mut clicked = None;
     egui::ScrollArea::vertical()
         .id_salt(("incoming", sel.layer, sel.unit))
@@ -328,13 +330,15 @@ pub fn incoming_ui(
         .auto_shrink([false, true])
         .show_rows(ui, ROW, rows.len(), |ui, range| {
             for &(i, w) in &rows[range] {
-                let (rect, resp) = ui.allocate_exact_size(vec2(width, ROW), Sense::click());
-                let name = match &lower.labels {
-                    Some(_) => format!("{} unit {i} ({})", lower.name, lower.unit_name(i, "")),
-                    None => format!("{} unit {i}", lower.name),
+                let (sense, role) = if walkable {
+                    (Sense::click(), egui::Role::Button)
+                } else {
+                    (Sense::hover(), egui::Role::ListItem)
                 };
+                let (rect, resp) = ui.allocate_exact_size(vec2(width, ROW), sense);
+                let name = lower_unit_name(net, sel.layer, i);
                 let text = format!("{name}: weight {}", signed_text(f64::from(w)));
-                resp.widget_info(|| egui::WidgetInfo::labeled(egui::Role::Button, true, &text));
+                resp.widget_info(|| egui::WidgetInfo::labeled(role, true, &text));
                 if ui.is_rect_visible(rect) {
                     let visuals = ui.visuals();
                     if resp.hovered() {
@@ -365,14 +369,19 @@ pub fn incoming_ui(
                     );
                     paint_signed_bar(ui.painter(), visuals, track, w, max_abs);
                 }
-                if resp.on_hover_text("Go to this unit").clicked() {
+                // A flattened map's entries are not units of their own: nothing to go to.
+                if walkable && resp.on_hover_text("Go to this unit").clicked() {
                     clicked = Some(i);
                 }
             }
         });
+    let click = if walkable {
+        " Click a row to go to that unit."
+    } else {
+        ""
+    };
     ui.weak(format!(
-        "{} incoming connections from layer {}, most positive first. Click a row to go to \
-         that unit.",
+        "{} incoming connections from layer {}, most positive first.{click}",
         rows.len(),
         lower.name
     ));
