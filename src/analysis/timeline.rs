@@ -489,3 +489,319 @@ pub fn cosine_distance(a: ArrayView1<f32>, b: ArrayView1<f32>) -> f64 {
     }
     (1.0 - ab / (aa.sqrt() * bb.sqrt())).clamp(0.0, 2.0)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::analysis::Silent;
+    use crate::model::{Activation, InputSpec, Layer, LayerKind, Layout};
+    use crate::probe::ProbeData;
+    use crate::probe::memory::MemoryProbe;
+    use approx::assert_abs_diff_eq;
+    use ndarray::{Array1, array};
+    use std::sync::Arc;
+
+    /// Input box [0, 1]^2, one relu layer `h` with incoming weights `w: [units, 2]` and bias
+    /// `b`, and a softmax output layer of 2 units reading `h` with weights `out`.
+    fn net(w: Array2<f32>, b: Array1<f32>, out: Array2<f32>, out_b: Array1<f32>) -> Network {
+        let input = InputSpec {
+            units: None,
+            size: 2,
+            layout: Layout::Vector,
+            low: vec![0.0; 2],
+            high: vec![1.0; 2],
+            names: None,
+        };
+        let h = Layer {
+            kind: LayerKind::Dense,
+            name: "h".into(),
+            activation: Activation::Relu,
+            weights: w,
+            bias: b,
+            labels: None,
+        };
+        let o = Layer {
+            kind: LayerKind::Dense,
+            name: "out".into(),
+            activation: Activation::Softmax,
+            weights: out,
+            bias: out_b,
+            labels: None,
+        };
+        Network::new("t", "t", input, vec![h, o]).expect("valid network")
+    }
+
+    /// The 10 x 10 grid over [0, 0.45]^2 (x = i / 20): every sample has x0 + x1 <= 0.9.
+    fn low_grid(labels: Option<Vec<usize>>) -> Arc<ProbeData> {
+        let inputs = Array2::from_shape_fn((100, 2), |(r, c)| {
+            let i = if c == 0 { r / 10 } else { r % 10 };
+            i as f32 / 20.0
+        });
+        Arc::new(ProbeData {
+            inputs,
+            labels,
+            origin: "grid".into(),
+        })
+    }
+
+    /// Pushes every `(step, net)` on the grid probe and finishes with the first again.
+    fn run(nets: &[(u64, Network)], probe: &Arc<ProbeData>) -> Timeline {
+        let mut b = TimelineBuilder::new(TimelineOptions::default());
+        for (s, n) in nets {
+            b.push(*s, n, &mut MemoryProbe::new(probe.clone()), &Silent)
+                .expect("push");
+        }
+        b.finish(&nets[0].1).expect("finish")
+    }
+
+    // Biases for w = [1, 1] on the box [0, 1]^2 (upper bound of z = b + 2, sound and exact
+    // for one layer, Gowal et al. 2018) and on the grid (largest z = b + 0.9):
+    /// Alive on the grid and in the box.
+    const ALIVE: f32 = 0.5;
+    /// Never active on the grid (z <= -0.6) but upper bound 0.5 > 0: dead_on_probe.
+    const OFF_PROBE: f32 = -1.5;
+    /// Upper bound -1 <= 0: dead_proven.
+    const DEAD: f32 = -3.0;
+
+    /// Four units with weights [1, 1]; the bias of each unit at each of the steps 10..50.
+    fn series(biases: [[f32; 4]; 5]) -> Vec<(u64, Network)> {
+        biases
+            .iter()
+            .enumerate()
+            .map(|(i, b)| {
+                let w = Array2::from_elem((4, 2), 1.0f32);
+                let n = net(
+                    w,
+                    Array1::from(b.to_vec()),
+                    Array2::from_elem((2, 4), 0.1),
+                    Array1::zeros(2),
+                );
+                (10 * (i as u64 + 1), n)
+            })
+            .collect()
+    }
+
+    #[test]
+    fn units_made_dead_at_known_steps_are_reported_at_exactly_those_steps() {
+        // u0 dies at 30 and stays dead; u1 dies at 20, revives at 30, dies again at 40;
+        // u2 dies at 20 and revives at 50 (alive in the last); u3 is dead on the probe from
+        // 10 and provably dead from 30.
+        let (a, p, d) = (ALIVE, OFF_PROBE, DEAD);
+        let nets = series([
+            [a, a, a, p],
+            [a, d, d, p],
+            [d, a, d, d],
+            [d, d, d, d],
+            [d, d, a, d],
+        ]);
+        let t = run(&nets, &low_grid(None));
+        assert_eq!(t.steps, vec![10, 20, 30, 40, 50]);
+        let first: Vec<(Option<u64>, Option<u64>)> = t
+            .units
+            .iter()
+            .map(|u| (u.first_dead_proven, u.first_dead_on_probe))
+            .collect();
+        assert_eq!(
+            first,
+            vec![
+                (Some(30), Some(30)),
+                (Some(40), Some(40)),
+                (None, None),
+                (Some(30), Some(10)),
+            ]
+        );
+        let last: Vec<Status> = t.units.iter().map(|u| u.last_status).collect();
+        assert_eq!(
+            last,
+            vec![
+                Status::DeadProven,
+                Status::DeadProven,
+                Status::AlwaysActive,
+                Status::DeadProven
+            ]
+        );
+        // Per checkpoint, the screen statuses counted (each unit in one status).
+        let counts: Vec<(u64, usize, usize)> = t
+            .checkpoints
+            .iter()
+            .map(|r| (r.step, r.dead_proven, r.dead_on_probe))
+            .collect();
+        assert_eq!(
+            counts,
+            vec![(10, 0, 1), (20, 2, 1), (30, 3, 0), (40, 4, 0), (50, 3, 0)]
+        );
+        // The history the app plots: unit 0's upper bound is b + 2 at every step.
+        let h = t.layer(0).expect("layer h");
+        let ub: Vec<f64> = h.unit(0).map(|p| p.upper_bound).collect();
+        assert_eq!(ub.len(), 5);
+        for (u, b) in ub.iter().zip([a, a, d, d, d]) {
+            assert_abs_diff_eq!(*u, f64::from(b) + 2.0, epsilon = 1e-6);
+        }
+        assert_eq!(h.point(4, 2).map(|p| p.active_frac), Some(1.0));
+        assert!(h.point(5, 0).is_none() && h.point(0, 4).is_none());
+        // Weights never changed: no drift, no update after the first.
+        for u in &t.units {
+            assert_abs_diff_eq!(u.drift, 0.0, epsilon = 1e-12);
+            assert_abs_diff_eq!(u.final_l2, 2f64.sqrt(), epsilon = 1e-12);
+        }
+        assert_eq!(t.checkpoints[0].mean_abs_update, None);
+        assert_eq!(t.checkpoints[1].mean_abs_update, Some(0.0));
+        assert!(!t.labelled());
+    }
+
+    #[test]
+    fn drift_is_the_cosine_distance_and_update_the_mean_absolute_change() {
+        // Closed forms: cos(w, w) = 1 -> 0; cos(w, -w) = -1 -> 2; [1, 0] vs [0, 1] -> 1;
+        // [1, 0] vs [1, 1] -> 1 - 1/sqrt(2).
+        let first = array![[1.0, 2.0], [1.0, 2.0], [1.0, 0.0], [1.0, 0.0]];
+        let mid = array![[1.0, 2.0], [0.0, 0.0], [1.0, 0.0], [1.0, 0.5]];
+        let last = array![[1.0, 2.0], [-1.0, -2.0], [0.0, 1.0], [1.0, 1.0]];
+        let mk = |w: Array2<f32>| {
+            net(
+                w,
+                Array1::from_elem(4, 0.5),
+                Array2::from_elem((2, 4), 0.1),
+                Array1::zeros(2),
+            )
+        };
+        let nets = vec![(0, mk(first)), (1, mk(mid)), (2, mk(last))];
+        let t = run(&nets, &low_grid(None));
+        let drift: Vec<f64> = t.units.iter().map(|u| u.drift).collect();
+        assert_abs_diff_eq!(drift[0], 0.0, epsilon = 1e-12);
+        assert_abs_diff_eq!(drift[1], 2.0, epsilon = 1e-12);
+        assert_abs_diff_eq!(drift[2], 1.0, epsilon = 1e-12);
+        assert_abs_diff_eq!(drift[3], 1.0 - 0.5f64.sqrt(), epsilon = 1e-12);
+        // final_l2: |w| in the last checkpoint.
+        assert_abs_diff_eq!(t.units[1].final_l2, 5f64.sqrt(), epsilon = 1e-12);
+        assert_abs_diff_eq!(t.units[3].final_l2, 2f64.sqrt(), epsilon = 1e-12);
+        // mean |w_t - w_(t-1)| over the 8 weights of h, by hand:
+        // step 1: |0-1| + |0-2| + |0.5-0| = 3.5 -> 3.5 / 8;
+        // step 2: |-1| + |-2| + |0-1| + |1-0| + |1-0.5| = 5.5 -> 5.5 / 8.
+        let upd: Vec<Option<f64>> = t.checkpoints.iter().map(|r| r.mean_abs_update).collect();
+        assert_eq!(upd[0], None);
+        assert_abs_diff_eq!(upd[1].expect("update"), 3.5 / 8.0, epsilon = 1e-12);
+        assert_abs_diff_eq!(upd[2].expect("update"), 5.5 / 8.0, epsilon = 1e-12);
+        // An all-zero vector has no direction (scipy.spatial.distance.cosine gives NaN).
+        assert!(cosine_distance(array![0.0f32, 0.0].view(), array![1.0f32, 0.0].view()).is_nan());
+    }
+
+    #[test]
+    fn weight_statistics_are_those_of_stats() {
+        // Hoyer (2004) of [1, 0] is 1, of [1, 1] is 0: mean over {[1, 0], [1, 1]} = 0.5.
+        // Near zero at 0.01 x max |w| = 0.01: one weight of 4.
+        let n = net(
+            array![[1.0, 0.0], [1.0, 1.0]],
+            array![0.5, 0.5],
+            Array2::from_elem((2, 2), 0.1),
+            Array1::zeros(2),
+        );
+        let t = run(&[(7, n)], &low_grid(None));
+        assert_eq!(t.checkpoints.len(), 1);
+        let r = &t.checkpoints[0];
+        assert_eq!((r.step, r.layer.as_str(), r.units), (7, "h", 2));
+        assert_abs_diff_eq!(r.mean_hoyer, 0.5, epsilon = 1e-12);
+        assert_abs_diff_eq!(r.near_zero_frac, 0.25, epsilon = 1e-12);
+        // One checkpoint: one row per unit, no drift, no update.
+        assert_eq!(t.units.len(), 2);
+        assert_eq!(t.units[0].drift, 0.0);
+        assert_eq!(r.mean_abs_update, None);
+    }
+
+    #[test]
+    fn accuracy_on_a_labelled_probe_is_counted_in_the_screening_pass() {
+        // h0 = relu(x0); out0 = h0, out1 = 0.22 (bias): class 0 wins where x0 > 0.22, i.e.
+        // x0 = 0.25 .. 0.45 on the grid (5 of 10 columns). All labels 0 -> accuracy 0.5;
+        // label 0 exactly where x0 > 0.22 -> 1.
+        let n = net(
+            array![[1.0, 0.0]],
+            array![0.0],
+            array![[1.0], [0.0]],
+            array![0.0, 0.22],
+        );
+        let t = run(&[(0, n.clone())], &low_grid(Some(vec![0; 100])));
+        assert_eq!(t.accuracy, vec![Some(0.5)]);
+        assert_eq!(t.checkpoints[0].accuracy, Some(0.5));
+        assert!(t.labelled());
+        let exact: Vec<usize> = (0..100).map(|r| usize::from(r / 10 <= 4)).collect();
+        let t = run(&[(0, n)], &low_grid(Some(exact)));
+        assert_eq!(t.accuracy, vec![Some(1.0)]);
+    }
+
+    #[test]
+    fn refusals_name_the_problem() {
+        let nets = series([[ALIVE; 4]; 5]);
+        let probe = low_grid(None);
+        // Nothing pushed.
+        let b = TimelineBuilder::new(TimelineOptions::default());
+        assert!(matches!(b.finish(&nets[0].1), Err(Error::Usage(_))));
+        // Another architecture.
+        let mut b = TimelineBuilder::new(TimelineOptions::default());
+        b.push(0, &nets[0].1, &mut MemoryProbe::new(probe.clone()), &Silent)
+            .expect("push");
+        let other = net(
+            Array2::from_elem((3, 2), 1.0),
+            Array1::zeros(3),
+            Array2::from_elem((2, 3), 0.1),
+            Array1::zeros(2),
+        );
+        let e = b
+            .push(1, &other, &mut MemoryProbe::new(probe.clone()), &Silent)
+            .expect_err("refused");
+        let text = e.to_string();
+        assert!(text.contains("layer 'h'") && text.contains("[3, 2]") && text.contains("[4, 2]"));
+        // A key not after the previous one.
+        let e = b
+            .push(0, &nets[1].1, &mut MemoryProbe::new(probe.clone()), &Silent)
+            .expect_err("refused");
+        assert!(e.to_string().contains("training order"), "{e}");
+        // A bad tolerance.
+        let e = TimelineOptions::new(ScreenOptions::default(), Some(-1.0)).expect_err("bad");
+        assert!(matches!(
+            e,
+            Error::BadOption {
+                option: "zero_tol",
+                ..
+            }
+        ));
+    }
+
+    #[test]
+    fn the_driver_streams_checkpoints_and_can_be_cancelled() {
+        use std::sync::atomic::{AtomicBool, Ordering};
+        struct Stop(AtomicBool);
+        impl Progress for Stop {
+            fn set(&self, _f: f32) {}
+            fn cancelled(&self) -> bool {
+                self.0.load(Ordering::SeqCst)
+            }
+        }
+        let nets = series([[ALIVE; 4], [DEAD; 4], [DEAD; 4], [DEAD; 4], [DEAD; 4]]);
+        let probe = low_grid(None);
+        let mut open = |_: &Network| -> Result<Box<dyn ProbeSource>> {
+            Ok(Box::new(MemoryProbe::new(probe.clone())))
+        };
+        let first = nets[0].1.clone();
+        let mut again = || Ok(first.clone());
+        let mut it = nets.clone().into_iter().map(Ok);
+        let t = timeline(
+            &mut it,
+            5,
+            &mut open,
+            &mut again,
+            &TimelineOptions::default(),
+            &Stop(AtomicBool::new(false)),
+        )
+        .expect("timeline");
+        assert!(t.units.iter().all(|u| u.first_dead_proven == Some(20)));
+        let mut it = nets.into_iter().map(Ok);
+        let e = timeline(
+            &mut it,
+            5,
+            &mut open,
+            &mut again,
+            &TimelineOptions::default(),
+            &Stop(AtomicBool::new(true)),
+        );
+        assert!(matches!(e, Err(Error::Cancelled)));
+    }
+}

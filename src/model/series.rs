@@ -458,3 +458,195 @@ pub fn read_step(path: &Path) -> Result<Option<u64>> {
         .map_err(|e| Error::model(path, format!("not a JSON model file: {e}")))?;
     super::json::parse_step(raw.step.as_ref()).map_err(|p| Error::model(path, p))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::model::{Activation, InputSpec, Layer, LayerKind, Layout, write_json};
+    use ndarray::{Array1, Array2};
+
+    /// A 2-input network with one hidden relu layer `h` of `units` units and a softmax
+    /// output `out` of 2 units, saved at `step`.
+    fn net(units: usize, step: Option<u64>) -> Network {
+        let input = InputSpec {
+            units: None,
+            size: 2,
+            layout: Layout::Vector,
+            low: vec![0.0; 2],
+            high: vec![1.0; 2],
+            names: None,
+        };
+        let layer = |name: &str, act, rows, cols| Layer {
+            kind: LayerKind::Dense,
+            name: name.into(),
+            activation: act,
+            weights: Array2::from_elem((rows, cols), 0.5),
+            bias: Array1::zeros(rows),
+            labels: None,
+        };
+        let n = Network::new(
+            "t",
+            "t",
+            input,
+            vec![
+                layer("h", Activation::Relu, units, 2),
+                layer("out", Activation::Softmax, 2, units),
+            ],
+        )
+        .expect("valid");
+        let mut p = n.into_parts();
+        p.step = step;
+        Network::from_parts(p, "t").expect("valid")
+    }
+
+    fn save(dir: &Path, name: &str, n: &Network) -> PathBuf {
+        let p = dir.join(name);
+        write_json(n, &p).expect("write");
+        p
+    }
+
+    fn names(s: &Series) -> Vec<String> {
+        s.checkpoints()
+            .iter()
+            .map(|c| {
+                c.path
+                    .file_name()
+                    .unwrap_or_default()
+                    .to_string_lossy()
+                    .into()
+            })
+            .collect()
+    }
+
+    #[test]
+    fn natural_order_compares_digit_runs_as_numbers() {
+        let mut v = vec![
+            "ckpt-10.json",
+            "ckpt-2.json",
+            "ckpt-1.json",
+            "ckpt-02.json",
+            "a10a",
+            "a9b",
+            "ckpt-100000000000000000000000.json",
+            "ckpt-99999999999999999999999.json",
+        ];
+        v.sort_by(|a, b| natural_cmp(a, b));
+        assert_eq!(
+            v,
+            vec![
+                "a9b",
+                "a10a",
+                "ckpt-1.json",
+                "ckpt-2.json",
+                "ckpt-02.json",
+                "ckpt-10.json",
+                "ckpt-99999999999999999999999.json",
+                "ckpt-100000000000000000000000.json",
+            ]
+        );
+        assert_eq!(natural_cmp("x", "x"), Ordering::Equal);
+        assert_eq!(natural_cmp("x1", "x1a"), Ordering::Less);
+    }
+
+    #[test]
+    fn a_folder_is_ordered_by_step_else_by_name() {
+        let d = tempfile::tempdir().expect("temp dir");
+        // Steps disagree with the names: steps win.
+        save(d.path(), "ckpt-10.json", &net(3, Some(5)));
+        save(d.path(), "ckpt-2.json", &net(3, Some(700)));
+        save(d.path(), "ckpt-1.json", &net(3, Some(60)));
+        std::fs::write(d.path().join("notes.txt"), "not a model").expect("write");
+        let s = Series::open(&[d.path().to_path_buf()]).expect("series");
+        assert_eq!(s.order(), SeriesOrder::Step);
+        assert_eq!(
+            names(&s),
+            vec!["ckpt-10.json", "ckpt-1.json", "ckpt-2.json"]
+        );
+        assert_eq!(s.keys(), vec![5, 60, 700]);
+        // Without steps: natural order of the names, keys are positions.
+        let e = tempfile::tempdir().expect("temp dir");
+        let files: Vec<PathBuf> = ["ckpt-10.json", "ckpt-2.json", "ckpt-1.json"]
+            .iter()
+            .map(|n| save(e.path(), n, &net(3, None)))
+            .collect();
+        let s = Series::open(&files).expect("series");
+        assert_eq!(s.order(), SeriesOrder::FileName);
+        assert_eq!(
+            names(&s),
+            vec!["ckpt-1.json", "ckpt-2.json", "ckpt-10.json"]
+        );
+        assert_eq!(s.keys(), vec![0, 1, 2]);
+        let loaded: Vec<u64> = s
+            .networks(&LoadOptions::default())
+            .map(|r| r.expect("loads").0)
+            .collect();
+        assert_eq!(loaded, vec![0, 1, 2]);
+    }
+
+    #[test]
+    fn a_different_architecture_names_the_file_the_layer_and_the_shapes() {
+        let d = tempfile::tempdir().expect("temp dir");
+        save(d.path(), "ckpt-1.json", &net(3, Some(1)));
+        let bad = save(d.path(), "ckpt-2.json", &net(4, Some(2)));
+        save(d.path(), "ckpt-3.json", &net(3, Some(3)));
+        let s = Series::from_folder(d.path()).expect("listing reads only the steps");
+        let lo = LoadOptions::default();
+        let mut it = s.networks(&lo);
+        assert!(it.next().expect("first").is_ok());
+        let e = it.next().expect("second").expect_err("refused");
+        match &e {
+            Error::ArchitectureMismatch { file, .. } => {
+                assert_eq!(file, &bad.display().to_string());
+            }
+            other => panic!("unexpected {other:?}"),
+        }
+        let text = e.to_string();
+        assert!(
+            text.contains("ckpt-2.json")
+                && text.contains("ckpt-1.json")
+                && text.contains("layer 'h'")
+                && text.contains("[4, 2]")
+                && text.contains("[3, 2]"),
+            "{text}"
+        );
+        assert!(it.next().is_none(), "the iterator stops after an error");
+    }
+
+    #[test]
+    fn bad_series_are_refused_with_the_file_named() {
+        let d = tempfile::tempdir().expect("temp dir");
+        // An empty folder.
+        let e = Series::open(&[d.path().to_path_buf()]).expect_err("empty");
+        assert!(e.to_string().contains("no model files"), "{e}");
+        // Some files with a step, some without.
+        let a = save(d.path(), "a.json", &net(3, Some(1)));
+        let b = save(d.path(), "b.json", &net(3, None));
+        let e = Series::from_files(&[a.clone(), b]).expect_err("mixed");
+        assert!(e.to_string().contains("b.json") && e.to_string().contains("\"step\""));
+        // Two files with the same step.
+        let c = save(d.path(), "c.json", &net(3, Some(1)));
+        let e = Series::from_files(&[a.clone(), c]).expect_err("same step");
+        assert!(e.to_string().contains("c.json") && e.to_string().contains("a.json"));
+        // A file given twice, a missing file, a bad step, a folder among files.
+        let e = Series::from_files(&[a.clone(), a.clone()]).expect_err("twice");
+        assert!(e.to_string().contains("twice"));
+        let e = Series::open(&[a.clone(), d.path().join("missing.json")]).expect_err("missing");
+        assert!(e.to_string().contains("missing.json"));
+        let bad = d.path().join("bad.json");
+        std::fs::write(&bad, r#"{"schema": "receptor-model/1", "step": -3}"#).expect("write");
+        let e = Series::from_files(&[bad]).expect_err("bad step");
+        assert!(e.to_string().contains("bad.json") && e.to_string().contains("whole number"));
+        let e = Series::open(&[a, d.path().to_path_buf()]).expect_err("folder");
+        assert!(e.to_string().contains("is a folder"));
+        assert!(Series::open(&[]).is_err());
+    }
+
+    #[test]
+    fn one_checkpoint_is_a_series() {
+        let d = tempfile::tempdir().expect("temp dir");
+        let a = save(d.path(), "only.json", &net(3, None));
+        let s = Series::open(&[a]).expect("series");
+        assert_eq!((s.len(), s.keys()), (1, vec![0]));
+        assert!(s.load(1, &LoadOptions::default()).is_err());
+    }
+}
