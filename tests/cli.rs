@@ -1746,6 +1746,23 @@ fn timeline_without_steps_goes_by_file_name_and_refuses_bad_series() {
     );
     let r = receptor(&["timeline", "stepped.json", "ckpt-1.json"], d.path());
     assert_bad_input(&r, &["ckpt-1.json", "step"]);
+    // A file in the folder that is not JSON, and a checkpoint whose side file is missing.
+    let broken = d.path().join("broken");
+    std::fs::create_dir(&broken).unwrap();
+    write(&broken, "ckpt-1.json", &alive);
+    write(&broken, "ckpt-2.json", "{\"schema\": ");
+    let r = receptor(&["timeline", "broken"], d.path());
+    assert_bad_input(&r, &["ckpt-2.json", "not a JSON model file"]);
+    write(
+        &broken,
+        "ckpt-2.json",
+        alive.replace(
+            "[[1, 1], [1, 0]]",
+            r#"{"safetensors": "gone.safetensors", "tensor": "w"}"#,
+        ),
+    );
+    let r = receptor(&["timeline", "broken", "--probe", "p.csv"], d.path());
+    assert_bad_input(&r, &["ckpt-2.json", "gone.safetensors"]);
     // A probe of the wrong width is the probe's error, not a panic.
     write(d.path(), "wide.csv", "a,b,c\n1,2,3\n");
     let r = receptor(
