@@ -1,7 +1,7 @@
 //! The analysis core: forward and backward passes, preferred inputs, sensitivity, sparsity
 //! statistics and |w| histograms, per-unit activity over a probe, interval bounds,
-//! screening for dead units and magnitude pruning, and the per-feature rows and
-//! optimum summaries the fronts show. Takes `&Network` and
+//! screening for dead units, magnitude pruning, the timeline of a checkpoint series, and
+//! the per-feature rows and optimum summaries the fronts show. Takes `&Network` and
 //! arrays, never paths; nothing here depends on the GUI.
 
 pub mod activity;
@@ -22,6 +22,7 @@ pub mod sparsity;
 pub mod structured;
 #[cfg(test)]
 mod test_nets;
+pub mod timeline;
 
 /// Progress reporting and cancellation for long work.
 ///
