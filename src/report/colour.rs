@@ -447,35 +447,8 @@ impl ScaleMode {
 /// digits without trailing zeros ("+0.42", "-1.5", "+250"), and scientific notation for
 /// magnitudes below 0.01 or from 10 000 up ("+4.2e-3").
 pub fn format_tick(v: f32) -> String {
-    if v == 0.0 {
-        return "0".to_owned();
-    }
-    if !v.is_finite() {
-        return format!("{v}");
-    }
-    let sign = if v < 0.0 { "-" } else { "+" };
-    let m = v.abs();
-    let body = if !(0.01..10_000.0).contains(&m) {
-        let text = format!("{m:.2e}");
-        match text.split_once('e') {
-            Some((mantissa, exponent)) => format!("{}e{exponent}", trim_zeros(mantissa)),
-            None => text,
-        }
-    } else {
-        // 3 significant digits: decimals = 2 - floor(log10 m), at least 0.
-        let decimals = (2 - m.log10().floor() as i32).max(0) as usize;
-        trim_zeros(&format!("{m:.decimals$}")).to_owned()
-    };
-    format!("{sign}{body}")
-}
-
-/// "0.420" -> "0.42", "3.00" -> "3", "250" -> "250".
-fn trim_zeros(text: &str) -> &str {
-    if text.contains('.') {
-        text.trim_end_matches('0').trim_end_matches('.')
-    } else {
-        text
-    }
+    let body = super::format::sig_between(f64::from(v), 3, 0.01, 10_000.0);
+    if v > 0.0 { format!("+{body}") } else { body }
 }
 
 /// The five tick labels of a legend, from most negative to most positive:

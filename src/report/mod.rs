@@ -5,6 +5,8 @@
 //!   tables, written by the commands and by the app's exports;
 //! - [`colour`]: the diverging colour key (CIELAB stops from `assets/colour-key.json`) and
 //!   the tick labels of its legend;
+//! - [`format`]: numbers with a fixed count of significant digits and percentages, for
+//!   both fronts;
 //! - [`picture`]: the one renderer of maps, input pictures, cell grids and tile grids into
 //!   RGBA buffers and PNG bytes, so `receptor prefer --png`, the app's textures and its PNG
 //!   exports draw the same pixels;
@@ -16,6 +18,7 @@
 
 pub mod colour;
 pub mod filters;
+pub mod format;
 pub mod picture;
 pub mod table;
 pub mod tables;
