@@ -242,7 +242,7 @@ fn map_data(
                 Some(s) => {
                     let row = s.maps.row(sel.unit).to_vec();
                     let m = scale_mode.pick(maps::max_abs(&row), s.max_abs);
-                    Ok(MapData::SignedInput(row, m, "dz/dx"))
+                    Ok(MapData::SignedInput(row, m, "sensitivity"))
                 }
                 None => Err("Computing the sensitivity at the mean probe input…".into()),
             }
@@ -330,7 +330,8 @@ fn map_ui(
     };
     ui.horizontal_top(|ui| {
         map_picture_ui(ui, state, &tex, draw, &data, net, sel);
-        map_key_ui(ui, &data, net, draw.y.max(140.0) - 40.0);
+        let caption = key_caption(&data, state, net, sel);
+        map_key_ui(ui, &data, net, &caption, draw.y.max(140.0) - 40.0);
     });
     map_caption_ui(ui, &data, net, sel);
 }
@@ -478,19 +479,35 @@ fn map_picture_ui(
     }
 }
 
-/// The key beside the map, `length` points long: the signed colour key, or the grey ramp
-/// of input pictures.
-fn map_key_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, length: f32) {
-    let (m, what) = match data {
-        MapData::SignedInput(_, m, what) => (*m, *what),
-        MapData::Cells(_, m) => (*m, "weight"),
+/// The caption of the key beside a signed map: the quantity on the first line, its scale on
+/// the second ("weight" / "scale shared by layer h1"); attribution maps always use their own.
+fn key_caption(data: &MapData, state: &AppState, net: &Network, sel: Selection) -> String {
+    let what = match data {
+        MapData::SignedInput(_, _, what) => *what,
+        MapData::Cells(..) => "weight",
+        MapData::Input(_) => return String::new(),
+    };
+    let layer = &net.layers()[sel.layer].name;
+    let scale = if state.prefs.map_view == MapView::Attribution {
+        "scale of this map alone".to_owned()
+    } else {
+        state.prefs.scale.caption(layer, sel.unit)
+    };
+    format!("{what}\n{scale}")
+}
+
+/// The key beside the map, `length` points long: the signed colour key with `caption`, or
+/// the grey ramp of input pictures.
+fn map_key_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, caption: &str, length: f32) {
+    let m = match data {
+        MapData::SignedInput(_, m, _) | MapData::Cells(_, m) => *m,
         MapData::Input(_) => return grey_key_ui(ui, net, length),
     };
     colour::legend_ui_with(
         ui,
         ColourKey::standard(),
         m,
-        what,
+        caption,
         LegendOrientation::Vertical,
         length,
     );

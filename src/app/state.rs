@@ -157,7 +157,10 @@ pub struct Prefs {
     pub recent_models: Vec<PathBuf>,
     /// Probe files opened recently, newest first.
     pub recent_probes: Vec<PathBuf>,
-    /// Per-unit or per-layer colour scale.
+    /// Per-unit or per-layer colour scale. Saved under a new name since the default became
+    /// "shared by layer", so a per-unit scale saved by an older version as its default does
+    /// not come back.
+    #[serde(rename = "colour_scale")]
     pub scale: ScaleMode,
     /// Preferred-input search options (the same defaults as `receptor prefer`, so the app
     /// and the command line agree).

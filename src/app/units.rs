@@ -141,6 +141,8 @@ impl UnitsPanel {
                 .response
                 .labelled_by(label.id);
             ui.checkbox(&mut state.prefs.problems_only, "Problem units only");
+            ui.separator();
+            super::colour::scale_switch_ui(ui, &mut state.prefs.scale);
         });
         ui.horizontal(|ui| {
             ui.add(

@@ -104,7 +104,7 @@ pub struct PreferArgs {
     /// Also draw the preferred input(s) as a PNG image (on a convolutional layer cropped to
     /// the receptive field of the chosen position): black is the low end of the input
     /// box, white the high end (mid grey is its centre); a grid of tiles for --all; a
-    /// vector layout is drawn as one strip per unit; magenta marks a non-finite value. The
+    /// vector layout is drawn as one strip per unit; yellow marks a non-finite value. The
     /// app's export of a layer's grid draws the same picture.
     #[arg(long, value_name = "FILE")]
     pub png: Option<PathBuf>,

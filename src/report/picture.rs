@@ -13,8 +13,9 @@
 //! - an input value is a grey level over its box: the low end black (0), the high end white
 //!   (255), `round(255 (x - low) / (high - low))`, clamped; a degenerate box (low = high)
 //!   draws its centre grey (128); three-channel images show the colour itself;
-//! - a non-finite value (a search that diverged, an overflowed weight) is [`NON_FINITE`]
-//!   magenta, which is neither a grey nor a colour of the key;
+//! - a non-finite value (a search that diverged, an overflowed weight) is [`NON_FINITE`],
+//!   the colour key's no-value yellow (`no_value` of `assets/colour-key.json`, shown in the
+//!   legend too), which is neither a grey nor a colour of the key;
 //! - grid gaps are a muted blue ([`GAP`]), distinct from every grey.
 
 use super::colour::{ColourKey, ScaleMode, symmetric_max};
@@ -26,8 +27,10 @@ use std::path::Path;
 /// One pixel: 8-bit sRGB red, green, blue and straight (unmultiplied) alpha.
 pub type Rgba = [u8; 4];
 
-/// Colour of a non-finite value: magenta, neither a grey nor a colour of the key.
-pub const NON_FINITE: Rgba = [255, 0, 255, 255];
+/// Colour of a non-finite value: the key's no-value colour (`no_value` in
+/// `assets/colour-key.json`, a vivid yellow), neither a grey nor a colour of the key. A test
+/// keeps the two equal, so the screen, the PNGs and the legend agree.
+pub const NON_FINITE: Rgba = [250, 232, 20, 255];
 
 /// Fully transparent: the gaps between channel panels and cells past the last unit.
 pub const TRANSPARENT: Rgba = [0, 0, 0, 0];
@@ -586,6 +589,12 @@ mod tests {
         let [r, g, b] = key.rgb(-1.0);
         assert_eq!(signed(-5.0, 0.42), [r, g, b, 255]);
         assert_eq!(signed(f32::NAN, 1.0), NON_FINITE);
+        let [r, g, b] = key.no_value_rgb();
+        assert_eq!(
+            NON_FINITE,
+            [r, g, b, 255],
+            "picture and key file disagree on NaN"
+        );
         assert_eq!(signed(f32::INFINITY, 1.0), NON_FINITE);
     }
 
