@@ -680,7 +680,8 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     }
 
     // Ranking by mean |activation| recomputes the curves.
-    h.get_by_label("mean |activation| on the probe").click();
+    h.get_by_label("mean |activation| on the reference data")
+        .click();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(120));
     h.get_by_label("units removed, smallest mean |activation| first");

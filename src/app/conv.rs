@@ -343,11 +343,11 @@ pub fn detail_ui(
                 tex,
                 BIG,
                 &format!("effective receptive field of {name}"),
-                "Mean |gradient| of the centre pre-activation over the probe (Luo et al. 2016), channels summed, scaled to its largest value",
+                "Mean |gradient| of the centre pre-activation over the reference data (Luo et al. 2016), channels summed, scaled to its largest value",
             );
         }
         None => {
-            ui.weak("Computing over the probe…");
+            ui.weak("Computing over the reference data…");
         }
     }
     ui.add_space(6.0);
@@ -374,7 +374,7 @@ fn feature_map_ui(
         return;
     }
     ui.horizontal(|ui| {
-        ui.strong("Feature map on probe sample");
+        ui.strong("Feature map on reference sample");
         let label = ui.label("Sample");
         let mut row = state.conv_sample.min(rows - 1);
         ui.add(egui::DragValue::new(&mut row).range(0..=rows - 1))
@@ -401,7 +401,7 @@ fn feature_map_ui(
                 Some(maps::input_picture(net.input(), &x))
             },
         );
-        picture_ui(ui, sample, 100.0, &format!("probe sample {row}"), "");
+        picture_ui(ui, sample, 100.0, &format!("reference sample {row}"), "");
         match state
             .results
             .conv
@@ -455,7 +455,7 @@ fn strongest_ui(
     f: &Field,
 ) {
     ui.strong(
-        "Probe samples that drive it hardest (receptive-field patch at the strongest position)",
+        "Reference samples that drive it hardest (receptive-field patch at the strongest position)",
     );
     let (Some(tops), Some(probe)) = (
         state
@@ -466,7 +466,7 @@ fn strongest_ui(
             .and_then(|s| s.ready()),
         state.probe.as_ref(),
     ) else {
-        ui.weak("Scanning the probe…");
+        ui.weak("Scanning the reference data…");
         return;
     };
     let Some(hits) = tops.channels.get(sel.unit) else {
@@ -511,7 +511,7 @@ fn strongest_ui(
                             sel.unit
                         ),
                         &format!(
-                            "probe row {} at map position ({}, {}): z = {:.4}",
+                            "reference row {} at map position ({}, {}): z = {:.4}",
                             hit.row, hit.position.0, hit.position.1, hit.value
                         ),
                     );

@@ -1,5 +1,5 @@
 //! The selected unit in detail: a large map (incoming weights, preferred input, or
-//! sensitivity at the mean probe input) with its colour key and hover values, the unit's
+//! sensitivity at the mean reference input) with its colour key and hover values, the unit's
 //! numbers, a histogram of its activations over the probe, its strongest incoming
 //! connections, and the probe samples that drive it hardest. For deeper units the weights
 //! are drawn as a grid over the units of the layer below; clicking a cell walks down.
@@ -116,7 +116,7 @@ impl DetailPanel {
         }
         let mut row = self.attribution_row(state, sel).unwrap_or(0);
         ui.horizontal(|ui| {
-            ui.label("Probe row");
+            ui.label("Reference row");
             if ui
                 .add(egui::DragValue::new(&mut row).range(0..=rows - 1))
                 .changed()
@@ -126,7 +126,7 @@ impl DetailPanel {
             ui.label("from");
             let m = &mut state.prefs.attribution_from_mean;
             ui.selectable_value(m, false, "box centre");
-            ui.selectable_value(m, true, "probe mean");
+            ui.selectable_value(m, true, "reference mean");
         });
     }
 }
@@ -176,10 +176,10 @@ fn header_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Select
         ui.selectable_value(v, MapView::Preferred, "Preferred input")
             .on_hover_text("P");
         ui.selectable_value(v, MapView::Sensitivity, "Sensitivity")
-            .on_hover_text("S: gradient of the pre-activation at the mean probe input");
+            .on_hover_text("S: gradient of the pre-activation at the mean reference input");
         ui.selectable_value(v, MapView::Attribution, "Attribution")
             .on_hover_text(
-                "Integrated gradients: how each input moves z from the baseline to a probe sample",
+                "Integrated gradients: how each input moves z from the baseline to a reference sample",
             );
     });
 }
@@ -244,12 +244,12 @@ fn map_data(
                     let m = scale_mode.pick(maps::max_abs(&row), s.max_abs);
                     Ok(MapData::SignedInput(row, m, "sensitivity"))
                 }
-                None => Err("Computing the sensitivity at the mean probe input…".into()),
+                None => Err("Computing the sensitivity at the mean reference input…".into()),
             }
         }
         MapView::Attribution => {
             let Some(row) = row else {
-                return Err("Tracing the probe…".into());
+                return Err("Running the reference data…".into());
             };
             let key = super::state::AttributionKey {
                 layer: sel.layer,
@@ -262,7 +262,7 @@ fn map_data(
                     let m = maps::max_abs(&a.values);
                     Ok(MapData::SignedInput(a.values.clone(), m, "attribution"))
                 }
-                None => Err(format!("Integrating gradients for probe row {row}…")),
+                None => Err(format!("Integrating gradients for reference row {row}…")),
             }
         }
     }
@@ -674,16 +674,20 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
                         "sound bound over the whole input box (interval bound propagation)",
                     );
                     row(
-                        "active on probe",
+                        "active on reference data",
                         sc.map_or_else(|| "…".into(), |s| format!("{:.2}%", 100.0 * s.active_frac)),
-                        "fraction of probe samples where the unit is active",
+                        "fraction of reference samples where the unit is active",
                     );
                     row(
                         "mean activation",
                         f(sc.map(|s| s.mean), 4),
-                        "over the probe",
+                        "over the reference data",
                     );
-                    row("max activation", f(sc.map(|s| s.max), 4), "over the probe");
+                    row(
+                        "max activation",
+                        f(sc.map(|s| s.max), 4),
+                        "over the reference data",
+                    );
                     row("L1 of weights", f(st.map(|s| s.l1), 4), "sum of |w|");
                     row(
                         "L2 of weights",
@@ -719,7 +723,7 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
 }
 
 fn histogram_ui(ui: &mut egui::Ui, state: &AppState, sel: Selection) {
-    egui::CollapsingHeader::new("Activations over the probe")
+    egui::CollapsingHeader::new("Activations over the reference data")
         .default_open(true)
         .show(ui, |ui| {
             let Some(a) = state
@@ -729,11 +733,11 @@ fn histogram_ui(ui: &mut egui::Ui, state: &AppState, sel: Selection) {
                 .and_then(|a| a.layers.get(sel.layer))
                 .and_then(|l| l.get(sel.unit))
             else {
-                ui.weak("Tracing the probe…");
+                ui.weak("Running the reference data…");
                 return;
             };
             if !a.lo.is_finite() {
-                ui.weak("No finite activation on the probe.");
+                ui.weak("No finite activation on the reference data.");
                 return;
             }
             let span = (a.hi - a.lo).max(1e-9);
@@ -811,7 +815,7 @@ fn top_samples_ui(
     net: &Network,
     sel: Selection,
 ) {
-    egui::CollapsingHeader::new("Probe samples that drive it hardest")
+    egui::CollapsingHeader::new("Reference samples that drive it hardest")
         .default_open(true)
         .show(ui, |ui| {
             let (Some(a), Some(probe)) = (
@@ -823,7 +827,7 @@ fn top_samples_ui(
                     .and_then(|l| l.get(sel.unit)),
                 state.probe.as_ref(),
             ) else {
-                ui.weak("Tracing the probe…");
+                ui.weak("Running the reference data…");
                 return;
             };
             let image = matches!(net.input().layout, Layout::Image { .. });
@@ -888,7 +892,7 @@ fn sample_thumb(
             Color32::WHITE,
         );
         resp.on_hover_text(format!(
-            "probe row {row}: z = {z:.4}, activation = {act:.4}"
+            "reference row {row}: z = {z:.4}, activation = {act:.4}"
         ));
     }
 }
@@ -900,7 +904,7 @@ fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &
             let data = state.probe.as_ref().and_then(|p| p.reference.as_ref());
             let prior_text = match data {
                 Some(r) => format!("Stay near the data ({})", r.origin()),
-                None => "Stay near the data (open a probe file)".to_string(),
+                None => "Stay near the data (open reference data)".to_string(),
             };
             ui.add_enabled(
                 data.is_some(),

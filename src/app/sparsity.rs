@@ -145,17 +145,20 @@ fn pruning_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, actions: &
     if !labelled {
         let what = match probe {
             Some(p) if p.path.is_none() => {
-                "The probe in use is uniform samples from the input box, which have no labels."
+                "No reference data is open: uniform samples of the input box have no labels."
                     .to_string()
             }
-            Some(p) => format!("The probe in use ({}) has no label column.", p.data.origin),
-            None => "No probe data is loaded yet.".to_string(),
+            Some(p) => format!(
+                "The reference data ({}) has no label column.",
+                p.data.origin
+            ),
+            None => "No reference data is loaded yet.".to_string(),
         };
         ui.label(format!(
             "The pruning curves are missing: they measure accuracy, which needs probe data \
              with a label column. {what}"
         ));
-        if ui.button("Open probe data…").clicked() {
+        if ui.button("Open reference data…").clicked() {
             actions.push(Action::OpenProbeDialog);
         }
         return;
@@ -170,7 +173,7 @@ fn pruning_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, actions: &
         ui.radio_value(
             &mut state.unit_criterion,
             Criterion::Activation,
-            "mean |activation| on the probe",
+            "mean |activation| on the reference data",
         );
     });
     let criterion = state.unit_criterion;
@@ -283,7 +286,7 @@ fn curves_plot_ui(ui: &mut egui::Ui, id: &str, x_label: &str, series: &[Series])
         .include_y(0.0)
         .include_y(100.0)
         .x_axis_label(x_label)
-        .y_axis_label("accuracy on the probe (%)")
+        .y_axis_label("accuracy on the reference data (%)")
         // Grid lines every 10, 20 and 100 points on x and 5, 25 and 100 on y, so the fractions
         // and accuracies are labelled (the default decimal spacer labels only 0 and 100).
         .x_grid_spacer(egui_plot::uniform_grid_spacer(|_| [10.0, 20.0, 100.0]))
@@ -368,5 +371,5 @@ fn table_ui(
             ui.end_row();
         }
     });
-    ui.weak("Accuracy on the probe after removing each fraction.");
+    ui.weak("Accuracy on the reference data after removing each fraction.");
 }
