@@ -11,6 +11,7 @@ use super::state::{AppState, MapView, Selection};
 use super::thumbs::{ThumbKey, ThumbKind, Thumbs};
 use crate::analysis::prefer::{MAX_FACETS, PreferOptions};
 use crate::model::{Layout, Network};
+use crate::report::annotate::GridKey;
 use crate::report::picture::{self, Picture};
 use egui::{Color32, Rect, Sense, pos2, vec2};
 
@@ -269,8 +270,8 @@ fn map_data(
 }
 
 /// The picture of the current map of the selected unit (also used by the PNG export), with
-/// a name for the file.
-pub fn current_map(state: &AppState) -> Option<(String, Picture)> {
+/// a name for the file and the key the export draws below it.
+pub fn current_map(state: &AppState) -> Option<(String, Picture, GridKey)> {
     let net = state.net()?;
     let sel = state.selection?;
     let data = map_data(state, net, sel, None).ok()?;
@@ -281,7 +282,11 @@ pub fn current_map(state: &AppState) -> Option<(String, Picture)> {
         MapView::Attribution => "attribution",
     };
     let name = format!("{}-unit{}-{what}", net.layers()[sel.layer].name, sel.unit);
-    Some((name, image_of(&data, net)))
+    let key = match &data {
+        MapData::SignedInput(_, m, _) | MapData::Cells(_, m) => GridKey::Signed(Some(*m)),
+        MapData::Input(_) => picture::grey_key(net.input()),
+    };
+    Some((name, image_of(&data, net), key))
 }
 
 fn image_of(data: &MapData, net: &Network) -> Picture {
