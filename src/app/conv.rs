@@ -17,6 +17,7 @@ use crate::analysis::fields::{Field, receptive_fields};
 use crate::model::{LayerKind, Network, Shape};
 use crate::report::colour::symmetric_max;
 use crate::report::filters;
+use crate::report::format;
 use crate::report::picture::Picture;
 use egui::{Color32, Rect, Sense, pos2, vec2};
 
@@ -314,7 +315,8 @@ pub fn detail_ui(
                 BIG,
                 &format!("preferred input of {name}"),
                 &format!(
-                    "The whole preferred input; the yellow box is the receptive field of the centre position. z = {value:.4}"
+                    "The whole preferred input; the yellow box is the receptive field of the centre position. Pre-activation z = {}",
+                    format::sig32(value, 4)
                 ),
             );
         }
@@ -433,7 +435,8 @@ fn feature_map_ui(
                     100.0,
                     &format!("feature map of {name} on sample {row}"),
                     &format!(
-                        "Pre-activation z at every map position, signed, |z| up to {scale:.3} at the key's ends"
+                        "Pre-activation z at every map position, signed, |z| up to {} at the key's ends",
+                        format::sig32(scale, 3)
                     ),
                 );
             }
@@ -511,8 +514,11 @@ fn strongest_ui(
                             sel.unit
                         ),
                         &format!(
-                            "reference row {} at map position ({}, {}): z = {:.4}",
-                            hit.row, hit.position.0, hit.position.1, hit.value
+                            "reference row {} at map position ({}, {}): pre-activation z = {}",
+                            hit.row,
+                            hit.position.0,
+                            hit.position.1,
+                            format::sig32(hit.value, 4)
                         ),
                     );
                     let small = |ui: &mut egui::Ui, text: String| {
@@ -531,7 +537,10 @@ fn strongest_ui(
                     {
                         small(ui, c.clone());
                     }
-                    small(ui, format!("z = {:.3}", hit.value));
+                    small(
+                        ui,
+                        format!("pre-activation {}", format::sig32(hit.value, 3)),
+                    );
                 });
                 if k % 4 == 3 {
                     ui.end_row();

@@ -12,6 +12,7 @@ use super::thumbs::{ThumbKey, ThumbKind, Thumbs};
 use crate::analysis::prefer::{MAX_FACETS, PreferOptions};
 use crate::model::{Layout, Network};
 use crate::report::annotate::GridKey;
+use crate::report::format;
 use crate::report::picture::{self, Picture};
 use egui::{Color32, Rect, Sense, pos2, vec2};
 
@@ -177,10 +178,10 @@ fn header_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Select
         ui.selectable_value(v, MapView::Preferred, "Preferred input")
             .on_hover_text("P");
         ui.selectable_value(v, MapView::Sensitivity, "Sensitivity")
-            .on_hover_text("S: gradient of the pre-activation at the mean reference input");
+            .on_hover_text("S: sensitivity, the gradient ∂z/∂x of the pre-activation z at the mean reference input");
         ui.selectable_value(v, MapView::Attribution, "Attribution")
             .on_hover_text(
-                "Integrated gradients: how each input moves z from the baseline to a reference sample",
+                "Integrated gradients: how each input moves the pre-activation z from the baseline to a reference sample",
             );
     });
 }
@@ -389,9 +390,9 @@ fn facets_ui(
         return;
     };
     ui.label(format!(
-        "{} facets, mean pairwise distance {:.3} box widths",
+        "{} facets, mean pairwise distance {} box widths",
         facets.len(),
-        facets[0].spread
+        format::sig32(facets[0].spread, 3)
     ));
     ui.horizontal_wrapped(|ui| {
         for p in facets {
@@ -413,11 +414,18 @@ fn facets_ui(
                         Color32::WHITE,
                     );
                     resp.on_hover_text(format!(
-                        "facet {}: z = {:.4}, activation = {:.4}",
-                        p.facet, p.preactivation, p.activation
+                        "facet {}: pre-activation {}, activation {}",
+                        p.facet,
+                        format::sig32(p.preactivation, 4),
+                        format::sig32(p.activation, 4)
                     ));
                 }
-                ui.small(format!("facet {} · z {:.3}", p.facet, p.preactivation));
+                ui.small(format!(
+                    "facet {} · pre-activation {}",
+                    p.facet,
+                    format::sig32(p.preactivation, 3)
+                ))
+                .on_hover_text("pre-activation z = w·x + b at this facet's input");
             });
         }
     });
@@ -560,10 +568,10 @@ fn hover_text(data: &MapData, net: &Network, sel: Selection, x: usize, y: usize)
         MapData::Input(v) => {
             let i = maps::input_index_at(net.input(), false, x, y)?;
             Some(format!(
-                "{} ({}): input {:.4}",
+                "{} ({}): input {}",
                 net.input().feature_name(i),
                 pixel_words(net, i),
-                v.get(i)?
+                format::sig32(*v.get(i)?, 4)
             ))
         }
     }
@@ -654,7 +662,7 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
         .and_then(|b| b.upper.get(sel.layer))
         .and_then(|u| u.get(sel.unit).copied());
     let f = |v: Option<f64>, digits: usize| {
-        v.map_or_else(|| "…".to_string(), |v| format!("{v:.digits$}"))
+        v.map_or_else(|| "…".to_string(), |v| format::sig(v, digits))
     };
     egui::CollapsingHeader::new("Numbers")
         .default_open(true)
@@ -671,16 +679,16 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
                     row(
                         "pre-activation reached",
                         f(pr.map(|p| f64::from(p.preactivation)), 4),
-                        "z at the preferred input",
+                        "z = w·x + b, the pre-activation, at the preferred input",
                     );
                     row(
-                        "upper bound of z",
+                        "upper bound of the pre-activation",
                         f(bound, 4),
-                        "sound bound over the whole input box (interval bound propagation)",
+                        "z ≤ this everywhere in the input box: a sound bound over the whole input box (interval bound propagation)",
                     );
                     row(
                         "active on reference data",
-                        sc.map_or_else(|| "…".into(), |s| format!("{:.2}%", 100.0 * s.active_frac)),
+                        sc.map_or_else(|| "…".into(), |s| format::percent(s.active_frac, 3)),
                         "fraction of reference samples where the unit is active",
                     );
                     row(
@@ -714,13 +722,13 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
                         "near-zero weights",
                         st.map_or_else(
                             || "…".into(),
-                            |s| format!("{:.2}%", 100.0 * s.near_zero_frac),
+                            |s| format::percent(s.near_zero_frac, 3),
                         ),
                         "|w| at most 1% of the layer's largest |w|",
                     );
                     row(
                         "bias",
-                        format!("{:.4}", net.layers()[sel.layer].bias[sel.unit]),
+                        format::sig32(net.layers()[sel.layer].bias[sel.unit], 4),
                         "",
                     );
                 });
@@ -859,7 +867,7 @@ fn top_samples_ui(
                             {
                                 small(ui, c.clone());
                             }
-                            small(ui, format!("z = {z:.3}"));
+                            small(ui, format!("pre-activation {}", format::sig32(z, 3)));
                         });
                         if k % 4 == 3 {
                             ui.end_row();
@@ -897,7 +905,9 @@ fn sample_thumb(
             Color32::WHITE,
         );
         resp.on_hover_text(format!(
-            "reference row {row}: z = {z:.4}, activation = {act:.4}"
+            "reference row {row}: pre-activation z = {}, activation = {}",
+            format::sig32(z, 4),
+            format::sig32(act, 4)
         ));
     }
 }
