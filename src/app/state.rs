@@ -955,6 +955,51 @@ mod tests {
     use super::*;
 
     #[test]
+    fn reference_data_is_remembered_per_model_and_found_beside_it() {
+        let dir = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+        let write = |name: &str| {
+            let p = dir.path().join(name);
+            std::fs::write(&p, "x\n").unwrap_or_else(|e| panic!("{e}"));
+            p
+        };
+        let model = write("net.json");
+        let other = write("other.json");
+        let mut prefs = Prefs::default();
+        assert_eq!(prefs.reference_to_open(&model), None);
+        // A file named after the model, beside it.
+        let beside = write("net-reference.npy");
+        assert_eq!(
+            prefs.reference_to_open(&model),
+            Some((beside.clone(), ReferenceOrigin::BesideModel))
+        );
+        // A file used with the model is opened again, before the one beside it, and only
+        // for that model (the key is the canonical path: a second name of the same file
+        // finds it too).
+        let data = write("my-data.csv");
+        prefs.remember_reference(&model, Some(&data));
+        let canonical = std::fs::canonicalize(&data).unwrap_or_else(|e| panic!("{e}"));
+        let again = dir.path().join(".").join("net.json");
+        assert_eq!(
+            prefs.reference_to_open(&again),
+            Some((canonical, ReferenceOrigin::Remembered))
+        );
+        assert_eq!(prefs.reference_to_open(&other), None);
+        // The memory survives a round trip through the saved preferences.
+        let text = serde_json::to_string(&prefs).unwrap_or_else(|e| panic!("{e}"));
+        let back: Prefs = serde_json::from_str(&text).unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(back.reference_for, prefs.reference_for);
+        // A remembered file that is gone falls back to the one beside the model; choosing
+        // uniform samples forgets the model's entry.
+        std::fs::remove_file(&data).unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(
+            prefs.reference_to_open(&model),
+            Some((beside.clone(), ReferenceOrigin::BesideModel))
+        );
+        prefs.remember_reference(&model, None);
+        assert!(prefs.reference_for.is_empty());
+    }
+
+    #[test]
     fn preferences_from_an_older_file_fall_back_to_defaults() {
         // A saved file from an earlier version: one known field, one that no longer exists.
         let p: Prefs = serde_json::from_str(r#"{"tile_size": 96.0, "retired_option": 3}"#).unwrap();

@@ -141,9 +141,8 @@ impl UnitsPanel {
                 .response
                 .labelled_by(label.id);
             ui.checkbox(&mut state.prefs.problems_only, "Problem units only");
-            ui.separator();
-            super::colour::scale_switch_ui(ui, &mut state.prefs.scale);
         });
+        ui.horizontal(|ui| super::colour::scale_switch_ui(ui, &mut state.prefs.scale));
         ui.horizontal(|ui| {
             ui.add(
                 egui::Slider::new(&mut state.prefs.tile_size, 32.0..=160.0)
