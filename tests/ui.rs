@@ -935,7 +935,7 @@ fn reference_data_beside_the_model_loads_and_its_absence_is_warned() {
         .nrows() as u64;
     assert_eq!(c.total() + c.unknown_label(), rows);
     // The accuracy shown is the confusion matrix's trace over its total.
-    let acc = receptor::report::format::percent(c.accuracy().unwrap(), 3);
+    let acc = receptor::report::format::accuracy(c.accuracy().unwrap());
     h.get_by_label(&format!(
         "Accuracy on the reference data: {acc} of {} samples",
         c.total()

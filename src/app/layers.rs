@@ -229,7 +229,7 @@ fn accuracy_ui(ui: &mut egui::Ui, net: &Network, c: &Confusion) {
     };
     ui.label(format!(
         "Accuracy on the reference data: {} of {} samples",
-        format::percent(acc, 3),
+        format::accuracy(acc),
         c.total()
     ))
     .on_hover_text(
@@ -260,18 +260,15 @@ fn accuracy_ui(ui: &mut egui::Ui, net: &Network, c: &Confusion) {
                     ui.end_row();
                     for (t, name) in names.iter().enumerate() {
                         ui.small(name);
-                        for p in 0..c.classes() {
+                        for (p, predicted) in names.iter().enumerate() {
                             let n = c.count(t, p);
                             let text = egui::RichText::new(n.to_string()).small();
                             let text = if t == p { text.strong() } else { text };
                             ui.label(text).on_hover_text(format!(
-                                "{n} samples of class {name} predicted as {}",
-                                names[p]
+                                "{n} samples of class {name} predicted as {predicted}"
                             ));
                         }
-                        let per = c
-                            .class_accuracy(t)
-                            .map_or("–".to_owned(), |a| format::percent(a, 3));
+                        let per = c.class_accuracy(t).map_or("–".to_owned(), format::accuracy);
                         ui.label(egui::RichText::new(per).small())
                             .on_hover_text(format!("accuracy on class {name}"));
                         ui.end_row();

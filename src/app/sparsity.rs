@@ -55,7 +55,7 @@ impl SparsityPanel {
                     }
                     ui.label(
                         "removes the units that cannot change any output in the input box \
-                         (exact), after a check on the probe",
+                         (exact), after a check on the reference data",
                     );
                 });
                 ui.horizontal(|ui| {
@@ -114,7 +114,7 @@ impl AccuracyAt {
     /// "accuracy at 50%: 93.1%" or "… ≈ 93.1% (between the sweep's 40% and 60%)".
     fn describe(self, fraction: f64) -> String {
         let at = format::percent(fraction, 3);
-        let acc = format::percent(self.accuracy, 3);
+        let acc = format::accuracy(self.accuracy);
         match self.between {
             None => format!("accuracy at {at}: {acc}"),
             Some((a, b)) => format!(
@@ -338,7 +338,7 @@ fn pruning_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, actions: &
             ui.weak(format!(
                 "Diamond and dotted line: the fraction chosen below, {} zeroed, accuracy {}",
                 format::percent(x / 100.0, 3),
-                format::percent(y / 100.0, 3)
+                format::accuracy(y / 100.0)
             ));
         }
         slot_note_ui(ui, &magnitude, "magnitude pruning sweep");
@@ -503,12 +503,12 @@ fn table_ui(
         ui.end_row();
         row_label_ui(ui, 0, "weights, by |w|");
         for p in magnitude.iter() {
-            ui.monospace(format::percent(p.accuracy, 3));
+            ui.monospace(format::accuracy(p.accuracy));
         }
         ui.end_row();
         row_label_ui(ui, 1, "units, every layer");
         for p in &units.all_layers {
-            ui.monospace(format::percent(p.accuracy, 3));
+            ui.monospace(format::accuracy(p.accuracy));
         }
         ui.end_row();
         let hidden = net.layers().len().saturating_sub(1);
@@ -519,7 +519,7 @@ fn table_ui(
                 &format!("units of {} only", net.layers()[l].name),
             );
             for p in units.per_layer.iter().filter(|p| p.layer == Some(l)) {
-                ui.monospace(format::percent(p.accuracy, 3));
+                ui.monospace(format::accuracy(p.accuracy));
             }
             ui.end_row();
         }
@@ -559,7 +559,7 @@ mod tests {
         assert_eq!(a.between, Some((0.5, 0.9)));
         assert_eq!(
             a.describe(0.7),
-            "accuracy at 70% ≈ 70% (between the sweep's 50% and 90%)"
+            "accuracy at 70% ≈ 70.0% (between the sweep's 50% and 90%)"
         );
         assert_eq!(accuracy_at(&sweep, 0.95), None);
         assert_eq!(accuracy_at(&[], 0.5), None);

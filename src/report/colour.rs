@@ -897,7 +897,7 @@ mod tests {
         let pos = hue(srgb8_to_lab(key().rgb(1.0)));
         let red = |h: f64| in_range(h, 15.0, 45.0) || in_range(h, 345.0, 360.0);
         let green = |h: f64| in_range(h, 120.0, 180.0);
-        assert!(!(red(neg) && green(pos)) && !(green(neg) && red(pos)));
+        assert!(!((red(neg) && green(pos)) || (green(neg) && red(pos))));
         // The arms sit on either side of the violet-yellow direction that red-green deficient
         // readers keep: b* negative on the negative arm, positive on the positive arm.
         assert!(srgb8_to_lab(key().rgb(-1.0))[2] < -20.0);

@@ -36,6 +36,17 @@ pub fn percent(fraction: f64, digits: usize) -> String {
     format!("{}%", sig_between(100.0 * fraction, digits, 1e-4, 1e6))
 }
 
+/// An accuracy (a fraction from 0 to 1) as a percentage with one decimal ("97.8%", "98.0%"):
+/// accuracies are read to a tenth of a point and compared down a column, so here a fixed
+/// decimal (trailing zero kept) lines them up, and no accuracy is small enough to vanish.
+pub fn accuracy(fraction: f64) -> String {
+    if fraction.is_finite() {
+        format!("{:.1}%", 100.0 * fraction)
+    } else {
+        sig(fraction, 3)
+    }
+}
+
 /// The one implementation: plain notation for `from <= |v| < below`, else scientific.
 pub(crate) fn sig_between(v: f64, digits: usize, from: f64, below: f64) -> String {
     if v == 0.0 {
@@ -136,8 +147,8 @@ mod tests {
     #[test]
     fn rounding_is_within_half_a_unit_of_the_last_digit() {
         for v in [
-            3.141_592_653_589_793,
-            -2.718_281_828,
+            std::f64::consts::PI,
+            -std::f64::consts::E,
             0.000_123_456,
             123_456.789,
             6.022e23,
@@ -159,5 +170,9 @@ mod tests {
         assert_eq!(percent(0.0005, 2), "0.05%");
         assert_eq!(percent(1.0, 3), "100%");
         assert_eq!(percent(0.0, 3), "0%");
+        assert_eq!(accuracy(0.98), "98.0%");
+        assert_eq!(accuracy(0.9784), "97.8%");
+        assert_eq!(accuracy(1.0), "100.0%");
+        assert_eq!(accuracy(f64::NAN), "NaN");
     }
 }
