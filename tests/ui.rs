@@ -627,9 +627,9 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     h.get_by_label("Sparsity and pruning").click();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(60));
-    // The uniform probe has no labels: the view says why the curves are missing.
+    // Uniform samples have no labels: the view says why the curves are missing.
     h.get_by_label_contains("The pruning curves are missing");
-    h.get_by_label_contains("uniform samples from the input box, which have no labels");
+    h.get_by_label_contains("uniform samples of the input box have no labels");
 
     h.state_mut().open_probe(&probe);
     h.run_steps(2);
