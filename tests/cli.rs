@@ -443,9 +443,8 @@ fn prefer_png_vector_strips_and_image_grid() {
     // high, 2 px gaps: strips 2 + 4*16 + 2 = 68 wide, 2 + 5*(16 + 2) = 92 high, right of a
     // 10 px margin holding the unit indices (one digit: 3 font pixels drawn 2x, plus 4).
     // Below, the grey key strip, 34 px high, whose bar is at least 120 px long, so the
-    // picture is 2 + 120 + 8 + 12 + 2 + 3 = 147 px wide (bar, gap, no-value swatch room,
-    // half the last label) and 92 + 34 = 126 high.
-    assert_eq!(img.dimensions(), (147, 126));
+    // picture is 2 + 120 + 2 = 124 px wide and 92 + 34 = 126 high.
+    assert_eq!(img.dimensions(), (124, 126));
     // Unit 0 prefers x0 = 1 (white, the box's high end); unit 2 prefers x0 = 0 (black).
     let m = 10;
     assert_eq!(img.get_pixel(m + 2 + 8, 2 + 8).0, [255, 255, 255]);
@@ -456,7 +455,10 @@ fn prefer_png_vector_strips_and_image_grid() {
         [255, 255, 255]
     );
     // The gap colour sits between strips.
-    assert_ne!(img.get_pixel(m + 10, 2 + 16).0, img.get_pixel(m + 10, 2 + 8).0);
+    assert_ne!(
+        img.get_pixel(m + 10, 2 + 16).0,
+        img.get_pixel(m + 10, 2 + 8).0
+    );
     // The key's bar runs from black (the box's low end) to white, 4 px below the strips.
     let bar = 92 + 4 + 2;
     assert_eq!(img.get_pixel(2, bar).0, [1, 1, 1]);
@@ -485,7 +487,7 @@ fn prefer_png_vector_strips_and_image_grid() {
     let img = image::open(d.path().join("c.png")).unwrap().to_rgb8();
     // Tiles 70 px square as a bare grid, each row under a 12 px band with the unit indices
     // (10 px digits and 2 px), the 34 px key strip below, the key's minimum width across.
-    assert_eq!(img.dimensions(), (147, 70 + 2 * 12 + 34));
+    assert_eq!(img.dimensions(), (124, 70 + 2 * 12 + 34));
     // Unit 0 (tile at the top left) prefers pixel (0,0) = +1 (white), pixel (0,1) = -1 (black).
     let b = 12;
     assert_eq!(img.get_pixel(2 + 8, b + 2 + 8).0, [255, 255, 255]);

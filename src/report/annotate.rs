@@ -175,8 +175,7 @@ pub fn labelled_grid(
         .saturating_sub(2 * GRID_GAP + KEY_BAR + 8)
         .clamp(KEY_MIN_LEN, KEY_MAX_LEN);
     let ticks = key.ticks();
-    let key_width = GRID_GAP + key_len + 8 + KEY_BAR + GRID_GAP + text_width(&ticks[2]) / 2;
-    let width = (g.width + margin).max(key_width) as u64;
+    let width = (g.width + margin).max(key_width(key_len, key)) as u64;
     let height = (g.height + rows * band + KEY_STRIP) as u64;
     if width.saturating_mul(height) > super::picture::MAX_PIXELS {
         return Err(Error::usage(format!(
@@ -214,8 +213,7 @@ pub fn with_key(picture: &Picture, key: GridKey) -> (Picture, KeyPlace) {
         .width()
         .saturating_sub(2 * GRID_GAP + KEY_BAR + 8)
         .clamp(KEY_MIN_LEN, KEY_MAX_LEN);
-    let key_width = GRID_GAP + key_len + 8 + KEY_BAR + GRID_GAP + text_width(&ticks[2]) / 2;
-    let width = picture.width().max(key_width);
+    let width = picture.width().max(key_width(key_len, key));
     let mut out = Picture::filled(width, picture.height() + KEY_STRIP, GAP);
     out.paste_zoomed(picture, 0, 0, 1, 1);
     let place = KeyPlace {
@@ -225,6 +223,17 @@ pub fn with_key(picture: &Picture, key: GridKey) -> (Picture, KeyPlace) {
     };
     draw_key(&mut out, place, key, &ticks);
     (out, place)
+}
+
+/// Width the key needs: the bar of `len` pixels between two grid gaps, and for the signed key
+/// the no-value swatch after an 8 px gap. (The labels stay within the bar: the first is
+/// left-aligned to its start, the last right-aligned to its end.)
+fn key_width(len: usize, key: GridKey) -> usize {
+    let swatch = match key {
+        GridKey::Signed(_) => 8 + KEY_BAR,
+        GridKey::Grey(..) => 0,
+    };
+    GRID_GAP + len + swatch + GRID_GAP
 }
 
 /// Draws the bar, its outline-free ticks and labels, and for the signed key the no-value
@@ -337,5 +346,29 @@ mod tests {
             .unwrap_or_else(|e| panic!("{e}"));
         assert_eq!(p.height(), plain.height() + 2 * LABEL_BAND + KEY_STRIP);
         assert!(p.width() >= plain.width());
+    }
+
+    #[test]
+    fn a_single_map_gets_the_key_below_it() {
+        // A 200 x 50 map: the bar is 200 - 2*2 - 12 - 8 = 176 px long (between 120 and 256).
+        let map = Picture::filled(200, 50, [9, 9, 9, 255]);
+        let (p, place) = with_key(&map, GridKey::Grey(0.0, 10.0));
+        assert_eq!(p.size(), [200, 50 + KEY_STRIP]);
+        assert_eq!(key_width(176, GridKey::Grey(0.0, 1.0)), 180);
+        assert_eq!(key_width(176, GridKey::Signed(None)), 200);
+        assert_eq!(place.len, 176);
+        assert_eq!(p.pixel(199, 49), Some([9, 9, 9, 255]));
+        // The grey ramp: column i shows round(255 (i + 0.5) / len).
+        for i in [0, 88, 175] {
+            let g = (255.0 * (i as f32 + 0.5) / 176.0).round() as u8;
+            assert_eq!(p.pixel(place.x + i, place.y), Some([g, g, g, 255]));
+        }
+        // No no-value swatch on the grey key: the gap colour after the bar.
+        assert_eq!(p.pixel(place.x + place.len + 9, place.y), Some(GAP));
+        assert_eq!(GridKey::Grey(0.0, 10.0).ticks()[2], "10");
+        // A tiny map is widened to hold the shortest bar.
+        let (small, place) = with_key(&Picture::filled(4, 4, GAP), GridKey::Signed(Some(1.0)));
+        assert_eq!(place.len, 120);
+        assert!(small.width() > 120);
     }
 }
