@@ -4,6 +4,7 @@
 //! the per-feature rows and optimum summaries the fronts show. Takes `&Network` and
 //! arrays, never paths; nothing here depends on the GUI.
 
+pub mod accuracy;
 pub mod activity;
 pub mod attribute;
 pub mod bounds;

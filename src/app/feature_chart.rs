@@ -51,7 +51,7 @@ pub enum Quantity {
 
 impl Quantity {
     /// The colour-key scale of a signed quantity (`None` for inputs).
-    fn max_abs(self) -> Option<f32> {
+    pub fn max_abs(self) -> Option<f32> {
         match self {
             Quantity::Input => None,
             Quantity::Rate { max_abs, .. } | Quantity::Share { max_abs, .. } => Some(max_abs),
