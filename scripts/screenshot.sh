@@ -127,3 +127,17 @@ mkdir -p "$WORK/alone"
 cp demo-models/solder-joints.json "$WORK/alone/"
 start_app "$WORK/alone/solder-joints.json"
 shot no-reference-data.png
+
+# 9. The cold-storage demo (sensor readings in physical units) with its reference data: the
+#    first layer's weight glyphs, unit 2's weights as a per-feature chart; then a second-layer
+#    unit's preferred input with its box, the reference band and the kind of optimum.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+start_app demo-models/cold-storage.json --probe demo-models/cold-storage-probe.csv
+xdotool key --delay 200 Right Right
+shot tabular-unit.png
+xdotool key Next
+xdotool key --delay 200 Right
+xdotool key p
+sleep 2
+shot tabular-preferred.png

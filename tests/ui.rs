@@ -89,12 +89,42 @@ fn walks_down_from_a_deeper_unit_and_back() {
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(120));
     assert_eq!(selection(&h).0, 1);
-    // Deeper units show their incoming weights as cells over the layer below; clicking a
-    // cell selects that lower unit.
-    h.get_by_label("map of h2 unit 0").click();
+    // Deeper units show their incoming weights as a bar chart over the layer below, most
+    // positive first; clicking a row selects that lower unit. The top row is the largest
+    // weight of h2 unit 0, read here straight from the model file.
+    let doc: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(
+            Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models/solder-joints.json"),
+        )
+        .unwrap(),
+    )
+    .unwrap();
+    let row: Vec<f64> = doc["layers"][1]["weights"][0]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_f64().unwrap())
+        .collect();
+    let top = (0..row.len())
+        .max_by(|&a, &b| row[a].total_cmp(&row[b]))
+        .unwrap();
+    let first = node_text(
+        &h.query_all_by_label_contains(": weight ")
+            .next()
+            .expect("the incoming chart has rows"),
+    );
+    assert!(
+        first.starts_with(&format!("h1 unit {top}: weight +")),
+        "first row {first:?}, largest weight from unit {top}"
+    );
+    h.get_by_label_contains(&format!("h1 unit {top}: weight "))
+        .click();
     h.run();
-    let (layer, _) = selection(&h);
-    assert_eq!(layer, 0, "clicking a cell walks down to layer h1");
+    assert_eq!(
+        selection(&h),
+        (0, top),
+        "clicking a row walks down to that unit"
+    );
     h.get_by_label("Back").click();
     h.run();
     assert_eq!(selection(&h), (1, 0));
@@ -957,4 +987,165 @@ fn reference_data_beside_the_model_loads_and_its_absence_is_warned() {
     );
     h.get_by_label(receptor::app::layers::UNIFORM_WARNING);
     assert!(h.query_by_label("found beside the model").is_none());
+}
+
+// --- vector charts ---
+
+/// The text a node carries: its label, else its value (egui puts a plain label's text there).
+fn node_text(n: &egui_kittest::Node<'_>) -> String {
+    let ak = egui_kittest::kittest::NodeT::accesskit_node(n);
+    ak.label()
+        .map(|l| l.to_string())
+        .or_else(|| ak.value().map(|v| v.to_string()))
+        .unwrap_or_default()
+}
+
+/// The number after `key` in `text` ("weight +0.4015 per degC" -> 0.4015).
+fn number_after(text: &str, key: &str) -> f64 {
+    let rest = &text[text
+        .find(key)
+        .unwrap_or_else(|| panic!("{key:?} in {text:?}"))
+        + key.len()..];
+    let end = rest.find([' ', ';', ')']).unwrap_or(rest.len());
+    rest[..end]
+        .parse()
+        .unwrap_or_else(|e| panic!("a number after {key:?} in {text:?}: {e}"))
+}
+
+/// The cold-storage demo (vector inputs with units) and its reference data, and the model
+/// file read as plain JSON (independent of receptor's reader).
+fn cold_storage() -> (Harness<'static, ReceptorApp>, serde_json::Value, PathBuf) {
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models");
+    let h = app_with(Start {
+        model: Some(demo.join("cold-storage.json")),
+        probe: Some(demo.join("cold-storage-probe.csv")),
+        allow_outside_paths: false,
+        input_box: Default::default(),
+    });
+    let doc =
+        serde_json::from_str(&std::fs::read_to_string(demo.join("cold-storage.json")).unwrap())
+            .unwrap();
+    (h, doc, demo.join("cold-storage-probe.csv"))
+}
+
+#[test]
+fn vector_unit_reads_its_weights_as_named_quantities() {
+    let (mut h, doc, probe) = cold_storage();
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("h1 unit 2").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    // The air-temperature row of the weight chart: its weight per degC, as in the file.
+    let text = node_text(&h.get_by_label_contains("air_temp_c: weight "));
+    let want = doc["layers"][0]["weights"][2][0].as_f64().unwrap();
+    let got = number_after(&text, "weight ");
+    assert!(text.contains("per degC"), "{text}");
+    // 4 significant digits shown: relative rounding error at most 5e-4.
+    assert!(
+        (got - want).abs() <= 5e-4 * want.abs(),
+        "{got} vs {want} in {text}"
+    );
+    assert!(text.contains("box -5 to 20 degC"), "{text}");
+    // The reference median of air temperature, computed here from the CSV (the middle of
+    // the sorted column; an even count averages the two middle values).
+    let csv = std::fs::read_to_string(probe).unwrap();
+    let mut col: Vec<f64> = csv
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').next().unwrap().parse().unwrap())
+        .collect();
+    col.sort_by(f64::total_cmp);
+    let n = col.len();
+    let median = if n % 2 == 1 {
+        col[n / 2]
+    } else {
+        (col[n / 2 - 1] + col[n / 2]) / 2.0
+    };
+    let got = number_after(&text, "median ");
+    assert!(
+        (got - median).abs() <= 5e-4 * median.abs().max(1.0),
+        "{got} vs {median}"
+    );
+
+    // Sorted by |w|: the first row is the feature with the largest |weight| in the file.
+    h.get_by_label("largest |w| first").click();
+    h.run_steps(2);
+    let w: Vec<f64> = doc["layers"][0]["weights"][2]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_f64().unwrap())
+        .collect();
+    let top = (0..w.len())
+        .max_by(|&a, &b| w[a].abs().total_cmp(&w[b].abs()))
+        .unwrap();
+    let name = doc["input"]["names"][top].as_str().unwrap();
+    let first = node_text(
+        &h.query_all_by_label_contains(": weight ")
+            .next()
+            .expect("chart rows"),
+    );
+    assert!(
+        first.starts_with(&format!("{name}: weight ")),
+        "{first} (want {name} first)"
+    );
+}
+
+#[test]
+fn preferred_input_says_what_kind_of_optimum_it_is() {
+    let (mut h, doc, _) = cold_storage();
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("h1 unit 2").click();
+    h.run_steps(2);
+    h.get_by_label("Preferred input").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    // The search settings sit beside the picture: switching the data prior off searches
+    // the layer again, and the first layer gets the exact closed-form optimum.
+    h.get_by_label_contains("Search this layer again");
+    h.get_by_label("L2 penalty");
+    h.get_by_label_contains("Stay near the data").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    // Closed form (a first-layer unit): x_i = high_i where w_i > 0, low_i where w_i < 0.
+    let w = doc["layers"][0]["weights"][2][0].as_f64().unwrap();
+    let want = if w > 0.0 {
+        doc["input"]["high"][0].as_f64().unwrap()
+    } else {
+        doc["input"]["low"][0].as_f64().unwrap()
+    };
+    let text = node_text(&h.get_by_label_contains("air_temp_c: value "));
+    assert!(text.contains("degC"), "{text}");
+    let got = number_after(&text, "value ");
+    assert!(
+        (got - want).abs() <= 1e-3,
+        "{got} vs the corner {want} in {text}"
+    );
+    // Every input at a bound, and one affine layer's interval bound is exact.
+    h.get_by_label("All 8 inputs sit at a bound of the box: a corner of the box.");
+    h.get_by_label_contains("reaches the sound upper bound");
+
+    // A deeper unit with the data prior back on: a summary is there too, and it does not
+    // claim the bound for a search that was pulled toward the data.
+    h.get_by_label_contains("Stay near the data").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label_contains("h2  ·  ").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("h2 unit 1").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    assert_eq!(
+        h.query_all_by_label_contains("sit at a bound of the box")
+            .count()
+            + h.query_all_by_label_contains("No input sits at a bound")
+                .count(),
+        1
+    );
+    let gap = node_text(&h.get_by_label_contains("the sound upper bound"));
+    assert!(
+        gap.contains("local optimum") || gap.contains("reaches"),
+        "{gap}"
+    );
 }

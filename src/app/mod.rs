@@ -11,6 +11,7 @@ pub mod conv;
 pub mod conv_jobs;
 pub mod detail;
 pub mod export;
+pub mod feature_chart;
 mod jobs;
 pub mod layers;
 pub mod maps;

@@ -179,6 +179,8 @@ pub struct Prefs {
     pub use_prior: bool,
     /// Baseline of the attribution map: the probe's mean (true) or the box centre.
     pub attribution_from_mean: bool,
+    /// Row order of the per-feature charts of vector inputs.
+    pub feature_order: crate::analysis::features::FeatureOrder,
     /// The reference data last used with each model, keyed by the model's canonical path
     /// ([`Prefs::model_key`]); opened again with the model.
     pub reference_for: std::collections::BTreeMap<String, PathBuf>,
@@ -197,6 +199,7 @@ impl Default for Prefs {
             map_view: MapView::default(),
             use_prior: true,
             attribution_from_mean: false,
+            feature_order: Default::default(),
             reference_for: std::collections::BTreeMap::new(),
         }
     }
@@ -307,6 +310,9 @@ pub struct OpenProbe {
     pub reference: Option<Arc<Reference>>,
     /// Why the reference could not be made from the probe file.
     pub reference_error: Option<String>,
+    /// Where the file's data lies per feature, `[input size]` (vector inputs read from a
+    /// file only: the uniform probe is not data, and image charts have no rows).
+    pub spreads: Option<Arc<Vec<Option<crate::analysis::features::FeatureSpread>>>>,
     /// The model's confusion matrix on labelled reference data (`None` without labels).
     pub confusion: Option<Arc<crate::analysis::accuracy::Confusion>>,
 }

@@ -245,7 +245,13 @@ fn tile_ui(
     let visuals = ui.visuals().clone();
     ui.painter()
         .rect_filled(rect, 2.0, visuals.extreme_bg_color);
-    match tile_texture(ui.ctx(), state, thumbs, net, layer, unit) {
+    // Vector inputs: a glyph of the feature chart instead of a picture.
+    let glyph = super::feature_chart::tile_glyph(ui, state, net, layer, unit, rect.shrink(4.0));
+    let texture = match glyph {
+        None => tile_texture(ui.ctx(), state, thumbs, net, layer, unit),
+        Some(_) => None,
+    };
+    match texture {
         Some(t) => {
             let r = fit(t.size_vec2(), rect.shrink(2.0));
             ui.painter().image(
@@ -255,6 +261,7 @@ fn tile_ui(
                 Color32::WHITE,
             );
         }
+        None if glyph == Some(true) => {}
         None => {
             let text = if layer > 0
                 && state
