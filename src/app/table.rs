@@ -48,14 +48,14 @@ fn columns(unit_width: f32, status_width: f32) -> Vec<(Column, f32)> {
     let value = |key, percent| Column::Value { key, percent };
     vec![
         (Column::Unit, unit_width),
-        (Column::Picture, ROW + 6.0),
+        (Column::Picture, ROW + 4.0),
         (Column::Status, status_width),
-        (value(SortKey::Activity, true), 70.0),
-        (value(SortKey::UpperBound, false), 94.0),
-        (value(SortKey::Mean, false), 64.0),
-        (value(SortKey::Max, false), 64.0),
-        (value(SortKey::Sparsity, false), 64.0),
-        (value(SortKey::NearZero, true), 94.0),
+        (value(SortKey::Activity, true), 62.0),
+        (value(SortKey::UpperBound, false), 84.0),
+        (value(SortKey::Mean, false), 58.0),
+        (value(SortKey::Max, false), 58.0),
+        (value(SortKey::Sparsity, false), 56.0),
+        (value(SortKey::NearZero, true), 82.0),
     ]
 }
 
@@ -84,12 +84,12 @@ impl TablePanel {
         scroll_to: bool,
     ) {
         let labelled = layer + 1 == net.layers().len() && net.layer(layer).labels.is_some();
-        let unit_width = if labelled { 150.0 } else { 56.0 };
+        let unit_width = if labelled { 150.0 } else { 46.0 };
         // Status words when the pane is wide enough, else the mark alone (the legend above
         // names the marks).
         let narrow: f32 = columns(unit_width, 0.0).iter().map(|c| c.1).sum();
         let words = ui.available_width() - 18.0 >= narrow + 130.0;
-        let cols = columns(unit_width, if words { 130.0 } else { 28.0 });
+        let cols = columns(unit_width, if words { 130.0 } else { 26.0 });
         let width: f32 = cols.iter().map(|c| c.1).sum();
 
         egui::ScrollArea::horizontal()
@@ -168,11 +168,6 @@ impl TablePanel {
             } else {
                 key.label()
             };
-            let arrow = match (current, state.prefs.sort_descending) {
-                (false, _) => "",
-                (true, false) => " ⏶",
-                (true, true) => " ⏷",
-            };
             let id = egui::Id::unique(("receptor-sort-column", key.label()));
             let r = ui.interact(cell, id, Sense::click());
             let label = format!("Sort by {}", key.label());
@@ -184,7 +179,10 @@ impl TablePanel {
                     visuals.widgets.hovered.weak_bg_fill,
                 );
             }
-            header_text(ui, cell, col, &format!("{name}{arrow}"), current);
+            let text_rect = header_text(ui, cell, col, name, current);
+            if current {
+                sort_arrow(ui, &text_rect, col, state.prefs.sort_descending);
+            }
             let hint = format!(
                 "Sort by {} ({}); click again to turn the order around",
                 key.label(),
@@ -197,8 +195,32 @@ impl TablePanel {
     }
 }
 
-/// Header text: right-aligned over number columns, left-aligned otherwise.
-fn header_text(ui: &egui::Ui, cell: Rect, col: Column, text: &str, strong: bool) {
+/// The sort direction beside the current column's name: a small triangle pointing up
+/// (lowest first) or down (highest first), drawn rather than typed so it needs no glyph.
+fn sort_arrow(ui: &egui::Ui, text: &Rect, col: Column, descending: bool) {
+    let colour = ui.visuals().strong_text_color();
+    // Number columns are right-aligned: the arrow goes left of the name.
+    let x = match col {
+        Column::Value { .. } => text.left() - 7.0,
+        _ => text.right() + 7.0,
+    };
+    let c = pos2(x, text.center().y);
+    let (tip, base) = if descending { (4.0, -3.0) } else { (-4.0, 3.0) };
+    let points = vec![
+        c + vec2(0.0, tip),
+        c + vec2(-4.0, base),
+        c + vec2(4.0, base),
+    ];
+    ui.painter().add(egui::Shape::convex_polygon(
+        points,
+        colour,
+        Stroke::NONE,
+    ));
+}
+
+/// Header text: right-aligned over number columns, left-aligned otherwise. Returns where
+/// the text went.
+fn header_text(ui: &egui::Ui, cell: Rect, col: Column, text: &str, strong: bool) -> Rect {
     let visuals = ui.visuals();
     let colour = if strong {
         visuals.strong_text_color()
@@ -210,7 +232,7 @@ fn header_text(ui: &egui::Ui, cell: Rect, col: Column, text: &str, strong: bool)
         Column::Value { .. } => (Align2::RIGHT_CENTER, cell.right_center() - vec2(6.0, 0.0)),
         _ => (Align2::LEFT_CENTER, cell.left_center() + vec2(4.0, 0.0)),
     };
-    ui.painter().text(at, anchor, text, font, colour);
+    ui.painter().text(at, anchor, text, font, colour)
 }
 
 /// Draws one row and returns its response (clickable, labelled `"{layer} unit {unit}"` as

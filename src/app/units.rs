@@ -239,11 +239,12 @@ impl UnitsPanel {
         layer: usize,
     ) {
         let label = ui.label("Go to unit");
+        let units = net.layer(layer).units();
         let r = ui
             .add(
                 egui::TextEdit::singleline(&mut self.go_to)
                     .id(go_to_id())
-                    .hint_text("number")
+                    .hint_text(format!("0–{}", units.saturating_sub(1)))
                     .desired_width(56.0),
             )
             .labelled_by(label.id)
@@ -254,7 +255,6 @@ impl UnitsPanel {
             return;
         }
         let text = std::mem::take(&mut self.go_to);
-        let units = net.layer(layer).units();
         let lname = &net.layer(layer).name;
         match text.trim().parse::<usize>() {
             Ok(unit) if unit < units => {
