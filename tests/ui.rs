@@ -860,7 +860,10 @@ fn unit_table_is_the_default_and_sorts_by_upper_bound_like_the_core() {
     wait_idle(&mut h, Duration::from_secs(60));
     // The table's headers are there and the tile wall's controls are not.
     h.get_by_label("Sort by upper bound");
-    assert!(h.query_by_label("Tile size").is_none(), "tiles are not shown");
+    assert!(
+        h.query_by_label("Tile size").is_none(),
+        "tiles are not shown"
+    );
     assert_eq!(listed_units(&h, "h1"), (0..32).collect::<Vec<_>>());
 
     // The core's screening of the same model and data (the bundled demo is
@@ -882,14 +885,26 @@ fn unit_table_is_the_default_and_sorts_by_upper_bound_like_the_core() {
     descending_pairs.sort_by_key(|p| p.1);
     descending_pairs.sort_by(|a, b| b.0.total_cmp(&a.0));
     let descending: Vec<usize> = descending_pairs.iter().map(|p| p.1).collect();
-    assert_ne!(ascending, (0..32).collect::<Vec<_>>(), "the sort changes the order");
+    assert_ne!(
+        ascending,
+        (0..32).collect::<Vec<_>>(),
+        "the sort changes the order"
+    );
 
     h.get_by_label("Sort by upper bound").click();
     h.run();
-    assert_eq!(listed_units(&h, "h1"), ascending, "lowest upper bound first");
+    assert_eq!(
+        listed_units(&h, "h1"),
+        ascending,
+        "lowest upper bound first"
+    );
     h.get_by_label("Sort by upper bound").click();
     h.run();
-    assert_eq!(listed_units(&h, "h1"), descending, "a second click turns it around");
+    assert_eq!(
+        listed_units(&h, "h1"),
+        descending,
+        "a second click turns it around"
+    );
 }
 
 /// Filtering by a status lists exactly the units the core gives that status.
@@ -904,7 +919,13 @@ fn unit_table_filters_by_status_like_the_core() {
         input_box: Default::default(),
     });
     wait_idle(&mut h, Duration::from_secs(60));
-    assert!(h.state().state().probe.as_ref().is_some_and(|p| p.path.is_some()));
+    assert!(
+        h.state()
+            .state()
+            .probe
+            .as_ref()
+            .is_some_and(|p| p.path.is_some())
+    );
     let rows = core_screen(&model, &probe);
     let with = |status: &str| -> Vec<usize> {
         rows.iter()
@@ -947,7 +968,11 @@ fn unit_table_keys_move_and_jump_the_selection() {
     assert_eq!(selection(&h), at(3));
     h.key_press(egui::Key::ArrowDown);
     h.run();
-    assert_eq!(selection(&h), at(4), "down: the next row of the sorted table");
+    assert_eq!(
+        selection(&h),
+        at(4),
+        "down: the next row of the sorted table"
+    );
     h.key_press(egui::Key::ArrowUp);
     h.key_press(egui::Key::ArrowUp);
     h.run();
@@ -991,10 +1016,17 @@ fn unit_table_and_tile_wall_switch_by_their_controls() {
 
     h.get_by_label("Tiles").click();
     h.run();
-    assert!(h.query_all_by_label("Tile size").next().is_some(), "the tile wall's slider");
+    assert!(
+        h.query_all_by_label("Tile size").next().is_some(),
+        "the tile wall's slider"
+    );
     assert!(h.query_by_label("Sort by upper bound").is_none());
     h.get_by_label("Tiles: incoming weights");
-    assert_eq!(listed_units(&h, "h1"), order, "the wall keeps the table's order");
+    assert_eq!(
+        listed_units(&h, "h1"),
+        order,
+        "the wall keeps the table's order"
+    );
 
     h.get_by_label("Table").click();
     h.run();

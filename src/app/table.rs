@@ -48,15 +48,44 @@ fn columns(unit_width: f32, status_width: f32) -> Vec<(Column, f32)> {
     let value = |key, percent| Column::Value { key, percent };
     vec![
         (Column::Unit, unit_width),
-        (Column::Picture, ROW + 4.0),
         (Column::Status, status_width),
+        (Column::Picture, ROW + 6.0),
         (value(SortKey::Activity, true), 62.0),
-        (value(SortKey::UpperBound, false), 84.0),
-        (value(SortKey::Mean, false), 58.0),
-        (value(SortKey::Max, false), 58.0),
-        (value(SortKey::Sparsity, false), 56.0),
-        (value(SortKey::NearZero, true), 82.0),
+        (value(SortKey::UpperBound, false), 80.0),
+        (value(SortKey::Mean, false), 56.0),
+        (value(SortKey::Max, false), 56.0),
+        (value(SortKey::Sparsity, false), 54.0),
+        (value(SortKey::NearZero, true), 78.0),
     ]
+}
+
+/// The columns for `layer` in a pane `room` points wide. Screening covers hidden layers
+/// only, so the output layer leaves out the columns it would show empty (status, active %,
+/// mean) and gives the room to its class labels. Hidden layers show the status in words
+/// beside the mark when there is room, else the mark alone (the legend above names the
+/// marks).
+fn layout(net: &Network, layer: usize, room: f32) -> Vec<(Column, f32)> {
+    let output = layer + 1 == net.layers().len();
+    let labelled = output && net.layer(layer).labels.is_some();
+    let mut cols = columns(42.0, 50.0);
+    if output {
+        cols.retain(|(c, _)| match c {
+            Column::Status => false,
+            Column::Value { key, .. } => !matches!(key, SortKey::Activity | SortKey::Mean),
+            _ => true,
+        });
+    }
+    let others: f32 = cols.iter().skip(1).map(|c| c.1).sum();
+    if labelled {
+        cols[0].1 = (room - others).clamp(42.0, 170.0);
+    } else if !output && room >= others + 42.0 + 80.0 {
+        for c in &mut cols {
+            if c.0 == Column::Status {
+                c.1 = 130.0;
+            }
+        }
+    }
+    cols
 }
 
 /// The unit table panel.
@@ -83,13 +112,7 @@ impl TablePanel {
         order: &[usize],
         scroll_to: bool,
     ) {
-        let labelled = layer + 1 == net.layers().len() && net.layer(layer).labels.is_some();
-        let unit_width = if labelled { 150.0 } else { 46.0 };
-        // Status words when the pane is wide enough, else the mark alone (the legend above
-        // names the marks).
-        let narrow: f32 = columns(unit_width, 0.0).iter().map(|c| c.1).sum();
-        let words = ui.available_width() - 18.0 >= narrow + 130.0;
-        let cols = columns(unit_width, if words { 130.0 } else { 26.0 });
+        let cols = layout(net, layer, ui.available_width() - 18.0);
         let width: f32 = cols.iter().map(|c| c.1).sum();
 
         egui::ScrollArea::horizontal()
@@ -159,15 +182,11 @@ impl TablePanel {
             let cell = Rect::from_min_size(pos2(x, rect.top()), vec2(w, ROW));
             x += w;
             let Some(key) = col.key() else {
-                header_text(ui, cell, col, "picture", false);
+                // The thumbnails need no name (the tile wall's caption says what they show).
                 continue;
             };
             let current = state.prefs.sort == key;
-            let name = if key == SortKey::Status && cell.width() < 60.0 {
-                ""
-            } else {
-                key.label()
-            };
+            let name = key.label();
             let id = egui::Id::unique(("receptor-sort-column", key.label()));
             let r = ui.interact(cell, id, Sense::click());
             let label = format!("Sort by {}", key.label());
@@ -211,11 +230,8 @@ fn sort_arrow(ui: &egui::Ui, text: &Rect, col: Column, descending: bool) {
         c + vec2(-4.0, base),
         c + vec2(4.0, base),
     ];
-    ui.painter().add(egui::Shape::convex_polygon(
-        points,
-        colour,
-        Stroke::NONE,
-    ));
+    ui.painter()
+        .add(egui::Shape::convex_polygon(points, colour, Stroke::NONE));
 }
 
 /// Header text: right-aligned over number columns, left-aligned otherwise. Returns where

@@ -509,7 +509,7 @@ fn tile_frame_and_caption(ui: &egui::Ui, rect: Rect, caption: &str, selected: bo
     };
     let font = egui::TextStyle::Small.resolve(ui.style());
     let job = egui::text::LayoutJob {
-        wrap: egui::text::TextWrapping::truncate_at_width(rect.width() + GAP),
+        wrap: egui::text::TextWrapping::truncate_at_width(rect.width() + 2.0),
         ..egui::text::LayoutJob::simple_singleline(caption.to_owned(), font, colour)
     };
     let galley = painter.layout_job(job);
