@@ -1034,3 +1034,33 @@ fn unit_table_and_tile_wall_switch_by_their_controls() {
     assert!(h.query_by_label("Tile size").is_none());
     assert_eq!(listed_units(&h, "h1"), order);
 }
+
+/// On a 2048-unit layer the table draws only the rows on screen, and "Go to unit" scrolls
+/// a far row into view.
+#[test]
+fn unit_table_draws_only_visible_rows_and_goes_to_a_far_unit() {
+    let dir = tempfile::tempdir().unwrap();
+    let large = write_large_model(dir.path());
+    let mut h = app_with(Start {
+        model: Some(large),
+        ..Start::default()
+    });
+    wait_idle(&mut h, Duration::from_secs(300));
+    let shown = listed_units(&h, "fc1");
+    assert!(
+        !shown.is_empty() && shown.len() < 100,
+        "only the rows on screen are drawn: {} of 2048",
+        shown.len()
+    );
+    assert_eq!(shown[0], 0);
+    assert!(!shown.contains(&1500));
+    h.key_press(egui::Key::G);
+    h.run();
+    h.get_by_label("Go to unit").type_text("1500");
+    h.key_press(egui::Key::Enter);
+    h.run();
+    assert_eq!(selection(&h), (0, 1500));
+    let shown = listed_units(&h, "fc1");
+    assert!(shown.contains(&1500), "row 1500 is scrolled into view: {shown:?}");
+    assert!(!shown.contains(&0));
+}

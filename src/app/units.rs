@@ -28,6 +28,8 @@ pub struct UnitsPanel {
     scroll_to_selected: bool,
     /// Columns of the tile wall in the last drawn frame (for Up/Down).
     columns: usize,
+    /// The tile rows drawn in the last frame (to scroll to a selection outside them).
+    grid_shown: std::ops::Range<usize>,
     /// The text of the "Go to unit" field.
     go_to: String,
     /// The table.
@@ -103,41 +105,49 @@ impl UnitsPanel {
             None
         };
         let mut clicked = None;
-        egui::ScrollArea::vertical()
+        let mut area = egui::ScrollArea::vertical()
             .id_salt(("unit-grid", layer))
-            .auto_shrink([false, false])
-            .show_rows(
-                ui,
-                cell.y - ui.spacing().item_spacing.y,
-                rows,
-                |ui, range| {
-                    // The units on screen, so their preferred inputs are searched first.
-                    let shown = order
-                        .get(range.start * cols..(range.end * cols).min(order.len()))
-                        .unwrap_or_default();
-                    state.run.visible = Some((layer, shown.to_vec()));
-                    for row in range {
-                        ui.horizontal(|ui| {
-                            ui.spacing_mut().item_spacing.x = 0.0;
-                            for c in 0..cols {
-                                let Some(&unit) = order.get(row * cols + c) else {
-                                    break;
-                                };
-                                let selected = selected_pos == Some(row * cols + c);
-                                let r = tile_ui(
-                                    ui, state, thumbs, net, layer, unit, selected, cell, tile,
-                                );
-                                if r.clicked() {
-                                    clicked = Some(unit);
-                                }
-                                if selected && scroll_to == Some(row) {
-                                    r.scroll_to_me(Some(egui::Align::Center));
-                                }
+            .auto_shrink([false, false]);
+        // A selection outside the rows drawn last frame: scroll there first (the tile
+        // itself is drawn only once it is in view).
+        if let Some(row) = scroll_to
+            && !self.grid_shown.contains(&row)
+        {
+            let half = (self.grid_shown.len() as f32 / 2.0).floor();
+            area = area.vertical_scroll_offset(((row as f32 - half) * cell.y).max(0.0));
+        }
+        area.show_rows(
+            ui,
+            cell.y - ui.spacing().item_spacing.y,
+            rows,
+            |ui, range| {
+                // The units on screen, so their preferred inputs are searched first.
+                let shown = order
+                    .get(range.start * cols..(range.end * cols).min(order.len()))
+                    .unwrap_or_default();
+                state.run.visible = Some((layer, shown.to_vec()));
+                self.grid_shown = range.clone();
+                for row in range {
+                    ui.horizontal(|ui| {
+                        ui.spacing_mut().item_spacing.x = 0.0;
+                        for c in 0..cols {
+                            let Some(&unit) = order.get(row * cols + c) else {
+                                break;
+                            };
+                            let selected = selected_pos == Some(row * cols + c);
+                            let r =
+                                tile_ui(ui, state, thumbs, net, layer, unit, selected, cell, tile);
+                            if r.clicked() {
+                                clicked = Some(unit);
                             }
-                        });
-                    }
-                },
-            );
+                            if selected && scroll_to == Some(row) {
+                                r.scroll_to_me(Some(egui::Align::Center));
+                            }
+                        }
+                    });
+                }
+            },
+        );
         if let Some(unit) = clicked {
             state.select(Selection { layer, unit }, false);
         }
@@ -161,10 +171,10 @@ impl UnitsPanel {
                 .on_hover_text("A wall of thumbnails");
             ui.separator();
             let label = ui.label("Show");
-            let counts = status_counts(state, layer);
             egui::ComboBox::from_id_salt("unit-filter")
                 .selected_text(state.status_filter.label())
                 .show_ui(ui, |ui| {
+                    let counts = status_counts(state, layer);
                     for f in StatusFilter::ALL {
                         let n = counts.iter().filter(|s| f.keeps(**s)).count();
                         let text = format!("{}: {n}", f.label());
