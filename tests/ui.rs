@@ -1061,6 +1061,9 @@ fn unit_table_draws_only_visible_rows_and_goes_to_a_far_unit() {
     h.run();
     assert_eq!(selection(&h), (0, 1500));
     let shown = listed_units(&h, "fc1");
-    assert!(shown.contains(&1500), "row 1500 is scrolled into view: {shown:?}");
+    assert!(
+        shown.contains(&1500),
+        "row 1500 is scrolled into view: {shown:?}"
+    );
     assert!(!shown.contains(&0));
 }

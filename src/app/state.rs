@@ -1100,6 +1100,96 @@ mod tests {
         assert_eq!(back.search, want);
     }
 
+    /// A 2-3-2 relu network with screening rows for its hidden layer: unit 0 non-finite
+    /// (NaN mean), unit 1 healthy, unit 2 dead on the probe.
+    fn screened_state() -> AppState {
+        use crate::analysis::screen::ScreenReport;
+        use crate::model::{Activation, BoxOrigin, BoxSource, InputSpec, Layer, LayerKind};
+        let layer = |name: &str, units: usize, inputs: usize| Layer {
+            kind: LayerKind::Dense,
+            name: name.into(),
+            activation: Activation::Relu,
+            weights: ndarray::Array2::zeros((units, inputs)),
+            bias: ndarray::Array1::zeros(units),
+            labels: None,
+        };
+        let input = InputSpec {
+            units: None,
+            size: 2,
+            layout: crate::model::Layout::Vector,
+            low: vec![0.0; 2],
+            high: vec![1.0; 2],
+            names: None,
+        };
+        let layers = vec![layer("h", 3, 2), layer("out", 2, 3)];
+        let net = Network::new("test", "t", input, layers).unwrap();
+        let row = |unit: usize, mean: f64, status: Status| UnitScreen {
+            layer: "h".into(),
+            layer_index: 0,
+            unit,
+            activation: "relu",
+            active_frac: 0.5,
+            mean,
+            max: 1.0,
+            upper_bound: 1.0,
+            status,
+        };
+        let report = ScreenReport {
+            units: vec![
+                row(0, f64::NAN, Status::NonFinite),
+                row(1, 0.5, Status::Ok),
+                row(2, 0.2, Status::DeadOnProbe),
+            ],
+            samples: 10,
+            probe: "test".into(),
+        };
+        let mut state = AppState::new(Prefs::default(), false);
+        state.results.screen = Slot::Ready(Arc::new(ScreenResult::new(&net, report)));
+        state.model = Some(OpenModel {
+            net: Arc::new(net),
+            origin: "test".into(),
+            path: None,
+            box_origin: BoxOrigin {
+                low: BoxSource::ModelFile,
+                high: BoxSource::ModelFile,
+            },
+        });
+        state
+    }
+
+    #[test]
+    fn missing_values_sort_last_in_both_directions() {
+        let mut state = screened_state();
+        state.sort_by(SortKey::Mean);
+        assert!(
+            !state.prefs.sort_descending,
+            "mean sorts lowest first at first"
+        );
+        assert_eq!(*state.order(0), vec![2, 1, 0], "NaN mean last");
+        state.sort_by(SortKey::Mean);
+        assert_eq!(*state.order(0), vec![1, 2, 0], "NaN mean still last");
+        // The output layer is not screened: no mean, so index order both ways.
+        assert_eq!(*state.order(1), vec![0, 1]);
+        // Status: problems first (non-finite, then dead on the probe), healthy last.
+        state.sort_by(SortKey::Status);
+        assert_eq!(*state.order(0), vec![0, 2, 1]);
+    }
+
+    #[test]
+    fn the_status_filter_keeps_what_it_names() {
+        let mut state = screened_state();
+        state.status_filter = StatusFilter::Only(Status::DeadOnProbe);
+        assert_eq!(*state.order(0), vec![2]);
+        state.status_filter = StatusFilter::Problems;
+        assert_eq!(*state.order(0), vec![0, 2]);
+        state.status_filter = StatusFilter::Only(Status::Ok);
+        assert_eq!(*state.order(0), vec![1]);
+        // Unscreened units (the output layer) pass only "all units".
+        assert!(state.order(1).is_empty());
+        state.status_filter = StatusFilter::All;
+        assert_eq!(*state.order(1), vec![0, 1]);
+    }
+
     #[test]
     fn recent_files_are_newest_first_without_duplicates() {
         let mut list = Vec::new();
