@@ -50,12 +50,12 @@ fn columns(unit_width: f32, status_width: f32) -> Vec<(Column, f32)> {
         (Column::Unit, unit_width),
         (Column::Status, status_width),
         (Column::Picture, ROW + 6.0),
-        (value(SortKey::Activity, true), 62.0),
-        (value(SortKey::UpperBound, false), 80.0),
-        (value(SortKey::Mean, false), 56.0),
-        (value(SortKey::Max, false), 56.0),
-        (value(SortKey::Sparsity, false), 54.0),
-        (value(SortKey::NearZero, true), 78.0),
+        (value(SortKey::Activity, true), 56.0),
+        (value(SortKey::UpperBound, false), 78.0),
+        (value(SortKey::Mean, false), 66.0),
+        (value(SortKey::Max, false), 60.0),
+        (value(SortKey::Sparsity, false), 50.0),
+        (value(SortKey::NearZero, true), 72.0),
     ]
 }
 
@@ -366,13 +366,16 @@ fn row_ui(
                     Some(v) => sig(v, DIGITS),
                     None => "–".to_owned(),
                 };
-                painter.text(
-                    cell.right_center() - vec2(6.0, 0.0),
-                    Align2::RIGHT_CENTER,
-                    text,
-                    number_font.clone(),
-                    ink,
-                );
+                // Clipped to the cell, so a long number never runs into its neighbour.
+                painter
+                    .with_clip_rect(cell.intersect(painter.clip_rect()))
+                    .text(
+                        cell.right_center() - vec2(6.0, 0.0),
+                        Align2::RIGHT_CENTER,
+                        text,
+                        number_font.clone(),
+                        ink,
+                    );
             }
         }
     }
