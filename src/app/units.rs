@@ -43,7 +43,7 @@ impl UnitsPanel {
         ui: &mut egui::Ui,
         state: &mut AppState,
         thumbs: &mut Thumbs,
-        _actions: &mut Vec<Action>,
+        actions: &mut Vec<Action>,
     ) {
         let Some(net) = state.net().cloned() else {
             return;
@@ -53,6 +53,11 @@ impl UnitsPanel {
             return;
         }
         self.toolbar_ui(ui, state, &net, layer);
+        // Filtering by status rests on the screening's verdicts: say when they rest on
+        // noise (the layer list says it always).
+        if state.status_filter != StatusFilter::All {
+            super::layers::uniform_warning_ui(ui, state, actions);
+        }
         let order = state.order(layer);
         let tiles = state.prefs.unit_view == UnitView::Tiles;
         let row_step = if tiles { self.columns.max(1) } else { 1 };
@@ -186,6 +191,8 @@ impl UnitsPanel {
             ui.separator();
             self.go_to_ui(ui, state, net, layer);
         });
+        // The colour scale of the weight maps (the table's thumbnails and the tiles).
+        ui.horizontal(|ui| super::colour::scale_switch_ui(ui, &mut state.prefs.scale));
         if state.prefs.unit_view == UnitView::Tiles {
             ui.horizontal(|ui| {
                 let label = ui.label("Sort by");
