@@ -78,9 +78,9 @@ click_at() {
     sleep 0.5
     xdotool mousemove 1000 792
 }
-sparsity_view() { click_at 405 43; }
-tiles_mode() { click_at 361 75; }
-table_mode() { click_at 308 75; }
+sparsity_view() { click_at 439 43; }
+tiles_mode() { click_at 396 75; }
+table_mode() { click_at 342 75; }
 
 # 1. First layer as tiles: the wall of incoming-weight maps, unit 5 selected, its weights
 #    in detail.
@@ -102,7 +102,7 @@ shot deeper-unit-weights.png
 #    active first), the first row selected.
 table_mode
 xdotool key Prior
-click_at 430 152
+click_at 470 188
 xdotool key Home
 shot unit-table.png
 
