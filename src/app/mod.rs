@@ -19,6 +19,7 @@ pub mod menu;
 pub mod sparsity;
 pub mod state;
 pub mod statusbar;
+pub mod table;
 pub mod thumbs;
 pub mod units;
 pub mod worker;
@@ -436,12 +437,6 @@ impl ReceptorApp {
                 if i.consume_key(Modifiers::NONE, key) {
                     self.state.prefs.map_view = view;
                 }
-            }
-            if i.consume_key(Modifiers::NONE, Key::Tab) {
-                self.state.view = match self.state.view {
-                    MainView::Units => MainView::Sparsity,
-                    MainView::Sparsity => MainView::Units,
-                };
             }
             let sel = self.state.selection;
             if let Some(s) = sel {
