@@ -116,9 +116,10 @@ impl DetailPanel {
         }
         let mut row = self.attribution_row(state, sel).unwrap_or(0);
         ui.horizontal(|ui| {
-            ui.label("Probe row");
+            let label = ui.label("Probe row");
             if ui
                 .add(egui::DragValue::new(&mut row).range(0..=rows - 1))
+                .labelled_by(label.id)
                 .changed()
             {
                 self.attribution_row = Some((sel, row));
@@ -928,8 +929,9 @@ fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &
                             .speed(0.01),
                     );
                     ui.end_row();
-                    ui.label("Facets");
-                    ui.add(egui::DragValue::new(&mut facets).range(1..=MAX_FACETS));
+                    let label = ui.label("Facets");
+                    ui.add(egui::DragValue::new(&mut facets).range(1..=MAX_FACETS))
+                        .labelled_by(label.id);
                     ui.end_row();
                 });
             // The controls stay inside the valid ranges; the core's constructor checks anyway.
