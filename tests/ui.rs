@@ -826,15 +826,39 @@ fn demo_with_files() -> (
     (h, net, data, reference)
 }
 
-/// Labels on screen that read as a number within 0.5% of `want` (so a change of the
-/// number format keeps the check).
+/// The text of every node on screen that reads as a number (a label's text, or a
+/// widget's value).
+fn shown_numbers(h: &Harness<'static, ReceptorApp>) -> Vec<f32> {
+    use egui_kittest::kittest::NodeT;
+    let number = |n: &egui_kittest::kittest::AccessKitNode<'_>| -> Option<f32> {
+        [n.label(), n.value()]
+            .into_iter()
+            .flatten()
+            .find_map(|t| t.trim().parse::<f32>().ok())
+    };
+    h.query_all(
+        egui_kittest::kittest::by()
+            .predicate(move |n| number(n).is_some())
+            .include_labels(),
+    )
+    .filter_map(|n| number(&n.accesskit_node()))
+    .collect()
+}
+
+/// The text of a node: its label, else its value (a plain text carries it there).
+fn text_of(n: &egui_kittest::Node<'_>) -> String {
+    use egui_kittest::kittest::NodeT;
+    let a = n.accesskit_node();
+    a.label().or_else(|| a.value()).unwrap_or_default()
+}
+
+/// Numbers on screen within 0.5% of `want` (so a change of the number format keeps the
+/// check).
 fn numbers_near(h: &Harness<'static, ReceptorApp>, want: f32) -> usize {
-    h.query_all_by(move |n| {
-        n.label()
-            .and_then(|l| l.trim().parse::<f32>().ok())
-            .is_some_and(|v| (v - want).abs() <= 5e-3 * want.abs().max(1e-3))
-    })
-    .count()
+    shown_numbers(h)
+        .into_iter()
+        .filter(|v| (v - want).abs() <= 5e-3 * want.abs().max(1e-3))
+        .count()
 }
 
 /// Opens layer h2 of the demo, selects unit 3 and waits for its preferred input.
@@ -849,7 +873,8 @@ fn select_h2_unit_3(h: &mut Harness<'static, ReceptorApp>) {
 
 /// Redoes the selected layer's search with the settings shown.
 fn search_again(h: &mut Harness<'static, ReceptorApp>) {
-    h.get_by_label_contains("Search this layer again").click();
+    h.get_by_label_contains("Search this layer again")
+        .click_accesskit();
     h.run_steps(2);
     wait_idle(h, Duration::from_secs(180));
 }
@@ -875,14 +900,16 @@ fn the_data_prior_checkbox_shows_the_z_the_core_computes_with_and_without_data()
     // The prior is on by default with a probe file open.
     assert!(
         numbers_near(&h, with) >= 1,
-        "z with the prior ({with}) is shown"
+        "z with the prior ({with}) is shown; numbers shown: {:?}",
+        shown_numbers(&h)
     );
     assert_eq!(numbers_near(&h, without), 0);
 
-    h.get_by_label("Preferred-input search").click();
-    h.run();
-    h.get_by_label_contains("Stay near the data").click();
-    h.run();
+    h.get_by_label("Preferred-input search").click_accesskit();
+    h.run_steps(2);
+    h.get_by_label_contains("Stay near the data")
+        .click_accesskit();
+    h.run_steps(2);
     assert!(!h.state().state().prefs.use_prior);
     search_again(&mut h);
     assert!(
@@ -891,8 +918,9 @@ fn the_data_prior_checkbox_shows_the_z_the_core_computes_with_and_without_data()
     );
     assert_eq!(numbers_near(&h, with), 0);
 
-    h.get_by_label_contains("Stay near the data").click();
-    h.run();
+    h.get_by_label_contains("Stay near the data")
+        .click_accesskit();
+    h.run_steps(2);
     search_again(&mut h);
     assert!(
         numbers_near(&h, with) >= 1,
@@ -906,25 +934,22 @@ fn two_facets_show_the_spread_and_the_z_the_core_computes() {
     use receptor::analysis::prefer::prefer_with;
     let (mut h, net, _, reference) = demo_with_files();
     select_h2_unit_3(&mut h);
-    h.get_by_label("Preferred-input search").click();
-    h.run();
-    h.get_by_label("Facets").click();
-    h.run();
-    h.get_by_label("Facets").type_text("2");
-    h.key_press(egui::Key::Enter);
-    h.run();
+    h.get_by_label("Preferred-input search").click_accesskit();
+    h.run_steps(2);
+    h.get_by_label("Facets").set_value_accesskit(2.0);
+    h.run_steps(2);
     assert_eq!(h.state().state().prefs.search.facets(), 2);
     search_again(&mut h);
+    // The facets are drawn under the preferred input.
+    h.get_by_label("Preferred input").click_accesskit();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
 
     let opts = h.state().state().prefs.search.clone();
     let found = prefer_with(&net, 1, &[3], &opts, Some(&reference), &Silent).expect("facets");
     assert_eq!(found.len(), 2);
     // The spread line: "2 facets, mean pairwise distance D box widths".
-    let line = h
-        .get_by_label_contains("2 facets, mean pairwise distance")
-        .accesskit_node()
-        .label()
-        .expect("a label");
+    let line = text_of(&h.get_by_label_contains("2 facets, mean pairwise distance"));
     let shown: f32 = line
         .split_whitespace()
         .find_map(|w| w.parse().ok().filter(|_| w.contains('.')))
@@ -934,11 +959,7 @@ fn two_facets_show_the_spread_and_the_z_the_core_computes() {
     assert!((shown - found[0].spread).abs() <= 1e-3, "{line}");
     // Each facet's z under its picture.
     for p in &found {
-        let label = h
-            .get_by_label_contains(&format!("facet {} · z", p.facet))
-            .accesskit_node()
-            .label()
-            .expect("a label");
+        let label = text_of(&h.get_by_label_contains(&format!("facet {} · z", p.facet)));
         let z: f32 = label
             .rsplit(' ')
             .next()
@@ -958,16 +979,25 @@ fn the_attribution_map_and_its_png_are_the_cores_integrated_gradients() {
     use receptor::report::picture;
     let (mut h, net, data, _) = demo_with_files();
     select_h2_unit_3(&mut h);
-    h.get_by_label("Attribution").click();
+    h.get_by_label("Attribution").click_accesskit();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(60));
-    h.get_by_label("Probe row").click();
-    h.run();
-    h.get_by_label("Probe row").type_text("5");
-    h.key_press(egui::Key::Enter);
+    h.get_by_label("Probe row").set_value_accesskit(5.0);
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(60));
+    // The map says "Integrating gradients for probe row 5…" until the worker is done.
+    let t0 = Instant::now();
+    while h.query_by_label_contains("Integrating gradients").is_some() {
+        assert!(
+            t0.elapsed() < Duration::from_secs(60),
+            "attribution never came"
+        );
+        h.step();
+        std::thread::sleep(Duration::from_millis(5));
+    }
+    h.run_steps(2);
 
+    assert_eq!(h.get_by_label("Probe row").value().as_deref(), Some("5"));
     let dir = tempfile::tempdir().unwrap();
     let png = dir.path().join("attribution.png");
     h.state_mut().export_to(ExportKind::MapPng, png.clone());
@@ -986,12 +1016,16 @@ fn the_attribution_map_and_its_png_are_the_cores_integrated_gradients() {
         a.sum
     );
     let scale = receptor::report::colour::symmetric_max(&a.values);
-    let want = picture::signed_input_map(net.input(), &a.values, scale)
-        .png_bytes()
-        .expect("png");
+    let map = picture::signed_input_map(net.input(), &a.values, scale);
+    // The export enlarges a small map by a whole factor: the PNG's width (IHDR, bytes 16 to
+    // 20, ISO/IEC 15948) over the map's.
+    let bytes = std::fs::read(&png).unwrap();
+    let width = u32::from_be_bytes([bytes[16], bytes[17], bytes[18], bytes[19]]) as usize;
+    assert_eq!(width % map.width(), 0);
+    let zoom = width / map.width();
+    let want = map.zoomed(zoom, zoom).png_bytes().expect("png");
     assert_eq!(
-        std::fs::read(&png).unwrap(),
-        want,
+        bytes, want,
         "the exported attribution map is the core's, drawn by report::picture"
     );
 }

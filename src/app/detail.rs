@@ -19,37 +19,11 @@ const STRONGEST: usize = 8;
 /// Width kept for the colour key beside a map.
 const KEY_WIDTH: f32 = 84.0;
 
-/// The detail panel.
+/// The detail panel (its view state lives in [`AppState`], so the exports see it too).
 #[derive(Default)]
-pub struct DetailPanel {
-    /// The probe row chosen for the attribution map, and the unit it was chosen for.
-    attribution_row: Option<(Selection, usize)>,
-}
+pub struct DetailPanel {}
 
 impl DetailPanel {
-    /// Forgets per-model view state (the model changed).
-    pub fn reset(&mut self) {
-        self.attribution_row = None;
-    }
-
-    /// The probe row the attribution map of `sel` uses: the one chosen in the panel, else
-    /// the sample that drives the unit hardest (once the probe is traced).
-    pub fn attribution_row(&self, state: &AppState, sel: Selection) -> Option<usize> {
-        if let Some((s, row)) = self.attribution_row
-            && s == sel
-        {
-            return Some(row);
-        }
-        state
-            .results
-            .activity
-            .as_ref()
-            .and_then(|a| a.layers.get(sel.layer))
-            .and_then(|l| l.get(sel.unit))
-            .and_then(|u| u.top.first())
-            .map(|t| t.0)
-    }
-
     /// Draws the panel for the selected unit.
     pub fn ui(
         &mut self,
@@ -90,7 +64,7 @@ impl DetailPanel {
                 if state.prefs.map_view == MapView::Attribution {
                     self.attribution_controls_ui(ui, state, sel);
                 }
-                let row = self.attribution_row(state, sel);
+                let row = state.attribution_row(sel);
                 map_ui(ui, state, thumbs, &net, sel, row);
                 if state.prefs.map_view == MapView::Preferred {
                     facets_ui(ui, state, thumbs, &net, sel);
@@ -114,7 +88,7 @@ impl DetailPanel {
         if rows == 0 {
             return;
         }
-        let mut row = self.attribution_row(state, sel).unwrap_or(0);
+        let mut row = state.attribution_row(sel).unwrap_or(0);
         ui.horizontal(|ui| {
             let label = ui.label("Probe row");
             if ui
@@ -122,7 +96,7 @@ impl DetailPanel {
                 .labelled_by(label.id)
                 .changed()
             {
-                self.attribution_row = Some((sel, row));
+                state.attribution_choice = Some((sel, row));
             }
             ui.label("from");
             let m = &mut state.prefs.attribution_from_mean;
@@ -274,7 +248,7 @@ fn map_data(
 pub fn current_map(state: &AppState) -> Option<(String, Picture)> {
     let net = state.net()?;
     let sel = state.selection?;
-    let data = map_data(state, net, sel, None).ok()?;
+    let data = map_data(state, net, sel, state.attribution_row(sel)).ok()?;
     let what = match state.prefs.map_view {
         MapView::Weights => "weights",
         MapView::Preferred => "preferred",
@@ -902,32 +876,37 @@ fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &
             egui::Grid::new("search-settings")
                 .num_columns(2)
                 .show(ui, |ui| {
-                    ui.label("Steps");
-                    ui.add(egui::DragValue::new(&mut steps).range(1..=10_000));
+                    let label = ui.label("Steps");
+                    ui.add(egui::DragValue::new(&mut steps).range(1..=10_000))
+                        .labelled_by(label.id);
                     ui.end_row();
-                    ui.label("Restarts");
-                    ui.add(egui::DragValue::new(&mut restarts).range(1..=64));
+                    let label = ui.label("Restarts");
+                    ui.add(egui::DragValue::new(&mut restarts).range(1..=64))
+                        .labelled_by(label.id);
                     ui.end_row();
-                    ui.label("L2 penalty");
+                    let label = ui.label("L2 penalty");
                     ui.add(
                         egui::DragValue::new(&mut l2)
                             .range(0.0..=100.0)
                             .speed(0.001),
-                    );
+                    )
+                    .labelled_by(label.id);
                     ui.end_row();
-                    ui.label("Total variation");
+                    let label = ui.label("Total variation");
                     ui.add(
                         egui::DragValue::new(&mut tv)
                             .range(0.0..=100.0)
                             .speed(0.001),
-                    );
+                    )
+                    .labelled_by(label.id);
                     ui.end_row();
-                    ui.label("Prior weight");
+                    let label = ui.label("Prior weight");
                     ui.add(
                         egui::DragValue::new(&mut weight)
                             .range(0.0..=100.0)
                             .speed(0.01),
-                    );
+                    )
+                    .labelled_by(label.id);
                     ui.end_row();
                     let label = ui.label("Facets");
                     ui.add(egui::DragValue::new(&mut facets).range(1..=MAX_FACETS))
