@@ -55,6 +55,19 @@ pub enum Error {
         /// True for an absolute path, false for one that climbs out with `..`.
         absolute: bool,
     },
+    /// A checkpoint of a series does not have the architecture of the series' first
+    /// checkpoint (input size, layer names, types, activations and weight shapes).
+    #[error(
+        "{file}: not the same architecture as the series' first checkpoint {first}: {difference}"
+    )]
+    ArchitectureMismatch {
+        /// The checkpoint that differs, as the user named it.
+        file: String,
+        /// The series' first checkpoint, as the user named it.
+        first: String,
+        /// The first difference, naming the layer and both shapes.
+        difference: String,
+    },
     /// A layer was asked for by a name the model does not have.
     #[error("there is no layer '{name}'; the layers are: {}", layers.join(", "))]
     UnknownLayer {

@@ -1557,3 +1557,220 @@ fn prefer_facets_add_their_columns_and_prior_needs_data() {
     );
     assert_bad_input(&r, &["missing.csv"]);
 }
+
+// --- timeline ---
+
+/// A 2-2-2 relu/softmax checkpoint on the box [0, 1]^2 at `step` (none when `None`), with
+/// hidden weights `w0`, `w1` and biases `b`; the output layer passes h0 and h1 through
+/// (prediction: the larger of the two, the first on a tie).
+fn checkpoint(step: Option<u64>, w0: [f32; 2], w1: [f32; 2], b: [f32; 2]) -> String {
+    let step = step.map_or(String::new(), |s| format!(r#""step": {s},"#));
+    format!(
+        r#"{{"schema": "receptor-model/1", "name": "run", {step}
+  "input": {{"size": 2, "low": 0, "high": 1}},
+  "layers": [
+    {{"name": "h", "type": "dense", "activation": "relu",
+     "weights": [[{}, {}], [{}, {}]], "bias": [{}, {}]}},
+    {{"name": "out", "type": "dense", "activation": "softmax",
+     "weights": [[1, 0], [0, 1]], "bias": [0, 0]}}]}}"#,
+        w0[0], w0[1], w1[0], w1[1], b[0], b[1]
+    )
+}
+
+/// Four labelled rows for the timeline series.
+const RUN_PROBE: &str = "x0,x1,label\n0,0,1\n1,1,0\n0.25,0.75,1\n0.75,0.25,1\n";
+
+#[test]
+fn timeline_tables_of_a_constructed_series() {
+    let d = tempfile::tempdir().unwrap();
+    let run = d.path().join("run");
+    std::fs::create_dir(&run).unwrap();
+    // Written in an order unlike the steps; the steps order them (100, 200, 300).
+    // u0: w = [1, 1]; bias 0.5 at step 100, then -3: upper bound b + 2 = -1 <= 0, so
+    //     dead_proven (and never active) from step 200 (interval bounds, Gowal et al. 2018,
+    //     exact on a first layer).
+    // u1: w = [1, 0], bias 0.5, negated to [-1, 0] at step 300: drift (cosine distance)
+    //     1 - (-1) = 2; z = 0.5 - x0 there = (0.5, -0.5, 0.25, -0.25): active 2 of 4, ok.
+    write(
+        &run,
+        "b.json",
+        checkpoint(Some(300), [1., 1.], [-1., 0.], [-3., 0.5]),
+    );
+    write(
+        &run,
+        "a.json",
+        checkpoint(Some(200), [1., 1.], [1., 0.], [-3., 0.5]),
+    );
+    write(
+        &run,
+        "c.json",
+        checkpoint(Some(100), [1., 1.], [1., 0.], [0.5, 0.5]),
+    );
+    write(d.path(), "p.csv", RUN_PROBE);
+    let r = receptor(&["timeline", "run", "--probe", "p.csv"], d.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let (h, rows) = csv(&r.stdout);
+    assert_eq!(
+        h,
+        [
+            "layer",
+            "unit",
+            "first_dead_proven",
+            "first_dead_on_probe",
+            "last_status",
+            "drift",
+            "final_l2"
+        ]
+    );
+    assert_eq!(rows.len(), 2, "the hidden layer's units");
+    assert_eq!(rows[0][..5], ["h", "0", "200", "200", "dead_proven"]);
+    assert_abs_diff_eq!(num(&rows[0][5]), 0.0, epsilon = 1e-12);
+    assert_abs_diff_eq!(num(&rows[0][6]), 2f64.sqrt(), epsilon = 1e-12);
+    assert_eq!(rows[1][..5], ["h", "1", "", "", "ok"]);
+    assert_abs_diff_eq!(num(&rows[1][5]), 2.0, epsilon = 1e-12);
+    assert_abs_diff_eq!(num(&rows[1][6]), 1.0, epsilon = 1e-12);
+
+    // Per checkpoint. mean |w_t - w_(t-1)| over the 4 weights of h: 0 at 200 (only a bias
+    // changed), 2 / 4 at 300. Accuracy on the labels (1, 0, 1, 1), prediction argmax(h0, h1):
+    //   100: h0 = x0 + x1 + 0.5 >= h1 = x0 + 0.5 on every row -> 0 everywhere: 1 of 4;
+    //   200: h0 = 0, h1 > 0 -> 1 everywhere: 3 of 4;
+    //   300: h1 = relu(0.5 - x0) = (0.5, 0, 0.25, 0) -> (1, 0, 1, 0 on the tie): 3 of 4.
+    let r = receptor(
+        &["timeline", "run", "--probe", "p.csv", "--per", "checkpoint"],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let (h, rows) = csv(&r.stdout);
+    assert_eq!(
+        h,
+        [
+            "step",
+            "layer",
+            "units",
+            "dead_proven",
+            "dead_on_probe",
+            "rarely_active",
+            "mean_hoyer",
+            "near_zero_frac",
+            "mean_abs_update",
+            "accuracy"
+        ]
+    );
+    let steps: Vec<&str> = rows.iter().map(|r| r[0].as_str()).collect();
+    assert_eq!(steps, ["100", "200", "300"]);
+    assert_eq!(rows[0][2..6], ["2", "0", "0", "0"]);
+    assert_eq!(rows[1][2..6], ["2", "1", "0", "0"]);
+    assert_eq!(rows[0][8], "", "no update before the first checkpoint");
+    assert_abs_diff_eq!(num(&rows[1][8]), 0.0, epsilon = 1e-12);
+    assert_abs_diff_eq!(num(&rows[2][8]), 0.5, epsilon = 1e-12);
+    // Hoyer (2004): [1, 1] -> 0, [1, 0] -> 1: mean 0.5. Near zero (|w| <= 0.01): 1 of 4.
+    assert_abs_diff_eq!(num(&rows[0][6]), 0.5, epsilon = 1e-12);
+    assert_abs_diff_eq!(num(&rows[0][7]), 0.25, epsilon = 1e-12);
+    let acc: Vec<f64> = rows.iter().map(|r| num(&r[9])).collect();
+    assert_eq!(acc, [0.25, 0.75, 0.75]);
+
+    // JSON holds both tables.
+    let r = receptor(
+        &["timeline", "run", "--probe", "p.csv", "--format", "json"],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v = json(&r.stdout);
+    assert_eq!(v["key"], "step");
+    assert_eq!(v["rows"][0]["first_dead_proven"], 200);
+    assert_eq!(v["rows"][1]["first_dead_proven"], serde_json::Value::Null);
+    assert_eq!(v["checkpoints"].as_array().unwrap().len(), 3);
+    assert_eq!(
+        v["checkpoints"][0]["mean_abs_update"],
+        serde_json::Value::Null
+    );
+    assert_eq!(v["checkpoints"][2]["accuracy"], 0.75);
+}
+
+#[test]
+fn timeline_without_steps_goes_by_file_name_and_refuses_bad_series() {
+    let d = tempfile::tempdir().unwrap();
+    // No steps: natural order of the names (ckpt-2 before ckpt-10); keys are positions.
+    // u0 dies (bias -3) in ckpt-10 only, the last: first_dead_proven = position 2.
+    let alive = checkpoint(None, [1., 1.], [1., 0.], [0.5, 0.5]);
+    write(d.path(), "ckpt-1.json", &alive);
+    write(d.path(), "ckpt-2.json", &alive);
+    write(
+        d.path(),
+        "ckpt-10.json",
+        checkpoint(None, [1., 1.], [1., 0.], [-3., 0.5]),
+    );
+    let files = ["ckpt-10.json", "ckpt-1.json", "ckpt-2.json"];
+    let mut args = vec!["timeline"];
+    args.extend(files);
+    let r = receptor(&args, d.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(r.stderr.contains("uniformly"), "{}", r.stderr);
+    let (_, rows) = csv(&r.stdout);
+    assert_eq!(rows[0][2], "2");
+    assert_eq!(rows[1][2], "");
+    // One checkpoint: one row per unit, drift 0.
+    let r = receptor(&["timeline", "ckpt-1.json"], d.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let (_, rows) = csv(&r.stdout);
+    assert_eq!(rows.len(), 2);
+    assert_eq!(num(&rows[0][5]), 0.0);
+
+    // A checkpoint with another hidden width: exit 2 naming the file, the layer, the shapes.
+    write(
+        d.path(),
+        "ckpt-3.json",
+        r#"{"schema": "receptor-model/1", "name": "run",
+  "input": {"size": 2, "low": 0, "high": 1},
+  "layers": [
+    {"name": "h", "type": "dense", "activation": "relu",
+     "weights": [[1, 1], [1, 0], [0, 1]], "bias": [0, 0, 0]},
+    {"name": "out", "type": "dense", "activation": "softmax",
+     "weights": [[1, 0, 0], [0, 1, 0]], "bias": [0, 0]}]}"#,
+    );
+    write(d.path(), "p.csv", RUN_PROBE);
+    let r = receptor(
+        &["timeline", "ckpt-1.json", "ckpt-3.json", "--probe", "p.csv"],
+        d.path(),
+    );
+    assert_bad_input(&r, &["ckpt-3.json", "layer 'h'", "[3, 2]", "[2, 2]"]);
+    // An empty folder.
+    std::fs::create_dir(d.path().join("empty")).unwrap();
+    let r = receptor(&["timeline", "empty"], d.path());
+    assert_bad_input(&r, &["empty", "no model files"]);
+    // Some files with a step, one without.
+    write(
+        d.path(),
+        "stepped.json",
+        checkpoint(Some(5), [1., 1.], [1., 0.], [0.5, 0.5]),
+    );
+    let r = receptor(&["timeline", "stepped.json", "ckpt-1.json"], d.path());
+    assert_bad_input(&r, &["ckpt-1.json", "step"]);
+    // A file in the folder that is not JSON, and a checkpoint whose side file is missing.
+    let broken = d.path().join("broken");
+    std::fs::create_dir(&broken).unwrap();
+    write(&broken, "ckpt-1.json", &alive);
+    write(&broken, "ckpt-2.json", "{\"schema\": ");
+    let r = receptor(&["timeline", "broken"], d.path());
+    assert_bad_input(&r, &["ckpt-2.json", "not a JSON model file"]);
+    write(
+        &broken,
+        "ckpt-2.json",
+        alive.replace(
+            "[[1, 1], [1, 0]]",
+            r#"{"safetensors": "gone.safetensors", "tensor": "w"}"#,
+        ),
+    );
+    let r = receptor(&["timeline", "broken", "--probe", "p.csv"], d.path());
+    assert_bad_input(&r, &["ckpt-2.json", "gone.safetensors"]);
+    // A probe of the wrong width is the probe's error, not a panic.
+    write(d.path(), "wide.csv", "a,b,c\n1,2,3\n");
+    let r = receptor(
+        &["timeline", "ckpt-1.json", "--probe", "wide.csv"],
+        d.path(),
+    );
+    assert_bad_input(&r, &["wide.csv"]);
+    let r = receptor(&["timeline", "--help"], d.path());
+    assert_eq!(r.code, 0);
+    assert!(r.stdout.contains("reference data") && r.stdout.contains("first_dead_proven"));
+}

@@ -1,6 +1,6 @@
 //! The analysis core: forward and backward passes, preferred inputs, sensitivity, sparsity
 //! statistics and |w| histograms, per-unit activity over a probe, interval bounds,
-//! screening for dead units and magnitude pruning. Takes `&Network` and
+//! screening for dead units, magnitude pruning and the timeline of a checkpoint series. Takes `&Network` and
 //! arrays, never paths; nothing here depends on the GUI.
 
 pub mod activity;
@@ -19,6 +19,7 @@ pub mod sparsity;
 pub mod structured;
 #[cfg(test)]
 mod test_nets;
+pub mod timeline;
 
 /// Progress reporting and cancellation for long work.
 ///

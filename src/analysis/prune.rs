@@ -9,7 +9,7 @@ use super::Progress;
 use super::forward::{argmax_rows, forward};
 use crate::error::{Error, Result};
 use crate::model::Network;
-use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeSource};
+use crate::probe::{DEFAULT_CHUNK_ROWS, ProbeChunk, ProbeSource};
 
 /// The fractions of a sweep when none are given: 0, 0.1, ..., 0.9 (the command line's
 /// `prune-sweep` default and the app's sweep).
@@ -139,6 +139,45 @@ pub fn prune_sweep(
         .collect())
 }
 
+/// The labels of a probe chunk, checked: one per row, each an output unit (of `outputs`).
+/// `describe` names the probe.
+///
+/// Errors: a probe error when the chunk has no labels, not one per row, or a label that is
+/// not an output unit.
+pub(crate) fn checked_labels<'c>(
+    chunk: &'c ProbeChunk,
+    outputs: usize,
+    describe: &str,
+) -> Result<&'c [usize]> {
+    let Some(labels) = chunk.labels.as_ref() else {
+        return Err(Error::probe(
+            describe,
+            format!("rows from {} have no labels", chunk.first_row),
+        ));
+    };
+    if labels.len() != chunk.inputs.nrows() {
+        return Err(Error::probe(
+            describe,
+            format!(
+                "rows from {}: {} labels for {} rows",
+                chunk.first_row,
+                labels.len(),
+                chunk.inputs.nrows()
+            ),
+        ));
+    }
+    if let Some((i, l)) = labels.iter().enumerate().find(|(_, l)| **l >= outputs) {
+        return Err(Error::probe(
+            describe,
+            format!(
+                "row {}: label {l} is not an output unit (the model has {outputs} outputs)",
+                chunk.first_row + i
+            ),
+        ));
+    }
+    Ok(labels)
+}
+
 /// Runs every network of `nets` (all with the same inputs and outputs) on each chunk of a
 /// labelled probe, streamed once, and counts the rows whose predicted class (argmax of the
 /// outputs) equals the label. Returns the counts, one per network, and the number of rows.
@@ -163,33 +202,8 @@ pub(crate) fn count_correct(
         if progress.cancelled() {
             return Err(Error::Cancelled);
         }
-        let Some(labels) = chunk.labels.as_ref() else {
-            return Err(Error::probe(
-                &describe,
-                format!("rows from {} have no labels", chunk.first_row),
-            ));
-        };
         chunk.check_width(first, &describe)?;
-        if labels.len() != chunk.inputs.nrows() {
-            return Err(Error::probe(
-                &describe,
-                format!(
-                    "rows from {}: {} labels for {} rows",
-                    chunk.first_row,
-                    labels.len(),
-                    chunk.inputs.nrows()
-                ),
-            ));
-        }
-        if let Some((i, l)) = labels.iter().enumerate().find(|(_, l)| **l >= outputs) {
-            return Err(Error::probe(
-                &describe,
-                format!(
-                    "row {}: label {l} is not an output unit (the model has {outputs} outputs)",
-                    chunk.first_row + i
-                ),
-            ));
-        }
+        let labels = checked_labels(&chunk, outputs, &describe)?;
         for (p, c) in nets.iter().zip(correct.iter_mut()) {
             let out = forward(p, chunk.inputs.view());
             *c += argmax_rows(out.view())

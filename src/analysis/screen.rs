@@ -26,7 +26,8 @@
 
 use super::Progress;
 use super::bounds::interval_bounds_upto;
-use super::forward::{activate_in_place, layer_pre};
+use super::forward::{activate_in_place, argmax_rows, layer_pre};
+use super::prune::checked_labels;
 use crate::error::{Error, Result};
 use crate::model::{Activation, Network, SIGMOID_SATURATION_Z, TANH_SATURATION_Z};
 use crate::probe::{DEFAULT_CHUNK_ROWS_NONZERO, ProbeSource};
@@ -332,7 +333,38 @@ pub fn screen(
     opts: &ScreenOptions,
     progress: &dyn Progress,
 ) -> Result<ScreenReport> {
+    screen_counting(net, probe, opts, false, progress).map(|(report, _)| report)
+}
+
+/// [`screen`], and, when `count_correct` is set and the probe is labelled, the fraction of
+/// probe rows whose predicted class (the largest output, as `forward` and `prune-sweep`
+/// compute it) is the row's label, from the same pass over the probe (the output layer
+/// runs on the last hidden layer's activations of each chunk). `None` for an unlabelled
+/// probe or without `count_correct`.
+///
+/// Errors: those of [`screen`]; with a labelled probe, a probe error when a chunk lacks
+/// labels or a label is not an output unit.
+pub fn screen_with_accuracy(
+    net: &Network,
+    probe: &mut dyn ProbeSource,
+    opts: &ScreenOptions,
+    progress: &dyn Progress,
+) -> Result<(ScreenReport, Option<f64>)> {
+    let count = probe.has_labels();
+    screen_counting(net, probe, opts, count, progress)
+}
+
+/// The one screening pass behind [`screen`] and [`screen_with_accuracy`].
+fn screen_counting(
+    net: &Network,
+    probe: &mut dyn ProbeSource,
+    opts: &ScreenOptions,
+    count_correct: bool,
+    progress: &dyn Progress,
+) -> Result<(ScreenReport, Option<f64>)> {
     let describe = probe.describe();
+    let outputs = net.output_layer().units();
+    let mut correct = 0usize;
     let hidden = net.layers().len().saturating_sub(1);
     let bounds = interval_bounds_upto(net, hidden);
     let mut accs: Vec<Vec<Acc>> = net.layers()[..hidden]
@@ -350,6 +382,11 @@ pub fn screen(
         if rows == 0 {
             continue;
         }
+        let labels = if count_correct {
+            Some(checked_labels(&chunk, outputs, &describe)?)
+        } else {
+            None
+        };
         // One layer at a time: statistics from the pre-activations, then the activation in
         // place as the next layer's input (no copy of each chunk's activations is kept).
         let mut input: Option<ndarray::Array2<f32>> = None;
@@ -363,10 +400,21 @@ pub fn screen(
             } else {
                 accumulate_maps(layer.activation, z.view(), positions, acc);
             }
-            if l + 1 < hidden {
+            if l + 1 < hidden || labels.is_some() {
                 activate_in_place(layer.activation, &mut z);
                 input = Some(z);
             }
+        }
+        if let Some(labels) = labels {
+            // The output layer on the last hidden activations: the rest of `forward`.
+            let x = input.as_ref().map_or(chunk.inputs.view(), |a| a.view());
+            let mut out = layer_pre(net, hidden, x);
+            activate_in_place(net.output_layer().activation, &mut out);
+            correct += argmax_rows(out.view())
+                .iter()
+                .zip(labels)
+                .filter(|(pred, l)| **pred == Some(**l))
+                .count();
         }
         samples += rows;
         if let Some(t) = total.filter(|&t| t > 0) {
@@ -400,11 +448,15 @@ pub fn screen(
         }
     }
     progress.set(1.0);
-    Ok(ScreenReport {
-        units,
-        samples,
-        probe: describe,
-    })
+    let accuracy = count_correct.then(|| correct as f64 / samples as f64);
+    Ok((
+        ScreenReport {
+            units,
+            samples,
+            probe: describe,
+        },
+        accuracy,
+    ))
 }
 
 #[cfg(test)]

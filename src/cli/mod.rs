@@ -15,6 +15,7 @@ pub mod prefer;
 pub mod prune_sweep;
 pub mod screen;
 pub mod stats;
+pub mod timeline;
 
 use crate::error::{Error, Result};
 use crate::model::{InputBox, LoadOptions, Network};
@@ -220,6 +221,36 @@ active on the --probe data (lossy elsewhere; the accuracy before and after on a 
 probe and the number of changed predictions are reported).")]
     Compact(compact::CompactArgs),
 
+    /// How the units change over the checkpoints of a training run.
+    #[command(long_about = "\
+How the units of a network change over the checkpoints of one training run. CKPT... is one \
+folder (every .json and .onnx model file in it) or a list of model files, all with the same \
+architecture (input size, layer names, types, activations and weight shapes; a file that \
+differs is refused, naming it, the layer and both shapes). Order: by the top-level \"step\" \
+of every file, else (no file has one) by the natural order of the file names (ckpt-2 before \
+ckpt-10); a series where only some files have a step is refused. Checkpoints are read one at \
+a time. Every hidden unit is screened in every checkpoint as `screen` does, on the same \
+reference data, and the weight statistics are those of `stats`. One checkpoint gives a \
+one-checkpoint timeline.
+
+Per unit (default): layer, unit, first_dead_proven, first_dead_on_probe (the step, or the \
+0-based position when the files have no step, of the first checkpoint from which the unit \
+stays dead_proven / never active on the reference data until the last checkpoint; empty when \
+it is not dead in the last; a unit that dies and revives counts from its last death), \
+last_status (its screen status in the last checkpoint), drift (cosine distance 1 - cos \
+between its incoming weights in the first and the last checkpoint: 0 same direction, 1 \
+orthogonal, 2 opposite; NaN when either is all zero), final_l2 (L2 norm of its incoming \
+weights in the last checkpoint).
+
+Per checkpoint and layer (--per checkpoint): step, layer, units, dead_proven, dead_on_probe, \
+rarely_active (units with that screen status), mean_hoyer and near_zero_frac (as in \
+`stats`' layer summary), mean_abs_update (mean |w_t - w_(t-1)| over the layer's weights; \
+empty for the first checkpoint) and, with labelled reference data, accuracy.
+
+JSON output holds both tables: the --per one under \"rows\", the other under \"checkpoints\" \
+or \"units\", and \"key\" says whether the step column holds steps or positions.")]
+    Timeline(timeline::TimelineArgs),
+
     /// Write a model (ONNX or receptor-model/1) in the receptor-model/1 JSON schema.
     #[command(long_about = "\
 Write MODEL (an .onnx file, or a receptor-model/1 .json file) to --out in the receptor-model/1 \
@@ -414,6 +445,7 @@ pub fn run(command: Command) -> Result<ExitCode> {
         Command::Compact(a) => compact::run(&a),
         Command::Convert(a) => convert::run(&a),
         Command::Fields(a) => fields::run(&a),
+        Command::Timeline(a) => timeline::run(&a),
     }
 }
 

@@ -490,7 +490,9 @@ pub(crate) fn build(
 }
 
 /// The optional top-level `"step"`: a whole number from 0 (a training step).
-fn parse_step(step: Option<&serde_json::Value>) -> std::result::Result<Option<u64>, String> {
+pub(crate) fn parse_step(
+    step: Option<&serde_json::Value>,
+) -> std::result::Result<Option<u64>, String> {
     match step {
         None => Ok(None),
         Some(v) => v.as_u64().map(Some).ok_or_else(|| {

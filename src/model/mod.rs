@@ -11,6 +11,7 @@ mod json;
 mod network;
 pub mod onnx;
 mod paths;
+pub mod series;
 mod tensors;
 mod tensors_write;
 mod types;

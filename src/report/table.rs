@@ -42,6 +42,9 @@ pub enum Cell {
     OptStr(Option<String>),
     /// A count that may be missing (JSON `null`, empty CSV field).
     OptUInt(Option<u64>),
+    /// An f64 that may be missing (JSON `null`, empty CSV field); a present non-finite
+    /// value prints as [`Cell::F64`] does.
+    OptF64(Option<f64>),
     /// A truth value (`true`/`false` in both formats).
     Bool(bool),
     /// A vector of f32: one CSV column per element (named by the table's CSV header), one
@@ -125,6 +128,7 @@ fn write_json_value(w: &mut dyn Write, cell: &Cell) -> std::io::Result<()> {
         Cell::Str(s) => serde_json::to_writer(&mut *w, s).map_err(to_io),
         Cell::OptStr(s) => serde_json::to_writer(&mut *w, s).map_err(to_io),
         Cell::OptUInt(v) => serde_json::to_writer(&mut *w, v).map_err(to_io),
+        Cell::OptF64(v) => serde_json::to_writer(&mut *w, v).map_err(to_io),
         Cell::Bool(b) => write!(w, "{b}"),
         Cell::F32s(v) => serde_json::to_writer(&mut *w, v).map_err(to_io),
         Cell::Objects(list) => {
@@ -244,6 +248,9 @@ impl<'w> TableWriter<'w> {
                         Cell::OptStr(s) => c.write_field(s.as_deref().unwrap_or_default())?,
                         Cell::OptUInt(v) => {
                             c.write_field(v.map(|v| v.to_string()).unwrap_or_default())?;
+                        }
+                        Cell::OptF64(v) => {
+                            c.write_field(v.map(f64_text).unwrap_or_default())?;
                         }
                         Cell::Bool(b) => c.write_field(b.to_string())?,
                         Cell::F32s(v) => {

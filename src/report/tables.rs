@@ -1,5 +1,5 @@
 //! The tables of the analysis commands: their columns, in order, and how one result becomes
-//! rows. The commands (`receptor stats`, `screen`, `prune-sweep`, `prefer`) and the app's
+//! rows. The commands (`receptor stats`, `screen`, `prune-sweep`, `prefer`, `timeline`) and the app's
 //! exports write through these functions, so a file from either front has the same columns
 //! and the same numbers.
 
@@ -10,6 +10,7 @@ use crate::analysis::prune::SweepPoint;
 use crate::analysis::screen::UnitScreen;
 use crate::analysis::sparsity::{LayerSummary, UnitStats};
 use crate::analysis::structured::{Criterion, UnitSweepPoint};
+use crate::analysis::timeline::{CheckpointLayer, Timeline, UnitTimeline};
 use crate::model::{InputSpec, Network};
 use std::io::Write;
 use std::path::Path;
@@ -322,4 +323,145 @@ pub fn write_fields(
         ])?;
     }
     t.finish(&[])
+}
+
+/// The columns of the per-unit timeline table (`receptor timeline`, the default), in order.
+pub const TIMELINE_UNIT_COLUMNS: [&str; 7] = [
+    "layer",
+    "unit",
+    "first_dead_proven",
+    "first_dead_on_probe",
+    "last_status",
+    "drift",
+    "final_l2",
+];
+
+/// The columns of the per-checkpoint timeline table (`receptor timeline --per checkpoint`),
+/// in order; [`TIMELINE_ACCURACY_COLUMN`] follows with a labelled probe.
+pub const TIMELINE_CHECKPOINT_COLUMNS: [&str; 9] = [
+    "step",
+    "layer",
+    "units",
+    "dead_proven",
+    "dead_on_probe",
+    "rarely_active",
+    "mean_hoyer",
+    "near_zero_frac",
+    "mean_abs_update",
+];
+
+/// The last column of the per-checkpoint timeline table with a labelled probe.
+pub const TIMELINE_ACCURACY_COLUMN: &str = "accuracy";
+
+/// Which timeline table is the main one (CSV holds one table; JSON holds both).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, clap::ValueEnum)]
+pub enum TimelineTable {
+    /// One row per unit ([`TIMELINE_UNIT_COLUMNS`]).
+    #[default]
+    Unit,
+    /// One row per checkpoint and layer ([`TIMELINE_CHECKPOINT_COLUMNS`]).
+    Checkpoint,
+}
+
+/// The per-checkpoint columns for a timeline with or without a labelled probe.
+pub fn timeline_checkpoint_columns(labelled: bool) -> Vec<String> {
+    let mut c = owned(&TIMELINE_CHECKPOINT_COLUMNS);
+    if labelled {
+        c.push(TIMELINE_ACCURACY_COLUMN.to_string());
+    }
+    c
+}
+
+/// One per-unit row's cells ([`TIMELINE_UNIT_COLUMNS`]); a missing first step is an empty
+/// CSV field and JSON `null`.
+pub fn timeline_unit_cells(u: &UnitTimeline) -> Vec<Cell> {
+    vec![
+        Cell::from(u.layer.as_str()),
+        Cell::from(u.unit),
+        Cell::OptUInt(u.first_dead_proven),
+        Cell::OptUInt(u.first_dead_on_probe),
+        Cell::from(u.last_status.as_str()),
+        Cell::F64(u.drift),
+        Cell::F64(u.final_l2),
+    ]
+}
+
+/// One per-checkpoint row's cells ([`timeline_checkpoint_columns`]); `mean_abs_update` is
+/// empty (CSV) / `null` (JSON) for the first checkpoint.
+pub fn timeline_checkpoint_cells(r: &CheckpointLayer, labelled: bool) -> Vec<Cell> {
+    let mut cells = vec![
+        Cell::UInt(r.step),
+        Cell::from(r.layer.as_str()),
+        Cell::from(r.units),
+        Cell::from(r.dead_proven),
+        Cell::from(r.dead_on_probe),
+        Cell::from(r.rarely_active),
+        Cell::F64(r.mean_hoyer),
+        Cell::F64(r.near_zero_frac),
+        Cell::OptF64(r.mean_abs_update),
+    ];
+    if labelled {
+        cells.push(Cell::OptF64(r.accuracy));
+    }
+    cells
+}
+
+/// Writes a timeline: the `main` table as rows; in JSON, the other table follows under
+/// `"checkpoints"` (per checkpoint and layer) or `"units"` (per unit), then `extra`.
+/// `key_name` (`"step"` or `"position"`) says what the `step` column holds and is written
+/// as the JSON key `"key"`.
+pub fn write_timeline(
+    format: Format,
+    w: &mut dyn Write,
+    t: &Timeline,
+    main: TimelineTable,
+    key_name: &str,
+    extra: &[(&str, Cell)],
+) -> std::io::Result<()> {
+    let labelled = t.labelled();
+    let unit_columns = owned(&TIMELINE_UNIT_COLUMNS);
+    let checkpoint_columns = timeline_checkpoint_columns(labelled);
+    let objects = |columns: &[String], rows: Vec<Vec<Cell>>| {
+        Cell::Objects(
+            rows.into_iter()
+                .map(|cells| columns.iter().cloned().zip(cells).collect())
+                .collect(),
+        )
+    };
+    let mut keys: Vec<(&str, Cell)> = vec![("key", Cell::from(key_name))];
+    match main {
+        TimelineTable::Unit => {
+            let mut tw = TableWriter::begin(format, w, unit_columns.clone(), unit_columns.clone())?;
+            for u in &t.units {
+                tw.row(&timeline_unit_cells(u))?;
+            }
+            if format == Format::Json {
+                let rows = t
+                    .checkpoints
+                    .iter()
+                    .map(|r| timeline_checkpoint_cells(r, labelled))
+                    .collect();
+                keys.push(("checkpoints", objects(&checkpoint_columns, rows)));
+            }
+            keys.extend(extra.iter().cloned());
+            tw.finish(&keys)
+        }
+        TimelineTable::Checkpoint => {
+            let mut tw = TableWriter::begin(
+                format,
+                w,
+                checkpoint_columns.clone(),
+                checkpoint_columns.clone(),
+            )?;
+            for r in &t.checkpoints {
+                tw.row(&timeline_checkpoint_cells(r, labelled))?;
+            }
+            if format == Format::Json {
+                let rows = t.units.iter().map(timeline_unit_cells).collect();
+                keys.push(("units", objects(&unit_columns, rows)));
+            }
+            keys.extend(extra.iter().cloned());
+            tw.finish(&keys)
+        }
+    }
 }
