@@ -172,7 +172,8 @@ impl PreferOptions {
         self.steps
     }
 
-    /// Starts per unit, at least 1 (default 8).
+    /// Starts per unit of the main search, at least 1 (default 8); the exploration starts
+    /// of small networks come on top (see the module docs).
     pub fn restarts(&self) -> usize {
         self.restarts
     }
