@@ -112,3 +112,18 @@ start_app demo-models/solder-joints-cnn.json --probe demo-models/solder-joints-c
 xdotool key --delay 200 Right Right
 sleep 4
 shot cnn-first-layer.png
+
+# 7. A model opened by its path finds the reference data named after it beside it: the
+#    model summary names the file, says it was found there, and shows the accuracy.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+start_app demo-models/solder-joints.json
+shot reference-beside-model.png
+
+# 8. The same model alone in a folder: screened on uniform samples of the box, and warned.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+mkdir -p "$WORK/alone"
+cp demo-models/solder-joints.json "$WORK/alone/"
+start_app "$WORK/alone/solder-joints.json"
+shot no-reference-data.png

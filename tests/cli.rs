@@ -440,18 +440,29 @@ fn prefer_png_vector_strips_and_image_grid() {
     assert_eq!(r.code, 0, "{}", r.stderr);
     let img = image::open(d.path().join("h.png")).unwrap().to_rgb8();
     // Vector layout, 4 inputs, 5 units: cells 16 px wide (1024/4, capped at 16) and 16 px
-    // high, 2 px gaps: width 2 + 4*16 + 2 = 68, height 2 + 5*(16 + 2) = 92.
-    assert_eq!(img.dimensions(), (68, 92));
+    // high, 2 px gaps: strips 2 + 4*16 + 2 = 68 wide, 2 + 5*(16 + 2) = 92 high, right of a
+    // 10 px margin holding the unit indices (one digit: 3 font pixels drawn 2x, plus 4).
+    // Below, the grey key strip, 34 px high, whose bar is at least 120 px long, so the
+    // picture is 2 + 120 + 2 = 124 px wide and 92 + 34 = 126 high.
+    assert_eq!(img.dimensions(), (124, 126));
     // Unit 0 prefers x0 = 1 (white, the box's high end); unit 2 prefers x0 = 0 (black).
-    assert_eq!(img.get_pixel(2 + 8, 2 + 8).0, [255, 255, 255]);
-    assert_eq!(img.get_pixel(2 + 8, 2 + 2 * 18 + 8).0, [0, 0, 0]);
+    let m = 10;
+    assert_eq!(img.get_pixel(m + 2 + 8, 2 + 8).0, [255, 255, 255]);
+    assert_eq!(img.get_pixel(m + 2 + 8, 2 + 2 * 18 + 8).0, [0, 0, 0]);
     // Unit 3 prefers x3 = 1.
     assert_eq!(
-        img.get_pixel(2 + 3 * 16 + 8, 2 + 3 * 18 + 8).0,
+        img.get_pixel(m + 2 + 3 * 16 + 8, 2 + 3 * 18 + 8).0,
         [255, 255, 255]
     );
     // The gap colour sits between strips.
-    assert_ne!(img.get_pixel(10, 2 + 16).0, img.get_pixel(10, 2 + 8).0);
+    assert_ne!(
+        img.get_pixel(m + 10, 2 + 16).0,
+        img.get_pixel(m + 10, 2 + 8).0
+    );
+    // The key's bar runs from black (the box's low end) to white, 4 px below the strips.
+    let bar = 92 + 4 + 2;
+    assert_eq!(img.get_pixel(2, bar).0, [1, 1, 1]);
+    assert_eq!(img.get_pixel(2 + 119, bar).0, [254, 254, 254]);
 
     // Image layout 2x2x1 with 3 first-layer units: a 2x2 grid of 32 px tiles (2 px cells
     // scaled by 16): 2 + 2*(32 + 2) = 70 px square.
@@ -474,12 +485,17 @@ fn prefer_png_vector_strips_and_image_grid() {
     );
     assert_eq!(r.code, 0, "{}", r.stderr);
     let img = image::open(d.path().join("c.png")).unwrap().to_rgb8();
-    assert_eq!(img.dimensions(), (70, 70));
+    // Tiles 70 px square as a bare grid, each row under a 12 px band with the unit indices
+    // (10 px digits and 2 px), the 34 px key strip below, the key's minimum width across.
+    assert_eq!(img.dimensions(), (124, 70 + 2 * 12 + 34));
     // Unit 0 (tile at the top left) prefers pixel (0,0) = +1 (white), pixel (0,1) = -1 (black).
-    assert_eq!(img.get_pixel(2 + 8, 2 + 8).0, [255, 255, 255]);
-    assert_eq!(img.get_pixel(2 + 16 + 8, 2 + 8).0, [0, 0, 0]);
+    let b = 12;
+    assert_eq!(img.get_pixel(2 + 8, b + 2 + 8).0, [255, 255, 255]);
+    assert_eq!(img.get_pixel(2 + 16 + 8, b + 2 + 8).0, [0, 0, 0]);
     // Unit 2 (bottom-left tile) prefers every pixel at -1 (black).
-    assert_eq!(img.get_pixel(2 + 8, 2 + 34 + 8).0, [0, 0, 0]);
+    assert_eq!(img.get_pixel(2 + 8, 2 * b + 2 + 34 + 8).0, [0, 0, 0]);
+    // The index "0" is drawn in the band above unit 0: its top row is lit.
+    assert_eq!(img.get_pixel(2, 2).0, [235, 235, 235]);
 }
 
 #[test]
@@ -1331,8 +1347,9 @@ fn fields_table_and_prefer_position_on_a_conv_model() {
     assert_eq!(v["position"][0]["row"], 3);
     assert_eq!(v["receptive_field"][0]["row_start"], 2);
     assert_eq!(v["receptive_field"][0]["row_end"], 5);
-    // The same drawing of the whole 6 x 6 input (a dense layer's preferred input) is larger
-    // than the cropped 3 x 3 field (pictures are scaled up to a minimum size, so not twice).
+    // The same drawing of the whole 6 x 6 input (a dense layer's preferred input) is taller
+    // than the cropped 3 x 3 field (pictures are scaled up to a minimum size, so not twice;
+    // both are as wide as the key below them).
     let r = receptor(
         &[
             "prefer", "m.json", "--layer", "out", "--unit", "0", "--png", "full.png",
@@ -1342,7 +1359,7 @@ fn fields_table_and_prefer_position_on_a_conv_model() {
     assert_eq!(r.code, 0, "{}", r.stderr);
     let crop = image::open(dir.path().join("p.png")).unwrap();
     let full = image::open(dir.path().join("full.png")).unwrap();
-    assert!(crop.width() < full.width() && crop.height() < full.height());
+    assert!(crop.width() <= full.width() && crop.height() < full.height());
     let r = receptor(
         &[
             "prefer",

@@ -627,9 +627,9 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     h.get_by_label("Sparsity and pruning").click();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(60));
-    // The uniform probe has no labels: the view says why the curves are missing.
+    // Uniform samples have no labels: the view says why the curves are missing.
     h.get_by_label_contains("The pruning curves are missing");
-    h.get_by_label_contains("uniform samples from the input box, which have no labels");
+    h.get_by_label_contains("uniform samples of the input box have no labels");
 
     h.state_mut().open_probe(&probe);
     h.run_steps(2);
@@ -680,7 +680,8 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     }
 
     // Ranking by mean |activation| recomputes the curves.
-    h.get_by_label("mean |activation| on the probe").click();
+    h.get_by_label("mean |activation| on the reference data")
+        .click();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(120));
     h.get_by_label("units removed, smallest mean |activation| first");
@@ -852,12 +853,12 @@ fn text_of(n: &egui_kittest::Node<'_>) -> String {
     a.label().or_else(|| a.value()).unwrap_or_default()
 }
 
-/// Numbers on screen within 0.5% of `want` (so a change of the number format keeps the
-/// check).
+/// Numbers on screen within 1% of `want` (the panel rounds to a few significant digits:
+/// 3 digits are within 0.5%).
 fn numbers_near(h: &Harness<'static, ReceptorApp>, want: f32) -> usize {
     shown_numbers(h)
         .into_iter()
-        .filter(|v| (v - want).abs() <= 5e-3 * want.abs().max(1e-3))
+        .filter(|v| (v - want).abs() <= 1e-2 * want.abs().max(1e-3))
         .count()
 }
 
@@ -959,14 +960,15 @@ fn two_facets_show_the_spread_and_the_z_the_core_computes() {
     assert!((shown - found[0].spread).abs() <= 1e-3, "{line}");
     // Each facet's z under its picture.
     for p in &found {
-        let label = text_of(&h.get_by_label_contains(&format!("facet {} · z", p.facet)));
+        let label =
+            text_of(&h.get_by_label_contains(&format!("facet {} · pre-activation", p.facet)));
         let z: f32 = label
             .rsplit(' ')
             .next()
             .and_then(|w| w.parse().ok())
-            .expect("z after the facet");
+            .expect("the pre-activation after the facet");
         assert!(
-            (z - p.preactivation).abs() <= 5e-3 * p.preactivation.abs().max(1e-3),
+            (z - p.preactivation).abs() <= 1e-2 * p.preactivation.abs().max(1e-3),
             "{label} vs the core's {}",
             p.preactivation
         );
@@ -982,10 +984,10 @@ fn the_attribution_map_and_its_png_are_the_cores_integrated_gradients() {
     h.get_by_label("Attribution").click_accesskit();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(60));
-    h.get_by_label("Probe row").set_value_accesskit(5.0);
+    h.get_by_label("Reference row").set_value_accesskit(5.0);
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(60));
-    // The map says "Integrating gradients for probe row 5…" until the worker is done.
+    // The map says "Integrating gradients for reference row 5…" until the worker is done.
     let t0 = Instant::now();
     while h.query_by_label_contains("Integrating gradients").is_some() {
         assert!(
@@ -997,7 +999,10 @@ fn the_attribution_map_and_its_png_are_the_cores_integrated_gradients() {
     }
     h.run_steps(2);
 
-    assert_eq!(h.get_by_label("Probe row").value().as_deref(), Some("5"));
+    assert_eq!(
+        h.get_by_label("Reference row").value().as_deref(),
+        Some("5")
+    );
     let dir = tempfile::tempdir().unwrap();
     let png = dir.path().join("attribution.png");
     h.state_mut().export_to(ExportKind::MapPng, png.clone());
@@ -1017,15 +1022,179 @@ fn the_attribution_map_and_its_png_are_the_cores_integrated_gradients() {
     );
     let scale = receptor::report::colour::symmetric_max(&a.values);
     let map = picture::signed_input_map(net.input(), &a.values, scale);
-    // The export enlarges a small map by a whole factor: the PNG's width (IHDR, bytes 16 to
-    // 20, ISO/IEC 15948) over the map's.
+    // The export enlarges a small map by a whole factor (the PNG's width, IHDR bytes 16 to
+    // 20 of ISO/IEC 15948, over the map's) and draws the signed colour key of that scale
+    // below it.
     let bytes = std::fs::read(&png).unwrap();
     let width = u32::from_be_bytes([bytes[16], bytes[17], bytes[18], bytes[19]]) as usize;
     assert_eq!(width % map.width(), 0);
     let zoom = width / map.width();
-    let want = map.zoomed(zoom, zoom).png_bytes().expect("png");
+    let key = receptor::report::annotate::GridKey::Signed(Some(scale));
+    let want = receptor::report::annotate::with_key(&map.zoomed(zoom, zoom), key)
+        .0
+        .png_bytes()
+        .expect("png");
     assert_eq!(
         bytes, want,
         "the exported attribution map is the core's, drawn by report::picture"
     );
+}
+
+// --- reference data and colours ---
+
+/// The colour-scale switch on the grid toolbar changes the scale, and the key's caption (its
+/// accessible label) says which scale the map uses: shared by the layer by default.
+#[test]
+fn grid_toolbar_switches_the_colour_scale_and_the_key_says_so() {
+    let mut h = demo_app();
+    wait_idle(&mut h, Duration::from_secs(60));
+    assert_eq!(selection(&h), (0, 0));
+    assert_eq!(
+        h.state().state().prefs.scale,
+        receptor::app::colour::ScaleMode::SharedLayer,
+        "shared by layer is the default"
+    );
+    h.get_by_label_contains("scale shared by layer h1 colour key");
+    assert!(
+        h.query_by_label_contains("scale of h1 unit 0 alone")
+            .is_none()
+    );
+    h.get_by_label("Scale per unit").click();
+    h.run();
+    h.get_by_label_contains("scale of h1 unit 0 alone colour key");
+    assert!(
+        h.query_by_label_contains("scale shared by layer h1")
+            .is_none()
+    );
+    h.get_by_label("Scale shared by layer").click();
+    h.run();
+    h.get_by_label_contains("scale shared by layer h1 colour key");
+}
+
+/// The exported grid of the first layer carries the colour key: a strip below the tiles
+/// whose pixels are the key's colours at their positions, and a band with the unit index
+/// above every tile row, so the file is taller than the bare grid by exactly those.
+#[test]
+fn exported_grid_png_carries_the_colour_key() {
+    use receptor::report::annotate::{KEY_STRIP, LABEL_BAND};
+    use receptor::report::colour::{ColourKey, symmetric_max};
+    use receptor::report::picture::{self, Arrangement, GAP};
+    let dir = tempfile::tempdir().unwrap();
+    let mut h = demo_app();
+    wait_idle(&mut h, Duration::from_secs(60));
+    let png = dir.path().join("grid.png");
+    h.state_mut().export_to(ExportKind::GridPng, png.clone());
+    wait_for_file(&mut h, &png);
+    let img = image::load_from_memory(&std::fs::read(&png).unwrap())
+        .expect("a PNG the image crate decodes")
+        .to_rgba8();
+
+    // The bare grid of the same weight maps, drawn by the report layer's tile grid.
+    let net = h.state().state().net().unwrap().clone();
+    let w = &net.layers()[0].weights;
+    let layer_max = symmetric_max(w.as_slice().unwrap());
+    let tiles: Vec<_> = w
+        .rows()
+        .into_iter()
+        .map(|r| picture::signed_input_map(net.input(), &r.to_vec(), layer_max))
+        .collect();
+    let bare = picture::tile_grid(&tiles, Arrangement::for_input(net.input())).unwrap();
+    let rows = tiles.len().div_ceil(picture::cell_columns(tiles.len())) as u32;
+    assert_eq!(
+        img.height(),
+        bare.height() as u32 + rows * LABEL_BAND as u32 + KEY_STRIP as u32,
+        "the grid, a label band per tile row and the key strip"
+    );
+    assert!(img.width() >= bare.width() as u32);
+
+    // The key's bar: 4 px below the grid, starting 2 px from the left edge; column i of a
+    // bar of length n shows t = 2 (i + 0.5) / n - 1.
+    let y = img.height() - KEY_STRIP as u32 + 4 + 1;
+    let len = (2..img.width())
+        .take_while(|&x| img.get_pixel(x, y).0 != GAP)
+        .count();
+    assert!(len >= 120, "a key bar at least 120 px long, found {len}");
+    let key = ColourKey::standard();
+    for i in [0, len / 4, len / 2, len - 1] {
+        let t = 2.0 * (i as f32 + 0.5) / len as f32 - 1.0;
+        let [r, g, b] = key.rgb(t);
+        assert_eq!(
+            img.get_pixel(2 + i as u32, y).0,
+            [r, g, b, 255],
+            "key pixel {i} of {len}"
+        );
+    }
+    // The no-value swatch follows the bar after an 8 px gap.
+    let [r, g, b] = key.no_value_rgb();
+    assert_eq!(img.get_pixel(2 + len as u32 + 8 + 2, y).0, [r, g, b, 255]);
+}
+
+/// A model with `<stem>-probe.csv` beside it opens with that file as its reference data,
+/// and the model summary shows the accuracy and the confusion matrix; the same model alone
+/// in a folder is screened on uniform samples and says so.
+#[test]
+fn reference_data_beside_the_model_loads_and_its_absence_is_warned() {
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models");
+    let mut h = app_with(Start {
+        model: Some(demo.join("solder-joints.json")),
+        ..Start::default()
+    });
+    wait_idle(&mut h, Duration::from_secs(60));
+    let in_use = h
+        .state()
+        .state()
+        .probe
+        .as_ref()
+        .and_then(|p| p.path.clone());
+    assert_eq!(in_use, Some(demo.join("solder-joints-probe.csv")));
+    h.get_by_label("found beside the model");
+    h.get_by_label_contains("Accuracy on the reference data: ");
+    assert!(
+        h.query_by_label(receptor::app::layers::UNIFORM_WARNING)
+            .is_none()
+    );
+    // The confusion matrix: its diagonal plus off-diagonal counts are every labelled row.
+    h.get_by_label("Per class and confusion matrix").click();
+    h.run();
+    h.get_by_label("true \\ predicted");
+    let c = h
+        .state()
+        .state()
+        .probe
+        .as_ref()
+        .and_then(|p| p.confusion.clone())
+        .expect("a confusion matrix for labelled data");
+    let rows = h
+        .state()
+        .state()
+        .probe
+        .as_ref()
+        .unwrap()
+        .data
+        .inputs
+        .nrows() as u64;
+    assert_eq!(c.total() + c.unknown_label(), rows);
+    // The accuracy shown is the confusion matrix's trace over its total.
+    let acc = receptor::report::format::accuracy(c.accuracy().unwrap());
+    h.get_by_label(&format!(
+        "Accuracy on the reference data: {acc} of {} samples",
+        c.total()
+    ));
+
+    // The same model alone: uniform samples, and the warning.
+    let alone = tempfile::tempdir().unwrap();
+    let model = alone.path().join("solder-joints.json");
+    std::fs::copy(demo.join("solder-joints.json"), &model).unwrap();
+    h.state_mut().open_model(&model);
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    assert!(
+        h.state()
+            .state()
+            .probe
+            .as_ref()
+            .is_some_and(|p| p.path.is_none())
+    );
+    h.get_by_label(receptor::app::layers::UNIFORM_WARNING);
+    assert!(h.query_by_label("found beside the model").is_none());
 }
