@@ -833,6 +833,246 @@ fn compacts_the_overdriven_demo_and_opens_the_smaller_model() {
     );
 }
 
+// --- preferred inputs ---
+
+/// The demo model and its probe file, opened as `receptor MODEL --probe DATA` would, and
+/// the core's own reading of the same files (network, probe data, reference data).
+fn demo_with_files() -> (
+    Harness<'static, ReceptorApp>,
+    receptor::model::Network,
+    receptor::probe::ProbeData,
+    receptor::analysis::prefer::Reference,
+) {
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models");
+    let model = demo.join("solder-joints.json");
+    let probe = demo.join("solder-joints-probe.csv");
+    let net = receptor::model::load(&model, &Default::default()).expect("demo model");
+    let data = receptor::probe::memory::read_probe(&net, Some(&probe)).expect("demo probe");
+    let reference = receptor::analysis::prefer::Reference::new(&net, &data).expect("reference");
+    let mut h = app_with(Start {
+        model: Some(model),
+        probe: Some(probe),
+        ..Start::default()
+    });
+    wait_idle(&mut h, Duration::from_secs(60));
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    (h, net, data, reference)
+}
+
+/// The text of every node on screen that reads as a number (a label's text, or a
+/// widget's value).
+fn shown_numbers(h: &Harness<'static, ReceptorApp>) -> Vec<f32> {
+    use egui_kittest::kittest::NodeT;
+    let number = |n: &egui_kittest::kittest::AccessKitNode<'_>| -> Option<f32> {
+        [n.label(), n.value()]
+            .into_iter()
+            .flatten()
+            .find_map(|t| t.trim().parse::<f32>().ok())
+    };
+    h.query_all(
+        egui_kittest::kittest::by()
+            .predicate(move |n| number(n).is_some())
+            .include_labels(),
+    )
+    .filter_map(|n| number(&n.accesskit_node()))
+    .collect()
+}
+
+/// The text of a node: its label, else its value (a plain text carries it there).
+fn text_of(n: &egui_kittest::Node<'_>) -> String {
+    use egui_kittest::kittest::NodeT;
+    let a = n.accesskit_node();
+    a.label().or_else(|| a.value()).unwrap_or_default()
+}
+
+/// Numbers on screen within 1% of `want` (the panel rounds to a few significant digits:
+/// 3 digits are within 0.5%).
+fn numbers_near(h: &Harness<'static, ReceptorApp>, want: f32) -> usize {
+    shown_numbers(h)
+        .into_iter()
+        .filter(|v| (v - want).abs() <= 1e-2 * want.abs().max(1e-3))
+        .count()
+}
+
+/// Opens layer h2 of the demo, selects unit 3 and waits for its preferred input.
+fn select_h2_unit_3(h: &mut Harness<'static, ReceptorApp>) {
+    h.get_by_label_contains("h2  ·  ").click();
+    h.run_steps(2);
+    wait_idle(h, Duration::from_secs(180));
+    h.get_by_label("h2 unit 3").click();
+    h.run();
+    assert_eq!(selection(h), (1, 3));
+}
+
+/// Redoes the selected layer's search with the settings shown.
+fn search_again(h: &mut Harness<'static, ReceptorApp>) {
+    h.get_by_label_contains("Search this layer again")
+        .click_accesskit();
+    h.run_steps(2);
+    wait_idle(h, Duration::from_secs(180));
+}
+
+#[test]
+fn the_data_prior_checkbox_shows_the_z_the_core_computes_with_and_without_data() {
+    use receptor::analysis::Silent;
+    use receptor::analysis::prefer::{PreferOptions, prefer, prefer_with};
+    let (mut h, net, _, reference) = demo_with_files();
+    select_h2_unit_3(&mut h);
+    let opts = h.state().state().prefs.search.clone();
+    assert_eq!(opts, PreferOptions::default());
+    // The core's answers for the same unit (each unit's search is independent of the other
+    // units of the call, so the app's batching does not matter).
+    let with = prefer_with(&net, 1, &[3], &opts, Some(&reference), &Silent).expect("prior")[0]
+        .preactivation;
+    let without = prefer(&net, 1, &[3], &opts, &Silent).expect("plain")[0].preactivation;
+    println!("h2 unit 3: z {with} with the data prior, {without} without");
+    assert!(
+        (with - without).abs() > 0.05 * without.abs(),
+        "the prior must change z for this check to mean something"
+    );
+    // The prior is on by default with a probe file open.
+    assert!(
+        numbers_near(&h, with) >= 1,
+        "z with the prior ({with}) is shown; numbers shown: {:?}",
+        shown_numbers(&h)
+    );
+    assert_eq!(numbers_near(&h, without), 0);
+
+    h.get_by_label("Preferred-input search").click_accesskit();
+    h.run_steps(2);
+    h.get_by_label_contains("Stay near the data")
+        .click_accesskit();
+    h.run_steps(2);
+    assert!(!h.state().state().prefs.use_prior);
+    search_again(&mut h);
+    assert!(
+        numbers_near(&h, without) >= 1,
+        "z without the prior ({without}) is shown"
+    );
+    assert_eq!(numbers_near(&h, with), 0);
+
+    h.get_by_label_contains("Stay near the data")
+        .click_accesskit();
+    h.run_steps(2);
+    search_again(&mut h);
+    assert!(
+        numbers_near(&h, with) >= 1,
+        "z with the prior is shown again"
+    );
+}
+
+#[test]
+fn two_facets_show_the_spread_and_the_z_the_core_computes() {
+    use receptor::analysis::Silent;
+    use receptor::analysis::prefer::prefer_with;
+    let (mut h, net, _, reference) = demo_with_files();
+    select_h2_unit_3(&mut h);
+    h.get_by_label("Preferred-input search").click_accesskit();
+    h.run_steps(2);
+    h.get_by_label("Facets").set_value_accesskit(2.0);
+    h.run_steps(2);
+    assert_eq!(h.state().state().prefs.search.facets(), 2);
+    search_again(&mut h);
+    // The facets are drawn under the preferred input.
+    h.get_by_label("Preferred input").click_accesskit();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+
+    let opts = h.state().state().prefs.search.clone();
+    let found = prefer_with(&net, 1, &[3], &opts, Some(&reference), &Silent).expect("facets");
+    assert_eq!(found.len(), 2);
+    // The spread line: "2 facets, mean pairwise distance D box widths".
+    let line = text_of(&h.get_by_label_contains("2 facets, mean pairwise distance"));
+    let shown: f32 = line
+        .split_whitespace()
+        .find_map(|w| w.parse().ok().filter(|_| w.contains('.')))
+        .expect("a number in the spread line");
+    println!("{line} (core: {})", found[0].spread);
+    assert!(found[0].spread > 0.0, "the facets differ");
+    assert!((shown - found[0].spread).abs() <= 1e-3, "{line}");
+    // Each facet's z under its picture.
+    for p in &found {
+        let label =
+            text_of(&h.get_by_label_contains(&format!("facet {} · pre-activation", p.facet)));
+        let z: f32 = label
+            .rsplit(' ')
+            .next()
+            .and_then(|w| w.parse().ok())
+            .expect("the pre-activation after the facet");
+        assert!(
+            (z - p.preactivation).abs() <= 1e-2 * p.preactivation.abs().max(1e-3),
+            "{label} vs the core's {}",
+            p.preactivation
+        );
+    }
+}
+
+#[test]
+fn the_attribution_map_and_its_png_are_the_cores_integrated_gradients() {
+    use receptor::analysis::attribute::{DEFAULT_IG_STEPS, integrated_gradients};
+    use receptor::report::picture;
+    let (mut h, net, data, _) = demo_with_files();
+    select_h2_unit_3(&mut h);
+    h.get_by_label("Attribution").click_accesskit();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    h.get_by_label("Reference row").set_value_accesskit(5.0);
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    // The map says "Integrating gradients for reference row 5…" until the worker is done.
+    let t0 = Instant::now();
+    while h.query_by_label_contains("Integrating gradients").is_some() {
+        assert!(
+            t0.elapsed() < Duration::from_secs(60),
+            "attribution never came"
+        );
+        h.step();
+        std::thread::sleep(Duration::from_millis(5));
+    }
+    h.run_steps(2);
+
+    assert_eq!(
+        h.get_by_label("Reference row").value().as_deref(),
+        Some("5")
+    );
+    let dir = tempfile::tempdir().unwrap();
+    let png = dir.path().join("attribution.png");
+    h.state_mut().export_to(ExportKind::MapPng, png.clone());
+    wait_for_file(&mut h, &png);
+
+    // The core's integrated gradients (Sundararajan et al. 2017) of h2 unit 3 for probe
+    // row 5 from the box centre (the panel's default baseline), drawn by the one renderer.
+    let sample = data.inputs.row(5).to_vec();
+    let a = integrated_gradients(&net, 1, 3, &sample, &net.input().centre(), DEFAULT_IG_STEPS)
+        .expect("attribution");
+    // Completeness (the method's axiom): the attributions sum to z(sample) - z(baseline).
+    let gap = f64::from(a.z_sample - a.z_baseline);
+    assert!(
+        (a.sum - gap).abs() <= 0.05 * gap.abs().max(1e-3),
+        "{} vs {gap}",
+        a.sum
+    );
+    let scale = receptor::report::colour::symmetric_max(&a.values);
+    let map = picture::signed_input_map(net.input(), &a.values, scale);
+    // The export enlarges a small map by a whole factor (the PNG's width, IHDR bytes 16 to
+    // 20 of ISO/IEC 15948, over the map's) and draws the signed colour key of that scale
+    // below it.
+    let bytes = std::fs::read(&png).unwrap();
+    let width = u32::from_be_bytes([bytes[16], bytes[17], bytes[18], bytes[19]]) as usize;
+    assert_eq!(width % map.width(), 0);
+    let zoom = width / map.width();
+    let key = receptor::report::annotate::GridKey::Signed(Some(scale));
+    let want = receptor::report::annotate::with_key(&map.zoomed(zoom, zoom), key)
+        .0
+        .png_bytes()
+        .expect("png");
+    assert_eq!(
+        bytes, want,
+        "the exported attribution map is the core's, drawn by report::picture"
+    );
+}
+
 // --- reference data and colours ---
 
 /// The colour-scale switch on the grid toolbar changes the scale, and the key's caption (its

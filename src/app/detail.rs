@@ -26,37 +26,11 @@ const STRONGEST: usize = 8;
 /// Width kept for the colour key beside a map.
 const KEY_WIDTH: f32 = 84.0;
 
-/// The detail panel.
+/// The detail panel (its view state lives in [`AppState`], so the exports see it too).
 #[derive(Default)]
-pub struct DetailPanel {
-    /// The probe row chosen for the attribution map, and the unit it was chosen for.
-    attribution_row: Option<(Selection, usize)>,
-}
+pub struct DetailPanel {}
 
 impl DetailPanel {
-    /// Forgets per-model view state (the model changed).
-    pub fn reset(&mut self) {
-        self.attribution_row = None;
-    }
-
-    /// The probe row the attribution map of `sel` uses: the one chosen in the panel, else
-    /// the sample that drives the unit hardest (once the probe is traced).
-    pub fn attribution_row(&self, state: &AppState, sel: Selection) -> Option<usize> {
-        if let Some((s, row)) = self.attribution_row
-            && s == sel
-        {
-            return Some(row);
-        }
-        state
-            .results
-            .activity
-            .as_ref()
-            .and_then(|a| a.layers.get(sel.layer))
-            .and_then(|l| l.get(sel.unit))
-            .and_then(|u| u.top.first())
-            .map(|t| t.0)
-    }
-
     /// Draws the panel for the selected unit.
     pub fn ui(
         &mut self,
@@ -97,7 +71,7 @@ impl DetailPanel {
                 if state.prefs.map_view == MapView::Attribution {
                     self.attribution_controls_ui(ui, state, sel);
                 }
-                let row = self.attribution_row(state, sel);
+                let row = state.attribution_row(sel);
                 map_ui(ui, state, thumbs, &net, sel, row);
                 let preferred = state.prefs.map_view == MapView::Preferred;
                 if preferred {
@@ -127,14 +101,15 @@ impl DetailPanel {
         if rows == 0 {
             return;
         }
-        let mut row = self.attribution_row(state, sel).unwrap_or(0);
+        let mut row = state.attribution_row(sel).unwrap_or(0);
         ui.horizontal(|ui| {
-            ui.label("Reference row");
+            let label = ui.label("Reference row");
             if ui
                 .add(egui::DragValue::new(&mut row).range(0..=rows - 1))
+                .labelled_by(label.id)
                 .changed()
             {
-                self.attribution_row = Some((sel, row));
+                state.attribution_choice = Some((sel, row));
             }
             ui.label("from");
             let m = &mut state.prefs.attribution_from_mean;
@@ -286,7 +261,7 @@ fn map_data(
 pub fn current_map(state: &AppState) -> Option<(String, Picture, GridKey)> {
     let net = state.net()?;
     let sel = state.selection?;
-    let data = map_data(state, net, sel, None).ok()?;
+    let data = map_data(state, net, sel, state.attribution_row(sel)).ok()?;
     let what = match state.prefs.map_view {
         MapView::Weights => "weights",
         MapView::Preferred => "preferred",

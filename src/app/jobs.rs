@@ -289,7 +289,7 @@ impl ReceptorApp {
         self.state.probe = None;
         self.state.order_cache = None;
         self.thumbs.clear();
-        self.detail.reset();
+        self.state.attribution_choice = None;
         let net = Arc::new(net);
         if let Some(p) = &path {
             Prefs::remember(&mut self.state.prefs.recent_models, p);
@@ -455,7 +455,7 @@ impl ReceptorApp {
     /// there (the unit's hardest-driving sample until one is chosen).
     pub(super) fn attribution_key(&self) -> Option<AttributionKey> {
         let sel = self.state.selection?;
-        let row = self.detail.attribution_row(&self.state, sel)?;
+        let row = self.state.attribution_row(sel)?;
         Some(AttributionKey {
             layer: sel.layer,
             unit: sel.unit,

@@ -854,6 +854,9 @@ pub struct AppState {
     pub prune_fraction: f64,
     /// The probe row whose feature maps the convolution detail shows.
     pub conv_sample: usize,
+    /// The probe row chosen for the attribution map, and the unit it was chosen for (see
+    /// [`Self::attribution_row`]).
+    pub attribution_choice: Option<(Selection, usize)>,
     /// How the pruning view ranks units for the unit-removal curves.
     pub unit_criterion: Criterion,
     /// The Compact window.
@@ -897,9 +900,28 @@ impl AppState {
             order_cache: None,
             prune_fraction: 0.5,
             conv_sample: 0,
+            attribution_choice: None,
             unit_criterion: Criterion::L1,
             compact: CompactView::default(),
         }
+    }
+
+    /// The probe row the attribution map of `sel` uses: the one chosen in the detail panel
+    /// for that unit, else the sample that drives the unit hardest (once the probe is
+    /// traced). The panel and the PNG export both read it here.
+    pub fn attribution_row(&self, sel: Selection) -> Option<usize> {
+        if let Some((s, row)) = self.attribution_choice
+            && s == sel
+        {
+            return Some(row);
+        }
+        self.results
+            .activity
+            .as_ref()
+            .and_then(|a| a.layers.get(sel.layer))
+            .and_then(|l| l.get(sel.unit))
+            .and_then(|u| u.top.first())
+            .map(|t| t.0)
     }
 
     /// Identity of the current model and probe (the key of [`Self::results`]).

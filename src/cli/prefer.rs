@@ -39,7 +39,9 @@ pub struct PreferArgs {
     #[arg(long, value_name = "N", default_value_t = PreferOptions::default().steps())]
     pub steps: usize,
 
-    /// Starts of the search: one from the centre of the input box, the rest random.
+    /// Starts of the main search: one from the centre of the input box, the rest random.
+    /// On a deeper layer of a small network each unit also gets exploration starts, as many
+    /// as a fixed work budget allows (none on large layers).
     #[arg(long, value_name = "R", default_value_t = PreferOptions::default().restarts())]
     pub restarts: usize,
 

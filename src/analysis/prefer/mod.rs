@@ -33,6 +33,18 @@
 //! penalised objective) is returned, so the result is never worse than any start, in
 //! particular never worse than the best reference sample.
 //!
+//! Exploration (small networks): the Adam starts run fast to a vertex of their region, and
+//! on saturated networks (tanh or sigmoid units driven far from 0, where the objective is
+//! nearly flat between the hyperplanes of the layers below) they settle in the same few
+//! regions from most starts. So each unit also gets exploration starts: uniform random
+//! points moved by plain projected gradient ascent with a normalised step
+//! ([`search::Rule::Plain`]) for 1000 steps, whose large early steps follow the steepest
+//! path across many regions (the best point of the path is kept). Their number is a work
+//! budget over the work of one start (see [`exploration_starts`]): hundreds on a small
+//! network, where a start costs a few thousand multiply-adds a step, none on a large layer
+//! (the 784-2048-2048 bench layer costs a million times more), so speed there is
+//! unchanged. The best of all starts, main and exploration, is returned.
+//!
 //! For a first-layer unit without any penalty the objective is linear, and its maximum
 //! over the box is the vertex `x_i = high_i if w_i > 0 else low_i`, with the value
 //! `b + sum_i max(w_i low_i, w_i high_i)` ([`closed_form_first_layer`]): [`prefer`] returns
@@ -55,7 +67,7 @@ use ndarray::{Array2, ArrayView2};
 pub use prior::{Prior, Reference};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
-use search::{GroupPenalty, Row, Setup, run_ascent};
+use search::{GroupPenalty, Row, Rule, Setup, run_ascent};
 
 /// The default weight of the data prior: chosen on scikit-learn's digits by
 /// `scripts/measure_prior_weight.py` (see DEVELOPERS.md for the numbers).
@@ -160,7 +172,8 @@ impl PreferOptions {
         self.steps
     }
 
-    /// Starts per unit, at least 1 (default 8).
+    /// Starts per unit of the main search, at least 1 (default 8); the exploration starts
+    /// of small networks come on top (see the module docs).
     pub fn restarts(&self) -> usize {
         self.restarts
     }
@@ -555,7 +568,7 @@ fn ascend(
     };
     let clusters = data_clusters(net, layer, units, opts, reference);
     let candidates = reference.map(Reference::candidates);
-    let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
+    let explore = exploration_starts(net, layer);
     let mut found: Vec<Vec<Vec<f32>>> = vec![Vec::new(); units.len()];
     let mut outcomes: Vec<Vec<Outcome>> = vec![Vec::new(); units.len()];
     for facet in 0..k {
@@ -566,6 +579,11 @@ fn ascend(
                 (Some(c), Some(members)) => members.iter().map(|&r| c.row(r).to_vec()).collect(),
                 _ => Vec::new(),
             };
+            // Each unit (facet) draws from its own stream, so its result does not depend on
+            // which other units share the call (the app's batches, `prefer --all`).
+            let key = (u * MAX_FACETS + facet) as u64;
+            let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
+            rng.set_stream(key * 2); // even streams: starts; odd streams: nudges
             let pts = starts::group_starts(
                 &data,
                 opts.restarts,
@@ -574,7 +592,7 @@ fn ascend(
                 &mut rng,
             );
             for (r, x) in pts.into_iter().enumerate() {
-                let stream = ((facet * units.len() + ui) * opts.restarts + r) as u64 + 1;
+                let stream = (key * opts.restarts as u64 + r as u64) * 2 + 1;
                 rows.push(Row::new(x, u, ui, opts.seed, stream));
             }
             groups.push(GroupPenalty {
@@ -600,21 +618,39 @@ fn ascend(
             },
             groups: &groups,
             restarts: opts.restarts,
+            rule: Rule::Adam,
         };
         let range = (facet as f32 / k as f32, (facet + 1) as f32 / k as f32);
-        run_ascent(&setup, &mut rows, progress, range)?;
+        // The main search's share of the facet's progress, by nominal work.
+        let main_work = (opts.restarts * opts.steps) as f32;
+        let explore_work = (explore * EXPLORE_STEPS) as f32;
+        let split = range.0 + (range.1 - range.0) * main_work / (main_work + explore_work);
+        run_ascent(&setup, &mut rows, progress, (range.0, split))?;
+        let mut explored = explore_units(
+            &setup,
+            units,
+            facet,
+            explore,
+            opts.seed,
+            progress,
+            (split, range.1),
+        )?;
         for (ui, group) in rows.chunks(opts.restarts).enumerate() {
-            let best = group
-                .iter()
+            let extra = explored
+                .get(ui * explore..(ui + 1) * explore)
+                .unwrap_or(&[]);
+            let all = || group.iter().chain(extra);
+            let best = all()
                 .filter(|r| r.best_obj.is_finite())
                 .max_by(|a, b| a.best_obj.total_cmp(&b.best_obj));
             let x = best.map_or_else(|| net.input().centre(), |r| r.best_x.clone());
             found[ui].push(x);
             outcomes[ui].push(Outcome {
-                steps: group.iter().map(|r| r.steps).max().unwrap_or(0),
-                finite: best.is_some() && !group.iter().any(|r| r.nonfinite),
+                steps: all().map(|r| r.steps).max().unwrap_or(0),
+                finite: best.is_some() && !all().any(|r| r.nonfinite),
             });
         }
+        explored.clear();
     }
     let mut inputs = Array2::<f32>::zeros((units.len() * k, net.input().size));
     for (mut dst, src) in inputs.rows_mut().into_iter().zip(found.iter().flatten()) {
@@ -623,6 +659,112 @@ fn ascend(
     let outcome: Vec<Outcome> = outcomes.into_iter().flatten().collect();
     Ok(evaluate(net, layer, units, k, &inputs, &outcome))
 }
+
+/// Steps of every exploration start (long: the early large steps of the plain rule cross
+/// many regions; on the saturated reference networks 200 steps found the best region
+/// about 100 times less often than 500 to 1000, see DEVELOPERS.md).
+const EXPLORE_STEPS: usize = 1000;
+/// Work (multiply-adds of the forward and backward passes) the exploration may spend per
+/// unit and facet: the number of exploration starts is this budget over the work of one
+/// start, so small networks get many and large layers none (the bench's 784-2048-2048
+/// layer h2 costs about 6.4e9 per start, far over the budget). On the worst digits tanh unit
+/// about one exploration start in 240 finds the best region, so 512 starts miss it with a
+/// chance of about 12%, 231 starts with about 38% (DEVELOPERS.md).
+const EXPLORE_BUDGET: f64 = 2.5e9;
+/// Most exploration starts per unit and facet.
+const EXPLORE_MAX_STARTS: usize = 512;
+/// Fewer exploration starts than this are not worth their cost: none are run.
+const EXPLORE_MIN_STARTS: usize = 16;
+/// Largest `starts x inputs` held at once by one chunk of the exploration (each start
+/// holds its point and its best point): units are explored in chunks under this bound.
+const EXPLORE_CHUNK_VALUES: usize = 1 << 23;
+
+/// Multiply-adds of one start's step (forward to the target and back to the input) when
+/// maximising an output of `layer`.
+fn step_work(net: &Network, layer: usize) -> f64 {
+    let mut macs = net.input().size as f64;
+    for l in 0..layer {
+        let positions = net.output_shape(l).positions() as f64;
+        macs += net.layer(l).weights.len() as f64 * positions + net.output_shape(l).len() as f64;
+    }
+    let target = net.layer(layer);
+    2.0 * macs + target.weights.ncols() as f64
+}
+
+/// Exploration starts per unit and facet for `layer`: [`EXPLORE_BUDGET`] over the work of
+/// one start, at most [`EXPLORE_MAX_STARTS`]; none below [`EXPLORE_MIN_STARTS`] and none on
+/// the first layer (whose objective is a linear function plus concave penalties there,
+/// unless facets repel, so the main search already finds its maximum).
+fn exploration_starts(net: &Network, layer: usize) -> usize {
+    if layer == 0 {
+        return 0;
+    }
+    let per_start = step_work(net, layer) * EXPLORE_STEPS as f64;
+    let n = (EXPLORE_BUDGET / per_start)
+        .floor()
+        .min(EXPLORE_MAX_STARTS as f64) as usize;
+    if n >= EXPLORE_MIN_STARTS { n } else { 0 }
+}
+
+/// The exploration of facet `facet` (see the module docs): `explore` starts per unit at
+/// uniform random points, moved by the plain rule for [`EXPLORE_STEPS`] steps with the
+/// same objective and penalties as the main search (`setup`). Each unit's points come from
+/// its own stream of a generator seeded from `seed`, so a unit's result does not depend on
+/// the other units of the call. Rows `ui * explore .. (ui + 1) * explore` belong to
+/// `units[ui]`; empty when `explore` is 0.
+fn explore_units(
+    setup: &Setup<'_>,
+    units: &[usize],
+    facet: usize,
+    explore: usize,
+    seed: u64,
+    progress: &dyn Progress,
+    range: (f32, f32),
+) -> Result<Vec<Row>> {
+    if explore == 0 || units.is_empty() {
+        return Ok(Vec::new());
+    }
+    let net = setup.net;
+    let (low, high) = (&net.input().low, &net.input().high);
+    let chunk = (EXPLORE_CHUNK_VALUES / (explore * net.input().size.max(1))).max(1);
+    let chunks = units.len().div_ceil(chunk);
+    let mut out = Vec::with_capacity(units.len() * explore);
+    for (c, part) in units.chunks(chunk).enumerate() {
+        let first = c * chunk;
+        let mut rows = Vec::with_capacity(part.len() * explore);
+        for (i, &u) in part.iter().enumerate() {
+            let mut rng = ChaCha8Rng::seed_from_u64(seed ^ EXPLORE_SALT);
+            let key = (u * MAX_FACETS + facet) as u64;
+            rng.set_stream(key * 2); // even streams: starts; odd streams: nudges
+            for r in 0..explore {
+                let x = starts::uniform_point(low, high, &mut rng);
+                let stream = (key * explore as u64 + r as u64) * 2 + 1;
+                rows.push(Row::with_rule(
+                    x,
+                    u,
+                    i,
+                    seed ^ EXPLORE_SALT,
+                    stream,
+                    Rule::Plain,
+                ));
+            }
+        }
+        let s = Setup {
+            steps: EXPLORE_STEPS,
+            restarts: explore,
+            rule: Rule::Plain,
+            groups: &setup.groups[first..first + part.len()],
+            ..*setup
+        };
+        let f = |j: usize| range.0 + (range.1 - range.0) * j as f32 / chunks as f32;
+        run_ascent(&s, &mut rows, progress, (f(c), f(c + 1)))?;
+        out.extend(rows);
+    }
+    Ok(out)
+}
+
+/// Mixed into the seed of the exploration starts, so they differ from the main search's.
+const EXPLORE_SALT: u64 = 0x00e7_b10e_5eed;
 
 /// The result per unit and facet: `inputs: [units x facets, inputs]` (unit-major)
 /// evaluated once more with a plain forward pass (the raw z and the activation there),

@@ -20,6 +20,29 @@ const BETA2: f32 = 0.999;
 /// reach any vertex in about 20 steps and the end phase refines to ~1e-3 of the width).
 const LR_START: f32 = 0.05;
 const LR_END: f32 = 0.0005;
+/// Step of the plain rule ([`Rule::Plain`]) as a fraction of the box width for the input
+/// whose step-weighted gradient is largest, falling linearly from the first to the second
+/// over the run: large early steps cross many of the regions of a saturated network
+/// (the best point of the whole path is kept), small late ones refine. A design choice,
+/// measured on the reference networks of `tests/prefer_reference.rs` (DEVELOPERS.md).
+const PLAIN_START: f32 = 0.1;
+const PLAIN_END: f32 = 0.001;
+
+/// How a start moves.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(super) enum Rule {
+    /// Adam on the rescaled gradient, cosine-decayed rate ([`LR_START`] to [`LR_END`]):
+    /// every input moves at about the same rate, so a start runs to a vertex of its
+    /// region fast. The main search.
+    Adam,
+    /// Plain projected gradient ascent with a normalised step: input `i` moves by
+    /// `eta_t (high_i - low_i) q_i / max_j |q_j|` with `q = (dz/dx) * (high - low)`,
+    /// `eta_t` falling linearly ([`PLAIN_START`] to [`PLAIN_END`]). Inputs move in
+    /// proportion to their gradient, so a start follows the steepest path, which on
+    /// saturated (tanh, sigmoid) networks reaches regions the Adam starts miss. The
+    /// exploration starts.
+    Plain,
+}
 /// A start whose gradient is exactly zero is moved by a uniform random step of up to this
 /// fraction of the box width per input, doubling on each further flat point, at most
 /// [`MAX_NUDGES`] times (small enough to stay near the start, large enough to leave the
@@ -27,6 +50,15 @@ const LR_END: f32 = 0.0005;
 const NUDGE: f32 = 0.01;
 /// Flat points a start may be moved off before it is left where it is.
 const MAX_NUDGES: u32 = 8;
+/// A main-search start that has not raised its best objective by more than
+/// [`SETTLED_GAIN`] (relative) in this many steps, in the second half of its run (where the
+/// cosine rate has fallen below half its start), has settled and stops: its remaining
+/// steps would only polish the last digits. A design choice. It saves work where starts
+/// reach a vertex or a flat top early; on the bench's 784-2048-2048 ReLU layer the starts
+/// of `prefer --all` keep gaining more than that to their last step, and none stops.
+const SETTLED_STEPS: usize = 16;
+/// Relative gain of the best objective over [`SETTLED_STEPS`] steps that counts as progress.
+const SETTLED_GAIN: f64 = 1e-4;
 /// Width of the facets' repulsion: RMS distance, in box widths, at which it falls to
 /// `exp(-1/2)` of its peak (a tenth of the box: facets closer than that count as the same
 /// picture; a design choice, no source).
@@ -36,9 +68,9 @@ pub(super) const REPEL_RADIUS: f64 = 0.1;
 pub(super) struct Row {
     /// Current point, `[inputs]`.
     pub x: Vec<f32>,
-    /// Adam first moment, `[inputs]`.
+    /// Adam first moment, `[inputs]` (empty for a [`Rule::Plain`] start).
     m: Vec<f32>,
-    /// Adam second moment, `[inputs]`.
+    /// Adam second moment, `[inputs]` (empty for a [`Rule::Plain`] start).
     v: Vec<f32>,
     /// Best point seen so far, `[inputs]`.
     pub best_x: Vec<f32>,
@@ -56,6 +88,11 @@ pub(super) struct Row {
     pub unit: usize,
     /// Flat points this start has been moved off.
     nudges: u32,
+    /// The step at which the best objective last rose by more than [`SETTLED_GAIN`] over
+    /// `mark`.
+    gained_at: usize,
+    /// The best objective at step `gained_at`.
+    mark: f64,
     /// Generator of this start's nudges.
     rng: ChaCha8Rng,
 }
@@ -64,7 +101,20 @@ impl Row {
     /// A start at `x` for `unit`, in `group`; its nudges come from stream `stream` of a
     /// `ChaCha8Rng` seeded with `seed`.
     pub fn new(x: Vec<f32>, unit: usize, group: usize, seed: u64, stream: u64) -> Row {
-        let n = x.len();
+        Row::with_rule(x, unit, group, seed, stream, Rule::Adam)
+    }
+
+    /// As [`Row::new`], for a start that moves by `rule` (a [`Rule::Plain`] start keeps no
+    /// Adam moments).
+    pub fn with_rule(
+        x: Vec<f32>,
+        unit: usize,
+        group: usize,
+        seed: u64,
+        stream: u64,
+        rule: Rule,
+    ) -> Row {
+        let n = if rule == Rule::Adam { x.len() } else { 0 };
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
         rng.set_stream(stream);
         Row {
@@ -79,6 +129,8 @@ impl Row {
             group,
             unit,
             nudges: 0,
+            gained_at: 0,
+            mark: f64::NEG_INFINITY,
             rng,
         }
     }
@@ -106,6 +158,8 @@ pub(super) struct Setup<'a> {
     pub groups: &'a [GroupPenalty],
     /// Starts per group; rows of group `g` are `g * restarts .. (g + 1) * restarts`.
     pub restarts: usize,
+    /// How every start moves.
+    pub rule: Rule,
 }
 
 /// Buffers reused across steps.
@@ -225,22 +279,43 @@ fn repulsion_and_gradient(
     pen
 }
 
-/// The cosine-decayed learning rate (fraction of the box width) at step `t` of `steps`.
-fn learning_rate(t: usize, steps: usize) -> f32 {
+/// The learning rate (fraction of the box width) at step `t` of `steps`: cosine-decayed
+/// for [`Rule::Adam`], linear for [`Rule::Plain`].
+fn learning_rate(rule: Rule, t: usize, steps: usize) -> f32 {
     let frac = if steps <= 1 {
         0.0
     } else {
-        t as f32 / (steps - 1) as f32
+        (t as f32 / (steps - 1) as f32).min(1.0)
     };
-    LR_END + (LR_START - LR_END) * 0.5 * (1.0 + (std::f32::consts::PI * frac).cos())
+    match rule {
+        Rule::Adam => {
+            LR_END + (LR_START - LR_END) * 0.5 * (1.0 + (std::f32::consts::PI * frac).cos())
+        }
+        Rule::Plain => PLAIN_START + (PLAIN_END - PLAIN_START) * frac,
+    }
 }
 
-/// The step at which each group keeps only its best starts, and how many it keeps
+/// The rounds `(step, keep)` at which each group keeps only its `keep` best starts
 /// (successive halving, K. Jamieson & A. Talwalkar, "Non-stochastic best arm
 /// identification and hyperparameter optimization", AISTATS 2016: spend the remaining
-/// steps on the starts that lead after a quarter of the run). `None`: no pruning.
-fn halving(steps: usize, restarts: usize) -> Option<(usize, usize)> {
-    (restarts > 2 && steps >= 8).then(|| (steps / 4, restarts.div_ceil(4).max(2)))
+/// steps on the starts that lead). Adam starts reach their region within a few dozen steps,
+/// so they are cut early: to half at a sixteenth of the run and to a quarter at an eighth
+/// (8 starts of 200 steps: 8 x 12 + 4 x 13 + 2 x 175 = 498 start-steps instead of 700 for
+/// one cut at a quarter). The plain rule's exploration keeps a quarter at a quarter of its
+/// run (its large early steps are still wandering before that). At least 2 starts are
+/// kept; none is cut with at most 2 starts or fewer than 16 steps.
+fn halving(rule: Rule, steps: usize, restarts: usize) -> Vec<(usize, usize)> {
+    if restarts <= 2 || steps < 16 {
+        return Vec::new();
+    }
+    let quarter = restarts.div_ceil(4).max(2);
+    match rule {
+        Rule::Adam => vec![
+            (steps / 16, restarts.div_ceil(2).max(2)),
+            (steps / 8, quarter),
+        ],
+        Rule::Plain => vec![(steps / 4, quarter)],
+    }
 }
 
 /// Runs every step (and the final evaluation) of the ascent on `rows`, one batch of the
@@ -259,14 +334,12 @@ pub(super) fn run_ascent(
     let width: Vec<f32> = low.iter().zip(high).map(|(l, h)| h - l).collect();
     let mut batch = Batch::default();
     let steps = s.steps;
-    let prune_at = halving(steps, s.restarts);
+    let rounds = halving(s.rule, steps, s.restarts);
     for t in 0..=steps {
         if progress.cancelled() {
             return Err(Error::Cancelled);
         }
-        if let Some((at, keep)) = prune_at
-            && t == at
-        {
+        if let Some(&(_, keep)) = rounds.iter().find(|(at, _)| *at == t) {
             keep_best_starts(rows, s.restarts, keep);
         }
         batch.rows.clear();
@@ -283,7 +356,16 @@ pub(super) fn run_ascent(
             low,
             high,
             width: &width,
-            lr: learning_rate(t, steps),
+            lr: learning_rate(s.rule, t, steps),
+            rule: s.rule,
+            t,
+            // Only the main search's starts settle: an exploration start may cross into a
+            // better region late in its run.
+            settle_from: if s.rule == Rule::Adam {
+                steps / 2
+            } else {
+                usize::MAX
+            },
             bc1: 1.0 - BETA1.powi(t as i32 + 1),
             bc2: 1.0 - BETA2.powi(t as i32 + 1),
             l2: s.l2,
@@ -418,6 +500,11 @@ struct StepParams<'a> {
     prior_mean: Option<&'a [f32]>,
     /// The final evaluation: record the point, do not move.
     last: bool,
+    rule: Rule,
+    /// This step's index.
+    t: usize,
+    /// From this step on, a start that stopped gaining stops ([`SETTLED_STEPS`]).
+    settle_from: usize,
 }
 
 /// Evaluates one row at its current point (`z`, gradient `g` of z, `pd` the prior's
@@ -460,10 +547,17 @@ fn step_row(
         return;
     }
     if obj > row.best_obj {
+        // Progress is counted from the last mark, so a steady creep of many small gains
+        // counts as much as one large gain.
+        if !row.mark.is_finite() || obj - row.mark > SETTLED_GAIN * row.mark.abs() {
+            row.gained_at = p.t;
+            row.mark = obj;
+        }
         row.best_obj = obj;
         row.best_x.copy_from_slice(&row.x);
     }
-    if p.last {
+    let settled = p.t >= p.settle_from && p.t - row.gained_at >= SETTLED_STEPS;
+    if p.last || settled {
         row.active = false;
         return;
     }
@@ -480,7 +574,7 @@ fn step_row(
     // Stuck: the update below would push every coordinate against its bound (or leave it
     // where it is), so the point, hence the gradient, can never change again.
     let stuck = (0..g.len()).all(|i| {
-        let (x, gi, mi) = (row.x[i], g[i], row.m[i]);
+        let (x, gi, mi) = (row.x[i], g[i], row.m.get(i).copied().unwrap_or(0.0));
         p.width[i] <= 0.0
             || (gi == 0.0 && mi == 0.0)
             || (x >= p.high[i] && gi >= 0.0 && mi >= 0.0)
@@ -502,6 +596,14 @@ fn step_row(
     } else {
         1.0
     };
+    if p.rule == Rule::Plain {
+        for (i, xi) in row.x.iter_mut().enumerate() {
+            let step = p.lr * p.width[i] * (g[i] * p.width[i] * inv);
+            *xi = (*xi + step).clamp(p.low[i], p.high[i]);
+        }
+        row.steps += 1;
+        return;
+    }
     let Row { x, m, v, .. } = row;
     for (i, ((xi, mi), vi)) in x.iter_mut().zip(m.iter_mut()).zip(v.iter_mut()).enumerate() {
         let gi = g[i] * inv;
@@ -547,9 +649,11 @@ mod tests {
 
     #[test]
     fn halving_keeps_a_quarter_and_at_least_two() {
-        assert_eq!(halving(200, 8), Some((50, 2)));
-        assert_eq!(halving(200, 16), Some((50, 4)));
-        assert_eq!(halving(200, 2), None);
-        assert_eq!(halving(4, 8), None);
+        assert_eq!(halving(Rule::Adam, 200, 8), vec![(12, 4), (25, 2)]);
+        assert_eq!(halving(Rule::Adam, 200, 16), vec![(12, 8), (25, 4)]);
+        assert_eq!(halving(Rule::Adam, 200, 3), vec![(12, 2), (25, 2)]);
+        assert_eq!(halving(Rule::Plain, 1000, 256), vec![(250, 64)]);
+        assert_eq!(halving(Rule::Adam, 200, 2), Vec::new());
+        assert_eq!(halving(Rule::Adam, 8, 8), Vec::new());
     }
 }

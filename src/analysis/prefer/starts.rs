@@ -149,14 +149,17 @@ pub(super) fn group_starts(
         out.push(low.iter().zip(high).map(|(l, h)| 0.5 * (l + h)).collect());
     }
     while out.len() < restarts {
-        out.push(
-            low.iter()
-                .zip(high)
-                .map(|(&l, &h)| if h > l { rng.random_range(l..=h) } else { l })
-                .collect(),
-        );
+        out.push(uniform_point(low, high, rng));
     }
     out
+}
+
+/// A uniform random point of the box `[low, high]` (an input of zero width stays at `low`).
+pub(super) fn uniform_point(low: &[f32], high: &[f32], rng: &mut ChaCha8Rng) -> Vec<f32> {
+    low.iter()
+        .zip(high)
+        .map(|(&l, &h)| if h > l { rng.random_range(l..=h) } else { l })
+        .collect()
 }
 
 #[cfg(test)]

@@ -419,3 +419,57 @@ fn facets_differ_and_report_their_spread() {
         1.0
     );
 }
+
+#[test]
+fn exploration_budget_scales_with_the_work_of_a_start() {
+    // Work of one step on layer 1 of a 256-64-16 network, counted by hand: 256 inputs plus
+    // 256 x 64 weights plus 64 outputs, twice (forward and backward), plus the target's 64
+    // incoming weights: 2 (256 + 16384 + 64) + 64 = 33472 multiply-adds.
+    let small = random_net(
+        3,
+        &[256, 64, 16],
+        &[Activation::Tanh, Activation::Tanh],
+        Layout::Vector,
+    );
+    assert_eq!(step_work(&small, 1), 33472.0);
+    // 2.5e9 / (33472 x 1000 steps) = 74.7: 74 starts.
+    assert_eq!(exploration_starts(&small, 1), 74);
+    // None on the first layer (linear objective: the main search finds its maximum).
+    assert_eq!(exploration_starts(&small, 0), 0);
+    // A tiny network is capped; a wide one gets none (over the budget).
+    let tiny = random_net(
+        4,
+        &[4, 8, 3],
+        &[Activation::Tanh, Activation::Tanh],
+        Layout::Vector,
+    );
+    assert_eq!(exploration_starts(&tiny, 1), EXPLORE_MAX_STARTS);
+    let wide = random_net(
+        5,
+        &[784, 512, 8],
+        &[Activation::Relu, Activation::Relu],
+        Layout::Vector,
+    );
+    // 2 (784 + 784 x 512 + 512) + 512 = 805 408 per step: 2.5e9 / 8.05e8 = 3.1 < 16.
+    assert_eq!(exploration_starts(&wide, 1), 0);
+}
+
+#[test]
+fn exploration_does_not_depend_on_the_other_units_of_the_call() {
+    // Each unit's exploration starts come from its own generator stream, so asking for a
+    // unit alone or with others explores the same points. Here the main search is made the
+    // same too (one restart: the box centre), so the results agree exactly.
+    let net = random_net(
+        6,
+        &[6, 10, 5],
+        &[Activation::Tanh, Activation::Tanh],
+        Layout::Vector,
+    );
+    assert!(exploration_starts(&net, 1) > 0);
+    let opts = PreferOptions::new(50, 1, 7, 0.0, 0.0).expect("valid");
+    let all = prefer(&net, 1, &[0, 1, 2, 3, 4], &opts, &Silent).expect("all");
+    let one = prefer(&net, 1, &[3], &opts, &Silent).expect("one");
+    assert_eq!(all[3].input, one[0].input);
+    // The exploration ran: its starts run longer than the main search's 50 steps.
+    assert!(all.iter().any(|p| p.steps > 50));
+}
