@@ -112,3 +112,12 @@ start_app demo-models/solder-joints-cnn.json --probe demo-models/solder-joints-c
 xdotool key --delay 200 Right Right
 sleep 4
 shot cnn-first-layer.png
+
+# 7. The over-driven demo's training run with the labelled probe: the timeline under the
+#    unit grid, scrubbed to the last checkpoint (the slider takes the keyboard after Tab
+#    moves focus to it... here: a click on its handle, then End), a dead unit selected.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+start_app demo-models/solder-joints-overdriven-run --probe demo-models/solder-joints-probe.csv
+sleep 4
+shot training-run.png

@@ -383,7 +383,7 @@ const RUN_CHECKPOINTS: usize = make_demos::RUN_EPOCHS.len();
 fn overdriven_run_is_saved_as_a_series_of_checkpoints() {
     use receptor::model::series::Series;
     let folder = demo_dir().join(make_demos::RUN_FOLDER);
-    let series = Series::open(&[folder.clone()]).unwrap();
+    let series = Series::open(std::slice::from_ref(&folder)).unwrap();
     assert_eq!(series.len(), RUN_CHECKPOINTS);
     let keys = series.keys();
     assert_eq!(keys[0], 0, "the run starts at step 0 (the initialisation)");

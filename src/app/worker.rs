@@ -121,6 +121,8 @@ pub enum Job {
         /// Also compare the outputs on uniform box samples.
         check_box: bool,
     },
+    /// The timeline of the open training run (every checkpoint, on one probe).
+    Timeline(super::timeline_jobs::TimelineJob),
 }
 
 impl Job {
@@ -160,6 +162,7 @@ impl Job {
                 )
             }
             Job::Compact { .. } => "Compacting the model and checking its outputs".into(),
+            Job::Timeline(job) => job.title(),
         }
     }
 }
@@ -304,6 +307,8 @@ pub enum Reply {
         /// The chosen file, `None` when the dialog was cancelled.
         path: Option<PathBuf>,
     },
+    /// A reply of the training-run view (listing, a checkpoint, the timeline).
+    Timeline(super::timeline_jobs::TimelineReply),
 }
 
 /// Handle to the worker thread, owned by the app.
@@ -351,13 +356,25 @@ impl Worker {
 
     /// Queues `job` on `net` under `tag`.
     pub fn submit(&self, job: Job, net: Arc<Network>, tag: Tag) {
+        self.submit_with_cancel(job, net, tag, self.cancel.clone());
+    }
+
+    /// Queues `job` with a cancel flag of its own: [`Self::cancel_all`] does not stop it
+    /// (the training run's timeline outlives the checkpoint shown while it runs).
+    pub fn submit_with_cancel(
+        &self,
+        job: Job,
+        net: Arc<Network>,
+        tag: Tag,
+        cancel: Arc<AtomicBool>,
+    ) {
         if let Some(tx) = &self.jobs {
             self.pending.fetch_add(1, Ordering::SeqCst);
             let ticket = Ticket {
                 job,
                 net,
                 tag,
-                cancel: self.cancel.clone(),
+                cancel,
             };
             if tx.send(ticket).is_err() {
                 self.pending.fetch_sub(1, Ordering::SeqCst);
@@ -642,6 +659,7 @@ fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
                 result: not_cancelled(result)?.map(Arc::new),
             }
         }
+        Job::Timeline(job) => job.run(progress)?,
     };
     Some(reply)
 }
