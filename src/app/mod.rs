@@ -659,15 +659,10 @@ impl eframe::App for ReceptorApp {
             statusbar::ui(ui, &line, &mut self.actions);
         });
         if self.state.training.is_open() {
-            egui::Panel::bottom("training-run")
-                .resizable(true)
-                .default_size(330.0)
-                .size_range(120.0..=600.0)
-                .show(ui, |ui| {
-                    egui::ScrollArea::vertical().show(ui, |ui| {
-                        timeline::ui(ui, &mut self.state, &mut self.actions);
-                    });
-                });
+            // Sized to its content (plots of a fixed height), so the view is never cut.
+            egui::Panel::bottom("training-run").show(ui, |ui| {
+                timeline::ui(ui, &mut self.state, &mut self.actions);
+            });
         }
         egui::Panel::left("layers")
             .resizable(true)

@@ -73,6 +73,23 @@ pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
         return;
     };
     let current_key = key(t.current) as f64;
+    ui.horizontal(|ui| {
+        ui.spacing_mut().item_spacing.x = 4.0;
+        for (i, h) in tl.layers.iter().enumerate() {
+            let (rect, _) = ui.allocate_exact_size(egui::vec2(18.0, 10.0), egui::Sense::hover());
+            ui.painter().line_segment(
+                [rect.left_center(), rect.right_center()],
+                egui::Stroke::new(3.0, color32(series_rgb(i))),
+            );
+            ui.label(RichText::new(&h.layer).small());
+        }
+        ui.weak(
+            RichText::new(
+                "· grey line: the checkpoint shown · click a plot to go to the nearest checkpoint",
+            )
+            .small(),
+        );
+    });
     ui.columns(5, |cols| {
         dead_plot_ui(&mut cols[0], &tl, current_key, actions);
         sparsity_plot_ui(&mut cols[1], &tl, current_key, actions);
@@ -179,14 +196,9 @@ fn step_plot(
         .allow_scroll(false)
         .allow_boxed_zoom(false)
         .y_axis_label(y_label)
-        .legend(egui_plot::Legend::default().position(egui_plot::Corner::LeftTop))
         .show(ui, |p| {
             add(p);
-            p.vline(
-                VLine::new("current checkpoint", current)
-                    .color(Color32::GRAY)
-                    .width(1.5),
-            );
+            p.vline(VLine::new("", current).color(Color32::GRAY).width(1.5));
             if p.response().clicked() {
                 p.pointer_coordinate().map(|c| c.x)
             } else {
@@ -327,7 +339,7 @@ fn unit_history_ui(
         right,
         (
             "run-unit-bound",
-            &format!("{name}: bound and weight norm"),
+            &format!("{name}: upper bound of z (vermillion), |w| L2 (blue)"),
             "",
         ),
         &[
@@ -353,7 +365,6 @@ fn history_plot(
         .allow_scroll(false)
         .allow_boxed_zoom(false)
         .y_axis_label(y_label)
-        .legend(egui_plot::Legend::default().position(egui_plot::Corner::RightTop))
         .show(ui, |p| {
             for (label, pts, c) in lines {
                 let colour = color32(series_rgb(*c));
@@ -364,7 +375,7 @@ fn history_plot(
                         .radius(2.5),
                 );
             }
-            p.vline(VLine::new("current checkpoint", current).color(Color32::GRAY));
+            p.vline(VLine::new("", current).color(Color32::GRAY));
         });
 }
 
