@@ -42,65 +42,11 @@ use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
-/// Layer widths from input to output.
-const SIZES: [usize; 4] = [784, 2048, 2048, 10];
-/// Probe rows for `screen`.
-const PROBE_ROWS: usize = 10_000;
+mod common;
+use common::{BenchResult, PROBE_ROWS, SEED, SIZES, build_network, write_npy};
+
 /// Gradient-ascent steps for `prefer`.
 const PREFER_STEPS: usize = 100;
-/// Seed of the weights and the probe.
-const SEED: u64 = 20_240_601;
-
-type BenchResult<T> = Result<T, Box<dyn std::error::Error>>;
-
-/// He-scaled (He et al. 2015) uniform weights: U(-sqrt(6 / fan_in), sqrt(6 / fan_in)) has
-/// variance 2 / fan_in; small uniform biases. Input box [0, 1] (a 28 x 28 grey image).
-fn build_network(rng: &mut ChaCha8Rng) -> BenchResult<Network> {
-    let mut layers = Vec::new();
-    for (i, pair) in SIZES.windows(2).enumerate() {
-        let (fan_in, units) = (pair[0], pair[1]);
-        let limit = (6.0 / fan_in as f64).sqrt() as f32;
-        let weights =
-            Array2::from_shape_simple_fn((units, fan_in), || rng.random_range(-limit..limit));
-        let bias = Array1::from_shape_simple_fn(units, || rng.random_range(-0.05f32..0.05));
-        let last = i == SIZES.len() - 2;
-        layers.push(Layer {
-            kind: receptor::model::LayerKind::Dense,
-            name: if last {
-                "out".into()
-            } else {
-                format!("h{}", i + 1)
-            },
-            activation: if last {
-                Activation::Softmax
-            } else {
-                Activation::Relu
-            },
-            weights,
-            bias,
-            labels: None,
-        });
-    }
-    let input = InputSpec {
-        units: None,
-        size: SIZES[0],
-        layout: Layout::Image {
-            height: 28,
-            width: 28,
-            channels: 1,
-        },
-        low: vec![0.0; SIZES[0]],
-        high: vec![1.0; SIZES[0]],
-        names: None,
-    };
-    Ok(Network::new(
-        "benchmark network",
-        "bench-784-2048-2048-10",
-        input,
-        layers,
-    )?)
-}
-
 /// Input of the benchmark CNN: height, width, channels.
 const CNN_INPUT: [usize; 3] = [32, 32, 3];
 
@@ -169,28 +115,6 @@ fn build_cnn(rng: &mut ChaCha8Rng) -> BenchResult<Network> {
         input,
         layers,
     )?)
-}
-
-/// Writes `data: [rows, cols]` as a NumPy `.npy` file (format 1.0, little-endian float32,
-/// C order), per the NumPy format specification (numpy.lib.format).
-fn write_npy(path: &Path, data: &Array2<f32>) -> BenchResult<()> {
-    let (rows, cols) = data.dim();
-    let mut header =
-        format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({rows}, {cols}), }}");
-    // Magic (6) + version (2) + header length (2) + header, padded to a multiple of 64 and
-    // ending in a newline.
-    let total = 10 + header.len() + 1;
-    header.push_str(&" ".repeat((64 - total % 64) % 64));
-    header.push('\n');
-    let mut bytes = Vec::with_capacity(10 + header.len() + rows * cols * 4);
-    bytes.extend_from_slice(b"\x93NUMPY\x01\x00");
-    bytes.extend_from_slice(&u16::try_from(header.len())?.to_le_bytes());
-    bytes.extend_from_slice(header.as_bytes());
-    for v in data.iter() {
-        bytes.extend_from_slice(&v.to_le_bytes());
-    }
-    receptor::atomic::write_bytes_atomic(path, &bytes)?;
-    Ok(())
 }
 
 /// Writes the network as `model_st.json` plus `model.safetensors` (every weight and bias in

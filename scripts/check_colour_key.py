@@ -7,7 +7,15 @@ conversion code, and prints the numbers quoted in src/report/colour.rs:
     from colour-science's table, compared with the values typed into src/report/colour.rs;
   * every stop as 8-bit sRGB (the FIXTURE_STOP_SRGB table of the Rust tests);
   * L* symmetry of the key (sampled), the gamut, and CIE76 Delta E between the ends and the centre
-    under normal vision and both simulations.
+    under normal vision and both simulations;
+  * the hues (CIELAB hue angle, CIE 15): no stop of chroma above 10 in the blue (250-290 degrees)
+    or orange (35-75 degrees) range, the arms not red against green, the negative arm at b* < 0
+    and the positive arm at b* > 0 (the violet-yellow direction that readers with red-green
+    colour-vision deficiency keep).
+
+Sources: CIELAB and the D65 white per CIE 15 (colour-science's XYZ_to_Lab / Lab_to_XYZ);
+sRGB per IEC 61966-2-1; the colour-vision simulation of Machado, Oliveira & Fernandes (2009),
+"A Physiologically-based Model for Simulation of Color Vision Deficiency", IEEE TVCG 15(6).
 
 Usage: pip install colour-science numpy && python3 scripts/check_colour_key.py
 Exits non-zero when a property fails.
@@ -102,5 +110,16 @@ for name, m in [("normal", None), ("protanopia", protan), ("deuteranopia", deuta
     nan = srgb8_to_lab(np.array(KEY["no_value"]), m)
     closest = np.linalg.norm(srgb8_to_lab(rgb8, m) - nan, axis=1).min()
     check(closest > 40.0, f"{name}: no-value colour at least dE76 {closest:.1f} from the key")
+
+hues = np.degrees(np.arctan2(labs[:, 2], labs[:, 1])) % 360
+chromas = np.hypot(labs[:, 1], labs[:, 2])
+vivid = chromas > 10.0
+check(not np.any(vivid & (hues >= 250) & (hues <= 290)), "no stop in the blue hue range")
+check(not np.any(vivid & (hues >= 35) & (hues <= 75)), "no stop in the orange hue range")
+red = lambda h: (15 <= h <= 45) or h >= 345
+green = lambda h: 120 <= h <= 180
+check(not ((red(hues[0]) and green(hues[-1])) or (green(hues[0]) and red(hues[-1]))),
+      f"ends not red against green (hues {hues[0]:.0f} and {hues[-1]:.0f})")
+check(labs[0, 2] < -20 and labs[-1, 2] > 20, "negative arm at b* < 0, positive arm at b* > 0")
 
 sys.exit(1 if failures else 0)

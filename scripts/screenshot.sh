@@ -113,7 +113,22 @@ xdotool key --delay 200 Right Right
 sleep 4
 shot cnn-first-layer.png
 
-# 7. The over-driven demo's training run (a folder of checkpoints) with the labelled probe:
+# 7. A model opened by its path finds the reference data named after it beside it: the
+#    model summary names the file, says it was found there, and shows the accuracy.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+start_app demo-models/solder-joints.json
+shot reference-beside-model.png
+
+# 8. The same model alone in a folder: screened on uniform samples of the box, and warned.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+mkdir -p "$WORK/alone"
+cp demo-models/solder-joints.json "$WORK/alone/"
+start_app "$WORK/alone/solder-joints.json"
+shot no-reference-data.png
+
+# 9. The over-driven demo's training run (a folder of checkpoints) with the labelled probe:
 #    the timeline under the unit grid. A click at the right end of the dead-units plot goes
 #    to the last checkpoint (the unit view follows), then a click on the first cell of
 #    "Units by when they died" selects the h1 unit that died first.

@@ -440,18 +440,29 @@ fn prefer_png_vector_strips_and_image_grid() {
     assert_eq!(r.code, 0, "{}", r.stderr);
     let img = image::open(d.path().join("h.png")).unwrap().to_rgb8();
     // Vector layout, 4 inputs, 5 units: cells 16 px wide (1024/4, capped at 16) and 16 px
-    // high, 2 px gaps: width 2 + 4*16 + 2 = 68, height 2 + 5*(16 + 2) = 92.
-    assert_eq!(img.dimensions(), (68, 92));
+    // high, 2 px gaps: strips 2 + 4*16 + 2 = 68 wide, 2 + 5*(16 + 2) = 92 high, right of a
+    // 10 px margin holding the unit indices (one digit: 3 font pixels drawn 2x, plus 4).
+    // Below, the grey key strip, 34 px high, whose bar is at least 120 px long, so the
+    // picture is 2 + 120 + 2 = 124 px wide and 92 + 34 = 126 high.
+    assert_eq!(img.dimensions(), (124, 126));
     // Unit 0 prefers x0 = 1 (white, the box's high end); unit 2 prefers x0 = 0 (black).
-    assert_eq!(img.get_pixel(2 + 8, 2 + 8).0, [255, 255, 255]);
-    assert_eq!(img.get_pixel(2 + 8, 2 + 2 * 18 + 8).0, [0, 0, 0]);
+    let m = 10;
+    assert_eq!(img.get_pixel(m + 2 + 8, 2 + 8).0, [255, 255, 255]);
+    assert_eq!(img.get_pixel(m + 2 + 8, 2 + 2 * 18 + 8).0, [0, 0, 0]);
     // Unit 3 prefers x3 = 1.
     assert_eq!(
-        img.get_pixel(2 + 3 * 16 + 8, 2 + 3 * 18 + 8).0,
+        img.get_pixel(m + 2 + 3 * 16 + 8, 2 + 3 * 18 + 8).0,
         [255, 255, 255]
     );
     // The gap colour sits between strips.
-    assert_ne!(img.get_pixel(10, 2 + 16).0, img.get_pixel(10, 2 + 8).0);
+    assert_ne!(
+        img.get_pixel(m + 10, 2 + 16).0,
+        img.get_pixel(m + 10, 2 + 8).0
+    );
+    // The key's bar runs from black (the box's low end) to white, 4 px below the strips.
+    let bar = 92 + 4 + 2;
+    assert_eq!(img.get_pixel(2, bar).0, [1, 1, 1]);
+    assert_eq!(img.get_pixel(2 + 119, bar).0, [254, 254, 254]);
 
     // Image layout 2x2x1 with 3 first-layer units: a 2x2 grid of 32 px tiles (2 px cells
     // scaled by 16): 2 + 2*(32 + 2) = 70 px square.
@@ -474,12 +485,17 @@ fn prefer_png_vector_strips_and_image_grid() {
     );
     assert_eq!(r.code, 0, "{}", r.stderr);
     let img = image::open(d.path().join("c.png")).unwrap().to_rgb8();
-    assert_eq!(img.dimensions(), (70, 70));
+    // Tiles 70 px square as a bare grid, each row under a 12 px band with the unit indices
+    // (10 px digits and 2 px), the 34 px key strip below, the key's minimum width across.
+    assert_eq!(img.dimensions(), (124, 70 + 2 * 12 + 34));
     // Unit 0 (tile at the top left) prefers pixel (0,0) = +1 (white), pixel (0,1) = -1 (black).
-    assert_eq!(img.get_pixel(2 + 8, 2 + 8).0, [255, 255, 255]);
-    assert_eq!(img.get_pixel(2 + 16 + 8, 2 + 8).0, [0, 0, 0]);
+    let b = 12;
+    assert_eq!(img.get_pixel(2 + 8, b + 2 + 8).0, [255, 255, 255]);
+    assert_eq!(img.get_pixel(2 + 16 + 8, b + 2 + 8).0, [0, 0, 0]);
     // Unit 2 (bottom-left tile) prefers every pixel at -1 (black).
-    assert_eq!(img.get_pixel(2 + 8, 2 + 34 + 8).0, [0, 0, 0]);
+    assert_eq!(img.get_pixel(2 + 8, 2 * b + 2 + 34 + 8).0, [0, 0, 0]);
+    // The index "0" is drawn in the band above unit 0: its top row is lit.
+    assert_eq!(img.get_pixel(2, 2).0, [235, 235, 235]);
 }
 
 #[test]
@@ -1331,8 +1347,9 @@ fn fields_table_and_prefer_position_on_a_conv_model() {
     assert_eq!(v["position"][0]["row"], 3);
     assert_eq!(v["receptive_field"][0]["row_start"], 2);
     assert_eq!(v["receptive_field"][0]["row_end"], 5);
-    // The same drawing of the whole 6 x 6 input (a dense layer's preferred input) is larger
-    // than the cropped 3 x 3 field (pictures are scaled up to a minimum size, so not twice).
+    // The same drawing of the whole 6 x 6 input (a dense layer's preferred input) is taller
+    // than the cropped 3 x 3 field (pictures are scaled up to a minimum size, so not twice;
+    // both are as wide as the key below them).
     let r = receptor(
         &[
             "prefer", "m.json", "--layer", "out", "--unit", "0", "--png", "full.png",
@@ -1342,7 +1359,7 @@ fn fields_table_and_prefer_position_on_a_conv_model() {
     assert_eq!(r.code, 0, "{}", r.stderr);
     let crop = image::open(dir.path().join("p.png")).unwrap();
     let full = image::open(dir.path().join("full.png")).unwrap();
-    assert!(crop.width() < full.width() && crop.height() < full.height());
+    assert!(crop.width() <= full.width() && crop.height() < full.height());
     let r = receptor(
         &[
             "prefer",
@@ -1556,4 +1573,221 @@ fn prefer_facets_add_their_columns_and_prior_needs_data() {
         dir.path(),
     );
     assert_bad_input(&r, &["missing.csv"]);
+}
+
+// --- timeline ---
+
+/// A 2-2-2 relu/softmax checkpoint on the box [0, 1]^2 at `step` (none when `None`), with
+/// hidden weights `w0`, `w1` and biases `b`; the output layer passes h0 and h1 through
+/// (prediction: the larger of the two, the first on a tie).
+fn checkpoint(step: Option<u64>, w0: [f32; 2], w1: [f32; 2], b: [f32; 2]) -> String {
+    let step = step.map_or(String::new(), |s| format!(r#""step": {s},"#));
+    format!(
+        r#"{{"schema": "receptor-model/1", "name": "run", {step}
+  "input": {{"size": 2, "low": 0, "high": 1}},
+  "layers": [
+    {{"name": "h", "type": "dense", "activation": "relu",
+     "weights": [[{}, {}], [{}, {}]], "bias": [{}, {}]}},
+    {{"name": "out", "type": "dense", "activation": "softmax",
+     "weights": [[1, 0], [0, 1]], "bias": [0, 0]}}]}}"#,
+        w0[0], w0[1], w1[0], w1[1], b[0], b[1]
+    )
+}
+
+/// Four labelled rows for the timeline series.
+const RUN_PROBE: &str = "x0,x1,label\n0,0,1\n1,1,0\n0.25,0.75,1\n0.75,0.25,1\n";
+
+#[test]
+fn timeline_tables_of_a_constructed_series() {
+    let d = tempfile::tempdir().unwrap();
+    let run = d.path().join("run");
+    std::fs::create_dir(&run).unwrap();
+    // Written in an order unlike the steps; the steps order them (100, 200, 300).
+    // u0: w = [1, 1]; bias 0.5 at step 100, then -3: upper bound b + 2 = -1 <= 0, so
+    //     dead_proven (and never active) from step 200 (interval bounds, Gowal et al. 2018,
+    //     exact on a first layer).
+    // u1: w = [1, 0], bias 0.5, negated to [-1, 0] at step 300: drift (cosine distance)
+    //     1 - (-1) = 2; z = 0.5 - x0 there = (0.5, -0.5, 0.25, -0.25): active 2 of 4, ok.
+    write(
+        &run,
+        "b.json",
+        checkpoint(Some(300), [1., 1.], [-1., 0.], [-3., 0.5]),
+    );
+    write(
+        &run,
+        "a.json",
+        checkpoint(Some(200), [1., 1.], [1., 0.], [-3., 0.5]),
+    );
+    write(
+        &run,
+        "c.json",
+        checkpoint(Some(100), [1., 1.], [1., 0.], [0.5, 0.5]),
+    );
+    write(d.path(), "p.csv", RUN_PROBE);
+    let r = receptor(&["timeline", "run", "--probe", "p.csv"], d.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let (h, rows) = csv(&r.stdout);
+    assert_eq!(
+        h,
+        [
+            "layer",
+            "unit",
+            "first_dead_proven",
+            "first_dead_on_probe",
+            "last_status",
+            "drift",
+            "final_l2"
+        ]
+    );
+    assert_eq!(rows.len(), 2, "the hidden layer's units");
+    assert_eq!(rows[0][..5], ["h", "0", "200", "200", "dead_proven"]);
+    assert_abs_diff_eq!(num(&rows[0][5]), 0.0, epsilon = 1e-12);
+    assert_abs_diff_eq!(num(&rows[0][6]), 2f64.sqrt(), epsilon = 1e-12);
+    assert_eq!(rows[1][..5], ["h", "1", "", "", "ok"]);
+    assert_abs_diff_eq!(num(&rows[1][5]), 2.0, epsilon = 1e-12);
+    assert_abs_diff_eq!(num(&rows[1][6]), 1.0, epsilon = 1e-12);
+
+    // Per checkpoint. mean |w_t - w_(t-1)| over the 4 weights of h: 0 at 200 (only a bias
+    // changed), 2 / 4 at 300. Accuracy on the labels (1, 0, 1, 1), prediction argmax(h0, h1):
+    //   100: h0 = x0 + x1 + 0.5 >= h1 = x0 + 0.5 on every row -> 0 everywhere: 1 of 4;
+    //   200: h0 = 0, h1 > 0 -> 1 everywhere: 3 of 4;
+    //   300: h1 = relu(0.5 - x0) = (0.5, 0, 0.25, 0) -> (1, 0, 1, 0 on the tie): 3 of 4.
+    let r = receptor(
+        &["timeline", "run", "--probe", "p.csv", "--per", "checkpoint"],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let (h, rows) = csv(&r.stdout);
+    assert_eq!(
+        h,
+        [
+            "step",
+            "layer",
+            "units",
+            "dead_proven",
+            "dead_on_probe",
+            "rarely_active",
+            "mean_hoyer",
+            "near_zero_frac",
+            "mean_abs_update",
+            "accuracy"
+        ]
+    );
+    let steps: Vec<&str> = rows.iter().map(|r| r[0].as_str()).collect();
+    assert_eq!(steps, ["100", "200", "300"]);
+    assert_eq!(rows[0][2..6], ["2", "0", "0", "0"]);
+    assert_eq!(rows[1][2..6], ["2", "1", "0", "0"]);
+    assert_eq!(rows[0][8], "", "no update before the first checkpoint");
+    assert_abs_diff_eq!(num(&rows[1][8]), 0.0, epsilon = 1e-12);
+    assert_abs_diff_eq!(num(&rows[2][8]), 0.5, epsilon = 1e-12);
+    // Hoyer (2004): [1, 1] -> 0, [1, 0] -> 1: mean 0.5. Near zero (|w| <= 0.01): 1 of 4.
+    assert_abs_diff_eq!(num(&rows[0][6]), 0.5, epsilon = 1e-12);
+    assert_abs_diff_eq!(num(&rows[0][7]), 0.25, epsilon = 1e-12);
+    let acc: Vec<f64> = rows.iter().map(|r| num(&r[9])).collect();
+    assert_eq!(acc, [0.25, 0.75, 0.75]);
+
+    // JSON holds both tables.
+    let r = receptor(
+        &["timeline", "run", "--probe", "p.csv", "--format", "json"],
+        d.path(),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v = json(&r.stdout);
+    assert_eq!(v["key"], "step");
+    assert_eq!(v["rows"][0]["first_dead_proven"], 200);
+    assert_eq!(v["rows"][1]["first_dead_proven"], serde_json::Value::Null);
+    assert_eq!(v["checkpoints"].as_array().unwrap().len(), 3);
+    assert_eq!(
+        v["checkpoints"][0]["mean_abs_update"],
+        serde_json::Value::Null
+    );
+    assert_eq!(v["checkpoints"][2]["accuracy"], 0.75);
+}
+
+#[test]
+fn timeline_without_steps_goes_by_file_name_and_refuses_bad_series() {
+    let d = tempfile::tempdir().unwrap();
+    // No steps: natural order of the names (ckpt-2 before ckpt-10); keys are positions.
+    // u0 dies (bias -3) in ckpt-10 only, the last: first_dead_proven = position 2.
+    let alive = checkpoint(None, [1., 1.], [1., 0.], [0.5, 0.5]);
+    write(d.path(), "ckpt-1.json", &alive);
+    write(d.path(), "ckpt-2.json", &alive);
+    write(
+        d.path(),
+        "ckpt-10.json",
+        checkpoint(None, [1., 1.], [1., 0.], [-3., 0.5]),
+    );
+    let files = ["ckpt-10.json", "ckpt-1.json", "ckpt-2.json"];
+    let mut args = vec!["timeline"];
+    args.extend(files);
+    let r = receptor(&args, d.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(r.stderr.contains("uniformly"), "{}", r.stderr);
+    let (_, rows) = csv(&r.stdout);
+    assert_eq!(rows[0][2], "2");
+    assert_eq!(rows[1][2], "");
+    // One checkpoint: one row per unit, drift 0.
+    let r = receptor(&["timeline", "ckpt-1.json"], d.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let (_, rows) = csv(&r.stdout);
+    assert_eq!(rows.len(), 2);
+    assert_eq!(num(&rows[0][5]), 0.0);
+
+    // A checkpoint with another hidden width: exit 2 naming the file, the layer, the shapes.
+    write(
+        d.path(),
+        "ckpt-3.json",
+        r#"{"schema": "receptor-model/1", "name": "run",
+  "input": {"size": 2, "low": 0, "high": 1},
+  "layers": [
+    {"name": "h", "type": "dense", "activation": "relu",
+     "weights": [[1, 1], [1, 0], [0, 1]], "bias": [0, 0, 0]},
+    {"name": "out", "type": "dense", "activation": "softmax",
+     "weights": [[1, 0, 0], [0, 1, 0]], "bias": [0, 0]}]}"#,
+    );
+    write(d.path(), "p.csv", RUN_PROBE);
+    let r = receptor(
+        &["timeline", "ckpt-1.json", "ckpt-3.json", "--probe", "p.csv"],
+        d.path(),
+    );
+    assert_bad_input(&r, &["ckpt-3.json", "layer 'h'", "[3, 2]", "[2, 2]"]);
+    // An empty folder.
+    std::fs::create_dir(d.path().join("empty")).unwrap();
+    let r = receptor(&["timeline", "empty"], d.path());
+    assert_bad_input(&r, &["empty", "no model files"]);
+    // Some files with a step, one without.
+    write(
+        d.path(),
+        "stepped.json",
+        checkpoint(Some(5), [1., 1.], [1., 0.], [0.5, 0.5]),
+    );
+    let r = receptor(&["timeline", "stepped.json", "ckpt-1.json"], d.path());
+    assert_bad_input(&r, &["ckpt-1.json", "step"]);
+    // A file in the folder that is not JSON, and a checkpoint whose side file is missing.
+    let broken = d.path().join("broken");
+    std::fs::create_dir(&broken).unwrap();
+    write(&broken, "ckpt-1.json", &alive);
+    write(&broken, "ckpt-2.json", "{\"schema\": ");
+    let r = receptor(&["timeline", "broken"], d.path());
+    assert_bad_input(&r, &["ckpt-2.json", "not a JSON model file"]);
+    write(
+        &broken,
+        "ckpt-2.json",
+        alive.replace(
+            "[[1, 1], [1, 0]]",
+            r#"{"safetensors": "gone.safetensors", "tensor": "w"}"#,
+        ),
+    );
+    let r = receptor(&["timeline", "broken", "--probe", "p.csv"], d.path());
+    assert_bad_input(&r, &["ckpt-2.json", "gone.safetensors"]);
+    // A probe of the wrong width is the probe's error, not a panic.
+    write(d.path(), "wide.csv", "a,b,c\n1,2,3\n");
+    let r = receptor(
+        &["timeline", "ckpt-1.json", "--probe", "wide.csv"],
+        d.path(),
+    );
+    assert_bad_input(&r, &["wide.csv"]);
+    let r = receptor(&["timeline", "--help"], d.path());
+    assert_eq!(r.code, 0);
+    assert!(r.stdout.contains("reference data") && r.stdout.contains("first_dead_proven"));
 }

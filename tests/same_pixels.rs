@@ -133,12 +133,18 @@ fn prefer_png_and_app_grid_export_are_the_same_bytes() {
             app_png.len()
         );
 
-        // The drawing rule, checked at the top left pixel of the first tile (grid gap 2 px):
+        // The drawing rule, checked at the top left pixel of the first tile (grid gap 2 px;
+        // image tiles sit under a band holding their unit index, vector strips right of a
+        // margin holding it: the index "4" is one 3-pixel glyph drawn 2x, 6 px, plus 4 px):
         // input 0 (grey, vector) or inputs 0..3 (the RGB pixel).
         let img = image::load_from_memory(&cli_png)
             .expect("decodes")
             .to_rgb8();
-        let got = img.get_pixel(2, 2).0;
+        let (x0, y0) = match name {
+            "vec.json" => (2 + 10, 2),
+            _ => (2, 2 + receptor::report::annotate::LABEL_BAND as u32),
+        };
+        let got = img.get_pixel(x0, y0).0;
         let x = &inputs[0];
         let want = match name {
             "rgb.json" => [

@@ -627,9 +627,9 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     h.get_by_label("Sparsity and pruning").click();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(60));
-    // The uniform probe has no labels: the view says why the curves are missing.
+    // Uniform samples have no labels: the view says why the curves are missing.
     h.get_by_label_contains("The pruning curves are missing");
-    h.get_by_label_contains("uniform samples from the input box, which have no labels");
+    h.get_by_label_contains("uniform samples of the input box have no labels");
 
     h.state_mut().open_probe(&probe);
     h.run_steps(2);
@@ -680,7 +680,8 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     }
 
     // Ranking by mean |activation| recomputes the curves.
-    h.get_by_label("mean |activation| on the probe").click();
+    h.get_by_label("mean |activation| on the reference data")
+        .click();
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(120));
     h.get_by_label("units removed, smallest mean |activation| first");
@@ -799,6 +800,165 @@ fn compacts_the_overdriven_demo_and_opens_the_smaller_model() {
     );
 }
 
+// --- reference data and colours ---
+
+/// The colour-scale switch on the grid toolbar changes the scale, and the key's caption (its
+/// accessible label) says which scale the map uses: shared by the layer by default.
+#[test]
+fn grid_toolbar_switches_the_colour_scale_and_the_key_says_so() {
+    let mut h = demo_app();
+    wait_idle(&mut h, Duration::from_secs(60));
+    assert_eq!(selection(&h), (0, 0));
+    assert_eq!(
+        h.state().state().prefs.scale,
+        receptor::app::colour::ScaleMode::SharedLayer,
+        "shared by layer is the default"
+    );
+    h.get_by_label_contains("scale shared by layer h1 colour key");
+    assert!(
+        h.query_by_label_contains("scale of h1 unit 0 alone")
+            .is_none()
+    );
+    h.get_by_label("Scale per unit").click();
+    h.run();
+    h.get_by_label_contains("scale of h1 unit 0 alone colour key");
+    assert!(
+        h.query_by_label_contains("scale shared by layer h1")
+            .is_none()
+    );
+    h.get_by_label("Scale shared by layer").click();
+    h.run();
+    h.get_by_label_contains("scale shared by layer h1 colour key");
+}
+
+/// The exported grid of the first layer carries the colour key: a strip below the tiles
+/// whose pixels are the key's colours at their positions, and a band with the unit index
+/// above every tile row, so the file is taller than the bare grid by exactly those.
+#[test]
+fn exported_grid_png_carries_the_colour_key() {
+    use receptor::report::annotate::{KEY_STRIP, LABEL_BAND};
+    use receptor::report::colour::{ColourKey, symmetric_max};
+    use receptor::report::picture::{self, Arrangement, GAP};
+    let dir = tempfile::tempdir().unwrap();
+    let mut h = demo_app();
+    wait_idle(&mut h, Duration::from_secs(60));
+    let png = dir.path().join("grid.png");
+    h.state_mut().export_to(ExportKind::GridPng, png.clone());
+    wait_for_file(&mut h, &png);
+    let img = image::load_from_memory(&std::fs::read(&png).unwrap())
+        .expect("a PNG the image crate decodes")
+        .to_rgba8();
+
+    // The bare grid of the same weight maps, drawn by the report layer's tile grid.
+    let net = h.state().state().net().unwrap().clone();
+    let w = &net.layers()[0].weights;
+    let layer_max = symmetric_max(w.as_slice().unwrap());
+    let tiles: Vec<_> = w
+        .rows()
+        .into_iter()
+        .map(|r| picture::signed_input_map(net.input(), &r.to_vec(), layer_max))
+        .collect();
+    let bare = picture::tile_grid(&tiles, Arrangement::for_input(net.input())).unwrap();
+    let rows = tiles.len().div_ceil(picture::cell_columns(tiles.len())) as u32;
+    assert_eq!(
+        img.height(),
+        bare.height() as u32 + rows * LABEL_BAND as u32 + KEY_STRIP as u32,
+        "the grid, a label band per tile row and the key strip"
+    );
+    assert!(img.width() >= bare.width() as u32);
+
+    // The key's bar: 4 px below the grid, starting 2 px from the left edge; column i of a
+    // bar of length n shows t = 2 (i + 0.5) / n - 1.
+    let y = img.height() - KEY_STRIP as u32 + 4 + 1;
+    let len = (2..img.width())
+        .take_while(|&x| img.get_pixel(x, y).0 != GAP)
+        .count();
+    assert!(len >= 120, "a key bar at least 120 px long, found {len}");
+    let key = ColourKey::standard();
+    for i in [0, len / 4, len / 2, len - 1] {
+        let t = 2.0 * (i as f32 + 0.5) / len as f32 - 1.0;
+        let [r, g, b] = key.rgb(t);
+        assert_eq!(
+            img.get_pixel(2 + i as u32, y).0,
+            [r, g, b, 255],
+            "key pixel {i} of {len}"
+        );
+    }
+    // The no-value swatch follows the bar after an 8 px gap.
+    let [r, g, b] = key.no_value_rgb();
+    assert_eq!(img.get_pixel(2 + len as u32 + 8 + 2, y).0, [r, g, b, 255]);
+}
+
+/// A model with `<stem>-probe.csv` beside it opens with that file as its reference data,
+/// and the model summary shows the accuracy and the confusion matrix; the same model alone
+/// in a folder is screened on uniform samples and says so.
+#[test]
+fn reference_data_beside_the_model_loads_and_its_absence_is_warned() {
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models");
+    let mut h = app_with(Start {
+        model: Some(demo.join("solder-joints.json")),
+        ..Start::default()
+    });
+    wait_idle(&mut h, Duration::from_secs(60));
+    let in_use = h
+        .state()
+        .state()
+        .probe
+        .as_ref()
+        .and_then(|p| p.path.clone());
+    assert_eq!(in_use, Some(demo.join("solder-joints-probe.csv")));
+    h.get_by_label("found beside the model");
+    h.get_by_label_contains("Accuracy on the reference data: ");
+    assert!(
+        h.query_by_label(receptor::app::layers::UNIFORM_WARNING)
+            .is_none()
+    );
+    // The confusion matrix: its diagonal plus off-diagonal counts are every labelled row.
+    h.get_by_label("Per class and confusion matrix").click();
+    h.run();
+    h.get_by_label("true \\ predicted");
+    let c = h
+        .state()
+        .state()
+        .probe
+        .as_ref()
+        .and_then(|p| p.confusion.clone())
+        .expect("a confusion matrix for labelled data");
+    let rows = h
+        .state()
+        .state()
+        .probe
+        .as_ref()
+        .unwrap()
+        .data
+        .inputs
+        .nrows() as u64;
+    assert_eq!(c.total() + c.unknown_label(), rows);
+    // The accuracy shown is the confusion matrix's trace over its total.
+    let acc = receptor::report::format::accuracy(c.accuracy().unwrap());
+    h.get_by_label(&format!(
+        "Accuracy on the reference data: {acc} of {} samples",
+        c.total()
+    ));
+
+    // The same model alone: uniform samples, and the warning.
+    let alone = tempfile::tempdir().unwrap();
+    let model = alone.path().join("solder-joints.json");
+    std::fs::copy(demo.join("solder-joints.json"), &model).unwrap();
+    h.state_mut().open_model(&model);
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    assert!(
+        h.state()
+            .state()
+            .probe
+            .as_ref()
+            .is_some_and(|p| p.path.is_none())
+    );
+    h.get_by_label(receptor::app::layers::UNIFORM_WARNING);
+    assert!(h.query_by_label("found beside the model").is_none());
+}
+
 // --- training run ---
 
 /// Steps frames until the open training run's timeline is computed, the slider's
@@ -849,7 +1009,7 @@ fn training_run_scrubs_to_the_last_checkpoint_and_counts_its_dead_units() {
     wait_run(&mut h, Duration::from_secs(180));
     h.get_by_label("Training run");
     h.get_by_label("Dead units per layer");
-    h.get_by_label("Accuracy on the probe");
+    h.get_by_label("Accuracy on the reference data");
     assert_eq!(
         h.state().state().training.current,
         0,
@@ -937,5 +1097,5 @@ fn training_run_scrubs_to_the_last_checkpoint_and_counts_its_dead_units() {
         .parse()
         .unwrap();
     assert_eq!(selection(&h), (0, unit));
-    h.get_by_label_contains(&format!("h1 unit {unit}: active on the probe"));
+    h.get_by_label_contains(&format!("h1 unit {unit}: active on the reference data"));
 }

@@ -24,6 +24,12 @@ Two ways in:
   ``metadata_props`` under ``receptor.low``, ``receptor.high``, ``receptor.labels`` and
   ``receptor.names``; receptor opens the ``.onnx`` file directly (needs the ``onnx`` package).
 
+* ``CheckpointWriter(folder, every=N, ...)`` in a training loop: ``writer(model, step)``
+  writes ``folder/ckpt-<step>.json`` (``"step"`` set) with every tensor in
+  ``folder/ckpt-<step>.safetensors`` when ``step`` is a multiple of ``N``
+  (:func:`save_checkpoint` writes one unconditionally); ``receptor timeline folder`` then
+  reads the series.
+
 Batch normalisation is not a layer type of the schema: ``export_torch`` folds every
 ``BatchNorm2d`` (``BatchNorm1d``) into the ``Conv2d`` (``Linear``) directly before it, using
 the running statistics, i.e. the network's inference (``eval()``) behaviour. The fold is exact
@@ -289,6 +295,13 @@ _ALLOWED_KEYS = {
 }
 
 
+def _step(step):
+    """A training step for the top-level ``"step"``: a whole number from 0."""
+    if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or step < 0:
+        raise ExportError(f"step must be a whole number from 0 (a training step), not {step!r}")
+    return int(step)
+
+
 def export_arrays(
     layers,
     input_size,
@@ -303,6 +316,7 @@ def export_arrays(
     description=None,
     safetensors_threshold=DEFAULT_SAFETENSORS_THRESHOLD,
     safetensors_file=None,
+    step=None,
 ):
     """Writes a network given as arrays to ``path`` (JSON) in receptor's model schema.
 
@@ -336,6 +350,8 @@ def export_arrays(
     path: the JSON file to write; a side file (default ``<stem>.safetensors`` beside it)
         receives every tensor with at least ``safetensors_threshold`` elements. Use
         ``safetensors_threshold=None`` to write everything inline.
+    step: optional training step (a whole number from 0), written as the top-level
+        ``"step"``; ``receptor timeline`` orders checkpoints by it.
 
     The file declares ``receptor-model/1`` when every layer is dense, else
     ``receptor-model/2``. Returns the path of the JSON file. Raises ``ExportError`` (a
@@ -497,6 +513,8 @@ def export_arrays(
 
     spatial = any(e["type"] in SPATIAL_TYPES for e in entries)
     model = {"schema": SCHEMA_V2 if spatial else SCHEMA_V1, "name": str(name)}
+    if step is not None:
+        model["step"] = _step(step)
     if description is not None:
         model["description"] = str(description)
     model["input"] = inp
@@ -569,6 +587,7 @@ def export_torch(
     description=None,
     safetensors_threshold=DEFAULT_SAFETENSORS_THRESHOLD,
     safetensors_file=None,
+    step=None,
 ):
     """Writes a PyTorch ``nn.Sequential`` to ``path``.
 
@@ -788,6 +807,7 @@ def export_torch(
         description=description,
         safetensors_threshold=safetensors_threshold,
         safetensors_file=safetensors_file,
+        step=step,
     )
 
 
@@ -854,3 +874,72 @@ def export_onnx(model, example, *, path, low=-1.0, high=1.0, labels=None, names=
 
     _write_atomic(path, write)
     return path
+
+
+# --- checkpoints of a training run ---------------------------------------------------------
+
+
+def checkpoint_path(folder, step, prefix="ckpt"):
+    """The JSON file of the checkpoint at ``step``: ``folder/<prefix>-<step>.json``."""
+    return Path(folder) / f"{prefix}-{_step(step)}.json"
+
+
+def save_checkpoint(model, step, folder, *, prefix="ckpt", input_size=None, **options):
+    """Writes one checkpoint of a training run and returns the JSON file's path.
+
+    ``model`` is a PyTorch ``nn.Sequential`` (written by :func:`export_torch`) or a list of
+    layers as :func:`export_arrays` takes them (then ``input_size`` defaults to the first
+    dense layer's number of columns). The JSON file is ``folder/<prefix>-<step>.json`` with
+    the top-level ``"step"`` set; every tensor, biases included, goes to the safetensors
+    side file ``folder/<prefix>-<step>.safetensors`` (needs the ``safetensors`` package).
+    ``options`` are those of :func:`export_arrays` / :func:`export_torch` (``low``,
+    ``high``, ``layout``, ``names``, ``labels``, ``name``, ``description``). Both files are
+    written through a temporary file and renamed, so a reader never sees half a checkpoint
+    file.
+    """
+    for fixed in ("path", "step", "safetensors_threshold", "safetensors_file"):
+        if fixed in options:
+            raise ExportError(f"save_checkpoint sets {fixed} itself")
+    path = checkpoint_path(folder, step, prefix)
+    common = dict(options, path=path, step=_step(step), safetensors_threshold=0)
+    if isinstance(model, (list, tuple)):
+        if input_size is None:
+            first = model[0] if model else None
+            if isinstance(first, (list, tuple)) and len(first) == 4:
+                input_size = np.asarray(first[1]).shape[-1]
+            else:
+                raise ExportError("save_checkpoint: pass input_size= for a network that does not start with a dense layer")
+        return export_arrays(model, input_size, **common)
+    return export_torch(model, input_size, **common)
+
+
+class CheckpointWriter:
+    """Writes a checkpoint every ``every`` training steps, for ``receptor timeline``.
+
+    ``writer = CheckpointWriter("run1", every=100, low=0.0, high=1.0)``, then in the training
+    loop ``writer(model, step)``: when ``step`` is a multiple of ``every`` (step 0
+    included) it calls :func:`save_checkpoint` and returns the JSON file's path, else it
+    returns ``None``. ``writer.save(model, step)`` writes one whatever the step (the last
+    step of a run, say). ``writer.written`` lists the files written, in order. Options as in
+    :func:`save_checkpoint`.
+    """
+
+    def __init__(self, folder, every, *, prefix="ckpt", **options):
+        if isinstance(every, bool) or not isinstance(every, (int, np.integer)) or every < 1:
+            raise ExportError(f"every must be a whole number of steps from 1, not {every!r}")
+        self.folder = Path(folder)
+        self.every = int(every)
+        self.prefix = prefix
+        self.options = options
+        self.written = []
+
+    def __call__(self, model, step):
+        if _step(step) % self.every != 0:
+            return None
+        return self.save(model, step)
+
+    def save(self, model, step):
+        """Writes the checkpoint at ``step`` now; returns the JSON file's path."""
+        path = save_checkpoint(model, step, self.folder, prefix=self.prefix, **self.options)
+        self.written.append(path)
+        return path

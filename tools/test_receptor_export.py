@@ -689,6 +689,106 @@ def test_torch_cnn_with_batchnorm():
         assert not (Path(d) / "bad.json").exists()
 
 
+def run_timeline(folder, *extra):
+    """`receptor timeline FOLDER --per checkpoint --format json ...` -> the parsed JSON."""
+    proc = subprocess.run(
+        [receptor_bin(), "timeline", str(folder), "--per", "checkpoint", "--format", "json", *extra],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert proc.returncode == 0, f"receptor timeline failed ({proc.returncode}): {proc.stderr}"
+    return json.loads(proc.stdout)
+
+
+def test_checkpoint_writer_numpy_training_loop():
+    """A numpy 'training loop' writing every 3 steps: the files, their "step" and their
+    side-file tensors, then `receptor timeline` on the folder against numpy's own
+    mean |w_t - w_(t-1)| between the written checkpoints."""
+    from safetensors.numpy import load_file
+
+    rng = np.random.default_rng(7)
+    layers = random_net(rng, [5, 6, 3], ["relu", "softmax"])
+    with tempfile.TemporaryDirectory() as d:
+        run = Path(d) / "run"
+        writer = rx.CheckpointWriter(run, every=3, low=0.0, high=1.0, name="toy")
+        kept = {}
+        for step in range(11):
+            # One fake update per step (what an optimiser step would do).
+            layers = [(n, w - 0.05 * rng.normal(size=w.shape).astype(np.float32), b, a)
+                      for n, w, b, a in layers]
+            if writer(layers, step) is not None:
+                kept[step] = [w.copy() for _n, w, _b, _a in layers]
+        assert sorted(kept) == [0, 3, 6, 9]
+        assert [p.name for p in writer.written] == ["ckpt-0.json", "ckpt-3.json", "ckpt-6.json", "ckpt-9.json"]
+        for step, ws in kept.items():
+            doc = json.loads((run / f"ckpt-{step}.json").read_text())
+            assert doc["step"] == step
+            assert doc["layers"][0]["weights"] == {"safetensors": f"ckpt-{step}.safetensors", "tensor": "fc1.weight"}
+            assert doc["layers"][0]["bias"]["tensor"] == "fc1.bias"  # every tensor in the side file
+            side = load_file(str(run / f"ckpt-{step}.safetensors"))
+            assert np.array_equal(side["fc1.weight"], ws[0]) and np.array_equal(side["fc2.weight"], ws[1])
+        out = run_timeline(run, "--samples", "50")
+        assert out["key"] == "step"
+        rows = out["rows"]
+        assert [r["step"] for r in rows] == [0, 3, 6, 9]  # one hidden layer: one row per checkpoint
+        assert rows[0]["mean_abs_update"] is None
+        for prev, cur, r in zip([0, 3, 6], [3, 6, 9], rows[1:]):
+            want = float(np.mean(np.abs(kept[cur][0].astype(np.float64) - kept[prev][0])))
+            assert abs(r["mean_abs_update"] - want) <= 1e-12, (r["mean_abs_update"], want)
+        # save() writes whatever the step; bad arguments are refused before anything is written.
+        assert writer.save(layers, 10).name == "ckpt-10.json"
+        expect_error("every must be a whole number of steps from 1", lambda: rx.CheckpointWriter(run, every=0))
+        expect_error("step must be a whole number from 0", lambda: writer(layers, -3))
+        expect_error("step must be a whole number from 0", lambda: writer.save(layers, True))
+        assert not (run / "ckpt--3.json").exists()
+
+
+def test_checkpoint_writer_torch_training_loop():
+    """The PyTorch path: an nn.Sequential trained by SGD, written every 2 steps; each side
+    file holds the module's weights at that step, and receptor's forward pass on the last
+    checkpoint matches the module's."""
+    try:
+        import torch
+        from torch import nn
+    except Exception as e:  # ImportError, or a CUDA build without its libraries
+        skip(f"torch does not import here: {type(e).__name__}: {e}")
+    from safetensors.numpy import load_file
+
+    torch.manual_seed(0)
+    net = nn.Sequential(nn.Linear(4, 8), nn.ReLU(), nn.Linear(8, 3), nn.Softmax(dim=1))
+    opt = torch.optim.SGD(net.parameters(), lr=0.5)
+    rng = np.random.default_rng(8)
+    x = torch.from_numpy(rng.uniform(0, 1, size=(64, 4)).astype(np.float32))
+    y = torch.from_numpy(rng.integers(0, 3, size=64))
+    with tempfile.TemporaryDirectory() as d:
+        run = Path(d) / "run"
+        writer = rx.CheckpointWriter(run, every=2, low=0.0, high=1.0)
+        kept = {}
+        for step in range(1, 7):
+            loss = nn.functional.nll_loss(torch.log(net(x)), y)
+            opt.zero_grad()
+            loss.backward()
+            opt.step()
+            if writer(net, step):
+                kept[step] = net[0].weight.detach().numpy().copy()
+        assert sorted(kept) == [2, 4, 6]
+        for step, w in kept.items():
+            side = load_file(str(run / f"ckpt-{step}.safetensors"))
+            assert np.array_equal(side["h1.weight"], w)
+            assert json.loads((run / f"ckpt-{step}.json").read_text())["step"] == step
+        assert not np.array_equal(kept[2], kept[6]), "training changed the weights"
+        probe = Path(d) / "probe.csv"
+        write_probe(probe, x.numpy())
+        rows = run_forward(run / "ckpt-6.json", probe)
+        with torch.no_grad():
+            want = net(x).double().numpy()
+        got = outputs_of(rows, ["out0", "out1", "out2"])
+        assert np.max(np.abs(got - want)) <= TOL, np.max(np.abs(got - want))
+        out = run_timeline(run, "--samples", "50")
+        assert [r["step"] for r in out["rows"]] == [2, 4, 6]
+
+
 TESTS = [
     test_inline_model_matches_numpy_forward,
     test_large_tensors_go_to_safetensors_side_file,
@@ -702,6 +802,8 @@ TESTS = [
     test_fold_batchnorm_matches_the_normalisation,
     test_numpy_reference_agrees_with_torch_functional,
     test_torch_cnn_with_batchnorm,
+    test_checkpoint_writer_numpy_training_loop,
+    test_checkpoint_writer_torch_training_loop,
 ]
 
 

@@ -3,6 +3,7 @@
 //! screening for dead units, magnitude pruning and the timeline of a checkpoint series. Takes `&Network` and
 //! arrays, never paths; nothing here depends on the GUI.
 
+pub mod accuracy;
 pub mod activity;
 pub mod attribute;
 pub mod bounds;

@@ -24,7 +24,8 @@
 //! - `first_dead_on_probe`: the same with "never active on the probe" (a rectifier whose
 //!   active fraction is 0 and whose values were finite: status `dead_proven` with no active
 //!   sample, or `dead_on_probe`);
-//! - `drift`: the cosine distance `1 - <w0, wT> / (|w0| |wT|)` between the unit's incoming
+//! - `drift`: the cosine distance `1 - <w0, wT> / (|w0| |wT|)` (computed as
+//!   `|w0/|w0| - wT/|wT||^2 / 2`, so equal vectors give exactly 0) between the unit's incoming
 //!   weights in the first and the last checkpoint, in f64, from 0 (same direction) to 2
 //!   (opposite); NaN when either vector is all zero (as `scipy.spatial.distance.cosine`);
 //! - `final_l2`: the L2 norm of the unit's incoming weights in the last checkpoint;
@@ -471,23 +472,33 @@ fn mean_abs_difference(a: &Array2<f32>, b: &Array2<f32>) -> f64 {
     sum / n as f64
 }
 
-/// Cosine distance `1 - <a, b> / (|a| |b|)` of two vectors `[n]`, in f64, clamped to [0, 2]; NaN when either
-/// vector is all zero or they differ in length.
+/// Cosine distance `1 - <a, b> / (|a| |b|)` of two vectors `[n]`, in f64, computed as
+/// `|a/|a| - b/|b||^2 / 2` (the same number, without the cancellation of `1 - cos` near 0:
+/// equal vectors give exactly 0), clamped to [0, 2]; NaN when either vector is all zero or
+/// they differ in length.
 pub fn cosine_distance(a: ArrayView1<f32>, b: ArrayView1<f32>) -> f64 {
     if a.len() != b.len() {
         return f64::NAN;
     }
-    let (mut ab, mut aa, mut bb) = (0.0f64, 0.0f64, 0.0f64);
-    for (x, y) in a.iter().zip(b.iter()) {
-        let (x, y) = (f64::from(*x), f64::from(*y));
-        ab += x * y;
-        aa += x * x;
-        bb += y * y;
-    }
-    if aa == 0.0 || bb == 0.0 {
+    let norm = |v: &ArrayView1<f32>| {
+        v.iter()
+            .map(|x| f64::from(*x) * f64::from(*x))
+            .sum::<f64>()
+            .sqrt()
+    };
+    let (na, nb) = (norm(&a), norm(&b));
+    if na == 0.0 || nb == 0.0 {
         return f64::NAN;
     }
-    (1.0 - ab / (aa.sqrt() * bb.sqrt())).clamp(0.0, 2.0)
+    let sq: f64 = a
+        .iter()
+        .zip(b.iter())
+        .map(|(x, y)| {
+            let d = f64::from(*x) / na - f64::from(*y) / nb;
+            d * d
+        })
+        .sum();
+    (sq / 2.0).clamp(0.0, 2.0)
 }
 
 #[cfg(test)]

@@ -16,6 +16,24 @@ pub fn key_colour(key: &ColourKey, t: f32) -> Color32 {
     color32(key.rgb(t))
 }
 
+/// The colour-scale switch of the grid toolbar: "Scale shared by layer" (the default) or
+/// "Scale per unit", with a tooltip saying what each means.
+pub fn scale_switch_ui(ui: &mut Ui, scale: &mut ScaleMode) {
+    ui.weak("Colours:");
+    for mode in [ScaleMode::SharedLayer, ScaleMode::PerUnit] {
+        let tip = match mode {
+            ScaleMode::SharedLayer => {
+                "Every map of the layer on one scale, the layer's largest |value|: colours compare across units and weak units look faint"
+            }
+            ScaleMode::PerUnit => {
+                "Each map on its own largest |value|: every pattern at full contrast, but a unit with tiny weights looks as vivid as the strongest"
+            }
+        };
+        ui.selectable_value(scale, mode, mode.label())
+            .on_hover_text(tip);
+    }
+}
+
 /// Direction of the bar drawn by [`legend_ui_with`].
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum LegendOrientation {
@@ -66,7 +84,13 @@ pub fn legend_ui_with(
     let description = legend_description(max_abs, label);
     response
         .widget_info(|| egui::WidgetInfo::labeled(egui::Role::Image, true, description.clone()));
-    let bar = Bar::place(rect, orientation, length, text.font_size);
+    let bar = Bar::place(
+        rect,
+        orientation,
+        length,
+        text.font_size,
+        text.caption_row(),
+    );
     if ui.is_rect_visible(rect) {
         let painter = ui.painter();
         painter.galley(rect.left_top(), text.caption.clone(), text.colour);
@@ -77,6 +101,7 @@ pub fn legend_ui_with(
             ui.visuals().widgets.noninteractive.fg_stroke.color,
         );
         paint_ticks(ui, &bar, &text, length);
+        paint_no_value(ui, key, rect, &text);
     }
     let scale = if text.no_scale { 0.0 } else { max_abs };
     let hovered_value = response
@@ -98,6 +123,8 @@ struct LegendText {
     /// True when `max_abs` gives no scale (only "0" is labelled).
     no_scale: bool,
     caption: std::sync::Arc<egui::Galley>,
+    /// The text beside the no-value swatch.
+    no_value: std::sync::Arc<egui::Galley>,
     colour: Color32,
     font_size: f32,
 }
@@ -123,9 +150,20 @@ impl LegendText {
                 .collect(),
             no_scale: !has_scale,
             caption: painter.layout_no_wrap(caption, font.clone(), colour),
+            no_value: painter.layout_no_wrap(NO_VALUE_TEXT.to_owned(), font.clone(), colour),
             colour,
             font_size: font.size,
         }
+    }
+
+    /// Width of the "no value" row: the swatch, a gap and its text.
+    fn no_value_width(&self) -> f32 {
+        self.font_size + 4.0 + self.no_value.size().x
+    }
+
+    /// Height of the caption (one line or more), with a little room.
+    fn caption_row(&self) -> f32 {
+        self.caption.size().y.max(self.font_size) + 4.0
     }
 
     /// Height of one text row, with a little room.
@@ -137,14 +175,17 @@ impl LegendText {
     fn size(&self, orientation: LegendOrientation, length: f32) -> egui::Vec2 {
         let caption = self.caption.size().x;
         match orientation {
-            LegendOrientation::Horizontal => {
-                vec2(length.max(caption), self.row() + BAR + TICK + self.row())
-            }
+            LegendOrientation::Horizontal => vec2(
+                length.max(caption).max(self.no_value_width()),
+                self.caption_row() + BAR + TICK + self.row() + self.row(),
+            ),
             LegendOrientation::Vertical => {
                 let widest = self.ticks.iter().map(|g| g.size().x).fold(0.0, f32::max);
                 vec2(
-                    (BAR + TICK + 4.0 + widest).max(caption),
-                    self.row() + self.font_size + length + self.row(),
+                    (BAR + TICK + 4.0 + widest)
+                        .max(caption)
+                        .max(self.no_value_width()),
+                    self.caption_row() + self.font_size + length + self.row() + self.row(),
                 )
             }
         }
@@ -158,10 +199,15 @@ struct Bar {
 }
 
 impl Bar {
-    /// The bar inside the legend's `rect`: below the caption, and for a vertical bar with half
-    /// a text row of room above and below, where the end labels are centred.
-    fn place(rect: Rect, orientation: LegendOrientation, length: f32, font_size: f32) -> Bar {
-        let row = font_size + 4.0;
+    /// The bar inside the legend's `rect`: below the caption (`row` high), and for a vertical
+    /// bar with half a text row of room above and below, where the end labels are centred.
+    fn place(
+        rect: Rect,
+        orientation: LegendOrientation,
+        length: f32,
+        font_size: f32,
+        row: f32,
+    ) -> Bar {
         let rect = match orientation {
             LegendOrientation::Horizontal => {
                 Rect::from_min_size(pos2(rect.left(), rect.top() + row), vec2(length, BAR))
@@ -224,6 +270,30 @@ fn paint_bar(painter: &egui::Painter, key: &ColourKey, bar: &Bar, outline: Color
         0.0,
         Stroke::new(1.0, outline),
         egui::StrokeKind::Outside,
+    );
+}
+
+/// The text beside the no-value swatch of a legend.
+pub const NO_VALUE_TEXT: &str = "no value (NaN)";
+
+/// Paints the no-value swatch and its text in the legend's last row, so the colour a map uses
+/// for NaN is explained beside the key (the same colour as `no_value` in the key file).
+fn paint_no_value(ui: &Ui, key: &ColourKey, rect: Rect, text: &LegendText) {
+    let painter = ui.painter();
+    let side = text.font_size;
+    let top = rect.bottom() - text.row() + 2.0;
+    let swatch = Rect::from_min_size(pos2(rect.left(), top), vec2(side, side));
+    painter.rect_filled(swatch, 0.0, color32(key.no_value_rgb()));
+    painter.rect_stroke(
+        swatch,
+        0.0,
+        Stroke::new(1.0, ui.visuals().widgets.noninteractive.fg_stroke.color),
+        egui::StrokeKind::Outside,
+    );
+    painter.galley(
+        pos2(swatch.right() + 4.0, top - 1.0),
+        text.no_value.clone(),
+        text.colour,
     );
 }
 

@@ -112,11 +112,11 @@ fn body_ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
             file_probe,
             egui::Checkbox::new(
                 &mut state.compact.choice.dead_on_probe,
-                "Also remove units never active on the probe (lossy outside the probe)",
+                "Also remove units never active on the reference data (lossy outside it)",
             ),
         )
         .on_disabled_hover_text(
-            "Open probe data first: the units removed are those never active on it.",
+            "Open reference data first: the units removed are those never active on it.",
         );
     if file_probe {
         lossy.on_hover_text(
@@ -195,7 +195,7 @@ fn result_ui(
     let refusal = c.refusal(DEFAULT_CHECK_TOLERANCE);
     if let Some((which, cmp)) = refusal {
         let data = match which {
-            CheckData::Reference => "the probe",
+            CheckData::Reference => "the reference data",
             CheckData::Box => "the uniform samples of the input box",
         };
         ui.colored_label(
@@ -303,10 +303,10 @@ fn why_text(s: &LayerSummary) -> String {
 /// The output check and the accuracies, as `receptor compact` reports them.
 fn check_ui(ui: &mut egui::Ui, state: &AppState, c: &CheckedCompaction) {
     ui.strong("Check of the smaller model's outputs");
-    let probe_name = state
-        .probe
-        .as_ref()
-        .map_or_else(|| "the probe".to_string(), |p| p.data.origin.clone());
+    let probe_name = state.probe.as_ref().map_or_else(
+        || "the reference data".to_string(),
+        |p| p.data.origin.clone(),
+    );
     check_line_ui(ui, &probe_name, &c.reference, false);
     if let Some(b) = &c.on_box {
         let name = format!(
@@ -324,7 +324,7 @@ fn check_ui(ui: &mut egui::Ui, state: &AppState, c: &CheckedCompaction) {
             ));
         }
         None => {
-            ui.weak("Accuracy needs probe data with a label column.");
+            ui.weak("Accuracy needs reference data with a label column.");
         }
     }
 }
@@ -342,7 +342,7 @@ fn check_line_ui(ui: &mut egui::Ui, data: &str, cmp: &Comparison, lossy: bool) {
         cmp.changed_predictions
     );
     if !ok && lossy {
-        text.push_str(" (expected: units never active on the probe were removed)");
+        text.push_str(" (expected: units never active on the reference data were removed)");
     }
     if ok || lossy {
         ui.label(text);

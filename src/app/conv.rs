@@ -17,6 +17,7 @@ use crate::analysis::fields::{Field, receptive_fields};
 use crate::model::{LayerKind, Network, Shape};
 use crate::report::colour::symmetric_max;
 use crate::report::filters;
+use crate::report::format;
 use crate::report::picture::Picture;
 use egui::{Color32, Rect, Sense, pos2, vec2};
 
@@ -314,7 +315,8 @@ pub fn detail_ui(
                 BIG,
                 &format!("preferred input of {name}"),
                 &format!(
-                    "The whole preferred input; the yellow box is the receptive field of the centre position. z = {value:.4}"
+                    "The whole preferred input; the yellow box is the receptive field of the centre position. Pre-activation z = {}",
+                    format::sig32(value, 4)
                 ),
             );
         }
@@ -343,11 +345,11 @@ pub fn detail_ui(
                 tex,
                 BIG,
                 &format!("effective receptive field of {name}"),
-                "Mean |gradient| of the centre pre-activation over the probe (Luo et al. 2016), channels summed, scaled to its largest value",
+                "Mean |gradient| of the centre pre-activation over the reference data (Luo et al. 2016), channels summed, scaled to its largest value",
             );
         }
         None => {
-            ui.weak("Computing over the probe…");
+            ui.weak("Computing over the reference data…");
         }
     }
     ui.add_space(6.0);
@@ -374,7 +376,7 @@ fn feature_map_ui(
         return;
     }
     ui.horizontal(|ui| {
-        ui.strong("Feature map on probe sample");
+        ui.strong("Feature map on reference sample");
         let label = ui.label("Sample");
         let mut row = state.conv_sample.min(rows - 1);
         ui.add(egui::DragValue::new(&mut row).range(0..=rows - 1))
@@ -401,7 +403,7 @@ fn feature_map_ui(
                 Some(maps::input_picture(net.input(), &x))
             },
         );
-        picture_ui(ui, sample, 100.0, &format!("probe sample {row}"), "");
+        picture_ui(ui, sample, 100.0, &format!("reference sample {row}"), "");
         match state
             .results
             .conv
@@ -433,7 +435,8 @@ fn feature_map_ui(
                     100.0,
                     &format!("feature map of {name} on sample {row}"),
                     &format!(
-                        "Pre-activation z at every map position, signed, |z| up to {scale:.3} at the key's ends"
+                        "Pre-activation z at every map position, signed, |z| up to {} at the key's ends",
+                        format::sig32(scale, 3)
                     ),
                 );
             }
@@ -455,7 +458,7 @@ fn strongest_ui(
     f: &Field,
 ) {
     ui.strong(
-        "Probe samples that drive it hardest (receptive-field patch at the strongest position)",
+        "Reference samples that drive it hardest (receptive-field patch at the strongest position)",
     );
     let (Some(tops), Some(probe)) = (
         state
@@ -466,7 +469,7 @@ fn strongest_ui(
             .and_then(|s| s.ready()),
         state.probe.as_ref(),
     ) else {
-        ui.weak("Scanning the probe…");
+        ui.weak("Scanning the reference data…");
         return;
     };
     let Some(hits) = tops.channels.get(sel.unit) else {
@@ -511,8 +514,11 @@ fn strongest_ui(
                             sel.unit
                         ),
                         &format!(
-                            "probe row {} at map position ({}, {}): z = {:.4}",
-                            hit.row, hit.position.0, hit.position.1, hit.value
+                            "reference row {} at map position ({}, {}): pre-activation z = {}",
+                            hit.row,
+                            hit.position.0,
+                            hit.position.1,
+                            format::sig32(hit.value, 4)
                         ),
                     );
                     let small = |ui: &mut egui::Ui, text: String| {
@@ -531,7 +537,10 @@ fn strongest_ui(
                     {
                         small(ui, c.clone());
                     }
-                    small(ui, format!("z = {:.3}", hit.value));
+                    small(
+                        ui,
+                        format!("pre-activation {}", format::sig32(hit.value, 3)),
+                    );
                 });
                 if k % 4 == 3 {
                     ui.end_row();

@@ -92,7 +92,7 @@ impl ConvJob {
         match self {
             ConvJob::Tops { layer, .. } => {
                 format!(
-                    "Finding the strongest probe samples of layer {}",
+                    "Finding the strongest reference samples of layer {}",
                     name(*layer)
                 )
             }

@@ -1,5 +1,5 @@
 //! The selected unit in detail: a large map (incoming weights, preferred input, or
-//! sensitivity at the mean probe input) with its colour key and hover values, the unit's
+//! sensitivity at the mean reference input) with its colour key and hover values, the unit's
 //! numbers, a histogram of its activations over the probe, its strongest incoming
 //! connections, and the probe samples that drive it hardest. For deeper units the weights
 //! are drawn as a grid over the units of the layer below; clicking a cell walks down.
@@ -11,6 +11,8 @@ use super::state::{AppState, MapView, Selection};
 use super::thumbs::{ThumbKey, ThumbKind, Thumbs};
 use crate::analysis::prefer::{MAX_FACETS, PreferOptions};
 use crate::model::{Layout, Network};
+use crate::report::annotate::GridKey;
+use crate::report::format;
 use crate::report::picture::{self, Picture};
 use egui::{Color32, Rect, Sense, pos2, vec2};
 
@@ -116,7 +118,7 @@ impl DetailPanel {
         }
         let mut row = self.attribution_row(state, sel).unwrap_or(0);
         ui.horizontal(|ui| {
-            ui.label("Probe row");
+            ui.label("Reference row");
             if ui
                 .add(egui::DragValue::new(&mut row).range(0..=rows - 1))
                 .changed()
@@ -126,7 +128,7 @@ impl DetailPanel {
             ui.label("from");
             let m = &mut state.prefs.attribution_from_mean;
             ui.selectable_value(m, false, "box centre");
-            ui.selectable_value(m, true, "probe mean");
+            ui.selectable_value(m, true, "reference mean");
         });
     }
 }
@@ -176,10 +178,10 @@ fn header_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Select
         ui.selectable_value(v, MapView::Preferred, "Preferred input")
             .on_hover_text("P");
         ui.selectable_value(v, MapView::Sensitivity, "Sensitivity")
-            .on_hover_text("S: gradient of the pre-activation at the mean probe input");
+            .on_hover_text("S: sensitivity, the gradient ∂z/∂x of the pre-activation z at the mean reference input");
         ui.selectable_value(v, MapView::Attribution, "Attribution")
             .on_hover_text(
-                "Integrated gradients: how each input moves z from the baseline to a probe sample",
+                "Integrated gradients: how each input moves the pre-activation z from the baseline to a reference sample",
             );
     });
 }
@@ -242,14 +244,14 @@ fn map_data(
                 Some(s) => {
                     let row = s.maps.row(sel.unit).to_vec();
                     let m = scale_mode.pick(maps::max_abs(&row), s.max_abs);
-                    Ok(MapData::SignedInput(row, m, "dz/dx"))
+                    Ok(MapData::SignedInput(row, m, "sensitivity"))
                 }
-                None => Err("Computing the sensitivity at the mean probe input…".into()),
+                None => Err("Computing the sensitivity at the mean reference input…".into()),
             }
         }
         MapView::Attribution => {
             let Some(row) = row else {
-                return Err("Tracing the probe…".into());
+                return Err("Running the reference data…".into());
             };
             let key = super::state::AttributionKey {
                 layer: sel.layer,
@@ -262,15 +264,15 @@ fn map_data(
                     let m = maps::max_abs(&a.values);
                     Ok(MapData::SignedInput(a.values.clone(), m, "attribution"))
                 }
-                None => Err(format!("Integrating gradients for probe row {row}…")),
+                None => Err(format!("Integrating gradients for reference row {row}…")),
             }
         }
     }
 }
 
 /// The picture of the current map of the selected unit (also used by the PNG export), with
-/// a name for the file.
-pub fn current_map(state: &AppState) -> Option<(String, Picture)> {
+/// a name for the file and the key the export draws below it.
+pub fn current_map(state: &AppState) -> Option<(String, Picture, GridKey)> {
     let net = state.net()?;
     let sel = state.selection?;
     let data = map_data(state, net, sel, None).ok()?;
@@ -281,7 +283,11 @@ pub fn current_map(state: &AppState) -> Option<(String, Picture)> {
         MapView::Attribution => "attribution",
     };
     let name = format!("{}-unit{}-{what}", net.layers()[sel.layer].name, sel.unit);
-    Some((name, image_of(&data, net)))
+    let key = match &data {
+        MapData::SignedInput(_, m, _) | MapData::Cells(_, m) => GridKey::Signed(Some(*m)),
+        MapData::Input(_) => picture::grey_key(net.input()),
+    };
+    Some((name, image_of(&data, net), key))
 }
 
 fn image_of(data: &MapData, net: &Network) -> Picture {
@@ -330,7 +336,8 @@ fn map_ui(
     };
     ui.horizontal_top(|ui| {
         map_picture_ui(ui, state, &tex, draw, &data, net, sel);
-        map_key_ui(ui, &data, net, draw.y.max(140.0) - 40.0);
+        let caption = key_caption(&data, state, net, sel);
+        map_key_ui(ui, &data, net, &caption, draw.y.max(140.0) - 40.0);
     });
     map_caption_ui(ui, &data, net, sel);
 }
@@ -383,9 +390,9 @@ fn facets_ui(
         return;
     };
     ui.label(format!(
-        "{} facets, mean pairwise distance {:.3} box widths",
+        "{} facets, mean pairwise distance {} box widths",
         facets.len(),
-        facets[0].spread
+        format::sig32(facets[0].spread, 3)
     ));
     ui.horizontal_wrapped(|ui| {
         for p in facets {
@@ -407,11 +414,18 @@ fn facets_ui(
                         Color32::WHITE,
                     );
                     resp.on_hover_text(format!(
-                        "facet {}: z = {:.4}, activation = {:.4}",
-                        p.facet, p.preactivation, p.activation
+                        "facet {}: pre-activation {}, activation {}",
+                        p.facet,
+                        format::sig32(p.preactivation, 4),
+                        format::sig32(p.activation, 4)
                     ));
                 }
-                ui.small(format!("facet {} · z {:.3}", p.facet, p.preactivation));
+                ui.small(format!(
+                    "facet {} · pre-activation {}",
+                    p.facet,
+                    format::sig32(p.preactivation, 3)
+                ))
+                .on_hover_text("pre-activation z = w·x + b at this facet's input");
             });
         }
     });
@@ -478,19 +492,35 @@ fn map_picture_ui(
     }
 }
 
-/// The key beside the map, `length` points long: the signed colour key, or the grey ramp
-/// of input pictures.
-fn map_key_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, length: f32) {
-    let (m, what) = match data {
-        MapData::SignedInput(_, m, what) => (*m, *what),
-        MapData::Cells(_, m) => (*m, "weight"),
+/// The caption of the key beside a signed map: the quantity on the first line, its scale on
+/// the second ("weight" / "scale shared by layer h1"); attribution maps always use their own.
+fn key_caption(data: &MapData, state: &AppState, net: &Network, sel: Selection) -> String {
+    let what = match data {
+        MapData::SignedInput(_, _, what) => *what,
+        MapData::Cells(..) => "weight",
+        MapData::Input(_) => return String::new(),
+    };
+    let layer = &net.layers()[sel.layer].name;
+    let scale = if state.prefs.map_view == MapView::Attribution {
+        "scale of this map alone".to_owned()
+    } else {
+        state.prefs.scale.caption(layer, sel.unit)
+    };
+    format!("{what}\n{scale}")
+}
+
+/// The key beside the map, `length` points long: the signed colour key with `caption`, or
+/// the grey ramp of input pictures.
+fn map_key_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, caption: &str, length: f32) {
+    let m = match data {
+        MapData::SignedInput(_, m, _) | MapData::Cells(_, m) => *m,
         MapData::Input(_) => return grey_key_ui(ui, net, length),
     };
     colour::legend_ui_with(
         ui,
         ColourKey::standard(),
         m,
-        what,
+        caption,
         LegendOrientation::Vertical,
         length,
     );
@@ -538,10 +568,10 @@ fn hover_text(data: &MapData, net: &Network, sel: Selection, x: usize, y: usize)
         MapData::Input(v) => {
             let i = maps::input_index_at(net.input(), false, x, y)?;
             Some(format!(
-                "{} ({}): input {:.4}",
+                "{} ({}): input {}",
                 net.input().feature_name(i),
                 pixel_words(net, i),
-                v.get(i)?
+                format::sig32(*v.get(i)?, 4)
             ))
         }
     }
@@ -632,7 +662,7 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
         .and_then(|b| b.upper.get(sel.layer))
         .and_then(|u| u.get(sel.unit).copied());
     let f = |v: Option<f64>, digits: usize| {
-        v.map_or_else(|| "…".to_string(), |v| format!("{v:.digits$}"))
+        v.map_or_else(|| "…".to_string(), |v| format::sig(v, digits))
     };
     egui::CollapsingHeader::new("Numbers")
         .default_open(true)
@@ -649,24 +679,28 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
                     row(
                         "pre-activation reached",
                         f(pr.map(|p| f64::from(p.preactivation)), 4),
-                        "z at the preferred input",
+                        "z = w·x + b, the pre-activation, at the preferred input",
                     );
                     row(
-                        "upper bound of z",
+                        "upper bound of the pre-activation",
                         f(bound, 4),
-                        "sound bound over the whole input box (interval bound propagation)",
+                        "z ≤ this everywhere in the input box: a sound bound over the whole input box (interval bound propagation)",
                     );
                     row(
-                        "active on probe",
-                        sc.map_or_else(|| "…".into(), |s| format!("{:.2}%", 100.0 * s.active_frac)),
-                        "fraction of probe samples where the unit is active",
+                        "active on reference data",
+                        sc.map_or_else(|| "…".into(), |s| format::percent(s.active_frac, 3)),
+                        "fraction of reference samples where the unit is active",
                     );
                     row(
                         "mean activation",
                         f(sc.map(|s| s.mean), 4),
-                        "over the probe",
+                        "over the reference data",
                     );
-                    row("max activation", f(sc.map(|s| s.max), 4), "over the probe");
+                    row(
+                        "max activation",
+                        f(sc.map(|s| s.max), 4),
+                        "over the reference data",
+                    );
                     row("L1 of weights", f(st.map(|s| s.l1), 4), "sum of |w|");
                     row(
                         "L2 of weights",
@@ -688,13 +722,13 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
                         "near-zero weights",
                         st.map_or_else(
                             || "…".into(),
-                            |s| format!("{:.2}%", 100.0 * s.near_zero_frac),
+                            |s| format::percent(s.near_zero_frac, 3),
                         ),
                         "|w| at most 1% of the layer's largest |w|",
                     );
                     row(
                         "bias",
-                        format!("{:.4}", net.layers()[sel.layer].bias[sel.unit]),
+                        format::sig32(net.layers()[sel.layer].bias[sel.unit], 4),
                         "",
                     );
                 });
@@ -702,7 +736,7 @@ fn numbers_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection
 }
 
 fn histogram_ui(ui: &mut egui::Ui, state: &AppState, sel: Selection) {
-    egui::CollapsingHeader::new("Activations over the probe")
+    egui::CollapsingHeader::new("Activations over the reference data")
         .default_open(true)
         .show(ui, |ui| {
             let Some(a) = state
@@ -712,11 +746,11 @@ fn histogram_ui(ui: &mut egui::Ui, state: &AppState, sel: Selection) {
                 .and_then(|a| a.layers.get(sel.layer))
                 .and_then(|l| l.get(sel.unit))
             else {
-                ui.weak("Tracing the probe…");
+                ui.weak("Running the reference data…");
                 return;
             };
             if !a.lo.is_finite() {
-                ui.weak("No finite activation on the probe.");
+                ui.weak("No finite activation on the reference data.");
                 return;
             }
             let span = (a.hi - a.lo).max(1e-9);
@@ -794,7 +828,7 @@ fn top_samples_ui(
     net: &Network,
     sel: Selection,
 ) {
-    egui::CollapsingHeader::new("Probe samples that drive it hardest")
+    egui::CollapsingHeader::new("Reference samples that drive it hardest")
         .default_open(true)
         .show(ui, |ui| {
             let (Some(a), Some(probe)) = (
@@ -806,7 +840,7 @@ fn top_samples_ui(
                     .and_then(|l| l.get(sel.unit)),
                 state.probe.as_ref(),
             ) else {
-                ui.weak("Tracing the probe…");
+                ui.weak("Running the reference data…");
                 return;
             };
             let image = matches!(net.input().layout, Layout::Image { .. });
@@ -833,7 +867,7 @@ fn top_samples_ui(
                             {
                                 small(ui, c.clone());
                             }
-                            small(ui, format!("z = {z:.3}"));
+                            small(ui, format!("pre-activation {}", format::sig32(z, 3)));
                         });
                         if k % 4 == 3 {
                             ui.end_row();
@@ -871,7 +905,9 @@ fn sample_thumb(
             Color32::WHITE,
         );
         resp.on_hover_text(format!(
-            "probe row {row}: z = {z:.4}, activation = {act:.4}"
+            "reference row {row}: pre-activation z = {}, activation = {}",
+            format::sig32(z, 4),
+            format::sig32(act, 4)
         ));
     }
 }
@@ -883,7 +919,7 @@ fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &
             let data = state.probe.as_ref().and_then(|p| p.reference.as_ref());
             let prior_text = match data {
                 Some(r) => format!("Stay near the data ({})", r.origin()),
-                None => "Stay near the data (open a probe file)".to_string(),
+                None => "Stay near the data (open reference data)".to_string(),
             };
             ui.add_enabled(
                 data.is_some(),

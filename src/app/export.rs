@@ -8,6 +8,7 @@ use super::colour::ScaleMode;
 use super::state::{AppState, ScreenResult, StatsResult};
 use crate::error::{Error, Result};
 use crate::model::Network;
+use crate::report::annotate::{self, GridKey};
 use crate::report::picture::{self, Picture};
 use crate::report::table::Format;
 use crate::report::tables;
@@ -86,7 +87,7 @@ pub fn default_file_name(kind: ExportKind, state: &AppState) -> String {
         ExportKind::ScreenJson => format!("{base}-screen.json"),
         ExportKind::MapPng => super::detail::current_map(state).map_or_else(
             || format!("{base}-map.png"),
-            |(n, _)| format!("{base}-{n}.png"),
+            |(n, _, _)| format!("{base}-{n}.png"),
         ),
         ExportKind::GridPng => format!("{base}-{layer}-grid.png"),
         ExportKind::PrunedModel => {
@@ -111,8 +112,8 @@ pub enum ExportData {
     Stats(Arc<StatsResult>, Format),
     /// Screening in one format.
     Screen(Arc<ScreenResult>, Format),
-    /// One picture.
-    Image(Picture),
+    /// One picture and its key.
+    Image(Picture, GridKey),
     /// The tiles of a layer in grid order.
     Grid {
         /// The model.
@@ -130,11 +131,12 @@ pub enum ExportData {
     Pruned(Arc<Network>, f64),
 }
 
-/// Copies what `kind` needs out of `state`; `map` is the detail panel's current picture.
+/// Copies what `kind` needs out of `state`; `map` is the detail panel's current picture
+/// with its key.
 pub fn prepare(
     kind: ExportKind,
     state: &AppState,
-    map: Option<(String, Picture)>,
+    map: Option<(String, Picture, GridKey)>,
 ) -> Result<ExportData> {
     let missing = |what: &str| Error::usage(format!("nothing to export yet: {what}"));
     match kind {
@@ -169,7 +171,7 @@ pub fn prepare(
             ))
         }
         ExportKind::MapPng => map
-            .map(|(_, img)| ExportData::Image(img))
+            .map(|(_, img, key)| ExportData::Image(img, key))
             .ok_or_else(|| missing("the map is not ready")),
         ExportKind::GridPng => {
             let net = state
@@ -216,9 +218,11 @@ pub fn write(data: &ExportData, path: &Path) -> Result<()> {
         ExportData::Screen(s, format) => {
             crate::atomic::write_atomic(path, |w| write_screen(w, s, *format))
         }
-        ExportData::Image(img) => {
+        ExportData::Image(img, key) => {
             let zoom = zoom_for(img.size());
-            img.zoomed(zoom, zoom).write_png(path)
+            annotate::with_key(&img.zoomed(zoom, zoom), *key)
+                .0
+                .write_png(path)
         }
         ExportData::Grid {
             net,
@@ -277,6 +281,6 @@ pub fn grid_image(
             .iter()
             .map(|&u| preferred.get(u).and_then(|p| p.as_deref()))
             .collect();
-        picture::preferred_grid(net.input(), &inputs)
+        picture::preferred_grid_for(net.input(), &inputs, order)
     }
 }

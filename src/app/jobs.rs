@@ -155,7 +155,8 @@ impl ReceptorApp {
                 let err = OpenError::new(&e);
                 let text = err.text.clone();
                 self.state.open_error = Some(err);
-                self.state.fail(format!("{text} (the probe in use stays)"));
+                self.state
+                    .fail(format!("{text} (the reference data in use stays)"));
                 if self.state.probe.is_none() {
                     // The model needs some probe: fall back to the uniform one.
                     self.request_probe(ProbeChoice::Uniform);
@@ -172,6 +173,13 @@ impl ReceptorApp {
         {
             Prefs::remember(&mut self.state.prefs.recent_probes, p);
         }
+        if let Some(model) = self.state.model.as_ref().and_then(|m| m.path.clone()) {
+            let reference = probe
+                .path
+                .as_deref()
+                .filter(|p| *p != Path::new(DEMO_PROBE));
+            self.state.prefs.remember_reference(&model, reference);
+        }
         let rows = probe.data.inputs.nrows();
         let origin = probe.data.origin.clone();
         let changed = self.state.probe.is_some();
@@ -186,7 +194,7 @@ impl ReceptorApp {
         self.state.probe = Some(probe);
         if changed {
             self.state
-                .confirm(format!("Using probe {origin} ({rows} samples)"));
+                .confirm(format!("Using reference data {origin} ({rows} samples)"));
         }
         self.submit_probe_job(data);
     }
@@ -343,8 +351,18 @@ impl ReceptorApp {
             self.install_probe(tag, probe);
             return;
         }
+        let auto = self
+            .state
+            .model
+            .as_ref()
+            .and_then(|m| m.path.as_deref())
+            .and_then(|p| self.state.prefs.reference_to_open(p));
+        self.state.run.reference_origin = None;
         let choice = if std::mem::take(&mut self.state.run.demo_probe_pending) {
             ProbeChoice::File(PathBuf::from(DEMO_PROBE))
+        } else if let Some((p, origin)) = auto {
+            self.state.run.reference_origin = Some(origin);
+            ProbeChoice::File(p)
         } else {
             ProbeChoice::Uniform
         };
@@ -353,8 +371,11 @@ impl ReceptorApp {
 
     /// Queues reading a probe for the open model under a fresh probe id.
     pub(super) fn request_probe(&mut self, choice: ProbeChoice) {
+        // Asked for by the user (or at start): not chosen automatically.
+        self.state.run.reference_origin = None;
         let Some(net) = self.state.net().cloned() else {
-            self.state.fail("open a model before opening probe data");
+            self.state
+                .fail("open a model before opening reference data");
             return;
         };
         let tag = Tag {

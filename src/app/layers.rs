@@ -1,10 +1,12 @@
-//! The model at a glance: what is open, the probe in use, and one entry per layer with its
+//! The model at a glance: what is open, the reference data in use, and one entry per layer with its
 //! name, size, activation and a one-line health summary. Clicking a layer shows its units.
 
 use super::Action;
 use super::state::{AppState, OpenModel, Selection};
+use crate::analysis::accuracy::Confusion;
 use crate::analysis::screen::Status;
 use crate::model::{InputBox, Layout, Network};
+use crate::report::format;
 
 /// Counts of the problem statuses in one layer.
 #[derive(Debug, Default, Clone, Copy, PartialEq, Eq)]
@@ -176,33 +178,139 @@ fn box_editor_ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Acti
     }
 }
 
-/// The probe in use, with buttons to open another or go back to the uniform one.
+/// The reference data in use (the samples the model is run on), with buttons to open a file
+/// or go back to uniform samples; without a file, the warning of [`uniform_warning_ui`].
 fn probe_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) {
     match &state.probe {
-        Some(p) => {
+        Some(p) if p.path.is_some() => {
             let labelled = if p.labelled() { ", labelled" } else { "" };
             ui.label(format!(
-                "Probe: {} ({} samples{labelled})",
+                "Reference data: {} ({} samples{labelled})",
                 short_origin(&p.data.origin),
+                p.data.inputs.nrows()
+            ))
+            .on_hover_text(&p.data.origin);
+            if let Some(o) = state.run.reference_origin {
+                ui.label(egui::RichText::new(o.describe()).small().weak());
+            }
+            if let (Some(c), Some(m)) = (&p.confusion, &state.model) {
+                accuracy_ui(ui, &m.net, c);
+            }
+        }
+        Some(p) => {
+            ui.label(format!(
+                "Reference data: none, {} uniform samples of the input box",
                 p.data.inputs.nrows()
             ))
             .on_hover_text(&p.data.origin);
         }
         None => {
-            ui.label("Probe: reading…");
+            ui.label("Reference data: reading…");
         }
     }
+    let warned = uniform_warning_ui(ui, state, actions);
     ui.horizontal(|ui| {
-        if ui.small_button("Open probe data…").clicked() {
+        if !warned && ui.small_button("Open reference data…").clicked() {
             actions.push(Action::OpenProbeDialog);
         }
         if state.probe.as_ref().is_some_and(|p| p.path.is_some())
-            && ui.small_button("Use uniform probe").clicked()
+            && ui.small_button("Use uniform samples").clicked()
         {
             actions.push(Action::UniformProbe);
         }
     });
 }
+
+/// Accuracy on labelled reference data, overall and per class, and the confusion matrix
+/// (rows: true class, columns: predicted class) in a collapsible section.
+fn accuracy_ui(ui: &mut egui::Ui, net: &Network, c: &Confusion) {
+    let Some(acc) = c.accuracy() else {
+        return;
+    };
+    ui.label(format!(
+        "Accuracy on the reference data: {} of {} samples",
+        format::accuracy(acc),
+        c.total()
+    ))
+    .on_hover_text(
+        "Predicted class: the output unit with the largest value. Per class and confusion \
+         matrix below.",
+    );
+    let names: Vec<String> = (0..c.classes())
+        .map(|k| {
+            net.layers()
+                .last()
+                .and_then(|l| l.labels.as_ref())
+                .and_then(|l| l.get(k).cloned())
+                .unwrap_or_else(|| k.to_string())
+        })
+        .collect();
+    egui::CollapsingHeader::new("Per class and confusion matrix")
+        .id_salt("confusion")
+        .show(ui, |ui| {
+            egui::Grid::new("confusion-grid")
+                .striped(true)
+                .spacing([8.0, 2.0])
+                .show(ui, |ui| {
+                    ui.small("true \\ predicted");
+                    for n in &names {
+                        ui.small(n);
+                    }
+                    ui.small("accuracy");
+                    ui.end_row();
+                    for (t, name) in names.iter().enumerate() {
+                        ui.small(name);
+                        for (p, predicted) in names.iter().enumerate() {
+                            let n = c.count(t, p);
+                            let text = egui::RichText::new(n.to_string()).small();
+                            let text = if t == p { text.strong() } else { text };
+                            ui.label(text).on_hover_text(format!(
+                                "{n} samples of class {name} predicted as {predicted}"
+                            ));
+                        }
+                        let per = c.class_accuracy(t).map_or("–".to_owned(), format::accuracy);
+                        ui.label(egui::RichText::new(per).small())
+                            .on_hover_text(format!("accuracy on class {name}"));
+                        ui.end_row();
+                    }
+                });
+            let missing: u64 = (0..c.classes()).map(|t| c.no_prediction(t)).sum();
+            if missing > 0 {
+                ui.small(format!(
+                    "{missing} samples gave no finite output (counted as wrong)."
+                ));
+            }
+            if c.unknown_label() > 0 {
+                ui.small(format!(
+                    "{} samples carry a label that is not a class of the model (left out).",
+                    c.unknown_label()
+                ));
+            }
+        });
+}
+
+/// The warning shown wherever screening results appear while no reference data is open:
+/// the units were run on uniform samples of the input box, and may fire on noise that real
+/// data never produces, with a button to open a file. Draws nothing (and returns false) when
+/// a file is in use.
+pub fn uniform_warning_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) -> bool {
+    let uniform = state.probe.as_ref().is_some_and(|p| p.path.is_none());
+    if uniform {
+        ui.colored_label(ui.visuals().warn_fg_color, UNIFORM_WARNING)
+            .on_hover_text(
+                "Open a file of real inputs (CSV or .npy, one sample per row) to screen on data \
+                 the model meets. A file named like the model with -probe.csv, -probe.npy, \
+                 -reference.csv or -reference.npy beside it opens by itself.",
+            );
+        if ui.small_button("Open reference data…").clicked() {
+            actions.push(Action::OpenProbeDialog);
+        }
+    }
+    uniform
+}
+
+/// The text of [`uniform_warning_ui`].
+pub const UNIFORM_WARNING: &str = "No reference data: screened on uniform samples of the input box. Units may fire on noise that real data never produces.";
 
 /// One selectable entry per layer, each with its health summary.
 fn layer_list_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network) {
@@ -260,7 +368,7 @@ fn summary_line(state: &AppState, layer: usize, is_output: bool) -> Vec<String> 
         match health(state, layer) {
             Some(h) => {
                 let mut parts = vec![format!(
-                    "dead: {} proven, {} on probe",
+                    "dead: {} proven, {} on reference data",
                     h.dead_proven, h.dead_on_probe
                 )];
                 parts.push(format!("rarely active: {}", h.rare));

@@ -64,18 +64,21 @@ fn file_menu_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) 
         actions.push(Action::OpenRunDialog);
     }
     ui.separator();
-    let probe = Button::new("Open probe data…").shortcut_text(shortcut(ui, Key::P));
+    let probe = Button::new("Open reference data…").shortcut_text(shortcut(ui, Key::P));
     if ui.add(probe).clicked() {
         actions.push(Action::OpenProbeDialog);
     }
     recent_menu(
         ui,
-        "Recent probe data",
+        "Recent reference data",
         &state.prefs.recent_probes,
         actions,
         Action::OpenProbe,
     );
-    if ui.button("Use the uniform probe").clicked() {
+    if ui
+        .button("Use uniform samples (no reference data)")
+        .clicked()
+    {
         actions.push(Action::UniformProbe);
     }
     ui.separator();
@@ -145,7 +148,7 @@ pub fn help_ui(ctx: &egui::Context, open: &mut bool, longest_busy_frame: Duratio
                         ),
                         ("Tab", "switch between Units and Sparsity"),
                         ("Esc", "stop the running analysis"),
-                        ("Ctrl+O / Ctrl+P", "open a model / probe data"),
+                        ("Ctrl+O / Ctrl+P", "open a model / reference data"),
                         ("Ctrl+E", "export sparsity statistics (CSV)"),
                         ("Ctrl+K", "compact the model (remove provably dead units)"),
                     ] {

@@ -401,8 +401,8 @@ impl ReceptorApp {
                     .add_filter("model (receptor JSON, ONNX)", &["json", "onnx"])
                     .pick_file(),
                 Pick::Probe => d
-                    .set_title("Open probe data")
-                    .add_filter("probe data (CSV, NumPy)", &["csv", "npy"])
+                    .set_title("Open reference data")
+                    .add_filter("reference data (CSV, NumPy)", &["csv", "npy"])
                     .pick_file(),
                 Pick::Export(kind) => {
                     let (name, exts) = kind.filter();
@@ -613,7 +613,7 @@ fn drop_overlay(ctx: &egui::Context) {
     painter.text(
         rect.center(),
         egui::Align2::CENTER_CENTER,
-        "Drop a model (.json, .onnx), a training run (a folder or several models) or probe data (.csv, .npy)",
+        "Drop a model (.json, .onnx), a training run (a folder or several models) or reference data (.csv, .npy)",
         egui::TextStyle::Heading.resolve(&ctx.global_style()),
         egui::Color32::WHITE,
     );

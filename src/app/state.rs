@@ -80,7 +80,7 @@ pub enum MapView {
     Weights,
     /// The input inside the box that drives the unit's pre-activation highest.
     Preferred,
-    /// The gradient of the unit's pre-activation at the mean probe input.
+    /// The gradient of the unit's pre-activation at the mean reference input.
     Sensitivity,
     /// Integrated gradients of the unit for one probe sample.
     Attribution,
@@ -157,7 +157,10 @@ pub struct Prefs {
     pub recent_models: Vec<PathBuf>,
     /// Probe files opened recently, newest first.
     pub recent_probes: Vec<PathBuf>,
-    /// Per-unit or per-layer colour scale.
+    /// Per-unit or per-layer colour scale. Saved under a new name since the default became
+    /// "shared by layer", so a per-unit scale saved by an older version as its default does
+    /// not come back.
+    #[serde(rename = "colour_scale")]
     pub scale: ScaleMode,
     /// Preferred-input search options (the same defaults as `receptor prefer`, so the app
     /// and the command line agree).
@@ -176,6 +179,9 @@ pub struct Prefs {
     pub use_prior: bool,
     /// Baseline of the attribution map: the probe's mean (true) or the box centre.
     pub attribution_from_mean: bool,
+    /// The reference data last used with each model, keyed by the model's canonical path
+    /// ([`Prefs::model_key`]); opened again with the model.
+    pub reference_for: std::collections::BTreeMap<String, PathBuf>,
 }
 
 impl Default for Prefs {
@@ -191,17 +197,77 @@ impl Default for Prefs {
             map_view: MapView::default(),
             use_prior: true,
             attribution_from_mean: false,
+            reference_for: std::collections::BTreeMap::new(),
         }
     }
 }
 
 impl Prefs {
+    /// The key of a model in [`Prefs::reference_for`]: its canonical path (the path as given
+    /// when it cannot be resolved), so the same file reached by two names is one model.
+    pub fn model_key(model: &std::path::Path) -> String {
+        std::fs::canonicalize(model)
+            .unwrap_or_else(|_| model.to_path_buf())
+            .to_string_lossy()
+            .into_owned()
+    }
+
+    /// The reference data to open with `model`, and why: the file remembered for it when it
+    /// still exists, else a file beside the model named after it
+    /// ([`crate::probe::beside_model`]); `None`: uniform samples of the box.
+    pub fn reference_to_open(&self, model: &std::path::Path) -> Option<(PathBuf, ReferenceOrigin)> {
+        if let Some(p) = self.reference_for.get(&Self::model_key(model))
+            && p.is_file()
+        {
+            return Some((p.clone(), ReferenceOrigin::Remembered));
+        }
+        crate::probe::beside_model(model).map(|p| (p, ReferenceOrigin::BesideModel))
+    }
+
+    /// Remembers `reference` as the reference data of `model` (`None`: uniform samples, the
+    /// model's entry is forgotten).
+    pub fn remember_reference(
+        &mut self,
+        model: &std::path::Path,
+        reference: Option<&std::path::Path>,
+    ) {
+        let key = Self::model_key(model);
+        match reference {
+            Some(r) => {
+                let r = std::fs::canonicalize(r).unwrap_or_else(|_| r.to_path_buf());
+                self.reference_for.insert(key, r);
+            }
+            None => {
+                self.reference_for.remove(&key);
+            }
+        }
+    }
+
     /// Puts `path` first in `list`, without duplicates, keeping at most [`RECENT_LIMIT`].
     pub fn remember(list: &mut Vec<PathBuf>, path: &std::path::Path) {
         let p = std::fs::canonicalize(path).unwrap_or_else(|_| path.to_path_buf());
         list.retain(|q| q != &p);
         list.insert(0, p);
         list.truncate(RECENT_LIMIT);
+    }
+}
+
+/// Why the reference data in use was opened without being asked for.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ReferenceOrigin {
+    /// It was last used with this model.
+    Remembered,
+    /// It lies beside the model and carries its name.
+    BesideModel,
+}
+
+impl ReferenceOrigin {
+    /// How the model summary says it.
+    pub fn describe(self) -> &'static str {
+        match self {
+            ReferenceOrigin::Remembered => "opened again: last used with this model",
+            ReferenceOrigin::BesideModel => "found beside the model",
+        }
     }
 }
 
@@ -241,6 +307,8 @@ pub struct OpenProbe {
     pub reference: Option<Arc<Reference>>,
     /// Why the reference could not be made from the probe file.
     pub reference_error: Option<String>,
+    /// The model's confusion matrix on labelled reference data (`None` without labels).
+    pub confusion: Option<Arc<crate::analysis::accuracy::Confusion>>,
 }
 
 impl OpenProbe {
@@ -388,7 +456,7 @@ pub struct Results {
     pub activity: Slot<Arc<ActivityResult>>,
     /// Preferred inputs per layer (model only).
     pub preferred: HashMap<usize, LayerPreferred>,
-    /// Sensitivity maps per layer at the mean probe input (model and probe).
+    /// Sensitivity maps per layer at the mean reference input (model and probe).
     pub sensitivity: HashMap<usize, Slot<Arc<Sensitivity>>>,
     /// The pruning curve (model and a labelled probe).
     pub sweep: Slot<Arc<Vec<SweepPoint>>>,
@@ -598,6 +666,8 @@ pub struct RunState {
     pub last_probe: u64,
     /// Open the demo's probe file once the demo model is in.
     pub demo_probe_pending: bool,
+    /// Why the reference data being opened (or in use) was chosen without being asked for.
+    pub reference_origin: Option<ReferenceOrigin>,
     /// Work was cancelled and is not complete.
     pub stopped: bool,
     /// Longest frame (time spent in `ui`) while work was running.
@@ -874,7 +944,7 @@ pub fn is_problem(status: Status) -> bool {
 pub fn status_words(status: Status) -> &'static str {
     match status {
         Status::DeadProven => "dead (proven over the whole input box)",
-        Status::DeadOnProbe => "dead on the probe",
+        Status::DeadOnProbe => "dead on the reference data",
         Status::RarelyActive => "rarely active",
         Status::AlwaysActive => "always active",
         Status::Saturated => "saturated",
@@ -886,6 +956,51 @@ pub fn status_words(status: Status) -> &'static str {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn reference_data_is_remembered_per_model_and_found_beside_it() {
+        let dir = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+        let write = |name: &str| {
+            let p = dir.path().join(name);
+            std::fs::write(&p, "x\n").unwrap_or_else(|e| panic!("{e}"));
+            p
+        };
+        let model = write("net.json");
+        let other = write("other.json");
+        let mut prefs = Prefs::default();
+        assert_eq!(prefs.reference_to_open(&model), None);
+        // A file named after the model, beside it.
+        let beside = write("net-reference.npy");
+        assert_eq!(
+            prefs.reference_to_open(&model),
+            Some((beside.clone(), ReferenceOrigin::BesideModel))
+        );
+        // A file used with the model is opened again, before the one beside it, and only
+        // for that model (the key is the canonical path: a second name of the same file
+        // finds it too).
+        let data = write("my-data.csv");
+        prefs.remember_reference(&model, Some(&data));
+        let canonical = std::fs::canonicalize(&data).unwrap_or_else(|e| panic!("{e}"));
+        let again = dir.path().join(".").join("net.json");
+        assert_eq!(
+            prefs.reference_to_open(&again),
+            Some((canonical, ReferenceOrigin::Remembered))
+        );
+        assert_eq!(prefs.reference_to_open(&other), None);
+        // The memory survives a round trip through the saved preferences.
+        let text = serde_json::to_string(&prefs).unwrap_or_else(|e| panic!("{e}"));
+        let back: Prefs = serde_json::from_str(&text).unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(back.reference_for, prefs.reference_for);
+        // A remembered file that is gone falls back to the one beside the model; choosing
+        // uniform samples forgets the model's entry.
+        std::fs::remove_file(&data).unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(
+            prefs.reference_to_open(&model),
+            Some((beside.clone(), ReferenceOrigin::BesideModel))
+        );
+        prefs.remember_reference(&model, None);
+        assert!(prefs.reference_for.is_empty());
+    }
 
     #[test]
     fn preferences_from_an_older_file_fall_back_to_defaults() {

@@ -16,7 +16,7 @@ pub enum ThumbKind {
     Cells(bool),
     /// Preferred input.
     Preferred,
-    /// Sensitivity at the mean probe input.
+    /// Sensitivity at the mean reference input.
     Sensitivity(bool),
     /// A probe sample (row index).
     Sample(usize),

@@ -65,7 +65,7 @@ pub fn ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action>) {
             ui.label(dead_summary(tl, k));
             if let Some(Some(acc)) = tl.accuracy.get(k) {
                 ui.separator();
-                ui.label(format!("Accuracy on the probe: {:.1}%", acc * 100.0));
+                ui.label(format!("Accuracy on the reference data: {:.1}%", acc * 100.0));
             }
         }
     });
@@ -132,7 +132,7 @@ fn header_ui(ui: &mut egui::Ui, t: &TrainingRun, actions: &mut Vec<Action>) {
                         .desired_width(140.0)
                         .show_percentage(),
                 );
-                ui.label("Analysing every checkpoint on the probe…");
+                ui.label("Analysing every checkpoint on the reference data…");
                 if ui.button("Stop analysing the run").clicked() {
                     actions.push(Action::StopRunAnalysis);
                 }
@@ -159,7 +159,7 @@ fn header_ui(ui: &mut egui::Ui, t: &TrainingRun, actions: &mut Vec<Action>) {
     });
 }
 
-/// "Dead units at this checkpoint: 36 (h1 24, h2 12)": never active on the probe, proven
+/// "Dead units at this checkpoint: 36 (h1 24, h2 12)": never active on the reference data, proven
 /// dead or not, per screened layer.
 pub fn dead_summary(tl: &Timeline, checkpoint: usize) -> String {
     let rows: Vec<_> = tl
@@ -272,12 +272,12 @@ fn sparsity_plot_ui(ui: &mut egui::Ui, tl: &Timeline, current: f64, actions: &mu
 fn accuracy_plot_ui(ui: &mut egui::Ui, tl: &Timeline, current: f64, actions: &mut Vec<Action>) {
     if !tl.labelled() {
         ui.label(RichText::new("Accuracy").small().strong());
-        ui.weak("Open labelled probe data (a label column) to see the accuracy.");
+        ui.weak("Open labelled reference data (a label column) to see the accuracy.");
         return;
     }
     step_plot(
         ui,
-        ("run-accuracy", "Accuracy on the probe", "%"),
+        ("run-accuracy", "Accuracy on the reference data", "%"),
         tl,
         current,
         actions,
@@ -329,7 +329,7 @@ fn unit_history_ui(
         left,
         (
             "run-unit-active",
-            &format!("{name}: active on the probe"),
+            &format!("{name}: active on the reference data"),
             "% of samples",
         ),
         &[("active", series(&|p| p.active_frac * 100.0), 0)],
@@ -379,7 +379,7 @@ fn history_plot(
         });
 }
 
-/// When a unit died: the key from which it stays never active on the probe, or `None`.
+/// When a unit died: the key from which it stays never active on the reference data, or `None`.
 fn died_at(u: &UnitTimeline) -> Option<u64> {
     match (u.first_dead_on_probe, u.first_dead_proven) {
         (Some(a), Some(b)) => Some(a.min(b)),

@@ -31,7 +31,7 @@ impl UnitsPanel {
         ui: &mut egui::Ui,
         state: &mut AppState,
         thumbs: &mut Thumbs,
-        _actions: &mut Vec<Action>,
+        actions: &mut Vec<Action>,
     ) {
         let Some(net) = state.net().cloned() else {
             return;
@@ -41,6 +41,10 @@ impl UnitsPanel {
             return;
         }
         self.toolbar_ui(ui, state, layer);
+        // The problem units are the screening's verdicts: say when they rest on noise.
+        if state.prefs.problems_only {
+            super::layers::uniform_warning_ui(ui, state, actions);
+        }
         let order = state.order(layer);
         self.keyboard(ui, state, layer, &order);
 
@@ -142,6 +146,7 @@ impl UnitsPanel {
                 .labelled_by(label.id);
             ui.checkbox(&mut state.prefs.problems_only, "Problem units only");
         });
+        ui.horizontal(|ui| super::colour::scale_switch_ui(ui, &mut state.prefs.scale));
         ui.horizontal(|ui| {
             ui.add(
                 egui::Slider::new(&mut state.prefs.tile_size, 32.0..=160.0)

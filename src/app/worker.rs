@@ -93,7 +93,7 @@ pub enum Job {
         /// The baseline, `[input size]`.
         baseline: Arc<Vec<f32>>,
     },
-    /// Sensitivity of every unit of `layer` at the mean probe input.
+    /// Sensitivity of every unit of `layer` at the mean reference input.
     Sensitivity {
         /// Layer index.
         layer: usize,
@@ -135,9 +135,13 @@ impl Job {
         };
         match self {
             Job::Model => "Computing sparsity statistics and bounds".into(),
-            Job::LoadProbe(ProbeChoice::Uniform) => "Drawing the uniform probe".into(),
-            Job::LoadProbe(ProbeChoice::File(p)) => format!("Reading probe {}", p.display()),
-            Job::Probe(_) => "Screening units on the probe".into(),
+            Job::LoadProbe(ProbeChoice::Uniform) => {
+                "Drawing uniform samples of the input box".into()
+            }
+            Job::LoadProbe(ProbeChoice::File(p)) => {
+                format!("Reading reference data {}", p.display())
+            }
+            Job::Probe(_) => "Screening units on the reference data".into(),
             Job::Prefer { layer, units, .. } => format!(
                 "Searching preferred inputs of layer {} (units {}..{})",
                 lname(*layer),
@@ -148,7 +152,7 @@ impl Job {
                 format!("Computing sensitivity of layer {}", lname(*layer))
             }
             Job::Attribute { key, .. } => format!(
-                "Attributing unit {} of layer {} for probe row {}",
+                "Attributing unit {} of layer {} for reference row {}",
                 key.unit,
                 lname(key.layer),
                 key.row
@@ -708,11 +712,20 @@ fn load_probe(net: &Network, choice: &ProbeChoice) -> Result<OpenProbe> {
         },
         None => (None, None),
     };
+    let confusion = data.labels.as_ref().map(|labels| {
+        Arc::new(crate::analysis::accuracy::confusion(
+            net,
+            data.inputs.view(),
+            labels,
+            TRACE_CHUNK,
+        ))
+    });
     Ok(OpenProbe {
         data: Arc::new(data),
         mean: Arc::new(mean),
         path,
         reference,
         reference_error,
+        confusion,
     })
 }

@@ -64,8 +64,9 @@ pub struct Cli {
     /// The input box of the model opened in the app.
     #[command(flatten)]
     pub input_box: BoxArgs,
-    /// Probe data (.csv or .npy) to open in the desktop app with MODEL (default: uniform
-    /// samples of the input box; the demo's own labelled probe for the demo).
+    /// Reference data (.csv or .npy): the samples the app runs MODEL on (default: a file
+    /// named like the model with -probe or -reference before .csv/.npy beside it, else the
+    /// one last used with this model, else uniform samples of the input box).
     #[arg(long, value_name = "DATA")]
     pub probe: Option<PathBuf>,
 
@@ -352,8 +353,9 @@ pub fn load_model(model: &Path, allow_outside_paths: bool, input_box: &BoxArgs) 
 /// Options choosing the probe of `screen` and `check`.
 #[derive(Debug, Clone, Args)]
 pub struct ProbeArgs {
-    /// Probe data: a .csv or .npy file, one sample per row, columns in input order.
-    /// Default: samples drawn uniformly from the input box.
+    /// Reference data: the samples the model is run on, a .csv or .npy file, one sample per
+    /// row, columns in input order. Default: samples drawn uniformly from the input box
+    /// (units may then fire on noise that real data never produces).
     #[arg(long, value_name = "DATA")]
     pub probe: Option<PathBuf>,
 

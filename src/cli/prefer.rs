@@ -104,7 +104,8 @@ pub struct PreferArgs {
     /// Also draw the preferred input(s) as a PNG image (on a convolutional layer cropped to
     /// the receptive field of the chosen position): black is the low end of the input
     /// box, white the high end (mid grey is its centre); a grid of tiles for --all; a
-    /// vector layout is drawn as one strip per unit; magenta marks a non-finite value. The
+    /// vector layout is drawn as one strip per unit; yellow marks a non-finite value. Each
+    /// tile carries its unit index, and the grey key with the box's ends is drawn below. The
     /// app's export of a layer's grid draws the same picture.
     #[arg(long, value_name = "FILE")]
     pub png: Option<PathBuf>,
@@ -222,11 +223,13 @@ pub fn run(args: &PreferArgs) -> Result<ExitCode> {
 /// ([`picture::preferred_grid`]), the same pixels as the app's grid export.
 ///
 /// Image layouts: one tile per unit (height x width, grey for one channel, colour for
-/// three), tiles in a near-square grid in unit order, row by row. Vector layouts: one
-/// horizontal strip per unit, strips stacked top to bottom.
+/// three), tiles in a near-square grid in unit order, row by row, each under its unit index.
+/// Vector layouts: one horizontal strip per unit, strips stacked top to bottom, the index
+/// to the left. The grey key of the input box (low end, centre, high end) is drawn below.
 /// On a convolutional layer each tile is cropped to the receptive field of the maximised
 /// position ([`crate::analysis::fields::Field::region`]).
 pub fn render_png(net: &Network, layer: usize, found: &[Preferred]) -> Result<Vec<u8>> {
+    let units: Vec<usize> = found.iter().map(|p| p.unit).collect();
     if let Some(pos) = found.first().and_then(|p| p.position) {
         let (rows, cols) = receptive_fields(net)[layer].region(pos, input_hw(net));
         let crops: Vec<(crate::model::InputSpec, Vec<f32>)> = found
@@ -237,10 +240,10 @@ pub fn render_png(net: &Network, layer: usize, found: &[Preferred]) -> Result<Ve
             return picture::preferred_grid(net.input(), &[])?.png_bytes();
         };
         let inputs: Vec<Option<&[f32]>> = crops.iter().map(|c| Some(c.1.as_slice())).collect();
-        return picture::preferred_grid(&spec, &inputs)?.png_bytes();
+        return picture::preferred_grid_for(&spec, &inputs, &units)?.png_bytes();
     }
     let inputs: Vec<Option<&[f32]>> = found.iter().map(|p| Some(p.input.as_slice())).collect();
-    picture::preferred_grid(net.input(), &inputs)?.png_bytes()
+    picture::preferred_grid_for(net.input(), &inputs, &units)?.png_bytes()
 }
 
 /// The input image's `(height, width)`, `(1, size)` for a vector layout.

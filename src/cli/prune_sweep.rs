@@ -24,7 +24,7 @@ pub struct PruneSweepArgs {
     #[arg(value_name = "MODEL")]
     pub model: PathBuf,
 
-    /// Labelled probe data: a .csv file with a header naming a `label` column.
+    /// Labelled reference data: a .csv file with a header naming a `label` column.
     #[arg(long, value_name = "DATA")]
     pub probe: Option<PathBuf>,
 

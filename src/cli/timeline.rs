@@ -6,8 +6,8 @@ use crate::analysis::Silent;
 use crate::analysis::screen::{DEFAULT_RARE_FRACTION, ScreenOptions};
 use crate::analysis::timeline::{TimelineOptions, timeline};
 use crate::error::Result;
-use crate::model::LoadOptions;
 use crate::model::series::Series;
+use crate::model::{DEFAULT_BOX, LoadOptions, is_onnx};
 use crate::probe;
 use crate::report::table::{Cell, Stop, emit};
 use crate::report::tables::{self, TimelineTable};
@@ -79,6 +79,18 @@ pub fn run(args: &TimelineArgs) -> Result<ExitCode> {
         allow_outside_paths: args.common.allow_outside_paths,
         input_box: args.common.input_box.to_input_box(),
     };
+    // ONNX files carry no input box; say so once, as `load_model` does for one model.
+    let given = &load.input_box;
+    if (given.low.is_none() || given.high.is_none())
+        && let Some(c) = series.checkpoints().iter().find(|c| is_onnx(&c.path))
+    {
+        eprintln!(
+            "receptor: {}: ONNX checkpoints carry no input box unless their metadata has one: the default [{}, {}] is used for a missing end, and bounds and screening depend on it (give --low and --high to set it)",
+            c.path.display(),
+            DEFAULT_BOX.0,
+            DEFAULT_BOX.1
+        );
+    }
     let mut told = false;
     let mut open_probe = |net: &crate::model::Network| match &args.probe {
         Some(p) => probe::open(p, net),

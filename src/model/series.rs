@@ -6,7 +6,7 @@
 //! order of the file names (`ckpt-2` before `ckpt-10`); a series where some files have a
 //! step and others do not is refused (the order would be a guess).
 //!
-//! Listing reads only each file's `"step"` (the JSON is streamed past, nothing else is kept;
+//! Listing reads only each file's `"step"` (the JSON is parsed past, nothing else is built;
 //! ONNX files carry no step). [`Series::networks`] then loads one checkpoint at a time, so
 //! a caller that drops each [`Network`] before asking for the next holds one checkpoint's
 //! weights. Every checkpoint must have the architecture of the first: the same input size
@@ -444,7 +444,7 @@ struct StepOnly {
 }
 
 /// The top-level `"step"` of the model file at `path`, read without keeping anything else
-/// (the JSON is streamed; every other value is skipped). ONNX files have none.
+/// (every other value is skipped, not built). ONNX files have none.
 ///
 /// Errors: the file cannot be opened; it is not JSON; its `"step"` is not a whole number
 /// from 0 (the rule of the model reader).
@@ -453,8 +453,10 @@ pub fn read_step(path: &Path) -> Result<Option<u64>> {
         std::fs::metadata(path).map_err(|e| Error::io(path, "cannot read", e))?;
         return Ok(None);
     }
-    let file = std::fs::File::open(path).map_err(|e| Error::io(path, "cannot read", e))?;
-    let raw: StepOnly = serde_json::from_reader(std::io::BufReader::new(file))
+    // Parsing from the bytes is several times faster than from a reader; the bytes are
+    // dropped before the next file is read.
+    let bytes = std::fs::read(path).map_err(|e| Error::io(path, "cannot read", e))?;
+    let raw: StepOnly = serde_json::from_slice(&bytes)
         .map_err(|e| Error::model(path, format!("not a JSON model file: {e}")))?;
     super::json::parse_step(raw.step.as_ref()).map_err(|p| Error::model(path, p))
 }

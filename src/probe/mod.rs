@@ -139,3 +139,70 @@ pub fn read_all(source: &mut dyn ProbeSource) -> Result<ProbeData> {
         origin,
     })
 }
+
+/// Suffixes of a reference-data file named after its model, in the order they are tried:
+/// `digits.json` finds `digits-probe.csv`, then `digits-probe.npy`, `digits-reference.csv`,
+/// `digits-reference.npy`.
+pub const BESIDE_MODEL_SUFFIXES: [&str; 4] = [
+    "-probe.csv",
+    "-probe.npy",
+    "-reference.csv",
+    "-reference.npy",
+];
+
+/// The reference-data file that lies beside `model` and carries its stem (see
+/// [`BESIDE_MODEL_SUFFIXES`]), if one exists as a regular file. Only looks at names; nothing
+/// is read.
+pub fn beside_model(model: &Path) -> Option<std::path::PathBuf> {
+    let stem = model.file_stem()?.to_str()?;
+    let dir = model.parent().unwrap_or_else(|| Path::new(""));
+    BESIDE_MODEL_SUFFIXES
+        .iter()
+        .map(|suffix| dir.join(format!("{stem}{suffix}")))
+        .find(|p| p.is_file())
+}
+
+#[cfg(test)]
+mod beside_tests {
+    use super::*;
+
+    #[test]
+    fn finds_the_file_named_after_the_model_in_order() {
+        let dir = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+        let model = dir.path().join("digits.json");
+        let touch = |name: &str| {
+            std::fs::write(dir.path().join(name), "x\n").unwrap_or_else(|e| panic!("{e}"));
+        };
+        touch("digits.json");
+        assert_eq!(beside_model(&model), None, "nothing beside it yet");
+        // Files that do not carry the stem, or another extension, are not taken.
+        touch("digit-probe.csv");
+        touch("digits-probe.txt");
+        touch("other-reference.npy");
+        std::fs::create_dir(dir.path().join("digits-probe.npy")).unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(beside_model(&model), None, "a folder is not a file");
+        touch("digits-reference.npy");
+        assert_eq!(
+            beside_model(&model),
+            Some(dir.path().join("digits-reference.npy"))
+        );
+        touch("digits-reference.csv");
+        assert_eq!(
+            beside_model(&model),
+            Some(dir.path().join("digits-reference.csv"))
+        );
+        touch("digits-probe.csv");
+        assert_eq!(
+            beside_model(&model),
+            Some(dir.path().join("digits-probe.csv"))
+        );
+        // The stem is the name without its last extension, for .onnx models too.
+        let onnx = dir.path().join("digits.onnx");
+        assert_eq!(
+            beside_model(&onnx),
+            Some(dir.path().join("digits-probe.csv"))
+        );
+        // A bare name without a folder looks in the current folder, and finds nothing here.
+        assert_eq!(beside_model(Path::new("no-such-model-xyz.json")), None);
+    }
+}

@@ -13,10 +13,12 @@
 //! - an input value is a grey level over its box: the low end black (0), the high end white
 //!   (255), `round(255 (x - low) / (high - low))`, clamped; a degenerate box (low = high)
 //!   draws its centre grey (128); three-channel images show the colour itself;
-//! - a non-finite value (a search that diverged, an overflowed weight) is [`NON_FINITE`]
-//!   magenta, which is neither a grey nor a colour of the key;
+//! - a non-finite value (a search that diverged, an overflowed weight) is [`NON_FINITE`],
+//!   the colour key's no-value yellow (`no_value` of `assets/colour-key.json`, shown in the
+//!   legend too), which is neither a grey nor a colour of the key;
 //! - grid gaps are a muted blue ([`GAP`]), distinct from every grey.
 
+use super::annotate::{self, GridKey};
 use super::colour::{ColourKey, ScaleMode, symmetric_max};
 use crate::error::{Error, Result};
 use crate::model::{InputSpec, Layout};
@@ -26,8 +28,10 @@ use std::path::Path;
 /// One pixel: 8-bit sRGB red, green, blue and straight (unmultiplied) alpha.
 pub type Rgba = [u8; 4];
 
-/// Colour of a non-finite value: magenta, neither a grey nor a colour of the key.
-pub const NON_FINITE: Rgba = [255, 0, 255, 255];
+/// Colour of a non-finite value: the key's no-value colour (`no_value` in
+/// `assets/colour-key.json`, a vivid yellow), neither a grey nor a colour of the key. A test
+/// keeps the two equal, so the screen, the PNGs and the legend agree.
+pub const NON_FINITE: Rgba = [250, 232, 20, 255];
 
 /// Fully transparent: the gaps between channel panels and cells past the last unit.
 pub const TRANSPARENT: Rgba = [0, 0, 0, 0];
@@ -47,7 +51,7 @@ const CHANNEL_GAP: usize = 1;
 
 /// Largest picture a grid may have, in pixels (256 Mi pixels, 1 GiB of RGBA): a guard against
 /// a layer so wide or an input so large that the image could not be held in memory.
-const MAX_PIXELS: u64 = 1 << 28;
+pub(crate) const MAX_PIXELS: u64 = 1 << 28;
 
 /// An image: `width x height` pixels, row by row from the top left.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -158,9 +162,26 @@ impl Picture {
         out
     }
 
+    /// Fills the `width x height` box with its top left at (`x0`, `y0`) with `colour`; parts
+    /// outside the picture are left out.
+    pub fn fill_rect(&mut self, x0: usize, y0: usize, width: usize, height: usize, colour: Rgba) {
+        let x1 = x0.saturating_add(width).min(self.width);
+        let y1 = y0.saturating_add(height).min(self.height);
+        for y in y0.min(y1)..y1 {
+            self.pixels[y * self.width + x0.min(x1)..y * self.width + x1].fill(colour);
+        }
+    }
+
     /// Draws `tile` enlarged `sx x sy` with its top left at (`x0`, `y0`); the caller makes
     /// sure it fits.
-    fn paste_zoomed(&mut self, tile: &Picture, x0: usize, y0: usize, sx: usize, sy: usize) {
+    pub(crate) fn paste_zoomed(
+        &mut self,
+        tile: &Picture,
+        x0: usize,
+        y0: usize,
+        sx: usize,
+        sy: usize,
+    ) {
         for y in 0..tile.height * sy {
             let src = &tile.pixels[(y / sy) * tile.width..][..tile.width];
             let dst = &mut self.pixels[(y0 + y) * self.width + x0..][..tile.width * sx];
@@ -408,23 +429,28 @@ impl Arrangement {
 
 /// Where the tiles of a grid go: enlargement, columns and the picture's size.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
-struct GridGeometry {
+pub(crate) struct GridGeometry {
     /// Enlargement across and down.
-    sx: usize,
-    sy: usize,
+    pub(crate) sx: usize,
+    pub(crate) sy: usize,
     /// Tiles per row.
-    cols: usize,
+    pub(crate) cols: usize,
     /// Distance from one tile's top left to the next one's, across and down.
-    step_x: usize,
-    step_y: usize,
+    pub(crate) step_x: usize,
+    pub(crate) step_y: usize,
     /// Size of the whole picture.
-    width: usize,
-    height: usize,
+    pub(crate) width: usize,
+    pub(crate) height: usize,
 }
 
 /// The geometry of a grid of `n` tiles of `tw x th` pixels, refused when the picture would
 /// exceed [`MAX_PIXELS`] (checked before anything is allocated).
-fn grid_geometry(tw: usize, th: usize, n: usize, arrangement: Arrangement) -> Result<GridGeometry> {
+pub(crate) fn grid_geometry(
+    tw: usize,
+    th: usize,
+    n: usize,
+    arrangement: Arrangement,
+) -> Result<GridGeometry> {
     let (tw, th, n) = (tw.max(1), th.max(1), n.max(1));
     let (sx, sy, cols) = match arrangement {
         Arrangement::Square => {
@@ -471,26 +497,61 @@ pub fn tile_grid(tiles: &[Picture], arrangement: Arrangement) -> Result<Picture>
     Ok(out)
 }
 
-/// The grid of preferred inputs of a layer ([`input_picture`] tiles in the given order,
-/// [`Arrangement::for_input`]); `None` is a search that has not finished, drawn as a
-/// [`MISSING`] tile. `receptor prefer --png` and the app's grid export both draw this.
-///
-/// # Errors
-/// When the picture would exceed 2^28 pixels.
-pub fn preferred_grid(spec: &InputSpec, inputs: &[Option<&[f32]>]) -> Result<Picture> {
+/// The tiles of a grid of preferred inputs: [`input_picture`]s, a [`MISSING`] tile for a
+/// search that has not finished (`None`).
+fn preferred_tiles(spec: &InputSpec, inputs: &[Option<&[f32]>]) -> Vec<Picture> {
     let (w, h) = input_dims(spec, false);
-    let tiles: Vec<Picture> = inputs
+    inputs
         .iter()
         .map(|x| match x {
             Some(x) => input_picture(spec, x),
             None => Picture::filled(w, h, MISSING),
         })
-        .collect();
-    tile_grid(&tiles, Arrangement::for_input(spec))
+        .collect()
+}
+
+/// The key of input pictures: the grey ramp from the box's low end to its high end, or from
+/// 0 to 1 (fractions of each input's box) when the inputs' boxes differ.
+pub fn grey_key(spec: &InputSpec) -> GridKey {
+    let same = |v: &[f32]| v.first().filter(|&&f| v.iter().all(|&x| x == f)).copied();
+    match (same(&spec.low), same(&spec.high)) {
+        (Some(low), Some(high)) => GridKey::Grey(low, high),
+        _ => GridKey::Grey(0.0, 1.0),
+    }
+}
+
+/// The grid of preferred inputs of units `0, 1, ...` in order; see [`preferred_grid_for`].
+///
+/// # Errors
+/// When the picture would exceed 2^28 pixels.
+pub fn preferred_grid(spec: &InputSpec, inputs: &[Option<&[f32]>]) -> Result<Picture> {
+    let units: Vec<usize> = (0..inputs.len()).collect();
+    preferred_grid_for(spec, inputs, &units)
+}
+
+/// The grid of preferred inputs of `units` ([`input_picture`] tiles in the given order,
+/// [`Arrangement::for_input`]), each tile under its unit index, with the grey key of the
+/// input box below ([`annotate::labelled_grid`]); `None` is a search that has not finished,
+/// drawn as a [`MISSING`] tile. `receptor prefer --png` and the app's grid export both draw
+/// this.
+///
+/// # Errors
+/// When the picture would exceed 2^28 pixels.
+pub fn preferred_grid_for(
+    spec: &InputSpec,
+    inputs: &[Option<&[f32]>],
+    units: &[usize],
+) -> Result<Picture> {
+    let tiles = preferred_tiles(spec, inputs);
+    let (p, _) =
+        annotate::labelled_grid(&tiles, units, Arrangement::for_input(spec), grey_key(spec))?;
+    Ok(p)
 }
 
 /// The grid of first-layer weight maps (`weights: [units, input size]`), units in `order`,
-/// each a [`signed_input_map`] scaled by its own or the layer's largest |weight| (`scale`).
+/// each a [`signed_input_map`] scaled by its own or the layer's largest |weight| (`scale`),
+/// each under its unit index, with the colour key and its scale below (on a per-unit scale
+/// the key's ends read -1 and +1 of each tile's own largest |weight|).
 ///
 /// # Errors
 /// When the picture would exceed 2^28 pixels.
@@ -505,15 +566,24 @@ pub fn weight_grid(
         .into_iter()
         .map(|r| symmetric_max(&r.to_vec()))
         .fold(0.0f32, f32::max);
-    let tiles: Vec<Picture> = order
+    let units: Vec<usize> = order
         .iter()
-        .filter(|&&u| u < weights.nrows())
+        .copied()
+        .filter(|&u| u < weights.nrows())
+        .collect();
+    let tiles: Vec<Picture> = units
+        .iter()
         .map(|&u| {
             let w = weights.row(u).to_vec();
             signed_input_map(spec, &w, scale.pick(symmetric_max(&w), layer_max))
         })
         .collect();
-    tile_grid(&tiles, Arrangement::for_input(spec))
+    let key = match scale {
+        ScaleMode::SharedLayer => GridKey::Signed(Some(layer_max)),
+        ScaleMode::PerUnit => GridKey::Signed(None),
+    };
+    let (p, _) = annotate::labelled_grid(&tiles, &units, Arrangement::for_input(spec), key)?;
+    Ok(p)
 }
 
 #[cfg(test)]
@@ -586,6 +656,12 @@ mod tests {
         let [r, g, b] = key.rgb(-1.0);
         assert_eq!(signed(-5.0, 0.42), [r, g, b, 255]);
         assert_eq!(signed(f32::NAN, 1.0), NON_FINITE);
+        let [r, g, b] = key.no_value_rgb();
+        assert_eq!(
+            NON_FINITE,
+            [r, g, b, 255],
+            "picture and key file disagree on NaN"
+        );
         assert_eq!(signed(f32::INFINITY, 1.0), NON_FINITE);
     }
 
@@ -615,9 +691,8 @@ mod tests {
         // 32 px tiles and 2 px gaps: 2 + 2 (32 + 2) = 70 px square.
         let spec = image_spec(2, 2, 1, 0.0, 1.0);
         let a: &[f32] = &[1.0, 0.0, 0.0, 0.0];
-        let g = preferred_grid(&spec, &[Some(a), None, Some(a)]).unwrap_or_else(|e| {
-            panic!("{e}");
-        });
+        let tiles = preferred_tiles(&spec, &[Some(a), None, Some(a)]);
+        let g = tile_grid(&tiles, Arrangement::Square).unwrap_or_else(|e| panic!("{e}"));
         assert_eq!(g.size(), [70, 70]);
         assert_eq!(g.pixel(0, 0), Some(GAP));
         assert_eq!(g.pixel(2 + 15, 2 + 15), Some([255, 255, 255, 255]));
@@ -633,7 +708,8 @@ mod tests {
         // high: 2 + 4 * 16 + 2 = 68 wide, 2 + 5 (16 + 2) = 92 high.
         let spec = vector_spec(4);
         let x: &[f32] = &[1.0, 0.0, 0.0, 1.0];
-        let g = preferred_grid(&spec, &[Some(x); 5]).unwrap_or_else(|e| panic!("{e}"));
+        let tiles = preferred_tiles(&spec, &[Some(x); 5]);
+        let g = tile_grid(&tiles, Arrangement::Strips).unwrap_or_else(|e| panic!("{e}"));
         assert_eq!(g.size(), [68, 92]);
         assert_eq!(g.pixel(2 + 3 * 16, 2 + 4 * 18), Some([255, 255, 255, 255]));
         assert_eq!(g.pixel(2 + 16, 2 + 4 * 18 + 15), Some([0, 0, 0, 255]));
