@@ -1075,6 +1075,22 @@ fn training_run_scrubs_to_the_last_checkpoint_and_counts_its_dead_units() {
             h1 + h2
         )
     );
+    // The model summary's accuracy (the kept reference data's confusion matrix, computed
+    // for the shown checkpoint) agrees with the timeline's for that checkpoint.
+    let texts: Vec<String> = h
+        .get_all_by_label_contains("Accuracy on the reference data: ")
+        .filter_map(|n| n.value())
+        .collect();
+    let timeline_text = texts
+        .iter()
+        .find(|t| t.ends_with('%'))
+        .expect("the timeline shows the accuracy");
+    assert!(
+        texts
+            .iter()
+            .any(|t| t != timeline_text && t.starts_with(timeline_text.as_str())),
+        "the summary's accuracy is the shown checkpoint's: {texts:?}"
+    );
     // A unit that died is listed with when it died, and a click selects it.
     let first_dead = h
         .get_all_by_label_contains("h1 unit ")

@@ -196,6 +196,7 @@ fn step_plot(
         .allow_scroll(false)
         .allow_boxed_zoom(false)
         .y_axis_label(y_label)
+        .x_grid_spacer(step_grid(tl))
         .show(ui, |p| {
             add(p);
             p.vline(VLine::new("", current).color(Color32::GRAY).width(1.5));
@@ -216,6 +217,21 @@ fn step_plot(
             actions.push(Action::ScrubTo(i));
         }
     }
+}
+
+/// Grid lines on the step axis at a round spacing (1, 2 or 5 times a power of ten) that
+/// gives about four labelled lines over the run, whatever its length.
+fn step_grid(tl: &Timeline) -> impl Fn(egui_plot::GridInput) -> Vec<egui_plot::GridMark> {
+    let last = tl.steps.last().copied().unwrap_or(1).max(1) as f64;
+    let rough = last / 4.0;
+    let power = 10f64.powf(rough.log10().floor());
+    let nice = [1.0, 2.0, 5.0, 10.0]
+        .into_iter()
+        .map(|m| m * power)
+        .find(|s| *s >= rough)
+        .unwrap_or(10.0 * power)
+        .max(1.0);
+    egui_plot::uniform_grid_spacer(move |_| [nice / 5.0, nice, nice * 10.0])
 }
 
 /// One line (with points) per screened layer of a per-checkpoint value.
@@ -333,7 +349,7 @@ fn unit_history_ui(
             "% of samples",
         ),
         &[("active", series(&|p| p.active_frac * 100.0), 0)],
-        current,
+        (tl, current),
     );
     history_plot(
         right,
@@ -346,7 +362,7 @@ fn unit_history_ui(
             ("upper bound of z", series(&|p| p.upper_bound), 3),
             ("|w| (L2)", series(&|p| p.l2), 5),
         ],
-        current,
+        (tl, current),
     );
 }
 
@@ -355,7 +371,7 @@ fn history_plot(
     ui: &mut egui::Ui,
     (id, title, y_label): (&str, &str, &str),
     lines: &[(&str, Vec<[f64; 2]>, usize)],
-    current: f64,
+    (tl, current): (&Timeline, f64),
 ) {
     ui.label(RichText::new(title).small().strong());
     Plot::new(id)
@@ -365,6 +381,7 @@ fn history_plot(
         .allow_scroll(false)
         .allow_boxed_zoom(false)
         .y_axis_label(y_label)
+        .x_grid_spacer(step_grid(tl))
         .show(ui, |p| {
             for (label, pts, c) in lines {
                 let colour = color32(series_rgb(*c));

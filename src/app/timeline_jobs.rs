@@ -8,6 +8,7 @@ use super::ReceptorApp;
 use super::state::{OpenError, OpenProbe, Slot, TrainingRun};
 use super::worker::{Job, Reply};
 use crate::analysis::Progress;
+use crate::analysis::accuracy::{Confusion, confusion};
 use crate::analysis::timeline::{Timeline, TimelineOptions, timeline};
 use crate::error::{Error, Result};
 use crate::model::series::Series;
@@ -105,8 +106,9 @@ pub enum TimelineReply {
         run: u64,
         /// Its position in the series.
         index: usize,
-        /// The network and where its input box came from, or the error.
-        result: Result<Box<(Network, BoxOrigin)>>,
+        /// The network, where its input box came from, and its confusion matrix on the
+        /// labelled probe in use when it was asked for; or the error.
+        result: Result<Box<LoadedCheckpoint>>,
     },
     /// The timeline over every checkpoint.
     Analysed {
@@ -117,6 +119,40 @@ pub enum TimelineReply {
         /// The timeline, or the error.
         result: Result<Arc<Timeline>>,
     },
+}
+
+/// A checkpoint read for the unit view.
+#[derive(Debug)]
+pub struct LoadedCheckpoint {
+    net: Network,
+    box_origin: BoxOrigin,
+    /// The probe it was evaluated on and the confusion matrix there (labelled probes that
+    /// fit the network only).
+    confusion: Option<(Arc<ProbeData>, Arc<Confusion>)>,
+}
+
+/// Reads checkpoint `path` and, when `probe` is labelled and fits it, its confusion matrix
+/// there (the kept probe's accuracy must be the shown checkpoint's, not the first one's).
+fn load_checkpoint(
+    path: &std::path::Path,
+    opts: &LoadOptions,
+    probe: Option<Arc<ProbeData>>,
+) -> Result<Box<LoadedCheckpoint>> {
+    let (net, box_origin) = crate::model::load_with_origin(path, opts)?;
+    let classes = net.output_layer().units();
+    let confusion = probe.and_then(|data| {
+        let labels = data.labels.as_ref()?;
+        let fits = data.inputs.ncols() == net.input().size && labels.iter().all(|&l| l < classes);
+        fits.then(|| {
+            let c = confusion(&net, data.inputs.view(), labels, super::worker::TRACE_CHUNK);
+            (data.clone(), Arc::new(c))
+        })
+    });
+    Ok(Box::new(LoadedCheckpoint {
+        net,
+        box_origin,
+        confusion,
+    }))
 }
 
 /// How a list of dropped or given paths is named in messages.
@@ -163,12 +199,13 @@ impl ReceptorApp {
         t.loading = Some(index);
         let run = t.id;
         let opts = self.load_options();
+        let probe = self.state.probe.as_ref().map(|p| p.data.clone());
         self.worker
             .spawn_helper("receptor-open-checkpoint", move || {
                 Reply::Timeline(TimelineReply::Checkpoint {
                     run,
                     index,
-                    result: crate::model::load_with_origin(&path, &opts).map(Box::new),
+                    result: load_checkpoint(&path, &opts, probe),
                 })
             });
     }
@@ -282,10 +319,7 @@ impl ReceptorApp {
                     return;
                 }
                 match result {
-                    Ok(loaded) => {
-                        let (net, box_origin) = *loaded;
-                        self.install_checkpoint(index, net, box_origin);
-                    }
+                    Ok(loaded) => self.install_checkpoint(index, *loaded),
                     Err(e) => {
                         let err = OpenError::new(&e);
                         self.state.fail(err.text.clone());
@@ -312,7 +346,12 @@ impl ReceptorApp {
     /// Makes checkpoint `index` the open model. Within a run the probe in use and the
     /// selected unit stay (every checkpoint has the first one's architecture); the first
     /// checkpoint keeps the probe only when it fits (input size, outputs and their labels).
-    fn install_checkpoint(&mut self, index: usize, net: Network, box_origin: BoxOrigin) {
+    fn install_checkpoint(&mut self, index: usize, loaded: LoadedCheckpoint) {
+        let LoadedCheckpoint {
+            net,
+            box_origin,
+            confusion,
+        } = loaded;
         let Some(series) = self.state.training.series.clone() else {
             return;
         };
@@ -328,7 +367,12 @@ impl ReceptorApp {
                 if fits(p, old.as_ref())
                     && (p.path.is_some() || self.state.training.shown.is_some()) =>
             {
-                Some((p.clone(), self.state.selection))
+                let mut kept = p.clone();
+                // The accuracy shown beside the probe is this checkpoint's.
+                kept.confusion = confusion
+                    .filter(|(data, _)| Arc::ptr_eq(data, &p.data))
+                    .map(|(_, c)| c);
+                Some((kept, self.state.selection))
             }
             _ => None,
         };

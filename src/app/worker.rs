@@ -34,7 +34,7 @@ use std::sync::{Arc, Mutex};
 pub const PREFER_BATCH: usize = 128;
 /// Probe rows per forward pass when tracing activations and screening: small enough that
 /// a cancel is seen within a fraction of a second on a 784-2048-2048-10 network.
-const TRACE_CHUNK: usize = 512;
+pub(super) const TRACE_CHUNK: usize = 512;
 /// [`TRACE_CHUNK`] as the screening options take it.
 const TRACE_CHUNK_NONZERO: std::num::NonZeroUsize = match std::num::NonZeroUsize::new(TRACE_CHUNK) {
     Some(n) => n,
