@@ -71,7 +71,20 @@ shot() {
     echo "wrote $OUT/$1"
 }
 
-# 1. First layer: the grid of incoming-weight maps, unit 5 selected, its weights in detail.
+# Controls without a key are clicked at their place in the 1280 x 800 window (the layer list
+# keeps its default width): the middle pane's view buttons and its Table / Tiles switch.
+click_at() {
+    xdotool mousemove "$1" "$2" click 1
+    sleep 0.5
+    xdotool mousemove 1000 792
+}
+sparsity_view() { click_at 439 43; }
+tiles_mode() { click_at 396 75; }
+table_mode() { click_at 342 75; }
+
+# 1. First layer as tiles: the wall of incoming-weight maps, unit 5 selected, its weights
+#    in detail.
+tiles_mode
 xdotool key --delay 200 Right Right Right Right Right
 shot units-first-layer.png
 
@@ -85,53 +98,78 @@ shot deeper-unit-preferred.png
 xdotool key w
 shot deeper-unit-weights.png
 
-# 4. Sparsity and pruning view; then scrolled down to the pruning curves: magnitude and
+# 4. The unit table (the default view) of the first layer, sorted by active % (least
+#    active first), the first row selected.
+table_mode
+xdotool key Prior
+click_at 470 188
+xdotool key Home
+shot unit-table.png
+
+# 5. Sparsity and pruning view; then scrolled down to the pruning curves: magnitude and
 #    unit removal for the whole model, one curve per layer beside them, the table below.
-xdotool key Tab
+sparsity_view
 shot sparsity-and-pruning.png
 xdotool mousemove 700 500
 xdotool click --repeat 6 --delay 50 5
 xdotool mousemove 1000 792
 shot pruning-curves.png
 
-# 5. The over-driven demo with its labelled probe: the Compact model window (Ctrl+K) over
+# 6. The over-driven demo with its labelled probe: the Compact model window (Ctrl+K) over
 #    the pruning view, with what it would remove and the check of the outputs.
 kill "$APP_PID" 2> /dev/null || true
 wait "$APP_PID" 2> /dev/null || true
 start_app demo-models/solder-joints-overdriven.json --probe demo-models/solder-joints-probe.csv
-xdotool key Tab
+sparsity_view
 sleep 2
 xdotool key ctrl+k
 shot compact-model.png
 
-# 6. The convolutional demo with its labelled probe: the first layer's filters as colour
+# 7. The convolutional demo with its labelled probe: the first layer's filters as colour
 #    tiles, channel 2 in detail (filter, effective receptive field, feature map).
 kill "$APP_PID" 2> /dev/null || true
 wait "$APP_PID" 2> /dev/null || true
 start_app demo-models/solder-joints-cnn.json --probe demo-models/solder-joints-cnn-probe.csv
+tiles_mode
 xdotool key --delay 200 Right Right
 sleep 4
 shot cnn-first-layer.png
 
-# 7. A model opened by its path finds the reference data named after it beside it: the
+# 8. A model opened by its path finds the reference data named after it beside it: the
 #    model summary names the file, says it was found there, and shows the accuracy.
 kill "$APP_PID" 2> /dev/null || true
 wait "$APP_PID" 2> /dev/null || true
 start_app demo-models/solder-joints.json
+table_mode
 shot reference-beside-model.png
 
-# 8. The same model alone in a folder: screened on uniform samples of the box, and warned.
+# 9. The same model alone in a folder: screened on uniform samples of the box, and warned.
 kill "$APP_PID" 2> /dev/null || true
 wait "$APP_PID" 2> /dev/null || true
 mkdir -p "$WORK/alone"
 cp demo-models/solder-joints.json "$WORK/alone/"
 start_app "$WORK/alone/solder-joints.json"
+table_mode
 shot no-reference-data.png
 
-# 9. The over-driven demo's training run (a folder of checkpoints) with the labelled probe:
-#    the timeline under the unit grid. A click at the right end of the dead-units plot goes
-#    to the last checkpoint (the unit view follows), then a click on the first cell of
-#    "Units by when they died" selects the h1 unit that died first.
+# 9. The cold-storage demo (sensor readings in physical units) with its reference data: the
+#    first layer's weight glyphs, unit 2's weights as a per-feature chart; then a second-layer
+#    unit's preferred input with its box, the reference band and the kind of optimum.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+start_app demo-models/cold-storage.json --probe demo-models/cold-storage-probe.csv
+xdotool key --delay 200 Right Right
+shot tabular-unit.png
+xdotool key Next
+xdotool key --delay 200 Right
+xdotool key p
+sleep 2
+shot tabular-preferred.png
+
+# 10. The over-driven demo's training run (a folder of checkpoints) with the labelled probe:
+#     the timeline under the unit grid. A click at the right end of the dead-units plot goes
+#     to the last checkpoint (the unit view follows), then a click on the first cell of
+#     "Units by when they died" selects the h1 unit that died first.
 kill "$APP_PID" 2> /dev/null || true
 wait "$APP_PID" 2> /dev/null || true
 start_app demo-models/solder-joints-overdriven-run --probe demo-models/solder-joints-probe.csv

@@ -3,7 +3,7 @@
 #![cfg(feature = "gui")]
 
 use egui_kittest::Harness;
-use egui_kittest::kittest::Queryable;
+use egui_kittest::kittest::{NodeT, Queryable};
 use receptor::app::{ExportKind, ReceptorApp, Start};
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
@@ -89,12 +89,42 @@ fn walks_down_from_a_deeper_unit_and_back() {
     h.run_steps(2);
     wait_idle(&mut h, Duration::from_secs(120));
     assert_eq!(selection(&h).0, 1);
-    // Deeper units show their incoming weights as cells over the layer below; clicking a
-    // cell selects that lower unit.
-    h.get_by_label("map of h2 unit 0").click();
+    // Deeper units show their incoming weights as a bar chart over the layer below, most
+    // positive first; clicking a row selects that lower unit. The top row is the largest
+    // weight of h2 unit 0, read here straight from the model file.
+    let doc: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(
+            Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models/solder-joints.json"),
+        )
+        .unwrap(),
+    )
+    .unwrap();
+    let row: Vec<f64> = doc["layers"][1]["weights"][0]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_f64().unwrap())
+        .collect();
+    let top = (0..row.len())
+        .max_by(|&a, &b| row[a].total_cmp(&row[b]))
+        .unwrap();
+    let first = node_text(
+        &h.query_all_by_label_contains(": weight ")
+            .next()
+            .expect("the incoming chart has rows"),
+    );
+    assert!(
+        first.starts_with(&format!("h1 unit {top}: weight +")),
+        "first row {first:?}, largest weight from unit {top}"
+    );
+    h.get_by_label_contains(&format!("h1 unit {top}: weight "))
+        .click();
     h.run();
-    let (layer, _) = selection(&h);
-    assert_eq!(layer, 0, "clicking a cell walks down to layer h1");
+    assert_eq!(
+        selection(&h),
+        (0, top),
+        "clicking a row walks down to that unit"
+    );
     h.get_by_label("Back").click();
     h.run();
     assert_eq!(selection(&h), (1, 0));
@@ -535,6 +565,9 @@ fn convolutional_demo_shows_filters_fields_and_feature_maps() {
     h.get_by_label_contains("pool1  ·  max pool 2×2");
     h.get_by_label_contains("8 × 8 maps · receptive field 8 × 8");
     h.get_by_label_contains("4 × 4 maps · receptive field 10 × 10");
+    // The tile wall (the table is the default view) captions what its tiles show.
+    h.get_by_label("Tiles").click();
+    h.run();
     h.get_by_label_contains("Tiles: filters in colour");
 
     // A first-layer channel: its filter (colour and signed panels) and the views that need
@@ -957,6 +990,433 @@ fn reference_data_beside_the_model_loads_and_its_absence_is_warned() {
     );
     h.get_by_label(receptor::app::layers::UNIFORM_WARNING);
     assert!(h.query_by_label("found beside the model").is_none());
+}
+
+// --- vector charts ---
+
+/// The text a node carries: its label, else its value (egui puts a plain label's text there).
+fn node_text(n: &egui_kittest::Node<'_>) -> String {
+    let ak = egui_kittest::kittest::NodeT::accesskit_node(n);
+    ak.label()
+        .map(|l| l.to_string())
+        .or_else(|| ak.value().map(|v| v.to_string()))
+        .unwrap_or_default()
+}
+
+/// The number after `key` in `text` ("weight +0.4015 per degC" -> 0.4015).
+fn number_after(text: &str, key: &str) -> f64 {
+    let rest = &text[text
+        .find(key)
+        .unwrap_or_else(|| panic!("{key:?} in {text:?}"))
+        + key.len()..];
+    let end = rest.find([' ', ';', ')']).unwrap_or(rest.len());
+    rest[..end]
+        .parse()
+        .unwrap_or_else(|e| panic!("a number after {key:?} in {text:?}: {e}"))
+}
+
+/// The cold-storage demo (vector inputs with units) and its reference data, and the model
+/// file read as plain JSON (independent of receptor's reader).
+fn cold_storage() -> (Harness<'static, ReceptorApp>, serde_json::Value, PathBuf) {
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-models");
+    let h = app_with(Start {
+        model: Some(demo.join("cold-storage.json")),
+        probe: Some(demo.join("cold-storage-probe.csv")),
+        allow_outside_paths: false,
+        input_box: Default::default(),
+    });
+    let doc =
+        serde_json::from_str(&std::fs::read_to_string(demo.join("cold-storage.json")).unwrap())
+            .unwrap();
+    (h, doc, demo.join("cold-storage-probe.csv"))
+}
+
+#[test]
+fn vector_unit_reads_its_weights_as_named_quantities() {
+    let (mut h, doc, probe) = cold_storage();
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("h1 unit 2").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(60));
+    // The air-temperature row of the weight chart: its weight per degC, as in the file.
+    let text = node_text(&h.get_by_label_contains("air_temp_c: weight "));
+    let want = doc["layers"][0]["weights"][2][0].as_f64().unwrap();
+    let got = number_after(&text, "weight ");
+    assert!(text.contains("per degC"), "{text}");
+    // 4 significant digits shown: relative rounding error at most 5e-4.
+    assert!(
+        (got - want).abs() <= 5e-4 * want.abs(),
+        "{got} vs {want} in {text}"
+    );
+    assert!(text.contains("box -5 to 20 degC"), "{text}");
+    // The reference median of air temperature, computed here from the CSV (the middle of
+    // the sorted column; an even count averages the two middle values).
+    let csv = std::fs::read_to_string(probe).unwrap();
+    let mut col: Vec<f64> = csv
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').next().unwrap().parse().unwrap())
+        .collect();
+    col.sort_by(f64::total_cmp);
+    let n = col.len();
+    let median = if n % 2 == 1 {
+        col[n / 2]
+    } else {
+        (col[n / 2 - 1] + col[n / 2]) / 2.0
+    };
+    let got = number_after(&text, "median ");
+    assert!(
+        (got - median).abs() <= 5e-4 * median.abs().max(1.0),
+        "{got} vs {median}"
+    );
+
+    // Sorted by |w|: the first row is the feature with the largest |weight| in the file.
+    h.get_by_label("largest |w| first").click();
+    h.run_steps(2);
+    let w: Vec<f64> = doc["layers"][0]["weights"][2]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_f64().unwrap())
+        .collect();
+    let top = (0..w.len())
+        .max_by(|&a, &b| w[a].abs().total_cmp(&w[b].abs()))
+        .unwrap();
+    let name = doc["input"]["names"][top].as_str().unwrap();
+    let first = node_text(
+        &h.query_all_by_label_contains(": weight ")
+            .next()
+            .expect("chart rows"),
+    );
+    assert!(
+        first.starts_with(&format!("{name}: weight ")),
+        "{first} (want {name} first)"
+    );
+}
+
+#[test]
+fn preferred_input_says_what_kind_of_optimum_it_is() {
+    let (mut h, doc, _) = cold_storage();
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("h1 unit 2").click();
+    h.run_steps(2);
+    h.get_by_label("Preferred input").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    // The search settings sit beside the picture: switching the data prior off searches
+    // the layer again, and the first layer gets the exact closed-form optimum.
+    h.get_by_label_contains("Search this layer again");
+    h.get_by_label("L2 penalty");
+    h.get_by_label_contains("Stay near the data").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    // Closed form (a first-layer unit): x_i = high_i where w_i > 0, low_i where w_i < 0.
+    let w = doc["layers"][0]["weights"][2][0].as_f64().unwrap();
+    let want = if w > 0.0 {
+        doc["input"]["high"][0].as_f64().unwrap()
+    } else {
+        doc["input"]["low"][0].as_f64().unwrap()
+    };
+    let text = node_text(&h.get_by_label_contains("air_temp_c: value "));
+    assert!(text.contains("degC"), "{text}");
+    let got = number_after(&text, "value ");
+    assert!(
+        (got - want).abs() <= 1e-3,
+        "{got} vs the corner {want} in {text}"
+    );
+    // Every input at a bound, and one affine layer's interval bound is exact.
+    h.get_by_label("All 8 inputs sit at a bound of the box: a corner of the box.");
+    h.get_by_label_contains("reaches the sound upper bound");
+
+    // A deeper unit with the data prior back on: a summary is there too, and it does not
+    // claim the bound for a search that was pulled toward the data.
+    h.get_by_label_contains("Stay near the data").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label_contains("h2  ·  ").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    h.get_by_label("h2 unit 1").click();
+    h.run_steps(2);
+    wait_idle(&mut h, Duration::from_secs(120));
+    assert_eq!(
+        h.query_all_by_label_contains("sit at a bound of the box")
+            .count()
+            + h.query_all_by_label_contains("No input sits at a bound")
+                .count(),
+        1
+    );
+    let gap = node_text(&h.get_by_label_contains("the sound upper bound"));
+    assert!(
+        gap.contains("local optimum") || gap.contains("reaches"),
+        "{gap}"
+    );
+}
+
+// --- unit table ---
+
+/// The app at a window tall enough that every row of the demo's first layer (32 units) is
+/// drawn at once (the table draws only the rows on screen).
+fn tall_app(start: Start) -> Harness<'static, ReceptorApp> {
+    Harness::builder()
+        .with_size(egui::Vec2::new(1280.0, 1500.0))
+        .with_max_steps(1000)
+        .build_eframe(move |cc| ReceptorApp::new(cc, start))
+}
+
+/// The units of layer `name` listed in the middle pane, top to bottom then left to right,
+/// read from the rows' (or tiles') accessible labels `"{name} unit {k}"`.
+fn listed_units(h: &Harness<'static, ReceptorApp>, name: &str) -> Vec<usize> {
+    let prefix = format!("{name} unit ");
+    let mut found: Vec<(f32, f32, usize)> = h
+        .get_all_by_label_contains(&prefix)
+        .filter_map(|n| {
+            let label = n.accesskit_node().label()?;
+            let unit = label.strip_prefix(&prefix)?.parse().ok()?;
+            let r = n.rect();
+            Some((r.top(), r.left(), unit))
+        })
+        .collect();
+    found.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.total_cmp(&b.1)));
+    found.into_iter().map(|(_, _, u)| u).collect()
+}
+
+/// The core's screening of `model` on `probe`, computed here without the app
+/// (`analysis::screen::screen`, as `receptor screen` runs it).
+fn core_screen(model: &Path, probe: &Path) -> Vec<receptor::analysis::screen::UnitScreen> {
+    use receptor::analysis::screen::{ScreenOptions, screen};
+    let net = receptor::model::load(model, &Default::default()).unwrap();
+    let mut src = receptor::probe::open(probe, &net).unwrap();
+    screen(
+        &net,
+        src.as_mut(),
+        &ScreenOptions::default(),
+        &receptor::analysis::Silent,
+    )
+    .unwrap()
+    .units
+}
+
+fn demo_file(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("demo-models")
+        .join(name)
+}
+
+/// The table is the default view, and sorting it by upper bound (a click on the header)
+/// gives the order of the core's interval upper bounds, both ways.
+#[test]
+fn unit_table_is_the_default_and_sorts_by_upper_bound_like_the_core() {
+    let mut h = tall_app(Start::default());
+    wait_idle(&mut h, Duration::from_secs(60));
+    // The table's headers are there and the tile wall's controls are not.
+    h.get_by_label("Sort by upper bound");
+    assert!(
+        h.query_by_label("Tile size").is_none(),
+        "tiles are not shown"
+    );
+    assert_eq!(listed_units(&h, "h1"), (0..32).collect::<Vec<_>>());
+
+    // The core's screening of the same model and data (the bundled demo is
+    // demo-models/solder-joints.json; the app opens its labelled probe).
+    let rows = core_screen(
+        &demo_file("solder-joints.json"),
+        &demo_file("solder-joints-probe.csv"),
+    );
+    let mut by_bound: Vec<(f64, usize)> = rows
+        .iter()
+        .filter(|r| r.layer_index == 0)
+        .map(|r| (r.upper_bound, r.unit))
+        .collect();
+    assert_eq!(by_bound.len(), 32);
+    // Stable sorts: ties keep index order, as the table promises.
+    by_bound.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let ascending: Vec<usize> = by_bound.iter().map(|p| p.1).collect();
+    let mut descending_pairs = by_bound.clone();
+    descending_pairs.sort_by_key(|p| p.1);
+    descending_pairs.sort_by(|a, b| b.0.total_cmp(&a.0));
+    let descending: Vec<usize> = descending_pairs.iter().map(|p| p.1).collect();
+    assert_ne!(
+        ascending,
+        (0..32).collect::<Vec<_>>(),
+        "the sort changes the order"
+    );
+
+    h.get_by_label("Sort by upper bound").click();
+    h.run();
+    assert_eq!(
+        listed_units(&h, "h1"),
+        ascending,
+        "lowest upper bound first"
+    );
+    h.get_by_label("Sort by upper bound").click();
+    h.run();
+    assert_eq!(
+        listed_units(&h, "h1"),
+        descending,
+        "a second click turns it around"
+    );
+}
+
+/// Filtering by a status lists exactly the units the core gives that status.
+#[test]
+fn unit_table_filters_by_status_like_the_core() {
+    let model = demo_file("solder-joints-overdriven.json");
+    let probe = demo_file("solder-joints-probe.csv");
+    let mut h = tall_app(Start {
+        model: Some(model.clone()),
+        probe: Some(probe.clone()),
+        allow_outside_paths: false,
+        input_box: Default::default(),
+    });
+    wait_idle(&mut h, Duration::from_secs(60));
+    assert!(
+        h.state()
+            .state()
+            .probe
+            .as_ref()
+            .is_some_and(|p| p.path.is_some())
+    );
+    let rows = core_screen(&model, &probe);
+    let with = |status: &str| -> Vec<usize> {
+        rows.iter()
+            .filter(|r| r.layer_index == 0 && r.status.as_str() == status)
+            .map(|r| r.unit)
+            .collect()
+    };
+    for (choice, status) in [
+        ("dead (proven): ", "dead_proven"),
+        ("dead on the data: ", "dead_on_probe"),
+        ("healthy: ", "ok"),
+    ] {
+        let want = with(status);
+        assert!(!want.is_empty() && want.len() < 32, "{status}: {want:?}");
+        h.get_by_label("Show").click();
+        h.run();
+        h.get_by_label_contains(choice).click();
+        h.run();
+        assert_eq!(listed_units(&h, "h1"), want, "rows shown for {choice}");
+    }
+    h.get_by_label("Show").click();
+    h.run();
+    h.get_by_label_contains("all units: ").click();
+    h.run();
+    assert_eq!(listed_units(&h, "h1").len(), 32);
+}
+
+/// Arrow keys move the selection through the table's order, the Go-to key jumps to a
+/// typed unit number, and Tab is left to move focus (it does not switch views).
+#[test]
+fn unit_table_keys_move_and_jump_the_selection() {
+    let mut h = tall_app(Start::default());
+    wait_idle(&mut h, Duration::from_secs(60));
+    h.get_by_label("Sort by upper bound").click();
+    h.run();
+    let order = listed_units(&h, "h1");
+    let at = |k: usize| (0, order[k]);
+    h.get_by_label(&format!("h1 unit {}", order[3])).click();
+    h.run();
+    assert_eq!(selection(&h), at(3));
+    h.key_press(egui::Key::ArrowDown);
+    h.run();
+    assert_eq!(
+        selection(&h),
+        at(4),
+        "down: the next row of the sorted table"
+    );
+    h.key_press(egui::Key::ArrowUp);
+    h.key_press(egui::Key::ArrowUp);
+    h.run();
+    assert_eq!(selection(&h), at(2));
+    h.key_press(egui::Key::End);
+    h.run();
+    assert_eq!(selection(&h), at(31), "End: the last row");
+
+    // G puts the keyboard in "Go to unit"; a number and Enter select that unit.
+    h.key_press(egui::Key::G);
+    h.run();
+    assert!(h.get_by_label("Go to unit").is_focused());
+    h.get_by_label("Go to unit").type_text("17");
+    h.key_press(egui::Key::Enter);
+    h.run();
+    assert_eq!(selection(&h), (0, 17));
+    // A number outside the layer selects nothing and says why.
+    h.key_press(egui::Key::G);
+    h.run();
+    h.get_by_label("Go to unit").type_text("99");
+    h.key_press(egui::Key::Enter);
+    h.run();
+    assert_eq!(selection(&h), (0, 17));
+    h.get_by_label_contains("'99' is not a unit of layer h1 (0 to 31)");
+
+    // Tab moves focus; the table stays.
+    h.key_press(egui::Key::Tab);
+    h.run();
+    h.get_by_label("Sort by upper bound");
+    assert!(h.query_by_label("Tile size").is_none());
+}
+
+/// The Tiles control switches to the tile wall (same order as the table) and Table back.
+#[test]
+fn unit_table_and_tile_wall_switch_by_their_controls() {
+    let mut h = tall_app(Start::default());
+    wait_idle(&mut h, Duration::from_secs(60));
+    h.get_by_label("Sort by upper bound").click();
+    h.run();
+    let order = listed_units(&h, "h1");
+
+    h.get_by_label("Tiles").click();
+    h.run();
+    assert!(
+        h.query_all_by_label("Tile size").next().is_some(),
+        "the tile wall's slider"
+    );
+    assert!(h.query_by_label("Sort by upper bound").is_none());
+    h.get_by_label("Tiles: incoming weights");
+    assert_eq!(
+        listed_units(&h, "h1"),
+        order,
+        "the wall keeps the table's order"
+    );
+
+    h.get_by_label("Table").click();
+    h.run();
+    h.get_by_label("Sort by upper bound");
+    assert!(h.query_by_label("Tile size").is_none());
+    assert_eq!(listed_units(&h, "h1"), order);
+}
+
+/// On a 2048-unit layer the table draws only the rows on screen, and "Go to unit" scrolls
+/// a far row into view.
+#[test]
+fn unit_table_draws_only_visible_rows_and_goes_to_a_far_unit() {
+    let dir = tempfile::tempdir().unwrap();
+    let large = write_large_model(dir.path());
+    let mut h = app_with(Start {
+        model: Some(large),
+        ..Start::default()
+    });
+    wait_idle(&mut h, Duration::from_secs(300));
+    let shown = listed_units(&h, "fc1");
+    assert!(
+        !shown.is_empty() && shown.len() < 100,
+        "only the rows on screen are drawn: {} of 2048",
+        shown.len()
+    );
+    assert_eq!(shown[0], 0);
+    assert!(!shown.contains(&1500));
+    h.key_press(egui::Key::G);
+    h.run();
+    h.get_by_label("Go to unit").type_text("1500");
+    h.key_press(egui::Key::Enter);
+    h.run();
+    assert_eq!(selection(&h), (0, 1500));
+    let shown = listed_units(&h, "fc1");
+    assert!(
+        shown.contains(&1500),
+        "row 1500 is scrolled into view: {shown:?}"
+    );
+    assert!(!shown.contains(&0));
 }
 
 // --- training run ---

@@ -22,7 +22,7 @@ Two ways in:
 * ``export_onnx(model, example, path=..., low=..., high=...)``: any PyTorch module through
   ``torch.onnx.export``, with the input box (and class labels) written into the ONNX file's
   ``metadata_props`` under ``receptor.low``, ``receptor.high``, ``receptor.labels`` and
-  ``receptor.names``; receptor opens the ``.onnx`` file directly (needs the ``onnx`` package).
+  ``receptor.names`` (and ``receptor.units``); receptor opens the ``.onnx`` file directly (needs the ``onnx`` package).
 
 * ``CheckpointWriter(folder, every=N, ...)`` in a training loop: ``writer(model, step)``
   writes ``folder/ckpt-<step>.json`` (``"step"`` set) with every tensor in
@@ -295,6 +295,14 @@ _ALLOWED_KEYS = {
 }
 
 
+def _unit_list(units, input_size):
+    """The features' units as strings, one per input, or ExportError."""
+    units = [str(u) for u in units]
+    if len(units) != input_size:
+        raise ExportError(f"units: {len(units)} units but the input size is {input_size}")
+    return units
+
+
 def _step(step):
     """A training step for the top-level ``"step"``: a whole number from 0."""
     if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or step < 0:
@@ -316,6 +324,7 @@ def export_arrays(
     description=None,
     safetensors_threshold=DEFAULT_SAFETENSORS_THRESHOLD,
     safetensors_file=None,
+    units=None,
     step=None,
 ):
     """Writes a network given as arrays to ``path`` (JSON) in receptor's model schema.
@@ -346,6 +355,8 @@ def export_arrays(
     layout: ``None``/``"vector"`` or ``(height, width[, channels])`` for an image patch
         (row-major, channel last).
     names: optional feature names, ``input_size`` strings.
+    units: optional physical unit of each feature (``"degC"``, ``"%"``, ``"A"``; ``""`` for
+        none), ``input_size`` strings; written as the schema's ``input.units``.
     labels: optional class names for the last layer's units (the last layer must be dense).
     path: the JSON file to write; a side file (default ``<stem>.safetensors`` beside it)
         receives every tensor with at least ``safetensors_threshold`` elements. Use
@@ -376,6 +387,8 @@ def export_arrays(
         if len(names) != input_size:
             raise ExportError(f"names: {len(names)} names but the input size is {input_size}")
         inp["names"] = names
+    if units is not None:
+        inp["units"] = _unit_list(units, input_size)
 
     # What the next layer reads: ("vector", n) or ("map", channels, height, width). The raw
     # input of an image layout is both: a dense layer reads its flat vector, a convolution
@@ -587,6 +600,7 @@ def export_torch(
     description=None,
     safetensors_threshold=DEFAULT_SAFETENSORS_THRESHOLD,
     safetensors_file=None,
+    units=None,
     step=None,
 ):
     """Writes a PyTorch ``nn.Sequential`` to ``path``.
@@ -807,6 +821,7 @@ def export_torch(
         description=description,
         safetensors_threshold=safetensors_threshold,
         safetensors_file=safetensors_file,
+        units=units,
         step=step,
     )
 
@@ -816,6 +831,7 @@ ONNX_META_LOW = "receptor.low"
 ONNX_META_HIGH = "receptor.high"
 ONNX_META_LABELS = "receptor.labels"
 ONNX_META_NAMES = "receptor.names"
+ONNX_META_UNITS = "receptor.units"
 
 
 def _box_text(value, what):
@@ -826,10 +842,11 @@ def _box_text(value, what):
     return ",".join(repr(float(v)) for v in values)
 
 
-def export_onnx(model, example, *, path, low=-1.0, high=1.0, labels=None, names=None, opset=17):
+def export_onnx(model, example, *, path, low=-1.0, high=1.0, labels=None, names=None, opset=17,
+                units=None):
     """Exports a PyTorch module to ONNX with ``torch.onnx.export`` and writes the input box
-    (one number, one per input, or one per image channel) and optional class labels and
-    feature names into the file's ``metadata_props``. ``example`` is an input batch
+    (one number, one per input, or one per image channel) and optional class labels,
+    feature names and feature units into the file's ``metadata_props``. ``example`` is an input batch
     (``[N, features]`` or ``[N, C, H, W]``); the batch axis is exported as dynamic. The
     module is put in eval mode (Dropout off, BatchNorm with its running statistics).
 
@@ -852,6 +869,8 @@ def export_onnx(model, example, *, path, low=-1.0, high=1.0, labels=None, names=
         meta[ONNX_META_LABELS] = json.dumps([str(x) for x in labels])
     if names is not None:
         meta[ONNX_META_NAMES] = json.dumps([str(x) for x in names])
+    if units is not None:
+        meta[ONNX_META_UNITS] = json.dumps([str(x) for x in units])
 
     def write(tmp):
         with torch.no_grad():

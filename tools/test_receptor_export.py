@@ -410,7 +410,8 @@ def test_exported_files_validate_against_the_schema():
     with tempfile.TemporaryDirectory() as d:
         paths = [
             rx.export_arrays(layers, 8, path=Path(d) / "a.json", layout=(2, 4),
-                             labels=["x", "y", "z"], names=[f"n{i}" for i in range(8)]),
+                             labels=["x", "y", "z"], names=[f"n{i}" for i in range(8)],
+                             units=["degC", "%", "A", "", "ppm", "mm/s", "1/day", "V"]),
             rx.export_arrays(layers, 8, np.zeros(8), np.arange(1, 9), path=Path(d) / "b.json",
                              safetensors_threshold=1, description="side file"),
             # receptor-model/2: every convolutional layer type, inline and in a side file.
@@ -449,14 +450,47 @@ def test_torch_through_onnx():
     with torch.no_grad():
         want = net(torch.from_numpy(x)).double().numpy()
     with tempfile.TemporaryDirectory() as d:
+        units = ["degC", "%", "A", "", "ppm", "mm/s", "1/day"]
         model = rx.export_onnx(net, torch.zeros(1, 7), path=Path(d) / "net.onnx", low=0.0, high=2.0,
-                               labels=["w", "x", "y", "z"])
+                               labels=["w", "x", "y", "z"], units=units)
         probe = Path(d) / "probe.csv"
         write_probe(probe, x)
         proc = subprocess.run([receptor_bin(), "stats", str(model)], capture_output=True, text=True, timeout=120)
         assert proc.returncode == 0 and "default" not in proc.stderr, proc.stderr  # box from metadata
         got = outputs_of(run_forward(model, probe), ["w", "x", "y", "z"])
         assert np.max(np.abs(got - want)) <= TOL, np.max(np.abs(got - want))
+        # receptor read the units from metadata_props: its own JSON of the model has them.
+        assert converted_units(model, Path(d) / "conv.json") == units
+
+
+def converted_units(model, out):
+    """`receptor convert MODEL --out OUT`, then the ``input.units`` receptor wrote."""
+    proc = subprocess.run([receptor_bin(), "convert", str(model), "--out", str(out)],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    return json.loads(out.read_text())["input"].get("units")
+
+
+def test_units_are_written_and_read_back():
+    """export_arrays(units=...) writes input.units; receptor reads them back (its convert
+    writes the same list); a wrong count is refused naming both counts."""
+    rng = np.random.default_rng(6)
+    layers = random_net(rng, [3, 4, 2], ["relu", "identity"])
+    units = ["degC", "%", "A"]
+    with tempfile.TemporaryDirectory() as d:
+        model = rx.export_arrays(layers, 3, path=Path(d) / "u.json", units=units,
+                                 safetensors_threshold=None)
+        assert json.loads(model.read_text())["input"]["units"] == units
+        assert converted_units(model, Path(d) / "back.json") == units
+        plain = rx.export_arrays(layers, 3, path=Path(d) / "p.json", safetensors_threshold=None)
+        assert "units" not in json.loads(plain.read_text())["input"]
+        try:
+            rx.export_arrays(layers, 3, path=Path(d) / "bad.json", units=["degC"])
+        except rx.ExportError as e:
+            assert "1 units but the input size is 3" in str(e), e
+        else:
+            raise AssertionError("a wrong number of units was accepted")
+        assert not (Path(d) / "bad.json").exists()
 
 
 def conv_layers(rng):
@@ -791,6 +825,7 @@ def test_checkpoint_writer_torch_training_loop():
 
 TESTS = [
     test_inline_model_matches_numpy_forward,
+    test_units_are_written_and_read_back,
     test_large_tensors_go_to_safetensors_side_file,
     test_per_feature_box_and_sklearn_orientation_error,
     test_bad_input_gives_clear_errors,

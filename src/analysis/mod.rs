@@ -1,6 +1,7 @@
 //! The analysis core: forward and backward passes, preferred inputs, sensitivity, sparsity
 //! statistics and |w| histograms, per-unit activity over a probe, interval bounds,
-//! screening for dead units, magnitude pruning and the timeline of a checkpoint series. Takes `&Network` and
+//! screening for dead units, magnitude pruning, the timeline of a checkpoint series, and
+//! the per-feature rows and optimum summaries the fronts show. Takes `&Network` and
 //! arrays, never paths; nothing here depends on the GUI.
 
 pub mod accuracy;
@@ -10,9 +11,11 @@ pub mod bounds;
 pub mod channels;
 pub mod compact;
 pub(crate) mod conv;
+pub mod features;
 pub mod fields;
 pub mod forward;
 pub mod gradient;
+pub mod optimum;
 pub mod prefer;
 pub mod prune;
 pub mod screen;

@@ -1,14 +1,19 @@
 //! The selected unit in detail: a large map (incoming weights, preferred input, or
 //! sensitivity at the mean reference input) with its colour key and hover values, the unit's
 //! numbers, a histogram of its activations over the probe, its strongest incoming
-//! connections, and the probe samples that drive it hardest. For deeper units the weights
-//! are drawn as a grid over the units of the layer below; clicking a cell walks down.
+//! connections, and the probe samples that drive it hardest. On vector inputs the map is a
+//! per-feature chart (`feature_chart.rs`); for deeper units the weights are a sorted bar
+//! chart over the units of the layer below, and clicking a row walks down. Under a
+//! preferred input: what kind of optimum it is, and the search's penalties beside it.
 
 use super::Action;
 use super::colour::{self, ColourKey, LegendOrientation};
+use super::feature_chart::{self, Quantity};
 use super::maps;
 use super::state::{AppState, MapView, Selection};
 use super::thumbs::{ThumbKey, ThumbKind, Thumbs};
+use crate::analysis::features::{self, FeatureOrder};
+use crate::analysis::optimum::OptimumSummary;
 use crate::analysis::prefer::{MAX_FACETS, PreferOptions};
 use crate::model::{Layout, Network};
 use crate::report::annotate::GridKey;
@@ -94,8 +99,12 @@ impl DetailPanel {
                 }
                 let row = self.attribution_row(state, sel);
                 map_ui(ui, state, thumbs, &net, sel, row);
-                if state.prefs.map_view == MapView::Preferred {
+                let preferred = state.prefs.map_view == MapView::Preferred;
+                if preferred {
                     facets_ui(ui, state, thumbs, &net, sel);
+                    optimum_ui(ui, state, &net, sel);
+                    ui.add_space(4.0);
+                    ui.group(|ui| search_settings_ui(ui, state, sel, actions));
                 }
                 ui.add_space(6.0);
                 numbers_ui(ui, state, &net, sel);
@@ -105,8 +114,10 @@ impl DetailPanel {
                 strongest_ui(ui, state, &net, sel);
                 ui.add_space(6.0);
                 top_samples_ui(ui, state, thumbs, &net, sel);
-                ui.add_space(6.0);
-                search_ui(ui, state, sel, actions);
+                if !preferred {
+                    ui.add_space(6.0);
+                    search_ui(ui, state, sel, actions);
+                }
             });
     }
 
@@ -314,6 +325,18 @@ fn map_ui(
             return;
         }
     };
+    if let MapData::Cells(_, m) = data {
+        // Deeper units: a bar chart of the incoming connections, not a grid that would
+        // suggest a spatial layout the units below do not have.
+        feature_chart::incoming_ui(ui, state, net, sel, m);
+        let caption = key_caption(&data, state, net, sel);
+        colour::legend_ui(ui, ColourKey::standard(), m, &caption);
+        return;
+    }
+    if matches!(net.input().layout, Layout::Vector) {
+        vector_chart_ui(ui, state, net, sel, &data);
+        return;
+    }
     let key = ThumbKey {
         layer: sel.layer,
         unit: sel.unit,
@@ -335,11 +358,83 @@ fn map_ui(
         size * s
     };
     ui.horizontal_top(|ui| {
-        map_picture_ui(ui, state, &tex, draw, &data, net, sel);
+        map_picture_ui(ui, &tex, draw, &data, net, sel);
         let caption = key_caption(&data, state, net, sel);
         map_key_ui(ui, &data, net, &caption, draw.y.max(140.0) - 40.0);
     });
-    map_caption_ui(ui, &data, net, sel);
+    map_caption_ui(ui, &data, net);
+}
+
+/// The per-feature chart of a vector input's map, with its row order and (for signed
+/// values) the colour key.
+fn vector_chart_ui(
+    ui: &mut egui::Ui,
+    state: &mut AppState,
+    net: &Network,
+    sel: Selection,
+    data: &MapData,
+) {
+    let (values, q) = match data {
+        MapData::SignedInput(v, m, "attribution") => (
+            v,
+            Quantity::Share {
+                what: "attribution",
+                max_abs: *m,
+            },
+        ),
+        MapData::SignedInput(v, m, what) => (v, Quantity::Rate { what, max_abs: *m }),
+        MapData::Input(v) => (v, Quantity::Input),
+        MapData::Cells(..) => return,
+    };
+    let spreads = state.probe.as_ref().and_then(|p| p.spreads.clone());
+    let spreads = spreads.as_deref().map(Vec::as_slice);
+    let (strength, strongest) = match q {
+        Quantity::Input if sel.layer == 0 => (
+            net.layers()[0].weights.row(sel.unit).to_vec(),
+            "largest |w| first",
+        ),
+        Quantity::Input => (
+            features::distance_from_data(net.input(), values, spreads),
+            "furthest from the data first",
+        ),
+        Quantity::Rate { what: "weight", .. } => (values.clone(), "largest |w| first"),
+        Quantity::Rate { .. } => (values.clone(), "largest |dz/dx| first"),
+        Quantity::Share { .. } => (values.clone(), "largest |attribution| first"),
+    };
+    feature_chart::order_ui(ui, &mut state.prefs.feature_order, strongest);
+    let rows = features::feature_rows(
+        net.input(),
+        values,
+        spreads,
+        state.prefs.feature_order,
+        &strength,
+    );
+    feature_chart::chart_ui(ui, &rows, q);
+    if let Some(max_abs) = q.max_abs() {
+        let caption = key_caption(data, state, net, sel);
+        colour::legend_ui(ui, ColourKey::standard(), max_abs, &caption);
+    }
+}
+
+/// What kind of optimum the preferred input is: inputs at a bound of the box, and z beside
+/// the sound upper bound.
+fn optimum_ui(ui: &mut egui::Ui, state: &AppState, net: &Network, sel: Selection) {
+    let Some(p) = state.preferred_of(sel.layer, sel.unit).filter(|p| p.finite) else {
+        return;
+    };
+    let bound = state
+        .results
+        .bounds
+        .as_ref()
+        .and_then(|b| b.upper.get(sel.layer))
+        .and_then(|u| u.get(sel.unit).copied());
+    let penalised =
+        state.results.preferred.get(&sel.layer).is_some_and(|lp| {
+            lp.data.is_some() || lp.settings.l2() > 0.0 || lp.settings.tv() > 0.0
+        });
+    let s = OptimumSummary::new(net.input(), &p.input, p.preactivation, bound, penalised);
+    ui.label(s.bound_words());
+    ui.label(s.gap_words());
 }
 
 /// A grey box with the reason the map is not there (yet).
@@ -431,11 +526,9 @@ fn facets_ui(
     });
 }
 
-/// The map picture drawn at `draw` size, with the value under the pointer and, on a grid
-/// of lower units, a click that walks down to the clicked unit.
+/// The map picture drawn at `draw` size, with the value under the pointer.
 fn map_picture_ui(
     ui: &mut egui::Ui,
-    state: &mut AppState,
     tex: &egui::TextureHandle,
     draw: egui::Vec2,
     data: &MapData,
@@ -443,7 +536,7 @@ fn map_picture_ui(
     sel: Selection,
 ) {
     let size = tex.size_vec2();
-    let (rect, resp) = ui.allocate_exact_size(draw, Sense::click());
+    let (rect, resp) = ui.allocate_exact_size(draw, Sense::hover());
     ui.painter().image(
         tex.id(),
         rect,
@@ -476,19 +569,6 @@ fn map_picture_ui(
             egui::PopupAnchor::Pointer,
         )
         .show(|ui| ui.label(t));
-    }
-    if let MapData::Cells(w, _) = data {
-        let cols = maps::cell_columns(w.len());
-        let i = y * cols + x;
-        if resp.clicked() && x < cols && i < w.len() && sel.layer > 0 {
-            state.select(
-                Selection {
-                    layer: sel.layer - 1,
-                    unit: i,
-                },
-                true,
-            );
-        }
     }
 }
 
@@ -527,15 +607,10 @@ fn map_key_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, caption: &str, l
 }
 
 /// One line under the map saying how to read it.
-fn map_caption_ui(ui: &mut egui::Ui, data: &MapData, net: &Network, sel: Selection) {
+fn map_caption_ui(ui: &mut egui::Ui, data: &MapData, net: &Network) {
     match data {
-        MapData::Cells(w, _) => {
-            ui.weak(format!(
-                "One cell per unit of layer {} ({} cells, row by row). Click a cell to go to that unit.",
-                net.layers()[sel.layer - 1].name,
-                w.len()
-            ));
-        }
+        // Drawn as the incoming-connection chart, which says how to read it.
+        MapData::Cells(..) => {}
         MapData::Input(_) => {
             ui.weak("Dark = low end of the input box, light = high end.");
         }
@@ -790,12 +865,23 @@ fn strongest_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Sel
             idx.select_nth_unstable_by(k - 1, |a, b| w[*b].abs().total_cmp(&w[*a].abs()));
             idx.truncate(k);
             idx.sort_by(|a, b| w[*b].abs().total_cmp(&w[*a].abs()));
+            let vector = matches!(net.input().layout, Layout::Vector);
             egui::Grid::new("strongest")
                 .num_columns(2)
                 .striped(true)
                 .show(ui, |ui| {
                     for i in idx {
-                        if sel.layer == 0 {
+                        if sel.layer == 0 && vector {
+                            // A weight is z per unit of its feature.
+                            ui.label(net.input().feature_name(i));
+                            let w = features::signed_text(f64::from(w[i]));
+                            ui.monospace(match net.input().feature_unit(i) {
+                                Some(u) => format!("{w} per {u}"),
+                                None => w,
+                            });
+                            ui.end_row();
+                            continue;
+                        } else if sel.layer == 0 {
                             ui.label(format!(
                                 "{} ({})",
                                 net.input().feature_name(i),
@@ -803,8 +889,11 @@ fn strongest_ui(ui: &mut egui::Ui, state: &mut AppState, net: &Network, sel: Sel
                             ));
                         } else {
                             let lower = &net.layers()[sel.layer - 1];
-                            let text = format!("{} unit {i}", lower.name);
-                            if ui.link(&text).on_hover_text("Go to this unit").clicked() {
+                            let text = features::lower_unit_name(net, sel.layer, i);
+                            // A flattened map's entries are not units to go to.
+                            if lower.units() == 0 {
+                                ui.label(text);
+                            } else if ui.link(&text).on_hover_text("Go to this unit").clicked() {
                                 state.select(
                                     Selection {
                                         layer: sel.layer - 1,
@@ -855,6 +944,8 @@ fn top_samples_ui(
                             ui.set_width(76.0);
                             if image {
                                 sample_thumb(ui, thumbs, net, probe, row, z, act);
+                            } else {
+                                sample_glyph(ui, net, probe, row, z, act);
                             }
                             let small = |ui: &mut egui::Ui, text: String| {
                                 ui.add(
@@ -875,6 +966,46 @@ fn top_samples_ui(
                     }
                 });
         });
+}
+
+/// One sample of a vector input drawn as a glyph of the feature chart, with every feature's
+/// value and unit on hover.
+fn sample_glyph(
+    ui: &mut egui::Ui,
+    net: &Network,
+    probe: &super::state::OpenProbe,
+    row: usize,
+    z: f32,
+    act: f32,
+) {
+    let x = probe.data.inputs.row(row);
+    let Some(x) = x.as_slice() else {
+        return;
+    };
+    let spreads = probe.spreads.as_deref().map(Vec::as_slice);
+    let (r, resp) = ui.allocate_exact_size(vec2(64.0, 48.0), Sense::hover());
+    feature_chart::glyph(
+        ui.painter(),
+        ui.visuals(),
+        r,
+        net.input(),
+        x,
+        spreads,
+        Quantity::Input,
+    );
+    let rows = features::feature_rows(net.input(), x, spreads, FeatureOrder::Input, &[]);
+    let mut text = format!("probe row {row}: z = {z:.4}, activation = {act:.4}");
+    for r in &rows {
+        text.push_str(&format!("\n{} = {}", r.name, r.value_text()));
+    }
+    resp.widget_info(|| {
+        egui::WidgetInfo::labeled(
+            egui::Role::Image,
+            true,
+            format!("probe row {row} by feature"),
+        )
+    });
+    resp.on_hover_text(text);
 }
 
 /// One probe sample drawn as a picture of the input, with its numbers on hover.
@@ -912,83 +1043,108 @@ fn sample_thumb(
     }
 }
 
+/// The search settings in a collapsed section (views other than the preferred input).
 fn search_ui(ui: &mut egui::Ui, state: &mut AppState, sel: Selection, actions: &mut Vec<Action>) {
     egui::CollapsingHeader::new("Preferred-input search")
         .default_open(false)
+        .show(ui, |ui| search_settings_ui(ui, state, sel, actions));
+}
+
+/// The search's penalties (data prior, L2, total variation) and effort, and the button
+/// that searches the layer again with them.
+fn search_settings_ui(
+    ui: &mut egui::Ui,
+    state: &mut AppState,
+    sel: Selection,
+    actions: &mut Vec<Action>,
+) {
+    let image = state
+        .net()
+        .is_some_and(|n| !matches!(n.input().layout, Layout::Vector));
+    let data = state.probe.as_ref().and_then(|p| p.reference.as_ref());
+    let prior_text = match data {
+        Some(r) => format!("Stay near the data ({})", r.origin()),
+        None => "Stay near the data (open reference data)".to_string(),
+    };
+    ui.add_enabled(
+        data.is_some(),
+        egui::Checkbox::new(&mut state.prefs.use_prior, prior_text),
+    )
+    .on_hover_text(
+        "Data prior: start from the unit's top-activating samples and penalise inputs \
+         far from the probe data (its mean and Ledoit-Wolf covariance). Off: the plain \
+         search over the whole input box.",
+    );
+    let s = &mut state.prefs.search;
+    let (mut steps, mut restarts, mut l2, mut tv) = (s.steps(), s.restarts(), s.l2(), s.tv());
+    let (mut weight, mut facets) = (s.prior_weight(), s.facets());
+    egui::Grid::new("search-settings")
+        .num_columns(2)
         .show(ui, |ui| {
-            let data = state.probe.as_ref().and_then(|p| p.reference.as_ref());
-            let prior_text = match data {
-                Some(r) => format!("Stay near the data ({})", r.origin()),
-                None => "Stay near the data (open reference data)".to_string(),
+            // Each control is named by its label (screen readers, UI tests).
+            let row = |ui: &mut egui::Ui, name: &str, value: egui::DragValue<'_>| {
+                let label = ui.label(name);
+                ui.add(value).labelled_by(label.id);
+                ui.end_row();
             };
-            ui.add_enabled(
-                data.is_some(),
-                egui::Checkbox::new(&mut state.prefs.use_prior, prior_text),
-            )
-            .on_hover_text(
-                "Data prior: start from the unit's top-activating samples and penalise inputs \
-                 far from the probe data (its mean and Ledoit-Wolf covariance). Off: the plain \
-                 search over the whole input box.",
+            row(
+                ui,
+                "Steps",
+                egui::DragValue::new(&mut steps).range(1..=10_000),
             );
-            let s = &mut state.prefs.search;
-            let (mut steps, mut restarts, mut l2, mut tv) =
-                (s.steps(), s.restarts(), s.l2(), s.tv());
-            let (mut weight, mut facets) = (s.prior_weight(), s.facets());
-            egui::Grid::new("search-settings")
-                .num_columns(2)
-                .show(ui, |ui| {
-                    ui.label("Steps");
-                    ui.add(egui::DragValue::new(&mut steps).range(1..=10_000));
-                    ui.end_row();
-                    ui.label("Restarts");
-                    ui.add(egui::DragValue::new(&mut restarts).range(1..=64));
-                    ui.end_row();
-                    ui.label("L2 penalty");
-                    ui.add(
-                        egui::DragValue::new(&mut l2)
-                            .range(0.0..=100.0)
-                            .speed(0.001),
-                    );
-                    ui.end_row();
-                    ui.label("Total variation");
-                    ui.add(
-                        egui::DragValue::new(&mut tv)
-                            .range(0.0..=100.0)
-                            .speed(0.001),
-                    );
-                    ui.end_row();
-                    ui.label("Prior weight");
-                    ui.add(
-                        egui::DragValue::new(&mut weight)
-                            .range(0.0..=100.0)
-                            .speed(0.01),
-                    );
-                    ui.end_row();
-                    ui.label("Facets");
-                    ui.add(egui::DragValue::new(&mut facets).range(1..=MAX_FACETS));
-                    ui.end_row();
-                });
-            // The controls stay inside the valid ranges; the core's constructor checks anyway.
-            if let Ok(o) = PreferOptions::new(steps, restarts, s.seed(), l2, tv)
-                .and_then(|o| o.with_prior_weight(weight))
-                .and_then(|o| o.with_facets(facets))
-            {
-                *s = o;
-            }
-            let used = state.results.preferred.get(&sel.layer).map(|p| &p.settings);
-            let differs = used.is_some_and(|u| *u != state.prefs.search);
-            let text = if differs {
-                "Search this layer again with these settings"
-            } else {
-                "Search this layer again"
-            };
-            if ui.button(text).clicked() {
-                actions.push(Action::Recompute(sel.layer));
-            }
-            if sel.layer == 0 {
-                ui.weak(
-                    "First layer without penalties: exact closed form (b + Σ max(w·low, w·high)).",
+            row(
+                ui,
+                "Restarts",
+                egui::DragValue::new(&mut restarts).range(1..=64),
+            );
+            row(
+                ui,
+                "L2 penalty",
+                egui::DragValue::new(&mut l2)
+                    .range(0.0..=100.0)
+                    .speed(0.001),
+            );
+            // Total variation smooths neighbouring pixels: vector inputs have none.
+            if image {
+                row(
+                    ui,
+                    "Total variation",
+                    egui::DragValue::new(&mut tv)
+                        .range(0.0..=100.0)
+                        .speed(0.001),
                 );
             }
+            row(
+                ui,
+                "Prior weight",
+                egui::DragValue::new(&mut weight)
+                    .range(0.0..=100.0)
+                    .speed(0.01),
+            );
+            row(
+                ui,
+                "Facets",
+                egui::DragValue::new(&mut facets).range(1..=MAX_FACETS),
+            );
         });
+    // The controls stay inside the valid ranges; the core's constructor checks anyway.
+    if let Ok(o) = PreferOptions::new(steps, restarts, s.seed(), l2, tv)
+        .and_then(|o| o.with_prior_weight(weight))
+        .and_then(|o| o.with_facets(facets))
+    {
+        *s = o;
+    }
+    let used = state.results.preferred.get(&sel.layer).map(|p| &p.settings);
+    let differs = used.is_some_and(|u| *u != state.prefs.search);
+    let text = if differs {
+        "Search this layer again with these settings"
+    } else {
+        "Search this layer again"
+    };
+    if ui.button(text).clicked() {
+        actions.push(Action::Recompute(sel.layer));
+    }
+    if sel.layer == 0 {
+        ui.weak("First layer without penalties: exact closed form (b + Σ max(w·low, w·high)).");
+    }
 }

@@ -1,7 +1,7 @@
 //! The menu bar (File, View, Help, and the open model's name) and the keys-and-marks help
 //! window. Both only queue [`Action`]s or change view preferences.
 
-use super::state::{AppState, MainView};
+use super::state::{AppState, MainView, UnitView};
 use super::{Action, ExportKind, colour, export, units};
 use egui::{Button, Key, KeyboardShortcut, Modifiers};
 use std::path::PathBuf;
@@ -17,6 +17,17 @@ pub fn menu_ui(ui: &mut egui::Ui, state: &mut AppState, actions: &mut Vec<Action
         ui.menu_button("View", |ui| {
             ui.selectable_value(&mut state.view, MainView::Units, "Units");
             ui.selectable_value(&mut state.view, MainView::Sparsity, "Sparsity and pruning");
+            ui.separator();
+            ui.radio_value(
+                &mut state.prefs.unit_view,
+                UnitView::Table,
+                "Units as a table",
+            );
+            ui.radio_value(
+                &mut state.prefs.unit_view,
+                UnitView::Tiles,
+                "Units as tiles",
+            );
             ui.separator();
             for mode in colour::ScaleMode::ALL {
                 ui.radio_value(&mut state.prefs.scale, mode, mode.label());
@@ -138,15 +149,16 @@ pub fn help_ui(ctx: &egui::Context, open: &mut bool, longest_busy_frame: Duratio
                 .striped(true)
                 .show(ui, |ui| {
                     for (k, what) in [
-                        ("Arrow keys", "move the selection in the grid"),
-                        ("Home / End", "first / last unit of the grid"),
+                        ("Arrow keys", "move the selection in the table or the tiles"),
+                        ("Home / End", "first / last unit of the list"),
+                        ("G", "go to a unit: type its number, then Enter"),
                         ("Page Up / Page Down", "layer above / below"),
                         ("Backspace", "back to the unit you walked down from"),
                         (
                             "W / P / S",
                             "detail map: weights / preferred input / sensitivity",
                         ),
-                        ("Tab", "switch between Units and Sparsity"),
+                        ("Tab", "move the keyboard to the next control"),
                         ("Esc", "stop the running analysis"),
                         ("Ctrl+O / Ctrl+P", "open a model / reference data"),
                         ("Ctrl+E", "export sparsity statistics (CSV)"),
@@ -158,7 +170,7 @@ pub fn help_ui(ctx: &egui::Context, open: &mut bool, longest_busy_frame: Duratio
                     }
                 });
             ui.separator();
-            ui.strong("Marks on unit tiles");
+            ui.strong("Status marks (table and tiles)");
             units::marks_legend_ui(ui, true);
             ui.separator();
             ui.weak(format!(

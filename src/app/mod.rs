@@ -11,6 +11,7 @@ pub mod conv;
 pub mod conv_jobs;
 pub mod detail;
 pub mod export;
+pub mod feature_chart;
 mod jobs;
 pub mod layers;
 pub mod maps;
@@ -18,6 +19,7 @@ pub mod menu;
 pub mod sparsity;
 pub mod state;
 pub mod statusbar;
+pub mod table;
 pub mod thumbs;
 pub mod timeline;
 pub mod timeline_jobs;
@@ -470,12 +472,6 @@ impl ReceptorApp {
                 if i.consume_key(Modifiers::NONE, key) {
                     self.state.prefs.map_view = view;
                 }
-            }
-            if i.consume_key(Modifiers::NONE, Key::Tab) {
-                self.state.view = match self.state.view {
-                    MainView::Units => MainView::Sparsity,
-                    MainView::Sparsity => MainView::Units,
-                };
             }
             let sel = self.state.selection;
             if let Some(s) = sel {

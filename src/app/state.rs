@@ -37,36 +37,134 @@ pub struct Tag {
 
 pub use super::colour::ScaleMode;
 
-/// The order of tiles in the unit grid.
+/// The order of units in the unit table and the tile wall: a column of the table.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
 pub enum SortKey {
     /// Unit index, from 0.
     #[default]
     Index,
-    /// Hoyer sparsity of the incoming weights, sparsest first.
-    Sparsity,
-    /// Fraction of probe samples where the unit is active, least active first.
+    /// Screening status, problems first (see [`status_rank`]).
+    Status,
+    /// Fraction of probe samples where the unit is active.
     Activity,
-    /// Pre-activation reached by the preferred input, highest first.
+    /// Sound upper bound of the pre-activation over the input box.
+    UpperBound,
+    /// Mean activation over the probe.
+    Mean,
+    /// Largest activation over the probe.
+    Max,
+    /// Hoyer sparsity of the incoming weights.
+    Sparsity,
+    /// Fraction of near-zero incoming weights.
+    NearZero,
+    /// Pre-activation reached by the preferred input.
     Preactivation,
 }
 
 impl SortKey {
     /// Every key, in menu order.
-    pub const ALL: [SortKey; 4] = [
+    pub const ALL: [SortKey; 9] = [
         SortKey::Index,
-        SortKey::Sparsity,
+        SortKey::Status,
         SortKey::Activity,
+        SortKey::UpperBound,
+        SortKey::Mean,
+        SortKey::Max,
+        SortKey::Sparsity,
+        SortKey::NearZero,
         SortKey::Preactivation,
     ];
 
-    /// The label shown in the sort menu.
+    /// The column's name (the table's header, the tile wall's sort menu).
     pub fn label(self) -> &'static str {
         match self {
-            SortKey::Index => "index",
-            SortKey::Sparsity => "sparsity (sparsest first)",
-            SortKey::Activity => "activity (least active first)",
-            SortKey::Preactivation => "pre-activation reached (highest first)",
+            SortKey::Index => "unit",
+            SortKey::Status => "status",
+            SortKey::Activity => "active %",
+            SortKey::UpperBound => "upper bound",
+            SortKey::Mean => "mean",
+            SortKey::Max => "max",
+            SortKey::Sparsity => "Hoyer",
+            SortKey::NearZero => "near-zero %",
+            SortKey::Preactivation => "pre-activation reached",
+        }
+    }
+
+    /// The direction a first click on the column sorts in: towards what screening looks
+    /// for first (least active, lowest bound, sparsest, most near-zero weights, the
+    /// highest pre-activation reached).
+    pub fn first_descending(self) -> bool {
+        matches!(
+            self,
+            SortKey::Sparsity | SortKey::NearZero | SortKey::Preactivation
+        )
+    }
+
+    /// Words for the direction: "lowest first" / "highest first" (for the index,
+    /// "first unit first" / "last unit first").
+    pub fn direction_words(self, descending: bool) -> &'static str {
+        match (self, descending) {
+            (SortKey::Index, false) => "in index order",
+            (SortKey::Index, true) => "last unit first",
+            (SortKey::Status, false) => "problems first",
+            (SortKey::Status, true) => "healthy first",
+            (_, false) => "lowest first",
+            (_, true) => "highest first",
+        }
+    }
+}
+
+/// How the middle pane shows the units of a layer.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+pub enum UnitView {
+    /// The sortable, filterable screening table.
+    #[default]
+    Table,
+    /// The wall of thumbnails.
+    Tiles,
+}
+
+/// Which units the table and the tile wall list, by screening status.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum StatusFilter {
+    /// Every unit.
+    #[default]
+    All,
+    /// Units with a problem status ([`is_problem`]).
+    Problems,
+    /// Units with exactly this status.
+    Only(Status),
+}
+
+impl StatusFilter {
+    /// Every choice, in menu order.
+    pub const ALL: [StatusFilter; 9] = [
+        StatusFilter::All,
+        StatusFilter::Problems,
+        StatusFilter::Only(Status::DeadProven),
+        StatusFilter::Only(Status::DeadOnProbe),
+        StatusFilter::Only(Status::RarelyActive),
+        StatusFilter::Only(Status::AlwaysActive),
+        StatusFilter::Only(Status::Saturated),
+        StatusFilter::Only(Status::Ok),
+        StatusFilter::Only(Status::NonFinite),
+    ];
+
+    /// The menu's words.
+    pub fn label(self) -> &'static str {
+        match self {
+            StatusFilter::All => "all units",
+            StatusFilter::Problems => "problem units",
+            StatusFilter::Only(s) => status_short(s),
+        }
+    }
+
+    /// True when a unit with screening row `status` (`None`: not screened) is kept.
+    pub fn keeps(self, status: Option<Status>) -> bool {
+        match self {
+            StatusFilter::All => true,
+            StatusFilter::Problems => status.is_some_and(is_problem),
+            StatusFilter::Only(want) => status == Some(want),
         }
     }
 }
@@ -168,10 +266,12 @@ pub struct Prefs {
     pub search: PreferOptions,
     /// Tile edge in points.
     pub tile_size: f32,
-    /// Grid order.
+    /// Unit order of the table and the tile wall.
     pub sort: SortKey,
-    /// Show only units with a problem status.
-    pub problems_only: bool,
+    /// Sort from the highest value down.
+    pub sort_descending: bool,
+    /// The table or the tile wall.
+    pub unit_view: UnitView,
     /// The map shown in the detail panel.
     pub map_view: MapView,
     /// Search preferred inputs with the data prior of the probe file (when one is open);
@@ -179,6 +279,8 @@ pub struct Prefs {
     pub use_prior: bool,
     /// Baseline of the attribution map: the probe's mean (true) or the box centre.
     pub attribution_from_mean: bool,
+    /// Row order of the per-feature charts of vector inputs.
+    pub feature_order: crate::analysis::features::FeatureOrder,
     /// The reference data last used with each model, keyed by the model's canonical path
     /// ([`Prefs::model_key`]); opened again with the model.
     pub reference_for: std::collections::BTreeMap<String, PathBuf>,
@@ -193,10 +295,12 @@ impl Default for Prefs {
             search: PreferOptions::default(),
             tile_size: 64.0,
             sort: SortKey::default(),
-            problems_only: false,
+            sort_descending: false,
+            unit_view: UnitView::default(),
             map_view: MapView::default(),
             use_prior: true,
             attribution_from_mean: false,
+            feature_order: Default::default(),
             reference_for: std::collections::BTreeMap::new(),
         }
     }
@@ -307,6 +411,9 @@ pub struct OpenProbe {
     pub reference: Option<Arc<Reference>>,
     /// Why the reference could not be made from the probe file.
     pub reference_error: Option<String>,
+    /// Where the file's data lies per feature, `[input size]` (vector inputs read from a
+    /// file only: the uniform probe is not data, and image charts have no rows).
+    pub spreads: Option<Arc<Vec<Option<crate::analysis::features::FeatureSpread>>>>,
     /// The model's confusion matrix on labelled reference data (`None` without labels).
     pub confusion: Option<Arc<crate::analysis::accuracy::Confusion>>,
 }
@@ -738,6 +845,9 @@ pub struct AppState {
     pub open_error: Option<OpenError>,
     /// Allow side-file paths outside the model's folder.
     pub allow_outside_paths: bool,
+    /// Which units the table and the tile wall list (not remembered between runs, so a
+    /// fresh start never hides units).
+    pub status_filter: StatusFilter,
     /// The unit order of the grid, recomputed when its inputs change.
     pub order_cache: Option<(OrderKey, Arc<Vec<usize>>)>,
     /// Pruning fraction chosen for "Save pruned model".
@@ -761,11 +871,13 @@ pub struct OrderKey {
     pub layer: usize,
     /// Sort key.
     pub sort: SortKey,
-    /// Problem units only.
-    pub problems_only: bool,
-    /// Which results were present (screen, stats, preferred count), so the order updates
-    /// as results arrive.
-    pub have: (bool, bool, usize),
+    /// Highest first.
+    pub descending: bool,
+    /// Status filter.
+    pub filter: StatusFilter,
+    /// Which results were present (screen, stats, bounds, activity, preferred count), so
+    /// the order updates as results arrive.
+    pub have: (bool, bool, bool, bool, usize),
 }
 
 impl AppState {
@@ -783,6 +895,7 @@ impl AppState {
             notice: None,
             open_error: None,
             allow_outside_paths,
+            status_filter: StatusFilter::All,
             order_cache: None,
             prune_fraction: 0.5,
             conv_sample: 0,
@@ -850,6 +963,57 @@ impl AppState {
             .and_then(|m| m.as_ref())
     }
 
+    /// The value of column `key` for a unit, from the results already computed (the
+    /// table shows it, the table and the tile wall sort by it); `None` while it is not
+    /// there or where it does not apply, and for NaN. Hidden layers take their numbers
+    /// from screening; the output layer, which screening does not cover, takes its upper
+    /// bound from the interval bounds and its largest activation from the probe's
+    /// activity.
+    pub fn unit_value(&self, layer: usize, unit: usize, key: SortKey) -> Option<f64> {
+        let screen = self.screen_of(layer, unit);
+        let stats = self.stats_of(layer, unit);
+        let v = match key {
+            SortKey::Index => Some(unit as f64),
+            SortKey::Status => screen.map(|s| f64::from(status_rank(s.status))),
+            SortKey::Activity => screen.map(|s| s.active_frac),
+            SortKey::UpperBound => screen.map(|s| s.upper_bound).or_else(|| {
+                let net = self.net()?;
+                let bounds = self.results.bounds.as_ref()?;
+                (layer + 1 == net.layers().len()).then(|| bounds.unit_upper(net, layer, unit))
+            }),
+            SortKey::Mean => screen.map(|s| s.mean),
+            SortKey::Max => screen.map(|s| s.max).or_else(|| {
+                let net = self.net()?;
+                let a = self
+                    .results
+                    .activity
+                    .as_ref()?
+                    .layers
+                    .get(layer)?
+                    .get(unit)?;
+                (layer + 1 == net.layers().len() && a.hi.is_finite()).then_some(f64::from(a.hi))
+            }),
+            SortKey::Sparsity => stats.map(|s| s.hoyer),
+            SortKey::NearZero => stats.map(|s| s.near_zero_frac),
+            SortKey::Preactivation => self
+                .preferred_of(layer, unit)
+                .filter(|p| p.finite)
+                .map(|p| f64::from(p.preactivation)),
+        };
+        v.filter(|x| !x.is_nan())
+    }
+
+    /// Sorts the units by column `key`: a new column starts in its first direction, the
+    /// current one turns around.
+    pub fn sort_by(&mut self, key: SortKey) {
+        if self.prefs.sort == key {
+            self.prefs.sort_descending = !self.prefs.sort_descending;
+        } else {
+            self.prefs.sort = key;
+            self.prefs.sort_descending = key.first_descending();
+        }
+    }
+
     /// Selects `sel`; when `walk` is set the previous selection is kept for Back.
     pub fn select(&mut self, sel: Selection, walk: bool) {
         if walk && let Some(prev) = self.selection {
@@ -877,10 +1041,13 @@ impl AppState {
             tag: self.tag(),
             layer,
             sort: self.prefs.sort,
-            problems_only: self.prefs.problems_only,
+            descending: self.prefs.sort_descending,
+            filter: self.status_filter,
             have: (
                 self.results.screen.is_ready(),
                 self.results.stats.is_ready(),
+                self.results.bounds.is_ready(),
+                self.results.activity.is_ready(),
                 pref_count,
             ),
         };
@@ -890,38 +1057,28 @@ impl AppState {
             return order.clone();
         }
         let mut units: Vec<usize> = (0..n).collect();
-        if self.prefs.problems_only {
+        if self.status_filter != StatusFilter::All {
             units.retain(|&u| {
-                self.screen_of(layer, u)
-                    .is_some_and(|s| is_problem(s.status))
+                self.status_filter
+                    .keeps(self.screen_of(layer, u).map(|s| s.status))
             });
         }
-        // Sorting is stable, so ties keep index order; missing values sort last.
-        match self.prefs.sort {
-            SortKey::Index => {}
-            SortKey::Sparsity => {
-                let key = |u: usize| {
-                    self.stats_of(layer, u)
-                        .map_or(f64::NEG_INFINITY, |s| s.hoyer)
-                };
-                units.sort_by(|a, b| key(*b).total_cmp(&key(*a)));
-            }
-            SortKey::Activity => {
-                let key = |u: usize| {
-                    self.screen_of(layer, u)
-                        .map_or(f64::INFINITY, |s| s.active_frac)
-                };
-                units.sort_by(|a, b| key(*a).total_cmp(&key(*b)));
-            }
-            SortKey::Preactivation => {
-                let key = |u: usize| {
-                    self.preferred_of(layer, u)
-                        .filter(|p| p.finite)
-                        .map_or(f32::NEG_INFINITY, |p| p.preactivation)
-                };
-                units.sort_by(|a, b| key(*b).total_cmp(&key(*a)));
-            }
-        }
+        // Sorting is stable, so ties keep index order; missing values (and NaN) sort last
+        // in either direction.
+        let sort = self.prefs.sort;
+        let mut keyed: Vec<(Option<f64>, usize)> = units
+            .iter()
+            .map(|&u| (self.unit_value(layer, u, sort), u))
+            .collect();
+        let descending = self.prefs.sort_descending;
+        keyed.sort_by(|(a, _), (b, _)| match (a, b) {
+            (Some(a), Some(b)) if descending => b.total_cmp(a),
+            (Some(a), Some(b)) => a.total_cmp(b),
+            (Some(_), None) => std::cmp::Ordering::Less,
+            (None, Some(_)) => std::cmp::Ordering::Greater,
+            (None, None) => std::cmp::Ordering::Equal,
+        });
+        let units: Vec<usize> = keyed.into_iter().map(|(_, u)| u).collect();
         let order = Arc::new(units);
         self.order_cache = Some((key, order.clone()));
         order
@@ -938,6 +1095,46 @@ pub fn is_problem(status: Status) -> bool {
             | Status::Saturated
             | Status::NonFinite
     )
+}
+
+/// Where a status sorts in the table's status column: the problems a screen looks for
+/// first, healthy units last.
+pub fn status_rank(status: Status) -> u8 {
+    match status {
+        Status::NonFinite => 0,
+        Status::DeadProven => 1,
+        Status::DeadOnProbe => 2,
+        Status::RarelyActive => 3,
+        Status::Saturated => 4,
+        Status::AlwaysActive => 5,
+        Status::Ok => 6,
+    }
+}
+
+/// A short name for a status (the table's filter menu and status column).
+pub fn status_short(status: Status) -> &'static str {
+    match status {
+        Status::DeadProven => "dead (proven)",
+        Status::DeadOnProbe => "dead on the data",
+        Status::RarelyActive => "rarely active",
+        Status::AlwaysActive => "always active",
+        Status::Saturated => "saturated",
+        Status::Ok => "healthy",
+        Status::NonFinite => "non-finite",
+    }
+}
+
+/// The class label of an output unit, when the model names its classes (`None` for
+/// hidden layers and unlabelled outputs).
+pub fn class_label(net: &Network, layer: usize, unit: usize) -> Option<&str> {
+    if layer + 1 != net.layers().len() {
+        return None;
+    }
+    net.layer(layer)
+        .labels
+        .as_ref()?
+        .get(unit)
+        .map(String::as_str)
 }
 
 /// Plain words for a status, as shown in the app.
@@ -1025,6 +1222,96 @@ mod tests {
         let text = serde_json::to_string(&p).unwrap();
         let back: Prefs = serde_json::from_str(&text).unwrap();
         assert_eq!(back.search, want);
+    }
+
+    /// A 2-3-2 relu network with screening rows for its hidden layer: unit 0 non-finite
+    /// (NaN mean), unit 1 healthy, unit 2 dead on the probe.
+    fn screened_state() -> AppState {
+        use crate::analysis::screen::ScreenReport;
+        use crate::model::{Activation, BoxOrigin, BoxSource, InputSpec, Layer, LayerKind};
+        let layer = |name: &str, units: usize, inputs: usize| Layer {
+            kind: LayerKind::Dense,
+            name: name.into(),
+            activation: Activation::Relu,
+            weights: ndarray::Array2::zeros((units, inputs)),
+            bias: ndarray::Array1::zeros(units),
+            labels: None,
+        };
+        let input = InputSpec {
+            units: None,
+            size: 2,
+            layout: crate::model::Layout::Vector,
+            low: vec![0.0; 2],
+            high: vec![1.0; 2],
+            names: None,
+        };
+        let layers = vec![layer("h", 3, 2), layer("out", 2, 3)];
+        let net = Network::new("test", "t", input, layers).unwrap();
+        let row = |unit: usize, mean: f64, status: Status| UnitScreen {
+            layer: "h".into(),
+            layer_index: 0,
+            unit,
+            activation: "relu",
+            active_frac: 0.5,
+            mean,
+            max: 1.0,
+            upper_bound: 1.0,
+            status,
+        };
+        let report = ScreenReport {
+            units: vec![
+                row(0, f64::NAN, Status::NonFinite),
+                row(1, 0.5, Status::Ok),
+                row(2, 0.2, Status::DeadOnProbe),
+            ],
+            samples: 10,
+            probe: "test".into(),
+        };
+        let mut state = AppState::new(Prefs::default(), false);
+        state.results.screen = Slot::Ready(Arc::new(ScreenResult::new(&net, report)));
+        state.model = Some(OpenModel {
+            net: Arc::new(net),
+            origin: "test".into(),
+            path: None,
+            box_origin: BoxOrigin {
+                low: BoxSource::ModelFile,
+                high: BoxSource::ModelFile,
+            },
+        });
+        state
+    }
+
+    #[test]
+    fn missing_values_sort_last_in_both_directions() {
+        let mut state = screened_state();
+        state.sort_by(SortKey::Mean);
+        assert!(
+            !state.prefs.sort_descending,
+            "mean sorts lowest first at first"
+        );
+        assert_eq!(*state.order(0), vec![2, 1, 0], "NaN mean last");
+        state.sort_by(SortKey::Mean);
+        assert_eq!(*state.order(0), vec![1, 2, 0], "NaN mean still last");
+        // The output layer is not screened: no mean, so index order both ways.
+        assert_eq!(*state.order(1), vec![0, 1]);
+        // Status: problems first (non-finite, then dead on the probe), healthy last.
+        state.sort_by(SortKey::Status);
+        assert_eq!(*state.order(0), vec![0, 2, 1]);
+    }
+
+    #[test]
+    fn the_status_filter_keeps_what_it_names() {
+        let mut state = screened_state();
+        state.status_filter = StatusFilter::Only(Status::DeadOnProbe);
+        assert_eq!(*state.order(0), vec![2]);
+        state.status_filter = StatusFilter::Problems;
+        assert_eq!(*state.order(0), vec![0, 2]);
+        state.status_filter = StatusFilter::Only(Status::Ok);
+        assert_eq!(*state.order(0), vec![1]);
+        // Unscreened units (the output layer) pass only "all units".
+        assert!(state.order(1).is_empty());
+        state.status_filter = StatusFilter::All;
+        assert_eq!(*state.order(1), vec![0, 1]);
     }
 
     #[test]

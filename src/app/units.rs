@@ -1,11 +1,15 @@
-//! The grid of unit thumbnails for the selected layer: first-layer units show their incoming
-//! weights in the input layout, deeper units their preferred input (filling in as the
-//! worker's batches arrive). Each tile carries a small status mark. Only visible rows are
-//! drawn, so a 2048-unit layer scrolls smoothly.
+//! The middle pane's units of the selected layer, in one of two modes: the unit table
+//! (the default, [`super::table`]) or the wall of thumbnails. First-layer tiles show their
+//! incoming weights in the input layout, deeper tiles their preferred input (filling in as
+//! the worker's batches arrive); each tile carries a small status mark. This panel owns the
+//! mode switch, the status filter, "Go to unit" and the keyboard; both modes share the
+//! order ([`AppState::order`]). Only visible rows are drawn, so a 2048-unit layer scrolls
+//! smoothly.
 
 use super::Action;
 use super::maps;
-use super::state::{AppState, Selection, SortKey};
+use super::state::{AppState, Selection, SortKey, StatusFilter, UnitView};
+use super::table::TablePanel;
 use super::thumbs::{ThumbKey, ThumbKind, Thumbs};
 use crate::analysis::screen::Status;
 use egui::{Color32, Pos2, Rect, Sense, Stroke, Vec2, pos2, vec2};
@@ -14,18 +18,26 @@ use egui::{Color32, Pos2, Rect, Sense, Stroke, Vec2, pos2, vec2};
 const GAP: f32 = 6.0;
 /// Height of the caption under each tile.
 const CAPTION: f32 = 14.0;
+/// The key that puts the keyboard in the "Go to unit" field.
+pub const GO_TO_KEY: egui::Key = egui::Key::G;
 
-/// The unit grid panel.
+/// The units panel: the table or the tile wall, and what both share.
 #[derive(Default)]
 pub struct UnitsPanel {
-    /// Set when the selection moved by keyboard, so the grid scrolls to it.
+    /// Set when the selection moved by keyboard or "Go to unit", so the view scrolls to it.
     scroll_to_selected: bool,
-    /// Columns in the last drawn frame (for Up/Down).
+    /// Columns of the tile wall in the last drawn frame (for Up/Down).
     columns: usize,
+    /// The tile rows drawn in the last frame (to scroll to a selection outside them).
+    grid_shown: std::ops::Range<usize>,
+    /// The text of the "Go to unit" field.
+    go_to: String,
+    /// The table.
+    table: TablePanel,
 }
 
 impl UnitsPanel {
-    /// Draws the toolbar and the grid, and handles the arrow keys.
+    /// Draws the toolbar and the table or the tile wall, and handles the keys.
     pub fn ui(
         &mut self,
         ui: &mut egui::Ui,
@@ -40,31 +52,37 @@ impl UnitsPanel {
         if layer >= net.layers().len() {
             return;
         }
-        self.toolbar_ui(ui, state, layer);
-        // The problem units are the screening's verdicts: say when they rest on noise.
-        if state.prefs.problems_only {
+        self.toolbar_ui(ui, state, &net, layer);
+        // Filtering by status rests on the screening's verdicts: say when they rest on
+        // noise (the layer list says it always).
+        if state.status_filter != StatusFilter::All {
             super::layers::uniform_warning_ui(ui, state, actions);
         }
         let order = state.order(layer);
-        self.keyboard(ui, state, layer, &order);
+        let tiles = state.prefs.unit_view == UnitView::Tiles;
+        let row_step = if tiles { self.columns.max(1) } else { 1 };
+        self.keyboard(ui, state, layer, &order, row_step);
 
         if order.is_empty() {
             ui.add_space(20.0);
-            ui.vertical_centered(|ui| {
-                if state.prefs.problems_only && !state.results.screen.is_ready() {
-                    ui.label("Screening is still running; problem units appear when it is done.");
-                } else {
-                    ui.label("No unit of this layer has a problem status.");
-                }
-            });
+            ui.vertical_centered(|ui| ui.label(empty_text(state, &net, layer)));
             return;
         }
-
-        self.grid_ui(ui, state, thumbs, &net, layer, &order);
+        let scroll = std::mem::take(&mut self.scroll_to_selected);
+        if tiles {
+            self.grid_ui(ui, state, thumbs, &net, layer, &order, scroll);
+        } else {
+            self.table
+                .ui(ui, state, thumbs, &net, layer, &order, scroll);
+        }
     }
 
     /// The tiles of `layer` in `order`, row by row; only visible rows are drawn. A click
     /// selects the unit.
+    #[allow(
+        clippy::too_many_arguments,
+        reason = "the panel's locals, passed once per frame"
+    )]
     fn grid_ui(
         &mut self,
         ui: &mut egui::Ui,
@@ -73,6 +91,7 @@ impl UnitsPanel {
         net: &crate::model::Network,
         layer: usize,
         order: &[usize],
+        scroll: bool,
     ) {
         let tile = state.prefs.tile_size;
         let cell = vec2(tile + GAP, tile + CAPTION + GAP);
@@ -85,83 +104,141 @@ impl UnitsPanel {
             .selection
             .filter(|s| s.layer == layer)
             .and_then(|s| order.iter().position(|&u| u == s.unit));
-        let scroll_to = if self.scroll_to_selected {
-            self.scroll_to_selected = false;
+        let scroll_to = if scroll {
             selected_pos.map(|p| p / cols)
         } else {
             None
         };
         let mut clicked = None;
-        egui::ScrollArea::vertical()
+        let mut area = egui::ScrollArea::vertical()
             .id_salt(("unit-grid", layer))
-            .auto_shrink([false, false])
-            .show_rows(
-                ui,
-                cell.y - ui.spacing().item_spacing.y,
-                rows,
-                |ui, range| {
-                    // The units on screen, so their preferred inputs are searched first.
-                    let shown = order
-                        .get(range.start * cols..(range.end * cols).min(order.len()))
-                        .unwrap_or_default();
-                    state.run.visible = Some((layer, shown.to_vec()));
-                    for row in range {
-                        ui.horizontal(|ui| {
-                            ui.spacing_mut().item_spacing.x = 0.0;
-                            for c in 0..cols {
-                                let Some(&unit) = order.get(row * cols + c) else {
-                                    break;
-                                };
-                                let selected = selected_pos == Some(row * cols + c);
-                                let r = tile_ui(
-                                    ui, state, thumbs, net, layer, unit, selected, cell, tile,
-                                );
-                                if r.clicked() {
-                                    clicked = Some(unit);
-                                }
-                                if selected && scroll_to == Some(row) {
-                                    r.scroll_to_me(Some(egui::Align::Center));
-                                }
+            .auto_shrink([false, false]);
+        // A selection outside the rows drawn last frame: scroll there first (the tile
+        // itself is drawn only once it is in view).
+        if let Some(row) = scroll_to
+            && !self.grid_shown.contains(&row)
+        {
+            let half = (self.grid_shown.len() as f32 / 2.0).floor();
+            area = area.vertical_scroll_offset(((row as f32 - half) * cell.y).max(0.0));
+        }
+        area.show_rows(
+            ui,
+            cell.y - ui.spacing().item_spacing.y,
+            rows,
+            |ui, range| {
+                // The units on screen, so their preferred inputs are searched first.
+                let shown = order
+                    .get(range.start * cols..(range.end * cols).min(order.len()))
+                    .unwrap_or_default();
+                state.run.visible = Some((layer, shown.to_vec()));
+                self.grid_shown = range.clone();
+                for row in range {
+                    ui.horizontal(|ui| {
+                        ui.spacing_mut().item_spacing.x = 0.0;
+                        for c in 0..cols {
+                            let Some(&unit) = order.get(row * cols + c) else {
+                                break;
+                            };
+                            let selected = selected_pos == Some(row * cols + c);
+                            let r =
+                                tile_ui(ui, state, thumbs, net, layer, unit, selected, cell, tile);
+                            if r.clicked() {
+                                clicked = Some(unit);
                             }
-                        });
-                    }
-                },
-            );
+                            if selected && scroll_to == Some(row) {
+                                r.scroll_to_me(Some(egui::Align::Center));
+                            }
+                        }
+                    });
+                }
+            },
+        );
         if let Some(unit) = clicked {
             state.select(Selection { layer, unit }, false);
         }
     }
 
-    fn toolbar_ui(&mut self, ui: &mut egui::Ui, state: &mut AppState, layer: usize) {
+    /// The mode switch, the status filter and "Go to unit"; then the mode's own row (the
+    /// sort menu and tile size for the tiles, the sort order in words for the table) and
+    /// the legend of the marks.
+    fn toolbar_ui(
+        &mut self,
+        ui: &mut egui::Ui,
+        state: &mut AppState,
+        net: &crate::model::Network,
+        layer: usize,
+    ) {
         ui.horizontal(|ui| {
-            let label = ui.label("Sort by");
-            egui::ComboBox::from_id_salt("sort-units")
-                .selected_text(state.prefs.sort.label())
+            let view = &mut state.prefs.unit_view;
+            ui.selectable_value(view, UnitView::Table, "Table")
+                .on_hover_text("One row per unit: screening numbers, sortable by column");
+            ui.selectable_value(view, UnitView::Tiles, "Tiles")
+                .on_hover_text("A wall of thumbnails");
+            ui.separator();
+            let label = ui.label("Show");
+            egui::ComboBox::from_id_salt("unit-filter")
+                .selected_text(state.status_filter.label())
                 .show_ui(ui, |ui| {
-                    for k in SortKey::ALL {
-                        ui.selectable_value(&mut state.prefs.sort, k, k.label());
+                    let counts = status_counts(state, layer);
+                    for f in StatusFilter::ALL {
+                        let n = counts.iter().filter(|s| f.keeps(**s)).count();
+                        let text = format!("{}: {n}", f.label());
+                        ui.selectable_value(&mut state.status_filter, f, text);
                     }
                 })
                 .response
                 .labelled_by(label.id);
-            ui.checkbox(&mut state.prefs.problems_only, "Problem units only");
+            ui.separator();
+            self.go_to_ui(ui, state, net, layer);
         });
+        // The colour scale of the weight maps (the table's thumbnails and the tiles).
         ui.horizontal(|ui| super::colour::scale_switch_ui(ui, &mut state.prefs.scale));
-        ui.horizontal(|ui| {
-            ui.add(
-                egui::Slider::new(&mut state.prefs.tile_size, 32.0..=160.0)
-                    .text("Tile size")
-                    .integer(),
-            );
-            let caption = state
-                .net()
-                .and_then(|n| super::conv::tiles_caption(n, layer));
+        if state.prefs.unit_view == UnitView::Tiles {
+            ui.horizontal(|ui| {
+                let label = ui.label("Sort by");
+                egui::ComboBox::from_id_salt("sort-units")
+                    .selected_text(state.prefs.sort.label())
+                    .show_ui(ui, |ui| {
+                        for k in SortKey::ALL {
+                            if ui
+                                .selectable_label(state.prefs.sort == k, k.label())
+                                .clicked()
+                                && state.prefs.sort != k
+                            {
+                                state.sort_by(k);
+                            }
+                        }
+                    })
+                    .response
+                    .labelled_by(label.id);
+                let sort = state.prefs.sort;
+                if ui
+                    .button(sort.direction_words(state.prefs.sort_descending))
+                    .on_hover_text("Turn the order around")
+                    .clicked()
+                {
+                    state.sort_by(sort);
+                }
+                ui.add(
+                    egui::Slider::new(&mut state.prefs.tile_size, 32.0..=160.0)
+                        .text("Tile size")
+                        .integer(),
+                );
+            });
+            let caption = super::conv::tiles_caption(net, layer);
             ui.weak(caption.unwrap_or(if layer == 0 {
                 "Tiles: incoming weights"
             } else {
                 "Tiles: preferred inputs"
             }));
-        });
+        } else {
+            let sort = state.prefs.sort;
+            ui.weak(format!(
+                "Sorted by {}, {}. Click a column's header to sort by it.",
+                sort.label(),
+                sort.direction_words(state.prefs.sort_descending)
+            ));
+        }
         ui.horizontal_wrapped(|ui| {
             ui.weak("Marks:");
             marks_legend_ui(ui, false);
@@ -169,11 +246,75 @@ impl UnitsPanel {
         ui.add_space(2.0);
     }
 
-    fn keyboard(&mut self, ui: &egui::Ui, state: &mut AppState, layer: usize, order: &[usize]) {
-        if order.is_empty() || ui.ctx().memory(|m| m.focused().is_some()) {
+    /// The "Go to unit" field: a unit number and Enter select that unit (showing every
+    /// status again when the filter hid it).
+    fn go_to_ui(
+        &mut self,
+        ui: &mut egui::Ui,
+        state: &mut AppState,
+        net: &crate::model::Network,
+        layer: usize,
+    ) {
+        let label = ui.label("Go to unit");
+        let units = net.layer(layer).units();
+        let r = ui
+            .add(
+                egui::TextEdit::singleline(&mut self.go_to)
+                    .id(go_to_id())
+                    .hint_text(format!("0–{}", units.saturating_sub(1)))
+                    .desired_width(56.0),
+            )
+            .labelled_by(label.id)
+            .on_hover_text(format!(
+                "Type a unit number and press Enter ({GO_TO_KEY:?} puts the keyboard here)"
+            ));
+        if !(r.lost_focus() && ui.input(|i| i.key_pressed(egui::Key::Enter))) {
             return;
         }
-        let cols = self.columns.max(1) as isize;
+        let text = std::mem::take(&mut self.go_to);
+        let lname = &net.layer(layer).name;
+        match text.trim().parse::<usize>() {
+            Ok(unit) if unit < units => {
+                if !state
+                    .status_filter
+                    .keeps(state.screen_of(layer, unit).map(|s| s.status))
+                {
+                    state.status_filter = StatusFilter::All;
+                }
+                state.select(Selection { layer, unit }, false);
+                self.scroll_to_selected = true;
+            }
+            _ => state.fail(format!(
+                "Go to unit: '{}' is not a unit of layer {lname} (0 to {})",
+                text.trim(),
+                units.saturating_sub(1)
+            )),
+        }
+    }
+
+    /// Arrow keys, Home and End move the selection through `order` (`row_step` units per
+    /// Up/Down); [`GO_TO_KEY`] puts the keyboard in "Go to unit". Only while no widget has
+    /// the keyboard, so Tab still moves focus between controls.
+    fn keyboard(
+        &mut self,
+        ui: &egui::Ui,
+        state: &mut AppState,
+        layer: usize,
+        order: &[usize],
+        row_step: usize,
+    ) {
+        if ui.ctx().memory(|m| m.focused().is_some()) {
+            return;
+        }
+        if ui.input_mut(|i| i.consume_key(egui::Modifiers::NONE, GO_TO_KEY)) {
+            self.go_to.clear();
+            ui.ctx().memory_mut(|m| m.request_focus(go_to_id()));
+            return;
+        }
+        if order.is_empty() {
+            return;
+        }
+        let rows = row_step.max(1) as isize;
         let pos = state
             .selection
             .filter(|s| s.layer == layer)
@@ -187,9 +328,9 @@ impl UnitsPanel {
             } else if i.key_pressed(Key::ArrowLeft) {
                 step = Some(-1);
             } else if i.key_pressed(Key::ArrowDown) {
-                step = Some(cols);
+                step = Some(rows);
             } else if i.key_pressed(Key::ArrowUp) {
-                step = Some(-cols);
+                step = Some(-rows);
             } else if i.key_pressed(Key::Home) {
                 jump = Some(0);
             } else if i.key_pressed(Key::End) {
@@ -214,6 +355,39 @@ impl UnitsPanel {
             );
             self.scroll_to_selected = true;
         }
+    }
+}
+
+/// The id of the "Go to unit" field (the same every frame, so [`GO_TO_KEY`] can focus it).
+fn go_to_id() -> egui::Id {
+    egui::Id::unique("receptor-go-to-unit")
+}
+
+/// The screening status of every unit of `layer` (`None` where it has none yet, or on the
+/// output layer), for the filter menu's counts.
+fn status_counts(state: &AppState, layer: usize) -> Vec<Option<Status>> {
+    let n = state
+        .net()
+        .and_then(|n| n.layers().get(layer))
+        .map_or(0, |l| l.units());
+    (0..n)
+        .map(|u| state.screen_of(layer, u).map(|s| s.status))
+        .collect()
+}
+
+/// Why the filtered list of `layer` is empty.
+fn empty_text(state: &AppState, net: &crate::model::Network, layer: usize) -> String {
+    let filter = state.status_filter;
+    if layer + 1 == net.layers().len() {
+        "Screening covers hidden layers only: show all units to see the output layer.".into()
+    } else if !state.results.screen.is_ready() {
+        "Screening is still running; the units appear when it is done.".into()
+    } else {
+        format!(
+            "No unit of layer {} is in \"{}\".",
+            net.layer(layer).name,
+            filter.label()
+        )
     }
 }
 
@@ -245,7 +419,13 @@ fn tile_ui(
     let visuals = ui.visuals().clone();
     ui.painter()
         .rect_filled(rect, 2.0, visuals.extreme_bg_color);
-    match tile_texture(ui.ctx(), state, thumbs, net, layer, unit) {
+    // Vector inputs: a glyph of the feature chart instead of a picture.
+    let glyph = super::feature_chart::tile_glyph(ui, state, net, layer, unit, rect.shrink(4.0));
+    let texture = match glyph {
+        None => tile_texture(ui.ctx(), state, thumbs, net, layer, unit),
+        Some(_) => None,
+    };
+    match texture {
         Some(t) => {
             let r = fit(t.size_vec2(), rect.shrink(2.0));
             ui.painter().image(
@@ -255,6 +435,7 @@ fn tile_ui(
                 Color32::WHITE,
             );
         }
+        None if glyph == Some(true) => {}
         None => {
             let text = if layer > 0
                 && state
@@ -284,13 +465,17 @@ fn tile_ui(
             5.5,
         );
     }
-    tile_frame_and_caption(ui, rect, unit, selected, response.hovered());
+    let caption = match super::state::class_label(net, layer, unit) {
+        Some(c) => format!("{unit} {c}"),
+        None => unit.to_string(),
+    };
+    tile_frame_and_caption(ui, rect, &caption, selected, response.hovered());
     response.on_hover_ui(|ui| tile_tooltip_ui(ui, state, net, layer, unit, &label))
 }
 
 /// The tile's picture: first-layer units show their incoming weights (a shared-scale tile
 /// waits for the layer's largest |w|), deeper units their preferred input once it is there.
-fn tile_texture(
+pub(super) fn tile_texture(
     ctx: &egui::Context,
     state: &AppState,
     thumbs: &mut Thumbs,
@@ -328,8 +513,9 @@ fn tile_texture(
     })
 }
 
-/// The frame around a tile (thick when selected, bright when hovered) and its unit number.
-fn tile_frame_and_caption(ui: &egui::Ui, rect: Rect, unit: usize, selected: bool, hovered: bool) {
+/// The frame around a tile (thick when selected, bright when hovered) and its caption (the
+/// unit number, and the class label on a labelled output layer), cut to the tile's width.
+fn tile_frame_and_caption(ui: &egui::Ui, rect: Rect, caption: &str, selected: bool, hovered: bool) {
     let visuals = ui.visuals();
     let frame = if selected {
         Stroke::new(2.5, visuals.selection.stroke.color)
@@ -340,21 +526,23 @@ fn tile_frame_and_caption(ui: &egui::Ui, rect: Rect, unit: usize, selected: bool
     };
     let painter = ui.painter();
     painter.rect_stroke(rect, 2.0, frame, egui::StrokeKind::Outside);
-    painter.text(
-        pos2(rect.center().x, rect.bottom() + 2.0),
-        egui::Align2::CENTER_TOP,
-        unit.to_string(),
-        egui::TextStyle::Small.resolve(ui.style()),
-        if selected {
-            visuals.strong_text_color()
-        } else {
-            visuals.text_color()
-        },
-    );
+    let colour = if selected {
+        visuals.strong_text_color()
+    } else {
+        visuals.text_color()
+    };
+    let font = egui::TextStyle::Small.resolve(ui.style());
+    let job = egui::text::LayoutJob {
+        wrap: egui::text::TextWrapping::truncate_at_width(rect.width() + 2.0),
+        ..egui::text::LayoutJob::simple_singleline(caption.to_owned(), font, colour)
+    };
+    let galley = painter.layout_job(job);
+    let at = pos2(rect.center().x - galley.size().x / 2.0, rect.bottom() + 2.0);
+    painter.galley(at, galley, colour);
 }
 
 /// The tile's tooltip: status, activity, sparsity and the pre-activation reached.
-fn tile_tooltip_ui(
+pub(super) fn tile_tooltip_ui(
     ui: &mut egui::Ui,
     state: &AppState,
     net: &crate::model::Network,
@@ -363,6 +551,9 @@ fn tile_tooltip_ui(
     label: &str,
 ) {
     ui.strong(label);
+    if let Some(c) = super::state::class_label(net, layer, unit) {
+        ui.label(format!("class: {c}"));
+    }
     match state.screen_of(layer, unit) {
         Some(s) => {
             ui.label(format!("status: {}", super::state::status_words(s.status)));

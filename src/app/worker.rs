@@ -712,6 +712,12 @@ fn load_probe(net: &Network, choice: &ProbeChoice) -> Result<OpenProbe> {
         },
         None => (None, None),
     };
+    let spreads =
+        (path.is_some() && net.input().layout == crate::model::Layout::Vector).then(|| {
+            Arc::new(crate::analysis::features::feature_spreads(
+                data.inputs.view(),
+            ))
+        });
     let confusion = data.labels.as_ref().map(|labels| {
         Arc::new(crate::analysis::accuracy::confusion(
             net,
@@ -721,6 +727,7 @@ fn load_probe(net: &Network, choice: &ProbeChoice) -> Result<OpenProbe> {
         ))
     });
     Ok(OpenProbe {
+        spreads,
         data: Arc::new(data),
         mean: Arc::new(mean),
         path,

@@ -10,8 +10,9 @@
 //!
 //! ONNX carries no input box: it comes from the caller ([`super::InputBox`]), else from
 //! the model's `metadata_props` ([`META_LOW`], [`META_HIGH`]), else [`super::DEFAULT_BOX`].
-//! Class labels and feature names may also come from `metadata_props` ([`META_LABELS`],
-//! [`META_NAMES`]). Errors name the file, and for a node its name, operator type and
+//! Class labels, feature names and the features' physical units may also come from
+//! `metadata_props` ([`META_LABELS`], [`META_NAMES`], [`META_UNITS`]). Errors name the
+//! file, and for a node its name, operator type and
 //! position, with what receptor reads instead.
 
 mod graph;
@@ -34,6 +35,9 @@ pub const META_HIGH: &str = "receptor.high";
 pub const META_LABELS: &str = "receptor.labels";
 /// `metadata_props` key of the input features' names: a JSON array of strings.
 pub const META_NAMES: &str = "receptor.names";
+/// `metadata_props` key of the input features' physical units (the schema's `input.units`,
+/// e.g. `"degC"`, `"%"`, `"A"`): a JSON array of strings, one per input.
+pub const META_UNITS: &str = "receptor.units";
 
 /// Where the reader is and what it may do, for messages and external data.
 #[derive(Debug)]
@@ -128,6 +132,10 @@ pub fn from_bytes(
         Some(text) => Some(string_list(&ctx, META_NAMES, text)?),
         None => None,
     };
+    let units = match meta(META_UNITS) {
+        Some(text) => Some(string_list(&ctx, META_UNITS, text)?),
+        None => None,
+    };
     let mut layers = lowered.layers;
     if let Some(text) = meta(META_LABELS)
         && let Some(last) = layers.last_mut()
@@ -143,7 +151,7 @@ pub fn from_bytes(
         graph.name.clone()
     };
     let input = InputSpec {
-        units: None,
+        units,
         size,
         layout: lowered.layout,
         low,

@@ -263,6 +263,54 @@ fn given_box_wins_over_metadata_and_names_are_unique() {
     assert_eq!(names, ["a", "a_2"]);
 }
 
+/// A one-layer model of two inputs with `meta` as its metadata.
+fn two_input_model(meta: &[(&str, &str)]) -> Vec<u8> {
+    bytes(
+        vec![node("Gemm", &["x", "W"], "y", vec![attr_i("transB", 1)])],
+        vec![t("W", &[1, 2], &[1.0, 2.0])],
+        &[0, 2],
+        meta,
+    )
+}
+
+#[test]
+fn names_and_units_come_from_metadata() {
+    let m = two_input_model(&[
+        ("receptor.names", r#"["air_temp", "current"]"#),
+        ("receptor.units", r#"["degC", "A"]"#),
+    ]);
+    let (net, _) = read(&m, &LoadOptions::default()).expect("reads");
+    assert_eq!(net.input().feature_name(0), "air_temp");
+    assert_eq!(net.input().feature_unit(0), Some("degC"));
+    assert_eq!(net.input().feature_unit(1), Some("A"));
+    let (plain, _) = read(&two_input_model(&[]), &LoadOptions::default()).expect("reads");
+    assert_eq!(plain.input().feature_unit(0), None);
+}
+
+#[test]
+fn bad_units_metadata_names_the_key_and_the_count() {
+    let e = read(
+        &two_input_model(&[("receptor.units", r#"["degC"]"#)]),
+        &LoadOptions::default(),
+    )
+    .unwrap_err()
+    .to_string();
+    assert!(
+        e.contains("m.onnx") && e.contains("\"units\" has 1 entries"),
+        "{e}"
+    );
+    let e = read(
+        &two_input_model(&[("receptor.units", "degC")]),
+        &LoadOptions::default(),
+    )
+    .unwrap_err()
+    .to_string();
+    assert!(
+        e.contains("receptor.units") && e.contains("JSON array"),
+        "{e}"
+    );
+}
+
 #[test]
 fn external_data_outside_the_folder_needs_permission() {
     let dir = tempfile::tempdir().expect("temp dir");
