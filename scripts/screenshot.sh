@@ -165,3 +165,17 @@ xdotool key --delay 200 Right
 xdotool key p
 sleep 2
 shot tabular-preferred.png
+
+# 10. The over-driven demo's training run (a folder of checkpoints) with the labelled probe:
+#     the timeline under the unit grid. A click at the right end of the dead-units plot goes
+#     to the last checkpoint (the unit view follows), then a click on the first cell of
+#     "Units by when they died" selects the h1 unit that died first.
+kill "$APP_PID" 2> /dev/null || true
+wait "$APP_PID" 2> /dev/null || true
+start_app demo-models/solder-joints-overdriven-run --probe demo-models/solder-joints-probe.csv
+xdotool mousemove 246 620 click 1
+sleep 4
+xdotool mousemove 47 740 click 1
+xdotool mousemove 1000 792
+sleep 3
+shot training-run.png

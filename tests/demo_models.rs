@@ -246,17 +246,47 @@ fn cold_storage_takes_raw_units_and_is_accurate() {
 fn generator_reproduces_the_bundled_files() {
     let dir = tempfile::tempdir().unwrap();
     make_demos::run(dir.path()).unwrap();
+    let compared = compare_tree(dir.path(), &demo_dir());
+    // 9 demo files, and the over-driven run's 12 checkpoints (JSON + safetensors each).
+    assert_eq!(compared, 9 + 2 * RUN_CHECKPOINTS);
+    // Nothing committed is missing from a fresh run.
+    let mut committed = 0;
+    count_files(&demo_dir(), &mut committed);
+    assert_eq!(
+        committed, compared,
+        "demo-models holds files the generator does not make"
+    );
+}
+
+/// Compares every file under `fresh` with the same path under `committed`, byte for byte
+/// (folders recursively); returns the number of files compared.
+fn compare_tree(fresh: &Path, committed: &Path) -> usize {
     let mut compared = 0;
-    for entry in std::fs::read_dir(dir.path()).unwrap() {
+    for entry in std::fs::read_dir(fresh).unwrap() {
         let fresh_path = entry.unwrap().path();
         let name = fresh_path.file_name().unwrap();
-        let committed = std::fs::read(demo_dir().join(name))
+        if fresh_path.is_dir() {
+            compared += compare_tree(&fresh_path, &committed.join(name));
+            continue;
+        }
+        let old = std::fs::read(committed.join(name))
             .unwrap_or_else(|e| panic!("demo-models has no {name:?} from the generator: {e}"));
-        let fresh = std::fs::read(&fresh_path).unwrap();
-        assert!(fresh == committed, "{name:?} differs from a fresh run");
+        let new = std::fs::read(&fresh_path).unwrap();
+        assert!(new == old, "{name:?} differs from a fresh run");
         compared += 1;
     }
-    assert_eq!(compared, 9);
+    compared
+}
+
+fn count_files(dir: &Path, n: &mut usize) {
+    for entry in std::fs::read_dir(dir).unwrap() {
+        let p = entry.unwrap().path();
+        if p.is_dir() {
+            count_files(&p, n);
+        } else {
+            *n += 1;
+        }
+    }
 }
 
 #[test]
@@ -340,4 +370,67 @@ fn cnn_trainer_forward_matches_shared_forward() {
         .map(|(a, b)| (a - b).abs())
         .fold(0.0f32, f32::max);
     assert!(worst <= 1e-4, "largest logit difference {worst}");
+}
+
+/// Checkpoints of the over-driven training run saved in `demo-models/`.
+const RUN_CHECKPOINTS: usize = make_demos::RUN_EPOCHS.len();
+
+/// The over-driven run saved as a series: every checkpoint has a `"step"` and the
+/// architecture of the final model, the steps increase, the last checkpoint holds exactly
+/// the final model's tensors (read with the safetensors crate, not our loader), and units
+/// die as training goes on (screened on the probe at the first and the last checkpoint).
+#[test]
+fn overdriven_run_is_saved_as_a_series_of_checkpoints() {
+    use receptor::model::series::Series;
+    let folder = demo_dir().join(make_demos::RUN_FOLDER);
+    let series = Series::open(std::slice::from_ref(&folder)).unwrap();
+    assert_eq!(series.len(), RUN_CHECKPOINTS);
+    let keys = series.keys();
+    assert_eq!(keys[0], 0, "the run starts at step 0 (the initialisation)");
+    assert!(keys.windows(2).all(|w| w[0] < w[1]), "steps {keys:?}");
+    // 5000 patches in batches of 64: 79 updates per epoch, 60 epochs.
+    assert_eq!(*keys.last().unwrap(), 79 * 60);
+    let final_model = load("solder-joints-overdriven.json");
+    let last = series
+        .load(RUN_CHECKPOINTS - 1, &LoadOptions::default())
+        .unwrap();
+    for (a, b) in last.layers().iter().zip(final_model.layers()) {
+        assert_eq!(a.weights, b.weights, "layer {}", a.name);
+        assert_eq!(a.bias, b.bias, "layer {}", a.name);
+    }
+    let last_side = series.checkpoints()[RUN_CHECKPOINTS - 1]
+        .path
+        .with_extension("safetensors");
+    let bytes = std::fs::read(&last_side).unwrap();
+    let st = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+    let final_bytes =
+        std::fs::read(demo_dir().join("solder-joints-overdriven.safetensors")).unwrap();
+    let fin = safetensors::SafeTensors::deserialize(&final_bytes).unwrap();
+    for name in ["h1.weight", "h1.bias", "h2.weight", "out.weight"] {
+        assert_eq!(
+            st.tensor(name).unwrap().data(),
+            fin.tensor(name).unwrap().data(),
+            "{name}"
+        );
+    }
+    // Units die during the run: none at the start (biases 0.2), many at the end.
+    let first = series.load(0, &LoadOptions::default()).unwrap();
+    let dead = |net: &Network| -> usize {
+        let mut src = probe::open(&demo_dir().join("solder-joints-probe.csv"), net).unwrap();
+        let report = screen(net, src.as_mut(), &ScreenOptions::default(), &Silent).unwrap();
+        report
+            .units
+            .iter()
+            .filter(|u| matches!(u.status, Status::DeadProven | Status::DeadOnProbe))
+            .count()
+    };
+    let (d0, d_end) = (dead(&first), dead(&last));
+    assert!(d0 <= 2, "dead at step 0: {d0}");
+    assert!(d_end >= 30, "dead at the end: {d_end}");
+    // The series stays small (the brief: well under 1 MB).
+    let mut size = 0;
+    for entry in std::fs::read_dir(&folder).unwrap() {
+        size += entry.unwrap().metadata().unwrap().len();
+    }
+    assert!(size < 400_000, "the run takes {size} bytes");
 }

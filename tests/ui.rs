@@ -1658,3 +1658,160 @@ fn unit_table_draws_only_visible_rows_and_goes_to_a_far_unit() {
     );
     assert!(!shown.contains(&0));
 }
+
+// --- training run ---
+
+/// Steps frames until the open training run's timeline is computed, the slider's
+/// checkpoint is the one the unit view shows, and no analysis is queued.
+fn wait_run(h: &mut Harness<'static, ReceptorApp>, limit: Duration) {
+    let t0 = Instant::now();
+    loop {
+        let st = h.state().state();
+        let t = &st.training;
+        let settled = t.timeline.is_ready() && t.shown == Some(t.current) && t.loading.is_none();
+        if settled && !h.state().is_busy() {
+            break;
+        }
+        assert!(
+            t0.elapsed() < limit,
+            "the training run did not settle within {limit:?}"
+        );
+        h.step();
+        std::thread::sleep(Duration::from_millis(5));
+    }
+    wait_idle(h, limit);
+}
+
+/// Opens the over-driven demo run as `receptor demo-models/solder-joints-overdriven-run
+/// --probe demo-models/solder-joints-probe.csv` would, scrubs with the slider's keys to the
+/// last checkpoint, and checks what the view says against the core: the unit view shows
+/// that checkpoint's step, and the dead-unit count shown equals screening that checkpoint's
+/// file on the probe (`analysis::screen`, dead proven or dead on the probe).
+#[test]
+fn training_run_scrubs_to_the_last_checkpoint_and_counts_its_dead_units() {
+    use egui_kittest::kittest::NodeT;
+    use receptor::analysis::Silent;
+    use receptor::analysis::screen::{ScreenOptions, Status, screen};
+    use receptor::model::series::Series;
+
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let folder = root.join("demo-models/solder-joints-overdriven-run");
+    let probe = root.join("demo-models/solder-joints-probe.csv");
+    let series = Series::open(std::slice::from_ref(&folder)).unwrap();
+    let n = series.len();
+    let last = n - 1;
+
+    let mut h = app_with(Start {
+        model: Some(folder.clone()),
+        probe: Some(probe.clone()),
+        ..Start::default()
+    });
+    wait_run(&mut h, Duration::from_secs(180));
+    h.get_by_label("Training run");
+    h.get_by_label("Dead units per layer");
+    h.get_by_label("Accuracy on the reference data");
+    assert_eq!(
+        h.state().state().training.current,
+        0,
+        "the run opens at its first checkpoint"
+    );
+    let net = h.state().state().net().cloned().unwrap();
+    assert_eq!(net.step(), Some(series.key(0)));
+
+    // Give the slider the keyboard, then End: the last checkpoint.
+    h.get_by_label("Checkpoint").focus();
+    h.run_steps(2);
+    h.key_press(egui::Key::End);
+    h.run_steps(2);
+    wait_run(&mut h, Duration::from_secs(120));
+    assert_eq!(h.state().state().training.current, last);
+    // Left and Right step one checkpoint while the slider has the keyboard.
+    h.key_press(egui::Key::ArrowLeft);
+    h.run_steps(2);
+    wait_run(&mut h, Duration::from_secs(120));
+    assert_eq!(h.state().state().training.current, last - 1);
+    h.key_press(egui::Key::ArrowRight);
+    h.run_steps(2);
+    wait_run(&mut h, Duration::from_secs(120));
+    assert_eq!(h.state().state().training.current, last);
+
+    // The unit view follows: the open model is the last checkpoint's file.
+    let st = h.state().state();
+    let open = st.model.as_ref().expect("a model is open");
+    assert_eq!(open.net.step(), Some(series.key(last)));
+    assert_eq!(
+        open.path.as_deref(),
+        Some(series.checkpoints()[last].path.as_path())
+    );
+    h.get_by_label_contains(&format!(
+        "step {} · checkpoint {n} of {n}",
+        series.key(last)
+    ));
+
+    // The dead-unit count shown for the last checkpoint, against screening its file.
+    // A text label keeps its words in the node's value (AccessKit's `Role::Label`).
+    let node = h.get_by_label_contains("Dead units at this checkpoint: ");
+    let shown = node
+        .value()
+        .or_else(|| node.accesskit_node().label().map(|l| l.to_string()))
+        .unwrap();
+    let net = receptor::model::load(&series.checkpoints()[last].path, &Default::default()).unwrap();
+    let mut src = receptor::probe::open(&probe, &net).unwrap();
+    let report = screen(&net, src.as_mut(), &ScreenOptions::default(), &Silent).unwrap();
+    let dead = |layer: usize| {
+        report
+            .units
+            .iter()
+            .filter(|u| u.layer_index == layer)
+            .filter(|u| matches!(u.status, Status::DeadProven | Status::DeadOnProbe))
+            .count()
+    };
+    let (h1, h2) = (dead(0), dead(1));
+    assert!(h1 + h2 > 0, "the over-driven run ends with dead units");
+    assert_eq!(
+        shown,
+        format!(
+            "Dead units at this checkpoint: {} (h1 {h1}, h2 {h2})",
+            h1 + h2
+        )
+    );
+    // The model summary's accuracy (the kept reference data's confusion matrix, computed
+    // for the shown checkpoint) agrees with the timeline's for that checkpoint.
+    let texts: Vec<String> = h
+        .get_all_by_label_contains("Accuracy on the reference data: ")
+        .filter_map(|n| n.value())
+        .collect();
+    let timeline_text = texts
+        .iter()
+        .find(|t| t.ends_with('%'))
+        .expect("the timeline shows the accuracy");
+    assert!(
+        texts
+            .iter()
+            .any(|t| t != timeline_text && t.starts_with(timeline_text.as_str())),
+        "the summary's accuracy is the shown checkpoint's: {texts:?}"
+    );
+    // A unit that died is listed with when it died, and a click selects it.
+    let first_dead = h
+        .get_all_by_label_contains("h1 unit ")
+        .find(|n| {
+            n.accesskit_node()
+                .label()
+                .is_some_and(|l| l.contains(": dead from step"))
+        })
+        .map(|n| n.accesskit_node().label().unwrap().to_string())
+        .expect("a dead h1 unit is listed");
+    h.get_by_label(&first_dead).scroll_to_me();
+    h.run();
+    h.get_by_label(&first_dead).click();
+    h.run();
+    let unit: usize = first_dead
+        .trim_start_matches("h1 unit ")
+        .split(':')
+        .next()
+        .unwrap()
+        .parse()
+        .unwrap();
+    assert_eq!(selection(&h), (0, unit));
+    h.get_by_label_contains(&format!("h1 unit {unit}: active on the reference data"));
+}

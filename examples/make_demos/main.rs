@@ -21,6 +21,9 @@
 //! 3. The solder joints again, seen by a colour camera (16 x 16 RGB patches): a small
 //!    convolutional network (`receptor-model/2`, tensors in a safetensors side file) and its
 //!    labelled probe CSV (`cnn_demo.rs`, trained by `conv_train.rs`).
+//! 4. The over-driven solder-joint run saved as a series of 12 checkpoints (a folder of
+//!    models with a top-level `"step"`, tensors in safetensors side files), for the
+//!    timeline of a training run.
 //!
 //! Training uses the `train` module beside this file, whose fixed-order matrix products make the
 //! output independent of thread scheduling.
@@ -393,7 +396,23 @@ fn solder_models(out: &Path) -> Result<()> {
         lr_decay: 1.0,
         seed: 12,
     };
-    let over_report = train::train(&mut over, x.view(), &y, &over_opts, &Silent)?;
+    // Checkpoints of the run, saved as a series (see `write_run`).
+    let mut checkpoints: Vec<NetworkParts> = Vec::new();
+    let over_report = train::train_observed(
+        &mut over,
+        x.view(),
+        &y,
+        &over_opts,
+        &Silent,
+        &mut |epoch, step, net| {
+            if RUN_EPOCHS.contains(&epoch) {
+                let mut snap = net.clone();
+                snap.step = Some(step);
+                checkpoints.push(snap);
+            }
+            Ok(())
+        },
+    )?;
     let over_acc = train::accuracy(&over, px.view(), &py)?;
     let proven = provably_dead_first_layer(&over);
     let on_probe = dead_on_data(&over, &px);
@@ -420,6 +439,7 @@ fn solder_models(out: &Path) -> Result<()> {
         x.nrows()
     ));
     write_safetensors_model(&over, out, "solder-joints-overdriven")?;
+    write_run(out, &mut checkpoints, x.nrows())?;
 
     // The probe file.
     write_probe(
@@ -431,6 +451,41 @@ fn solder_models(out: &Path) -> Result<()> {
         &py,
         &SOLDER_CLASSES,
     )?;
+    Ok(())
+}
+
+/// The epochs after which the over-driven run is saved (0: the initialisation): densely
+/// where units die (most of `h1` in the first epoch, a second wave in `h2` around epoch 26),
+/// sparsely where the weight decay slowly makes the dead units provably dead.
+pub const RUN_EPOCHS: [usize; 12] = [0, 1, 2, 5, 10, 20, 25, 26, 30, 40, 50, 60];
+
+/// The folder of the over-driven run's checkpoints, inside the demo folder.
+pub const RUN_FOLDER: &str = "solder-joints-overdriven-run";
+
+/// Writes the over-driven run's checkpoints as a series: `step-NNNN.json` with a top-level
+/// `"step"` (mini-batch updates so far), tensors in `step-NNNN.safetensors` (f32, so the
+/// last checkpoint holds exactly the final model's tensors).
+fn write_run(out: &Path, checkpoints: &mut [NetworkParts], samples: usize) -> Result<()> {
+    if checkpoints.len() != RUN_EPOCHS.len() {
+        return Err(TrainError::problem(format!(
+            "the over-driven run saved {} checkpoints, not {}",
+            checkpoints.len(),
+            RUN_EPOCHS.len()
+        )));
+    }
+    let dir = out.join(RUN_FOLDER);
+    std::fs::create_dir_all(&dir).map_err(|e| Error::io(&dir, "cannot create folder", e))?;
+    for (net, epoch) in checkpoints.iter_mut().zip(RUN_EPOCHS) {
+        let step = net.step.unwrap_or(0);
+        net.description = Some(format!(
+            "Invented data, for demos only. A checkpoint of the over-driven solder-joint run \
+             (solder-joints-overdriven.json; SGD, momentum 0.9, learning rate 0.2, L2 weight \
+             decay 8e-4, {samples} synthetic patches, batches of 64) after {epoch} of 60 \
+             epochs ({step} updates). The folder holds the run's checkpoints; open it as a \
+             training run to watch the units die."
+        ));
+        write_safetensors_model(net, &dir, &format!("step-{step:04}"))?;
+    }
     Ok(())
 }
 
@@ -732,6 +787,9 @@ fn write_safetensors_model(net: &NetworkParts, out: &Path, stem: &str) -> Result
     let mut text = String::new();
     text.push_str(&format!("{{\n  \"schema\": {},\n", q(model::SCHEMA_TAG)));
     text.push_str(&format!("  \"name\": {},\n", q(&net.name)));
+    if let Some(step) = net.step {
+        text.push_str(&format!("  \"step\": {step},\n"));
+    }
     if let Some(d) = &net.description {
         text.push_str(&format!("  \"description\": {},\n", q(d)));
     }

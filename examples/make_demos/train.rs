@@ -532,6 +532,20 @@ pub fn train(
     opts: &TrainOptions,
     progress: &dyn Progress,
 ) -> Result<TrainReport> {
+    train_observed(net, x, labels, opts, progress, &mut |_, _, _| Ok(()))
+}
+
+/// [`train`], calling `observe(epochs_done, updates_done, net)` once before the first
+/// update (with `0, 0`) and after every epoch, so a caller can save checkpoints of the run.
+/// Observing reads the network only, so the run is the same with or without it.
+pub fn train_observed(
+    net: &mut NetworkParts,
+    x: ArrayView2<f32>,
+    labels: &[usize],
+    opts: &TrainOptions,
+    progress: &dyn Progress,
+    observe: &mut dyn FnMut(usize, u64, &NetworkParts) -> Result<()>,
+) -> Result<TrainReport> {
     check_problem(net, x, labels)?;
     if opts.batch_size == 0 {
         return Err(TrainError::problem(
@@ -554,6 +568,7 @@ pub fn train(
     let mut report = TrainReport::default();
     let mut opt = opts.optimizer;
     let mut t: i32 = 0;
+    observe(0, 0, net)?;
     for epoch in 0..opts.epochs {
         // Fisher-Yates with our own seeded generator.
         for i in (1..samples).rev() {
@@ -607,6 +622,7 @@ pub fn train(
             accuracy: correct as f64 / samples as f64,
         });
         opt = opt.with_learning_rate(opt.learning_rate() * opts.lr_decay);
+        observe(epoch + 1, u64::try_from(t).unwrap_or(0), net)?;
         progress.set((epoch + 1) as f32 / opts.epochs.max(1) as f32);
     }
     Ok(report)

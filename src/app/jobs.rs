@@ -85,6 +85,7 @@ impl ReceptorApp {
                 Err(e) => self.state.fail(e.to_string()),
             },
             Reply::Picked { purpose, path } => self.on_picked(purpose, path),
+            Reply::Timeline(reply) => self.on_timeline_reply(reply),
         }
     }
 
@@ -265,6 +266,7 @@ impl ReceptorApp {
                 Pick::Probe => self.open_probe(&p),
                 Pick::Export(kind) => self.export_to(kind, p),
                 Pick::CompactedModel => self.save_compacted_to(p),
+                Pick::Run => self.open_run(vec![p]),
             }
         }
     }
@@ -279,6 +281,24 @@ impl ReceptorApp {
         path: Option<PathBuf>,
         box_origin: BoxOrigin,
     ) {
+        self.install_model_keeping(net, origin, path, box_origin, None);
+    }
+
+    /// [`Self::install_model`], keeping `keep`'s probe and selected unit instead of
+    /// opening the default probe (a checkpoint of the open training run); such a file is
+    /// not added to the recent models.
+    pub(super) fn install_model_keeping(
+        &mut self,
+        net: Network,
+        origin: String,
+        path: Option<PathBuf>,
+        box_origin: BoxOrigin,
+        keep: Option<(OpenProbe, Option<Selection>)>,
+    ) {
+        if keep.is_none() {
+            // Another model: the training run's slider no longer points at the open model.
+            self.state.training.shown = None;
+        }
         self.worker.cancel_all();
         self.state.run.stopped = false;
         let tag = Tag {
@@ -291,14 +311,20 @@ impl ReceptorApp {
         self.thumbs.clear();
         self.state.attribution_choice = None;
         let net = Arc::new(net);
-        if let Some(p) = &path {
+        if let Some(p) = &path
+            && keep.is_none()
+        {
             Prefs::remember(&mut self.state.prefs.recent_models, p);
         }
         let first = net.layers().iter().position(|l| l.units() > 0).unwrap_or(0);
-        self.state.selection = Some(Selection {
+        let kept = keep
+            .as_ref()
+            .and_then(|(_, s)| *s)
+            .filter(|s| s.layer < net.layers().len() && s.unit < net.layer(s.layer).units());
+        self.state.selection = Some(kept.unwrap_or(Selection {
             layer: first,
             unit: 0,
-        });
+        }));
         self.state.history.clear();
         let opened = format!(
             "Opened {origin}: {} layers, {} parameters",
@@ -320,6 +346,11 @@ impl ReceptorApp {
         });
         self.state.open_error = None;
         self.submit_model_job(net.clone());
+        if let Some((probe, _)) = keep {
+            let tag = self.state.tag();
+            self.install_probe(tag, probe);
+            return;
+        }
         let auto = self
             .state
             .model

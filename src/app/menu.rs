@@ -71,6 +71,9 @@ fn file_menu_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) 
     if ui.button("Open the demo model").clicked() {
         actions.push(Action::OpenDemo);
     }
+    if ui.button("Open training run…").clicked() {
+        actions.push(Action::OpenRunDialog);
+    }
     ui.separator();
     let probe = Button::new("Open reference data…").shortcut_text(shortcut(ui, Key::P));
     if ui.add(probe).clicked() {

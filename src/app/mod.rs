@@ -21,6 +21,8 @@ pub mod state;
 pub mod statusbar;
 pub mod table;
 pub mod thumbs;
+pub mod timeline;
+pub mod timeline_jobs;
 pub mod units;
 pub mod worker;
 
@@ -75,7 +77,7 @@ pub fn run(start: Start) -> ExitCode {
 /// What the app opens when it starts.
 #[derive(Debug, Clone, Default)]
 pub struct Start {
-    /// A model file, or `None` for the bundled demo.
+    /// A model file, a training run's folder, or `None` for the bundled demo.
     pub model: Option<PathBuf>,
     /// Probe data to open once the model is in (`None`: the uniform probe, or the demo's
     /// own probe for the demo).
@@ -97,6 +99,8 @@ pub enum Pick {
     Export(ExportKind),
     /// Where to save the compacted model.
     CompactedModel,
+    /// A training run's folder to open.
+    Run,
 }
 
 /// Requests the panels make; the app carries them out after drawing.
@@ -133,6 +137,18 @@ pub enum Action {
     Help,
     /// Leave the app.
     Quit,
+    /// Show the open-training-run (folder) dialog.
+    OpenRunDialog,
+    /// Open a training run: one folder, or several model files.
+    OpenRun(Vec<PathBuf>),
+    /// Show this checkpoint of the open run in the unit view.
+    ScrubTo(usize),
+    /// Stop the timeline's analysis.
+    StopRunAnalysis,
+    /// Compute the timeline again after a stop.
+    AnalyseRunAgain,
+    /// Close the training run.
+    CloseRun,
 }
 
 /// The app: state, worker, texture cache and panels.
@@ -178,6 +194,7 @@ impl ReceptorApp {
             app.state.fail(e);
         }
         match start.model {
+            Some(p) if p.is_dir() => app.open_run(vec![p]),
             Some(p) => app.open_model_with_box(&p, start.input_box),
             None => app.open_demo(),
         }
@@ -312,12 +329,21 @@ impl ReceptorApp {
                     self.queue_prefer(&net, layer, None);
                 }
             }
-            Action::Cancel => self.cancel(),
+            Action::Cancel => {
+                self.cancel();
+                self.cancel_timeline();
+            }
             Action::RunAgain => self.run_again(),
             Action::CompactWindow => self.state.compact.open = true,
             Action::SaveCompactedDialog => self.pick(Pick::CompactedModel),
             Action::Help => self.show_help = true,
             Action::Quit => ctx.send_viewport_cmd(egui::ViewportCommand::Close),
+            Action::OpenRunDialog => self.pick(Pick::Run),
+            Action::OpenRun(paths) => self.open_run(paths),
+            Action::ScrubTo(i) => self.show_checkpoint(i),
+            Action::StopRunAnalysis => self.cancel_timeline(),
+            Action::AnalyseRunAgain => self.analyse_run_again(),
+            Action::CloseRun => self.close_run(),
         }
     }
 
@@ -348,6 +374,12 @@ impl ReceptorApp {
                         .and_then(|p| p.parent().map(Path::to_path_buf))
                 }),
             Pick::Export(_) => None,
+            Pick::Run => self
+                .state
+                .prefs
+                .recent_models
+                .first()
+                .and_then(|p| p.parent().and_then(Path::parent).map(Path::to_path_buf)),
             Pick::CompactedModel => self
                 .state
                 .model
@@ -381,6 +413,9 @@ impl ReceptorApp {
                         .add_filter(name, exts)
                         .save_file()
                 }
+                Pick::Run => d
+                    .set_title("Open a training run (the folder of its checkpoints)")
+                    .pick_folder(),
                 Pick::CompactedModel => d
                     .set_title("Save the compacted model")
                     .set_file_name(file_name.unwrap_or_default())
@@ -469,15 +504,23 @@ impl ReceptorApp {
                 .map(|f| f.path().to_path_buf())
                 .collect()
         });
-        for p in dropped {
+        let is_probe = |p: &PathBuf| {
             let ext = p
                 .extension()
                 .and_then(|e| e.to_str())
                 .map(str::to_ascii_lowercase);
-            match ext.as_deref() {
-                Some("csv") | Some("npy") => self.actions.push(Action::OpenProbe(p)),
-                _ => self.actions.push(Action::OpenModel(p)),
-            }
+            matches!(ext.as_deref(), Some("csv") | Some("npy"))
+        };
+        let (probes, models): (Vec<PathBuf>, Vec<PathBuf>) =
+            dropped.into_iter().partition(is_probe);
+        // Several model files, or a folder: the checkpoints of a training run.
+        if models.len() > 1 || models.iter().any(|p| p.is_dir()) {
+            self.actions.push(Action::OpenRun(models));
+        } else if let Some(p) = models.into_iter().next() {
+            self.actions.push(Action::OpenModel(p));
+        }
+        for p in probes {
+            self.actions.push(Action::OpenProbe(p));
         }
     }
 }
@@ -491,7 +534,7 @@ impl ReceptorApp {
         }
         if self.state.model.is_none() {
             ui.centered_and_justified(|ui| {
-                if self.state.run.opening.is_some() {
+                if self.state.run.opening.is_some() || self.state.training.is_open() {
                     ui.spinner();
                 } else {
                     ui.label(
@@ -566,7 +609,7 @@ fn drop_overlay(ctx: &egui::Context) {
     painter.text(
         rect.center(),
         egui::Align2::CENTER_CENTER,
-        "Drop a model (.json, .onnx) or reference data (.csv, .npy)",
+        "Drop a model (.json, .onnx), a training run (a folder or several models) or reference data (.csv, .npy)",
         egui::TextStyle::Heading.resolve(&ctx.global_style()),
         egui::Color32::WHITE,
     );
@@ -592,6 +635,7 @@ impl eframe::App for ReceptorApp {
             self.start_probe = None;
         }
         self.request_needed();
+        self.request_timeline();
     }
 
     fn ui(&mut self, ui: &mut egui::Ui, _frame: &mut eframe::Frame) {
@@ -610,6 +654,12 @@ impl eframe::App for ReceptorApp {
             };
             statusbar::ui(ui, &line, &mut self.actions);
         });
+        if self.state.training.is_open() {
+            // Sized to its content (plots of a fixed height), so the view is never cut.
+            egui::Panel::bottom("training-run").show(ui, |ui| {
+                timeline::ui(ui, &mut self.state, &mut self.actions);
+            });
+        }
         egui::Panel::left("layers")
             .resizable(true)
             .default_size(270.0)

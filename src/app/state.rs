@@ -861,6 +861,8 @@ pub struct AppState {
     pub unit_criterion: Criterion,
     /// The Compact window.
     pub compact: CompactView,
+    /// The open training run (a series of checkpoints) and its timeline.
+    pub training: TrainingRun,
 }
 
 /// Everything the grid order depends on.
@@ -903,6 +905,7 @@ impl AppState {
             attribution_choice: None,
             unit_criterion: Criterion::L1,
             compact: CompactView::default(),
+            training: TrainingRun::default(),
         }
     }
 
@@ -1348,5 +1351,49 @@ mod tests {
             Prefs::remember(&mut list, std::path::Path::new(&format!("m{i}.json")));
         }
         assert_eq!(list.len(), RECENT_LIMIT);
+    }
+}
+
+/// An open training run: its checkpoints, the one the unit view shows, and the timeline
+/// computed over all of them on the probe in use. Replies carry the run's `id`; a reply
+/// for an earlier run (or an earlier probe) is dropped.
+#[derive(Debug, Default)]
+pub struct TrainingRun {
+    /// Request number of the run (0: none opened yet).
+    pub id: u64,
+    /// What is being listed, while the series is read.
+    pub opening: Option<String>,
+    /// The checkpoints, in training order, once listed.
+    pub series: Option<Arc<crate::model::series::Series>>,
+    /// The checkpoint the slider points at.
+    pub current: usize,
+    /// The checkpoint whose network is the open model (`None` while another model is open).
+    pub shown: Option<usize>,
+    /// The checkpoint being read for the unit view.
+    pub loading: Option<usize>,
+    /// The timeline over every checkpoint.
+    pub timeline: Slot<Arc<crate::analysis::timeline::Timeline>>,
+    /// The probe the timeline is (being) computed on.
+    pub analysed_on: Option<Arc<ProbeData>>,
+    /// Fraction of the timeline done, in thousandths (written by the worker).
+    pub progress: Arc<std::sync::atomic::AtomicU32>,
+    /// Set to stop the timeline's analysis.
+    pub cancel: Arc<std::sync::atomic::AtomicBool>,
+    /// The analysis was stopped before it finished ("Analyse again" restarts it).
+    pub stopped: bool,
+}
+
+impl TrainingRun {
+    /// True when a run is open (listed or being listed).
+    pub fn is_open(&self) -> bool {
+        self.series.is_some() || self.opening.is_some()
+    }
+
+    /// The key (step, or position) of checkpoint `i`, when listed.
+    pub fn key(&self, i: usize) -> Option<u64> {
+        self.series
+            .as_ref()
+            .filter(|s| i < s.len())
+            .map(|s| s.key(i))
     }
 }

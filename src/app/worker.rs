@@ -34,7 +34,7 @@ use std::sync::{Arc, Mutex};
 pub const PREFER_BATCH: usize = 128;
 /// Probe rows per forward pass when tracing activations and screening: small enough that
 /// a cancel is seen within a fraction of a second on a 784-2048-2048-10 network.
-const TRACE_CHUNK: usize = 512;
+pub(super) const TRACE_CHUNK: usize = 512;
 /// [`TRACE_CHUNK`] as the screening options take it.
 const TRACE_CHUNK_NONZERO: std::num::NonZeroUsize = match std::num::NonZeroUsize::new(TRACE_CHUNK) {
     Some(n) => n,
@@ -121,6 +121,8 @@ pub enum Job {
         /// Also compare the outputs on uniform box samples.
         check_box: bool,
     },
+    /// The timeline of the open training run (every checkpoint, on one probe).
+    Timeline(super::timeline_jobs::TimelineJob),
 }
 
 impl Job {
@@ -164,6 +166,7 @@ impl Job {
                 )
             }
             Job::Compact { .. } => "Compacting the model and checking its outputs".into(),
+            Job::Timeline(job) => job.title(),
         }
     }
 }
@@ -308,6 +311,8 @@ pub enum Reply {
         /// The chosen file, `None` when the dialog was cancelled.
         path: Option<PathBuf>,
     },
+    /// A reply of the training-run view (listing, a checkpoint, the timeline).
+    Timeline(super::timeline_jobs::TimelineReply),
 }
 
 /// Handle to the worker thread, owned by the app.
@@ -355,13 +360,25 @@ impl Worker {
 
     /// Queues `job` on `net` under `tag`.
     pub fn submit(&self, job: Job, net: Arc<Network>, tag: Tag) {
+        self.submit_with_cancel(job, net, tag, self.cancel.clone());
+    }
+
+    /// Queues `job` with a cancel flag of its own: [`Self::cancel_all`] does not stop it
+    /// (the training run's timeline outlives the checkpoint shown while it runs).
+    pub fn submit_with_cancel(
+        &self,
+        job: Job,
+        net: Arc<Network>,
+        tag: Tag,
+        cancel: Arc<AtomicBool>,
+    ) {
         if let Some(tx) = &self.jobs {
             self.pending.fetch_add(1, Ordering::SeqCst);
             let ticket = Ticket {
                 job,
                 net,
                 tag,
-                cancel: self.cancel.clone(),
+                cancel,
             };
             if tx.send(ticket).is_err() {
                 self.pending.fetch_sub(1, Ordering::SeqCst);
@@ -646,6 +663,7 @@ fn run_job(t: &Ticket, progress: &JobProgress<'_>) -> Option<Reply> {
                 result: not_cancelled(result)?.map(Arc::new),
             }
         }
+        Job::Timeline(job) => job.run(progress)?,
     };
     Some(reply)
 }
