@@ -78,9 +78,9 @@ click_at() {
     sleep 0.5
     xdotool mousemove 1000 792
 }
-sparsity_view() { click_at 439 43; }
-tiles_mode() { click_at 396 75; }
-table_mode() { click_at 342 75; }
+sparsity_view() { click_at 398 43; }
+tiles_mode() { click_at 353 75; }
+table_mode() { click_at 300 75; }
 
 # 1. First layer as tiles: the wall of incoming-weight maps, unit 5 selected, its weights
 #    in detail.
@@ -94,7 +94,7 @@ xdotool key --delay 200 Right Right
 xdotool key p
 shot deeper-unit-preferred.png
 
-# 3. Second layer, incoming weights drawn as cells over the first layer's units.
+# 3. Second layer, incoming weights as a bar chart over the first layer's units.
 xdotool key w
 shot deeper-unit-weights.png
 
@@ -102,7 +102,7 @@ shot deeper-unit-weights.png
 #    active first), the first row selected.
 table_mode
 xdotool key Prior
-click_at 470 188
+click_at 400 188
 xdotool key Home
 shot unit-table.png
 

@@ -969,7 +969,7 @@ fn sample_glyph(
         Quantity::Input,
     );
     let rows = features::feature_rows(net.input(), x, spreads, FeatureOrder::Input, &[]);
-    let mut text = format!("probe row {row}: z = {z:.4}, activation = {act:.4}");
+    let mut text = format!("reference row {row}: z = {z:.4}, activation = {act:.4}");
     for r in &rows {
         text.push_str(&format!("\n{} = {}", r.name, r.value_text()));
     }
@@ -977,7 +977,7 @@ fn sample_glyph(
         egui::WidgetInfo::labeled(
             egui::Role::Image,
             true,
-            format!("probe row {row} by feature"),
+            format!("reference row {row} by feature"),
         )
     });
     resp.on_hover_text(text);

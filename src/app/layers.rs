@@ -209,7 +209,8 @@ fn probe_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec<Action>) {
         }
     }
     let warned = uniform_warning_ui(ui, state, actions);
-    ui.horizontal(|ui| {
+    // Wrapped, so the two buttons never widen the side panel beyond its default.
+    ui.horizontal_wrapped(|ui| {
         if !warned && ui.small_button("Open reference data…").clicked() {
             actions.push(Action::OpenProbeDialog);
         }

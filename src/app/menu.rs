@@ -171,7 +171,7 @@ pub fn help_ui(ctx: &egui::Context, open: &mut bool, longest_busy_frame: Duratio
                 });
             ui.separator();
             ui.strong("Status marks (table and tiles)");
-            units::marks_legend_ui(ui, true);
+            units::marks_legend_ui(ui);
             ui.separator();
             ui.weak(format!(
                 "Longest frame while analysis ran: {:.1} ms",

@@ -49,13 +49,13 @@ fn columns(unit_width: f32, status_width: f32) -> Vec<(Column, f32)> {
     vec![
         (Column::Unit, unit_width),
         (Column::Status, status_width),
-        (Column::Picture, ROW + 6.0),
-        (value(SortKey::Activity, true), 56.0),
-        (value(SortKey::UpperBound, false), 78.0),
-        (value(SortKey::Mean, false), 66.0),
-        (value(SortKey::Max, false), 60.0),
+        (Column::Picture, ROW + 4.0),
+        (value(SortKey::Activity, true), 52.0),
+        (value(SortKey::UpperBound, false), 68.0),
+        (value(SortKey::Mean, false), 68.0),
+        (value(SortKey::Max, false), 54.0),
         (value(SortKey::Sparsity, false), 50.0),
-        (value(SortKey::NearZero, true), 72.0),
+        (value(SortKey::NearZero, true), 64.0),
     ]
 }
 
@@ -67,7 +67,7 @@ fn columns(unit_width: f32, status_width: f32) -> Vec<(Column, f32)> {
 fn layout(net: &Network, layer: usize, room: f32) -> Vec<(Column, f32)> {
     let output = layer + 1 == net.layers().len();
     let labelled = output && net.layer(layer).labels.is_some();
-    let mut cols = columns(42.0, 50.0);
+    let mut cols = columns(38.0, 28.0);
     if output {
         cols.retain(|(c, _)| match c {
             Column::Status => false,

@@ -194,7 +194,9 @@ impl UnitsPanel {
         // The colour scale of the weight maps (the table's thumbnails and the tiles).
         ui.horizontal(|ui| super::colour::scale_switch_ui(ui, &mut state.prefs.scale));
         if state.prefs.unit_view == UnitView::Tiles {
-            ui.horizontal(|ui| {
+            // Wrapped: a narrow pane moves the tile-size slider to a second line instead of
+            // widening the pane (which would push the last tile column out of view).
+            ui.horizontal_wrapped(|ui| {
                 let label = ui.label("Sort by");
                 egui::ComboBox::from_id_salt("sort-units")
                     .selected_text(state.prefs.sort.label())
@@ -241,7 +243,7 @@ impl UnitsPanel {
         }
         ui.horizontal_wrapped(|ui| {
             ui.weak("Marks:");
-            marks_legend_ui(ui, false);
+            marks_legend_ui(ui);
         });
         ui.add_space(2.0);
     }
@@ -647,27 +649,28 @@ pub fn draw_mark(painter: &egui::Painter, c: Pos2, status: Status, r: f32) {
     }
 }
 
-/// The legend of the tile marks (one line, or one per row when `rows`).
-pub fn marks_legend_ui(ui: &mut egui::Ui, rows: bool) {
+/// The legend of the tile marks: one group per mark, wrapping as the parent lays out.
+pub fn marks_legend_ui(ui: &mut egui::Ui) {
     let entries = [
         (Status::DeadProven, "dead (proven)"),
-        (Status::DeadOnProbe, "dead on probe"),
+        (Status::DeadOnProbe, "dead on reference data"),
         (Status::RarelyActive, "rarely active"),
         (Status::AlwaysActive, "always active"),
         (Status::Saturated, "saturated"),
         (Status::NonFinite, "non-finite"),
     ];
     for (s, text) in entries {
-        let draw = |ui: &mut egui::Ui| {
-            let (r, _) = ui.allocate_exact_size(vec2(18.0, 16.0), Sense::hover());
-            draw_mark(ui.painter(), r.center(), s, 5.0);
-            ui.label(egui::RichText::new(text).small());
-            ui.add_space(6.0);
-        };
-        if rows {
-            ui.horizontal(draw);
-        } else {
-            draw(ui);
-        }
+        // The mark and its name are one widget, so a wrapped legend never parts them.
+        let galley = ui.painter().layout_no_wrap(
+            text.to_string(),
+            egui::TextStyle::Small.resolve(ui.style()),
+            ui.visuals().text_color(),
+        );
+        let size = vec2(18.0 + galley.size().x + 8.0, galley.size().y.max(16.0));
+        let (r, _) = ui.allocate_exact_size(size, Sense::hover());
+        draw_mark(ui.painter(), pos2(r.left() + 9.0, r.center().y), s, 5.0);
+        let text_pos = pos2(r.left() + 18.0, r.center().y - galley.size().y / 2.0);
+        ui.painter()
+            .galley(text_pos, galley, ui.visuals().text_color());
     }
 }
