@@ -20,6 +20,13 @@ fn app_with(start: Start) -> Harness<'static, ReceptorApp> {
         .build_eframe(move |cc| ReceptorApp::new(cc, start))
 }
 
+/// After a click: two frames for the click to take effect, then [`wait_idle`] (two minutes
+/// at most).
+fn settle(h: &mut Harness<'static, ReceptorApp>) {
+    h.run_steps(2);
+    wait_idle(h, Duration::from_secs(120));
+}
+
 /// Steps frames until the app has no file open pending and no analysis queued, then lets
 /// the UI settle. Panics after `limit` (a hung worker is a failure, not a wait forever).
 fn wait_idle(h: &mut Harness<'static, ReceptorApp>, limit: Duration) {
@@ -86,8 +93,7 @@ fn walks_down_from_a_deeper_unit_and_back() {
     h.get_by_label_contains("h2  ·  ").click();
     // Selecting h2 starts its preferred-input search (a spinner keeps repainting), so step
     // a few frames rather than waiting for the UI to settle, then wait for the worker.
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     assert_eq!(selection(&h).0, 1);
     // Deeper units show their incoming weights as a bar chart over the layer below, most
     // positive first; clicking a row selects that lower unit. The top row is the largest
@@ -573,8 +579,7 @@ fn convolutional_demo_shows_filters_fields_and_feature_maps() {
     // A first-layer channel: its filter (colour and signed panels) and the views that need
     // the probe.
     h.get_by_label("conv1 unit 2").click();
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     h.get_by_label("Channel 2 of layer conv1");
     h.get_by_label("filter of conv1 channel 2 in colour");
     h.get_by_label("filter of conv1 channel 2");
@@ -602,8 +607,7 @@ fn convolutional_demo_shows_filters_fields_and_feature_maps() {
     wait_idle(&mut h, Duration::from_secs(180));
     h.get_by_label_contains("Tiles: preferred inputs, cropped to the receptive field");
     h.get_by_label("conv2 unit 5").click();
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     h.get_by_label("Channel 5 of layer conv2");
     h.get_by_label("preferred input of conv2 channel 5");
     h.get_by_label("filter of conv2 channel 5");
@@ -665,8 +669,7 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     h.get_by_label_contains("uniform samples of the input box have no labels");
 
     h.state_mut().open_probe(&probe);
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     // Each series is labelled in a legend beside its plot.
     h.get_by_label("weights zeroed, smallest |w| first");
     h.get_by_label("units removed, smallest L1 norm first");
@@ -715,8 +718,7 @@ fn pruning_view_shows_unit_and_per_layer_curves_that_match_the_command_line() {
     // Ranking by mean |activation| recomputes the curves.
     h.get_by_label("mean |activation| on the reference data")
         .click();
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     h.get_by_label("units removed, smallest mean |activation| first");
 }
 
@@ -1341,15 +1343,13 @@ fn preferred_input_says_what_kind_of_optimum_it_is() {
     h.get_by_label("h1 unit 2").click();
     h.run_steps(2);
     h.get_by_label("Preferred input").click();
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     // The search settings sit beside the picture: switching the data prior off searches
     // the layer again, and the first layer gets the exact closed-form optimum.
     h.get_by_label_contains("Search this layer again");
     h.get_by_label("L2 penalty");
     h.get_by_label_contains("Stay near the data").click();
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     // Closed form (a first-layer unit): x_i = high_i where w_i > 0, low_i where w_i < 0.
     let w = doc["layers"][0]["weights"][2][0].as_f64().unwrap();
     let want = if w > 0.0 {
@@ -1371,14 +1371,11 @@ fn preferred_input_says_what_kind_of_optimum_it_is() {
     // A deeper unit with the data prior back on: a summary is there too, and it does not
     // claim the bound for a search that was pulled toward the data.
     h.get_by_label_contains("Stay near the data").click();
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     h.get_by_label_contains("h2  ·  ").click();
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     h.get_by_label("h2 unit 1").click();
-    h.run_steps(2);
-    wait_idle(&mut h, Duration::from_secs(120));
+    settle(&mut h);
     assert_eq!(
         h.query_all_by_label_contains("sit at a bound of the box")
             .count()

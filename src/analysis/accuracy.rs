@@ -116,7 +116,7 @@ pub fn confusion(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{Activation, InputSpec, Layer, Layout, Network};
+    use crate::model::{Activation, InputSpec, Layer, Network};
     use ndarray::{Array1, Array2, array};
 
     #[test]
@@ -165,14 +165,7 @@ mod tests {
             Array2::eye(2),
             Array1::zeros(2),
         );
-        let spec = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![-1.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let spec = InputSpec::vector_box(2, -1.0, 1.0);
         let net = Network::new("test", "id", spec, vec![layer]).unwrap_or_else(|e| panic!("{e}"));
         let x = array![[1.0_f32, 0.0], [0.0, 1.0], [2.0, 3.0], [f32::NAN, f32::NAN]];
         for chunk in [1, 2, 3, 10] {

@@ -163,7 +163,7 @@ mod tests {
     use super::*;
     use crate::analysis::Silent;
     use crate::analysis::test_nets::random_layers;
-    use crate::model::{Activation, InputSpec, Layout};
+    use crate::model::{Activation, InputSpec};
     use rand::{Rng, SeedableRng};
     use rand_chacha::ChaCha8Rng;
 
@@ -195,14 +195,7 @@ mod tests {
             &[Activation::Relu, Activation::Sigmoid],
             0.5,
         );
-        let input = InputSpec {
-            units: None,
-            size: 5,
-            layout: Layout::Vector,
-            low: vec![-1.0; 5],
-            high: vec![1.0; 5],
-            names: None,
-        };
+        let input = InputSpec::vector_box(5, -1.0, 1.0);
         let net = Network::new("t", "test", input, layers).unwrap();
         let x = ndarray::Array2::from_shape_fn((37, 5), |_| rng.random_range(-1.0f32..1.0));
         let opts = ActivityOptions {
@@ -260,14 +253,7 @@ mod tests {
         }
         let mut rng = ChaCha8Rng::seed_from_u64(1);
         let layers = random_layers(&mut rng, &[2, 3], &[Activation::Relu], 0.1);
-        let input = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![0.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let input = InputSpec::vector_box(2, 0.0, 1.0);
         let net = Network::new("t", "test", input, layers).unwrap();
         let x = ndarray::Array2::<f32>::zeros((4, 2));
         let r = trace_activity(&net, x.view(), &ActivityOptions::default(), &Stop);

@@ -135,20 +135,13 @@ pub fn integrated_gradients(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{Activation, InputSpec, Layout};
+    use crate::model::{Activation, InputSpec};
     use rand::{Rng, SeedableRng};
     use rand_chacha::ChaCha8Rng;
 
     fn net(seed: u64, acts: &[Activation]) -> Network {
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
-        let input = InputSpec {
-            units: None,
-            size: 6,
-            layout: Layout::Vector,
-            low: vec![-1.0; 6],
-            high: vec![1.0; 6],
-            names: None,
-        };
+        let input = InputSpec::vector_box(6, -1.0, 1.0);
         let layers = crate::analysis::test_nets::random_layers(&mut rng, &[6, 5, 4, 3], acts, 0.5);
         Network::new("test", "t", input, layers).expect("valid")
     }

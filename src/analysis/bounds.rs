@@ -428,14 +428,7 @@ mod tests {
         // By hand: z = 2 x0, so its true range is [0, 2]. Plain IBP (Gowal et al. 2018):
         // h0 in [0, 2], h1 in [-1, 1], so z in [-1, 3]. Back-substitution with identity
         // relaxations is exact (Singh et al. 2019).
-        let input = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![0.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let input = InputSpec::vector_box(2, 0.0, 1.0);
         let h = Layer {
             kind: crate::model::LayerKind::Dense,
             name: "h".into(),
@@ -489,14 +482,7 @@ mod tests {
     fn hand_computed_two_layer_bounds() {
         // x in [0, 1]^2. h = relu(x0 - x1): z in [-1, 1], a in [0, 1].
         // out = 2 h - 1: z in [-1, 1].
-        let input = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![0.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let input = InputSpec::vector_box(2, 0.0, 1.0);
         let h = Layer {
             kind: crate::model::LayerKind::Dense,
             name: "h".into(),

@@ -353,7 +353,7 @@ pub(crate) fn gathered_preactivation(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{InputSpec, Layer, Layout};
+    use crate::model::{InputSpec, Layer};
     use approx::assert_abs_diff_eq;
     use ndarray::{Array1, array};
     use rand::{Rng, SeedableRng};
@@ -419,14 +419,7 @@ mod tests {
     }
 
     fn tiny_net(act: Activation) -> Network {
-        let input = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![-1.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let input = InputSpec::vector_box(2, -1.0, 1.0);
         let h = Layer {
             kind: crate::model::LayerKind::Dense,
             name: "h".into(),
@@ -485,14 +478,7 @@ mod tests {
         // Big enough to take the parallel paths; each row checked against a
         // one-row forward pass (the batched and per-sample results must agree).
         let mut rng = ChaCha8Rng::seed_from_u64(3);
-        let input = InputSpec {
-            units: None,
-            size: 40,
-            layout: Layout::Vector,
-            low: vec![0.0; 40],
-            high: vec![1.0; 40],
-            names: None,
-        };
+        let input = InputSpec::vector_box(40, 0.0, 1.0);
         let l1 = Layer {
             kind: crate::model::LayerKind::Dense,
             name: "h".into(),

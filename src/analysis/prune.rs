@@ -228,21 +228,14 @@ mod tests {
     use super::*;
     use crate::analysis::Silent;
     use crate::analysis::screen::tests::MemProbe;
-    use crate::model::{Activation, InputSpec, Layer, Layout};
+    use crate::model::{Activation, InputSpec, Layer};
     use ndarray::{Array1, Array2, array};
     use rand::{Rng, SeedableRng};
     use rand_chacha::ChaCha8Rng;
 
     fn random_net(seed: u64) -> Network {
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
-        let input = InputSpec {
-            units: None,
-            size: 9,
-            layout: Layout::Vector,
-            low: vec![-1.0; 9],
-            high: vec![1.0; 9],
-            names: None,
-        };
+        let input = InputSpec::vector_box(9, -1.0, 1.0);
         let l1 = Layer {
             kind: crate::model::LayerKind::Dense,
             name: "h".into(),
@@ -294,14 +287,7 @@ mod tests {
     #[test]
     fn ties_are_counted_exactly() {
         // All |w| equal: still exactly round(0.5 * 4) = 2 zeros.
-        let input = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![0.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let input = InputSpec::vector_box(2, 0.0, 1.0);
         let l = Layer {
             kind: crate::model::LayerKind::Dense,
             name: "o".into(),

@@ -463,7 +463,7 @@ fn screen_counting(
 pub(crate) mod tests {
     use super::*;
     use crate::analysis::Silent;
-    use crate::model::{InputSpec, Layer, Layout};
+    use crate::model::{InputSpec, Layer};
     use crate::probe::ProbeChunk;
     use approx::assert_abs_diff_eq;
     use ndarray::{Array1, Array2, array, s};
@@ -513,14 +513,7 @@ pub(crate) mod tests {
 
     /// Input box [0, 1]^2 and one hidden layer with hand-chosen units.
     fn hand_net(act: Activation, w: Array2<f32>, b: Array1<f32>) -> Network {
-        let input = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![0.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let input = InputSpec::vector_box(2, 0.0, 1.0);
         let units = w.nrows();
         let h = Layer {
             kind: crate::model::LayerKind::Dense,

@@ -289,7 +289,7 @@ pub fn network_sparsity(net: &Network, zero_tol: Option<f64>) -> NetworkSparsity
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{Activation, InputSpec, Layer, Layout};
+    use crate::model::{Activation, InputSpec, Layer};
     use approx::assert_abs_diff_eq;
     use ndarray::array;
 
@@ -360,14 +360,7 @@ mod tests {
     fn net_with(weights: ndarray::Array2<f32>) -> Network {
         let n_in = weights.ncols();
         let units = weights.nrows();
-        let input = InputSpec {
-            units: None,
-            size: n_in,
-            layout: Layout::Vector,
-            low: vec![-1.0; n_in],
-            high: vec![1.0; n_in],
-            names: None,
-        };
+        let input = InputSpec::vector_box(n_in, -1.0, 1.0);
         let layer = Layer {
             kind: crate::model::LayerKind::Dense,
             name: "h".into(),

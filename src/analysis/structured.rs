@@ -382,7 +382,7 @@ mod tests {
     use crate::analysis::Silent;
     use crate::analysis::forward::{argmax_rows, forward};
     use crate::analysis::screen::tests::MemProbe;
-    use crate::model::{Activation, InputSpec, Layer, Layout};
+    use crate::model::{Activation, InputSpec, Layer};
     use approx::assert_abs_diff_eq;
     use ndarray::{Array2, array};
 
@@ -394,14 +394,7 @@ mod tests {
     ///   u3: [ 0.0,  4.0]  -> 4.0
     /// Output weights: out0 = h0 + h1 + h2 + h3, out1 = 0.5 (bias), identity.
     fn tiny() -> Network {
-        let input = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![0.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let input = InputSpec::vector_box(2, 0.0, 1.0);
         let h = Layer {
             kind: crate::model::LayerKind::Dense,
             name: "h".into(),

@@ -505,7 +505,7 @@ pub fn cosine_distance(a: ArrayView1<f32>, b: ArrayView1<f32>) -> f64 {
 mod tests {
     use super::*;
     use crate::analysis::Silent;
-    use crate::model::{Activation, InputSpec, Layer, LayerKind, Layout};
+    use crate::model::{Activation, InputSpec, Layer, LayerKind};
     use crate::probe::ProbeData;
     use crate::probe::memory::MemoryProbe;
     use approx::assert_abs_diff_eq;
@@ -515,14 +515,7 @@ mod tests {
     /// Input box [0, 1]^2, one relu layer `h` with incoming weights `w: [units, 2]` and bias
     /// `b`, and a softmax output layer of 2 units reading `h` with weights `out`.
     fn net(w: Array2<f32>, b: Array1<f32>, out: Array2<f32>, out_b: Array1<f32>) -> Network {
-        let input = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![0.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let input = InputSpec::vector_box(2, 0.0, 1.0);
         let h = Layer {
             kind: LayerKind::Dense,
             name: "h".into(),

@@ -464,20 +464,13 @@ pub fn read_step(path: &Path) -> Result<Option<u64>> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{Activation, InputSpec, Layer, LayerKind, Layout, write_json};
+    use crate::model::{Activation, InputSpec, Layer, LayerKind, write_json};
     use ndarray::{Array1, Array2};
 
     /// A 2-input network with one hidden relu layer `h` of `units` units and a softmax
     /// output `out` of 2 units, saved at `step`.
     fn net(units: usize, step: Option<u64>) -> Network {
-        let input = InputSpec {
-            units: None,
-            size: 2,
-            layout: Layout::Vector,
-            low: vec![0.0; 2],
-            high: vec![1.0; 2],
-            names: None,
-        };
+        let input = InputSpec::vector_box(2, 0.0, 1.0);
         let layer = |name: &str, act, rows, cols| Layer {
             kind: LayerKind::Dense,
             name: name.into(),

@@ -38,6 +38,19 @@ pub struct InputSpec {
 }
 
 impl InputSpec {
+    /// A feature vector of `size` unnamed inputs, each in `[low, high]` (not checked here;
+    /// [`super::Network::new`] validates).
+    pub fn vector_box(size: usize, low: f32, high: f32) -> InputSpec {
+        InputSpec {
+            size,
+            layout: Layout::Vector,
+            low: vec![low; size],
+            high: vec![high; size],
+            names: None,
+            units: None,
+        }
+    }
+
     /// The name of input `i`: its feature name, or `x{i}`.
     pub fn feature_name(&self, i: usize) -> String {
         match &self.names {

@@ -337,7 +337,7 @@ impl ProbeSource for CsvProbe {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{Activation, InputSpec, Layer, Layout};
+    use crate::model::{Activation, InputSpec, Layer};
     use ndarray::{Array1, Array2};
 
     /// A 3-input network whose output layer has 2 units, labelled `labels` if given.
@@ -345,14 +345,7 @@ mod tests {
         Network::new(
             "test",
             "t",
-            InputSpec {
-                units: None,
-                size: 3,
-                layout: Layout::Vector,
-                low: vec![-1.0; 3],
-                high: vec![1.0; 3],
-                names: None,
-            },
+            InputSpec::vector_box(3, -1.0, 1.0),
             vec![Layer {
                 kind: crate::model::LayerKind::Dense,
                 name: "out".into(),

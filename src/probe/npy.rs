@@ -520,21 +520,14 @@ impl ProbeSource for NpyProbe {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{Activation, InputSpec, Layer, Layout};
+    use crate::model::{Activation, InputSpec, Layer};
     use ndarray::{Array1, Array2};
 
     fn net(inputs: usize) -> Network {
         Network::new(
             "test",
             "t",
-            InputSpec {
-                units: None,
-                size: inputs,
-                layout: Layout::Vector,
-                low: vec![-1.0; inputs],
-                high: vec![1.0; inputs],
-                names: None,
-            },
+            InputSpec::vector_box(inputs, -1.0, 1.0),
             vec![Layer {
                 kind: crate::model::LayerKind::Dense,
                 name: "out".into(),

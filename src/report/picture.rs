@@ -606,14 +606,7 @@ mod tests {
     }
 
     fn vector_spec(n: usize) -> InputSpec {
-        InputSpec {
-            units: None,
-            size: n,
-            layout: Layout::Vector,
-            low: vec![0.0; n],
-            high: vec![1.0; n],
-            names: None,
-        }
+        InputSpec::vector_box(n, 0.0, 1.0)
     }
 
     #[test]

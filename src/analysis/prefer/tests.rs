@@ -284,14 +284,7 @@ fn cancellation_returns_cancelled() {
 #[test]
 fn overflow_is_reported_not_panicked() {
     // Weights near f32::MAX overflow the second layer's pre-activation to infinity.
-    let input = InputSpec {
-        units: None,
-        size: 2,
-        layout: Layout::Vector,
-        low: vec![0.5; 2],
-        high: vec![1.0; 2],
-        names: None,
-    };
+    let input = InputSpec::vector_box(2, 0.5, 1.0);
     let big = f32::MAX / 2.0;
     let h = Layer {
         kind: crate::model::LayerKind::Dense,
@@ -339,14 +332,7 @@ fn a_flat_start_is_moved_off_and_never_reported_worse() {
     // gradient of a second-layer unit is exactly zero (a flat start). A unit with a
     // positive weight on an active first-layer unit can reach z > 0 (e.g. x = +-e_i along
     // that unit's weights), so a search stuck at the centre (z = 0) would be wrong.
-    let input = InputSpec {
-        units: None,
-        size: 3,
-        layout: Layout::Vector,
-        low: vec![-1.0; 3],
-        high: vec![1.0; 3],
-        names: None,
-    };
+    let input = InputSpec::vector_box(3, -1.0, 1.0);
     let h1 = Layer {
         kind: crate::model::LayerKind::Dense,
         name: "h1".into(),
