@@ -1188,6 +1188,10 @@ fn reference_data_beside_the_model_loads_and_its_absence_is_warned() {
         h.query_by_label(receptor::app::layers::UNIFORM_WARNING)
             .is_none()
     );
+    assert!(
+        h.query_by_label(receptor::app::layers::UNIFORM_NOTE)
+            .is_none()
+    );
     // The confusion matrix: its diagonal plus off-diagonal counts are every labelled row.
     h.get_by_label("Per class and confusion matrix").click();
     h.run();
@@ -1231,6 +1235,8 @@ fn reference_data_beside_the_model_loads_and_its_absence_is_warned() {
             .is_some_and(|p| p.path.is_none())
     );
     h.get_by_label(receptor::app::layers::UNIFORM_WARNING);
+    // ... and above the unit table, whose statuses rest on those samples.
+    h.get_by_label(receptor::app::layers::UNIFORM_NOTE);
     assert!(h.query_by_label("found beside the model").is_none());
 }
 

@@ -196,7 +196,11 @@ impl ReceptorApp {
             self.state
                 .confirm(format!("Using reference data {origin} ({rows} samples)"));
         }
-        self.submit_probe_job(data);
+        // A reply that was on its way when the user pressed Cancel keeps its data but starts
+        // nothing: "Run again" screens on it (see `run_again`).
+        if !self.state.run.stopped {
+            self.submit_probe_job(data);
+        }
     }
 
     fn on_probe_results(

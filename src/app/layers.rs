@@ -310,6 +310,19 @@ pub fn uniform_warning_ui(ui: &mut egui::Ui, state: &AppState, actions: &mut Vec
     uniform
 }
 
+/// The screening's statuses above the unit table and tiles rest on uniform samples: the
+/// short form of [`UNIFORM_WARNING`] (the layer list holds the long one and the button).
+pub fn uniform_note_ui(ui: &mut egui::Ui, state: &AppState) {
+    if state.probe.as_ref().is_some_and(|p| p.path.is_none()) {
+        ui.colored_label(ui.visuals().warn_fg_color, UNIFORM_NOTE)
+            .on_hover_text(UNIFORM_WARNING);
+    }
+}
+
+/// The text of [`uniform_note_ui`].
+pub const UNIFORM_NOTE: &str =
+    "Statuses from uniform samples of the input box, not reference data: units may fire on noise.";
+
 /// The text of [`uniform_warning_ui`].
 pub const UNIFORM_WARNING: &str = "No reference data: screened on uniform samples of the input box. Units may fire on noise that real data never produces.";
 

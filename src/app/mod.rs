@@ -240,12 +240,16 @@ impl ReceptorApp {
 
     /// Opens probe data for the open model in the background. When it fails, the error is
     /// shown and the probe in use stays.
+    /// Choosing reference data asks for the analysis again (after a Cancel too).
     pub fn open_probe(&mut self, path: &Path) {
+        self.state.run.stopped = false;
         self.request_probe(ProbeChoice::File(path.to_path_buf()));
     }
 
-    /// Switches to the default uniform probe.
+    /// Switches to the default uniform probe (and, like [`Self::open_probe`], asks for the
+    /// analysis again after a Cancel).
     pub fn use_uniform_probe(&mut self) {
+        self.state.run.stopped = false;
         self.request_probe(ProbeChoice::Uniform);
     }
 
@@ -555,8 +559,7 @@ impl ReceptorApp {
         ui.separator();
         match self.state.view {
             MainView::Units => {
-                self.units
-                    .ui(ui, &mut self.state, &mut self.thumbs, &mut self.actions);
+                self.units.ui(ui, &mut self.state, &mut self.thumbs);
             }
             MainView::Sparsity => self.sparsity.ui(ui, &mut self.state, &mut self.actions),
         }

@@ -6,7 +6,6 @@
 //! order ([`AppState::order`]). Only visible rows are drawn, so a 2048-unit layer scrolls
 //! smoothly.
 
-use super::Action;
 use super::maps;
 use super::state::{AppState, Selection, SortKey, StatusFilter, UnitView};
 use super::table::TablePanel;
@@ -38,13 +37,7 @@ pub struct UnitsPanel {
 
 impl UnitsPanel {
     /// Draws the toolbar and the table or the tile wall, and handles the keys.
-    pub fn ui(
-        &mut self,
-        ui: &mut egui::Ui,
-        state: &mut AppState,
-        thumbs: &mut Thumbs,
-        actions: &mut Vec<Action>,
-    ) {
+    pub fn ui(&mut self, ui: &mut egui::Ui, state: &mut AppState, thumbs: &mut Thumbs) {
         let Some(net) = state.net().cloned() else {
             return;
         };
@@ -53,11 +46,9 @@ impl UnitsPanel {
             return;
         }
         self.toolbar_ui(ui, state, &net, layer);
-        // Filtering by status rests on the screening's verdicts: say when they rest on
-        // noise (the layer list says it always).
-        if state.status_filter != StatusFilter::All {
-            super::layers::uniform_warning_ui(ui, state, actions);
-        }
+        // The table's statuses and the tiles' marks rest on the screening: say when it ran
+        // on noise (the layer list says so too, with the button to open a file).
+        super::layers::uniform_note_ui(ui, state);
         let order = state.order(layer);
         let tiles = state.prefs.unit_view == UnitView::Tiles;
         let row_step = if tiles { self.columns.max(1) } else { 1 };
