@@ -142,7 +142,7 @@ impl KeyPlace {
     }
 }
 
-/// `tiles` in a grid ([`grid_geometry`]) with the unit index `units[k]` above (square grids) or
+/// `tiles` in a grid (`picture::grid_geometry`) with the unit index `units[k]` above (square grids) or
 /// to the left of (strips) tile `k`, where it fits, and `key` below. Returns the picture and
 /// where the key's bar is.
 ///

@@ -7,12 +7,11 @@
 //!   with a tiny built-in digit font;
 //! - [`colour`]: the diverging colour key (CIELAB stops from `assets/colour-key.json`) and
 //!   the tick labels of its legend;
-//! - [`format`]: numbers with a fixed count of significant digits and percentages, for
-//!   both fronts;
+//! - [`format`](mod@format): numbers with a fixed count of significant digits and
+//!   percentages, for both fronts;
 //! - [`picture`]: the one renderer of maps, input pictures, cell grids and tile grids into
 //!   RGBA buffers and PNG bytes, so `receptor prefer --png`, the app's textures and its PNG
 //!   exports draw the same pixels;
-//! - [`format`](mod@format): numbers with a chosen count of significant digits, for tables people read;
 //! - [`filters`]: the convolution pictures (filters, feature maps, effective receptive
 //!   fields, receptive-field crops and boxes), built on [`picture`].
 //!

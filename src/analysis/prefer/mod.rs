@@ -38,9 +38,9 @@
 //! nearly flat between the hyperplanes of the layers below) they settle in the same few
 //! regions from most starts. So each unit also gets exploration starts: uniform random
 //! points moved by plain projected gradient ascent with a normalised step
-//! ([`search::Rule::Plain`]) for 1000 steps, whose large early steps follow the steepest
+//! (`search::Rule::Plain`) for 1000 steps, whose large early steps follow the steepest
 //! path across many regions (the best point of the path is kept). Their number is a work
-//! budget over the work of one start (see [`exploration_starts`]): hundreds on a small
+//! budget over the work of one start (see `exploration_starts`): hundreds on a small
 //! network, where a start costs a few thousand multiply-adds a step, none on a large layer
 //! (the 784-2048-2048 bench layer costs a million times more), so speed there is
 //! unchanged. The best of all starts, main and exploration, is returned.
