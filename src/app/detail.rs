@@ -1072,30 +1072,14 @@ fn search_settings_ui(
                 "Restarts",
                 egui::DragValue::new(&mut restarts).range(1..=64),
             );
-            row(
-                ui,
-                "L2 penalty",
-                egui::DragValue::new(&mut l2)
-                    .range(0.0..=100.0)
-                    .speed(0.001),
-            );
+            // A penalty weight: from 0 (off) to 100, dragged in steps of `speed`.
+            let weight_drag = |v, speed| egui::DragValue::new(v).range(0.0..=100.0).speed(speed);
+            row(ui, "L2 penalty", weight_drag(&mut l2, 0.001));
             // Total variation smooths neighbouring pixels: vector inputs have none.
             if image {
-                row(
-                    ui,
-                    "Total variation",
-                    egui::DragValue::new(&mut tv)
-                        .range(0.0..=100.0)
-                        .speed(0.001),
-                );
+                row(ui, "Total variation", weight_drag(&mut tv, 0.001));
             }
-            row(
-                ui,
-                "Prior weight",
-                egui::DragValue::new(&mut weight)
-                    .range(0.0..=100.0)
-                    .speed(0.01),
-            );
+            row(ui, "Prior weight", weight_drag(&mut weight, 0.01));
             row(
                 ui,
                 "Facets",
